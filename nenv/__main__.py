@@ -1,0 +1,3 @@
+from nenv.cli import main
+
+main()

@@ -1,0 +1,184 @@
+"""Load, validate, resample and write audio.
+
+Samples are float64 in [-1, 1] (full scale = 1.0) inside nenv. Files are read
+with soundfile (WAV, FLAC, Ogg/Vorbis and whatever libsndfile supports) and
+written atomically: a temporary file in the destination folder is renamed over
+the target only once it is complete, so a failed or interrupted run never
+leaves a half-written output.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from nenv.errors import InputError
+from nenv.files import atomic_output, check_output
+from nenv.settings import FULL_SCALE
+
+SUPPORTED_SR = (4000, 192000)  # Hz, the range of input rates nenv will resample from
+
+
+@dataclass(frozen=True)
+class Audio:
+    """A mono signal with its rate.
+
+    y : np.ndarray [shape=(n,)], float64, full scale = 1.0
+    sr : int > 0 [Hz]
+    """
+
+    y: np.ndarray
+    sr: int
+
+    @property
+    def duration(self) -> float:
+        """Length in seconds."""
+        return self.y.size / self.sr
+
+
+def load(path: str | os.PathLike, *, channel: int | None = None, mix: bool = False) -> Audio:
+    """Read an audio file as a validated mono float64 signal.
+
+    Parameters
+    ----------
+    path : path to a WAV, FLAC, Ogg or other libsndfile-readable file
+    channel : int >= 0, optional. Which channel of a multichannel file to use.
+    mix : bool. Average all channels instead of choosing one.
+
+    Raises
+    ------
+    InputError
+        Missing, unreadable, empty, multichannel without a choice, non-finite samples,
+        or a rate outside ``SUPPORTED_SR``.
+    """
+    import soundfile as sf
+
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"input file '{p}' does not exist")
+    if p.is_dir():
+        raise InputError(f"'{p}' is a folder, not an audio file")
+    try:
+        data, sr = sf.read(str(p), dtype="float64", always_2d=True)
+    except Exception as e:  # soundfile raises LibsndfileError, RuntimeError, TypeError
+        raise InputError(f"cannot read '{p}' as audio: {_first_line(e)}") from e
+    if data.shape[0] == 0:
+        raise InputError(f"'{p}' holds no samples")
+    n_ch = data.shape[1]
+    if mix:
+        y = data.mean(axis=1)
+    elif channel is not None:
+        if not 0 <= channel < n_ch:
+            raise InputError(f"channel={channel} does not exist: '{p}' has {n_ch} channel(s), numbered from 0")
+        y = data[:, channel]
+    elif n_ch > 1:
+        raise InputError(f"'{p}' has {n_ch} channels: choose one with --channel N (0..{n_ch - 1}) or average them with --mix")
+    else:
+        y = data[:, 0]
+    validate(y, sr=int(sr), name=str(p))
+    return Audio(np.ascontiguousarray(y), int(sr))
+
+
+def validate(y: np.ndarray, *, sr: int, name: str = "signal") -> None:
+    """Check that ``y`` is a usable mono signal at a supported rate.
+
+    Parameters
+    ----------
+    y : np.ndarray [shape=(n,)]
+    sr : int [Hz]
+    name : str, used in messages
+
+    Raises
+    ------
+    InputError
+    """
+    if y.ndim != 1:
+        raise InputError(f"{name}: expected a mono signal, got an array of shape {y.shape}")
+    if y.size == 0:
+        raise InputError(f"{name}: holds no samples")
+    if not np.all(np.isfinite(y)):
+        bad = int(np.count_nonzero(~np.isfinite(y)))
+        raise InputError(f"{name}: {bad} sample(s) are NaN or infinite")
+    if not SUPPORTED_SR[0] <= sr <= SUPPORTED_SR[1]:
+        raise InputError(f"{name}: sr={sr} Hz is outside the supported range {SUPPORTED_SR[0]}..{SUPPORTED_SR[1]} Hz")
+
+
+def is_silent(y: np.ndarray) -> bool:
+    """True if every sample is exactly zero (digital silence)."""
+    return not np.any(y)
+
+
+def resample(y: np.ndarray, *, orig_sr: int, target_sr: int) -> np.ndarray:
+    """Resample with the soxr library's high-quality band-limited resampler.
+
+    Parameters
+    ----------
+    y : np.ndarray [shape=(n,)]
+    orig_sr, target_sr : int > 0 [Hz]
+
+    Returns
+    -------
+    np.ndarray [shape=(round(n * target_sr / orig_sr),)], float64, delay-compensated
+    """
+    if orig_sr == target_sr:
+        return np.asarray(y, dtype=np.float64)
+    import soxr
+
+    out = soxr.resample(np.asarray(y, dtype=np.float64), orig_sr, target_sr, quality="HQ")
+    n_out = int(round(y.size * target_sr / orig_sr))
+    if out.size < n_out:
+        out = np.pad(out, (0, n_out - out.size))
+    return out[:n_out]
+
+
+def limit_peaks(y: np.ndarray, *, ceiling: float = 0.99 * FULL_SCALE) -> tuple[np.ndarray, int]:
+    """Clip samples beyond ``ceiling`` and count them.
+
+    Returns
+    -------
+    y : np.ndarray [shape=(n,)], |y| <= ceiling
+    n_limited : int, how many samples were changed
+    """
+    over = np.abs(y) > ceiling
+    n = int(np.count_nonzero(over))
+    if n:
+        y = np.clip(y, -ceiling, ceiling)
+    return y, n
+
+
+_SUBTYPES = {".wav": "PCM_16", ".flac": "PCM_16", ".ogg": "VORBIS"}
+AUDIO_SUFFIXES = tuple(_SUBTYPES)
+
+
+def write(path: str | os.PathLike, y: np.ndarray, *, sr: int, subtype: str | None = None) -> None:
+    """Write ``y`` atomically (see :mod:`nenv.files`).
+
+    Parameters
+    ----------
+    path : destination; the format follows the extension (.wav, .flac, .ogg)
+    y : np.ndarray [shape=(n,)], float, full scale = 1.0; values are clipped to +-1
+    sr : int > 0 [Hz]
+    subtype : soundfile subtype, default 16-bit PCM (Vorbis for .ogg)
+
+    Raises
+    ------
+    OutputError
+        The folder does not exist, the extension is unknown, or writing failed.
+    """
+    import soundfile as sf
+
+    p = check_output(path, suffixes=AUDIO_SUFFIXES)
+    ext = p.suffix.lower()
+    with atomic_output(p) as tmp:
+        with open(tmp, "wb") as fh:
+            sf.write(fh, np.clip(y, -1.0, 1.0), sr, subtype=subtype or _SUBTYPES[ext], format=ext[1:].upper())
+            fh.flush()
+            os.fsync(fh.fileno())
+
+
+def _first_line(e: Exception) -> str:
+    text = str(e).strip() or type(e).__name__
+    return text.splitlines()[0]

@@ -1,0 +1,49 @@
+"""The interface every envelope estimator implements."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class NarrowbandAnalysis:
+    """LPC analysis of consecutive hops of narrowband input.
+
+    frames : np.ndarray [shape=(n, WIN_NB)], raw 8 kHz samples, each ending at its hop's end
+    a : np.ndarray [shape=(n, NB_ORDER+1)], predictor coefficients
+    gain : np.ndarray [shape=(n,)], all-pole gain (RMS prediction error per sample)
+    """
+
+    frames: np.ndarray
+    a: np.ndarray
+    gain: np.ndarray
+
+    def __len__(self) -> int:
+        return self.a.shape[0]
+
+
+@dataclass(frozen=True)
+class Envelope:
+    """One wideband all-pole envelope per hop.
+
+    a : np.ndarray [shape=(n, p+1)], stable predictor coefficients at 16 kHz
+    gain : np.ndarray [shape=(n,)], amplitude G of G/A(z) for a unit-power excitation
+    """
+
+    a: np.ndarray
+    gain: np.ndarray
+
+
+class EnvelopeEstimator:
+    """Base class: maps narrowband hops to wideband envelopes, in order, hop by hop."""
+
+    name: str = "estimator"
+    order: int = 16
+
+    def estimate(self, analysis: NarrowbandAnalysis) -> Envelope:
+        raise NotImplementedError
+
+    def reset(self) -> None:
+        """Forget any state kept between calls (start of a new signal)."""

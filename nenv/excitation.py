@@ -1,0 +1,118 @@
+"""Narrowband excitation (LPC residual) and its extension to the 0-8 kHz band.
+
+The narrowband residual comes from inverse filtering each hop with that hop's
+``A(z)``; the filter memory is the samples before the hop, taken from the same
+analysis frame, so no separate state is needed. The extension runs at 16 kHz:
+
+* ``fold``: spectral folding by zero insertion (the 0-4 kHz residual is
+  mirrored into 4-8 kHz);
+* ``modulate``: the interpolated residual multiplied by a cosine at
+  ``shift_hz`` (its spectrum moves up by that much);
+* ``rectify``: full-wave rectification of the interpolated residual, a
+  nonlinearity whose harmonics fill the whole band, followed by DC removal and
+  power renormalisation to the residual's power.
+
+Each extended excitation is then whitened by a per-hop LPC inverse filter and
+its per-hop RMS is reported so the synthesis gain can normalise it.
+"""
+
+from __future__ import annotations
+
+from typing import Literal
+
+import numpy as np
+from scipy import signal
+
+from nenv import lpc
+from nenv.errors import InputError
+from nenv.settings import HOP_WB, WB_SR, WIN_WB
+from nenv.synthesis import UPSAMPLER_DELAY, Delay, Upsampler
+
+Method = Literal["fold", "modulate", "rectify"]
+METHODS = ("fold", "modulate", "rectify")
+WHITEN_ORDER = 8  # LPC order of the whitening filter at 16 kHz
+DC_POLE = 0.99  # pole of the DC-removal filter (-3 dB near 26 Hz at 16 kHz)
+DEFAULT_SHIFT_HZ = 3400.0  # Hz, modulation shift: the band edge of the telephone channel
+
+
+def residual(frames: np.ndarray, a: np.ndarray, *, hop_length: int) -> np.ndarray:
+    """LPC residual of the last ``hop_length`` samples of each frame.
+
+    ``e[n] = sum_k a_k x[n-k]`` with the hop's own coefficients; the
+    ``order`` samples before the hop are read from the same frame, so frames
+    from :class:`nenv.lpc.FrameBuffer` give a residual with state carried across hops.
+
+    Parameters
+    ----------
+    frames : np.ndarray [shape=(n, L)], raw samples, L >= hop_length + order
+    a : np.ndarray [shape=(n, order+1)]
+    hop_length : int [samples]
+
+    Returns
+    -------
+    np.ndarray [shape=(n * hop_length,)]
+    """
+    n, length = frames.shape
+    p = a.shape[1] - 1
+    if length < hop_length + p:
+        raise ValueError(f"frames of {length} samples are too short for hop {hop_length} and order {p}")
+    start = length - hop_length
+    e = np.zeros((n, hop_length))
+    for k in range(p + 1):
+        e += a[:, k, None] * frames[:, start - k : length - k]
+    return e.reshape(-1)
+
+
+class ExcitationExtender:
+    """Extend a narrowband residual to a whitened 16 kHz excitation, hop by hop, with state."""
+
+    def __init__(self, method: Method = "rectify", *, shift_hz: float = DEFAULT_SHIFT_HZ, whiten: bool = True):
+        if method not in METHODS:
+            raise InputError(f"excitation={method!r} is not known: choose one of {', '.join(METHODS)}")
+        if not 0 < shift_hz < WB_SR / 2:
+            raise InputError(f"shift_hz={shift_hz} must lie between 0 and {WB_SR // 2} Hz")
+        self.method = method
+        self.shift_hz = shift_hz
+        self.whiten = whiten
+        self._up = Upsampler()
+        self._delay = Delay(UPSAMPLER_DELAY)
+        self._n = 0  # samples produced so far: the modulator's phase reference
+        self._dc_zi = np.zeros(1)
+        self._frames = lpc.FrameBuffer(frame_length=WIN_WB, hop_length=HOP_WB)
+
+    def process(self, e: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Extend whole hops of narrowband residual.
+
+        Parameters
+        ----------
+        e : np.ndarray [shape=(n * 80,)], residual at 8 kHz
+
+        Returns
+        -------
+        u : np.ndarray [shape=(n * 160,)], extended excitation at 16 kHz, aligned
+            with :class:`nenv.synthesis.Upsampler` output (delay UPSAMPLER_DELAY)
+        rms : np.ndarray [shape=(n,)], RMS of ``u`` over each hop (> 0)
+        """
+        n_hops = (2 * e.size) // HOP_WB
+        if self.method == "fold":
+            z = np.zeros(2 * e.size)
+            z[::2] = np.sqrt(2.0) * e
+            u = self._delay.process(z)
+        else:
+            up = self._up.process(e)
+            if self.method == "modulate":
+                t = self._n + np.arange(up.size, dtype=np.float64)  # global sample index: phase continues across calls
+                u = up * 2.0 * np.cos(2 * np.pi * self.shift_hz * t / WB_SR)
+            else:
+                z, self._dc_zi = signal.lfilter([1.0, -1.0], [1.0, -DC_POLE], np.abs(up), zi=self._dc_zi)
+                p_up = np.mean(up.reshape(n_hops, HOP_WB) ** 2, axis=1)
+                p_z = np.mean(z.reshape(n_hops, HOP_WB) ** 2, axis=1)
+                scale = np.sqrt(p_up / np.maximum(p_z, 1e-30))
+                u = (z.reshape(n_hops, HOP_WB) * scale[:, None]).reshape(-1)
+        self._n += u.size
+        frames = self._frames.push(u)
+        if self.whiten:
+            a, _ = lpc.analyse(frames, order=WHITEN_ORDER, sr=WB_SR)
+            u = residual(frames, a, hop_length=HOP_WB)
+        rms = np.sqrt(np.mean(u.reshape(n_hops, HOP_WB) ** 2, axis=1))
+        return u, np.maximum(rms, 1e-9)

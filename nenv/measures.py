@@ -1,0 +1,155 @@
+"""Objective measures of extended speech against a wideband reference.
+
+All measures compare two time-aligned 16 kHz signals of equal length.
+
+Spectral analysis (both signals alike): frames of 512 samples (32 ms) every
+160 samples (10 ms), periodic Hann window, 512-point FFT, power per bin
+``|X|**2 / sum(w**2)``. A frame is *active* when its reference energy is
+within 40 dB of the reference's loudest frame. Power below a floor of 80 dB
+under the loudest reference bin of the file is raised to that floor in both
+signals, so empty bands compare at the floor instead of at -infinity.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from nenv import lpc
+from nenv.errors import InputError
+from nenv.settings import BAND_EDGE_HZ, WB_SR
+
+N_FFT = 512  # samples at 16 kHz = 32 ms
+HOP = 160  # samples = 10 ms
+ACTIVE_DB = 40.0  # dB below the loudest reference frame still counted as active
+FLOOR_DB = 80.0  # dB below the loudest reference bin: power floor
+ENVELOPE_ORDER = 16  # LPC order of the smoothed (envelope-only) spectra
+HIGH_BAND = (BAND_EDGE_HZ, WB_SR / 2)  # Hz
+FULL_BAND = (0.0, WB_SR / 2)  # Hz
+
+
+def _frames(y: np.ndarray) -> np.ndarray:
+    pad = np.pad(y, (N_FFT // 2, N_FFT // 2))
+    n = 1 + (pad.size - N_FFT) // HOP
+    idx = np.arange(N_FFT)[None, :] + HOP * np.arange(n)[:, None]
+    return pad[idx]
+
+
+def _window() -> np.ndarray:
+    return 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(N_FFT) / N_FFT)
+
+
+def power_spectra(y: np.ndarray) -> np.ndarray:
+    """Short-time power spectra [shape=(n_frames, N_FFT//2+1)] on the grid above."""
+    w = _window()
+    spec = np.fft.rfft(_frames(y) * w, axis=-1)
+    return (spec.real**2 + spec.imag**2) / np.sum(w * w)
+
+
+def envelope_spectra(y: np.ndarray) -> np.ndarray:
+    """LPC envelopes (order 16, with gain) of the same frames [shape=(n_frames, N_FFT//2+1)]."""
+    w = _window()
+    fr = _frames(y) * w
+    r = lpc.autocorrelation(fr, order=ENVELOPE_ORDER)
+    r[:, 0] *= 1.0 + 1e-9  # keeps digital-silence frames well defined
+    a, _, err = lpc.levinson(r, order=ENVELOPE_ORDER)
+    return lpc.power_spectrum(a, gain=np.sqrt(np.maximum(err, 0) / np.sum(w * w)), n_fft=N_FFT)
+
+
+def _check(ref: np.ndarray, est: np.ndarray) -> None:
+    if ref.shape != est.shape or ref.ndim != 1:
+        raise InputError(f"measures need two mono signals of equal length, got {ref.shape} and {est.shape}")
+
+
+def _band(band: tuple[float, float]) -> np.ndarray:
+    f = np.fft.rfftfreq(N_FFT, 1 / WB_SR)
+    return (f >= band[0]) & (f <= band[1])
+
+
+def _active(p_ref: np.ndarray) -> np.ndarray:
+    e = p_ref.sum(axis=1)
+    return e >= e.max() * 10 ** (-ACTIVE_DB / 10) if e.max() > 0 else np.zeros(e.size, bool)
+
+
+def _lsd(p_ref: np.ndarray, p_est: np.ndarray, band: tuple[float, float], floor_from: np.ndarray) -> float:
+    active = _active(floor_from)
+    if not np.any(active):
+        return float("nan")
+    floor = floor_from.max() * 10 ** (-FLOOR_DB / 10)
+    sel = _band(band)
+    d = 10 * np.log10(np.maximum(p_ref[active][:, sel], floor)) - 10 * np.log10(np.maximum(p_est[active][:, sel], floor))
+    return float(np.mean(np.sqrt(np.mean(d * d, axis=1))))
+
+
+def lsd(ref: np.ndarray, est: np.ndarray, *, band: tuple[float, float] = HIGH_BAND) -> float:
+    """Log-spectral distance in dB over ``band`` (Hz), mean over active frames.
+
+    Per frame: ``sqrt(mean over bins in band of (10 log10 P_ref - 10 log10 P_est)**2)``.
+    """
+    _check(ref, est)
+    p_ref = power_spectra(ref)
+    return _lsd(p_ref, power_spectra(est), band, p_ref)
+
+
+def lsd_envelope(ref: np.ndarray, est: np.ndarray, *, band: tuple[float, float] = HIGH_BAND) -> float:
+    """As :func:`lsd`, on order-16 LPC envelopes (with gain): spectral shape and level only.
+
+    Active frames and the floor come from the reference's short-time spectra.
+    """
+    _check(ref, est)
+    return _lsd(envelope_spectra(ref), envelope_spectra(est), band, power_spectra(ref))
+
+
+def high_band_level_error(ref: np.ndarray, est: np.ndarray) -> float:
+    """Median over active frames of ``10 log10(E_est / E_ref)`` in 3.4-8 kHz, in dB.
+
+    Positive means the high band is louder than the reference (over-estimated).
+    """
+    _check(ref, est)
+    p_ref, p_est = power_spectra(ref), power_spectra(est)
+    active = _active(p_ref)
+    if not np.any(active):
+        return float("nan")
+    floor = p_ref.max() * 10 ** (-FLOOR_DB / 10)
+    sel = _band(HIGH_BAND)
+    e_ref = np.maximum(p_ref[active][:, sel].sum(axis=1), floor)
+    e_est = np.maximum(p_est[active][:, sel].sum(axis=1), floor)
+    return float(np.median(10 * np.log10(e_est / e_ref)))
+
+
+def pesq_wb(ref: np.ndarray, est: np.ndarray) -> float:
+    """Wideband PESQ (ITU-T P.862.2) MOS-LQO via the ``pesq`` package; NaN if it finds no speech."""
+    _check(ref, est)
+    from pesq import pesq
+
+    try:
+        return float(pesq(WB_SR, ref.astype(np.float64), est.astype(np.float64), "wb"))
+    except Exception:  # pesq raises its own NoUtterancesError / BufferTooShortError
+        return float("nan")
+
+
+@dataclass(frozen=True)
+class Scores:
+    """Every measure for one system on one clip (dB unless noted)."""
+
+    lsd_high: float
+    lsd_full: float
+    lsd_env_high: float
+    lsd_env_full: float
+    level_error_high: float
+    pesq_wb: float  # MOS-LQO, 1.04..4.64
+
+    @classmethod
+    def compute(cls, ref: np.ndarray, est: np.ndarray) -> "Scores":
+        _check(ref, est)
+        p_ref, p_est = power_spectra(ref), power_spectra(est)
+        e_ref, e_est = envelope_spectra(ref), envelope_spectra(est)
+        return cls(
+            lsd_high=_lsd(p_ref, p_est, HIGH_BAND, p_ref),
+            lsd_full=_lsd(p_ref, p_est, FULL_BAND, p_ref),
+            lsd_env_high=_lsd(e_ref, e_est, HIGH_BAND, p_ref),
+            lsd_env_full=_lsd(e_ref, e_est, FULL_BAND, p_ref),
+            level_error_high=high_band_level_error(ref, est),
+            pesq_wb=pesq_wb(ref, est),
+        )

@@ -1,0 +1,185 @@
+"""All-pole synthesis, band isolation and mixing with the narrowband signal.
+
+Every class here is a causal stage with its state carried across calls, so a
+signal processed in pieces gives the same output as processed at once.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+
+import numpy as np
+from scipy import signal
+
+from nenv import lpc
+from nenv.settings import BAND_EDGE_HZ, HOP_WB, N_SUBFRAMES, WB_SR
+
+UPSAMPLER_TAPS = 47  # at 16 kHz, linear phase
+UPSAMPLER_DELAY = (UPSAMPLER_TAPS - 1) // 2  # samples at 16 kHz = 1.44 ms
+ISOLATION_ORDER = 10  # elliptic high-pass that keeps only the new band
+ISOLATION_PASS_HZ = BAND_EDGE_HZ + 50.0  # Hz, pass-band edge (0.2 dB ripple)
+ISOLATION_STOP_DB = 60.0  # dB of rejection, reached by 3300 Hz
+MAX_REFLECTION = 0.9999  # |k| ceiling applied before synthesis
+
+
+@lru_cache(maxsize=None)
+def upsampler_taps() -> np.ndarray:
+    """Interpolation low-pass for 8 -> 16 kHz, with the x2 gain of zero insertion.
+
+    Parks-McClellan, pass 0-3500 Hz (+-0.06 dB), stop from 4500 Hz (<= -63 dB): the
+    telephone band passes untouched and its image above 4.6 kHz is removed.
+    """
+    return 2.0 * signal.remez(UPSAMPLER_TAPS, [0, 3500, 4500, WB_SR / 2], [1, 0], weight=[1, 10], fs=WB_SR)
+
+
+@lru_cache(maxsize=None)
+def isolation_sos() -> np.ndarray:
+    """Elliptic high-pass that isolates the added band (above 3.4 kHz).
+
+    Its phase is irrelevant (it filters synthetic content only), so an IIR filter
+    keeps the latency low. Measured: <= -60 dB below 3300 Hz, 0.2 dB ripple above 3450 Hz.
+    """
+    return signal.ellip(ISOLATION_ORDER, 0.2, ISOLATION_STOP_DB, ISOLATION_PASS_HZ, btype="highpass", fs=WB_SR, output="sos")
+
+
+class FirStage:
+    """FIR filter with state."""
+
+    def __init__(self, taps: np.ndarray):
+        self.taps = taps
+        self._zi = np.zeros(taps.size - 1)
+
+    def process(self, x: np.ndarray) -> np.ndarray:
+        if x.size == 0:
+            return np.zeros(0)
+        y, self._zi = signal.lfilter(self.taps, [1.0], x, zi=self._zi)
+        return y
+
+
+class SosStage:
+    """IIR filter in second-order sections with state."""
+
+    def __init__(self, sos: np.ndarray):
+        self.sos = sos
+        self._zi = np.zeros((sos.shape[0], 2))
+
+    def process(self, x: np.ndarray) -> np.ndarray:
+        if x.size == 0:
+            return np.zeros(0)
+        y, self._zi = signal.sosfilt(self.sos, x, zi=self._zi)
+        return y
+
+
+class Upsampler:
+    """8 -> 16 kHz by zero insertion and the :func:`upsampler_taps` low-pass; delay UPSAMPLER_DELAY."""
+
+    def __init__(self):
+        self._fir = FirStage(upsampler_taps())
+
+    def process(self, x: np.ndarray) -> np.ndarray:
+        z = np.zeros(2 * x.size)
+        z[::2] = x
+        return self._fir.process(z)
+
+
+class Delay:
+    """Pure delay of ``n`` samples."""
+
+    def __init__(self, n: int):
+        self._buf = np.zeros(n)
+
+    def process(self, x: np.ndarray) -> np.ndarray:
+        if self._buf.size == 0:
+            return x
+        buf = np.concatenate([self._buf, x])
+        self._buf = buf[x.size :].copy()
+        return buf[: x.size]
+
+
+def interpolate_envelopes(k_prev: np.ndarray, k: np.ndarray, log_g_prev: float, log_g: np.ndarray, *, n_sub: int) -> tuple[np.ndarray, np.ndarray]:
+    """Per-sub-frame envelopes interpolated from the previous frame to each frame.
+
+    Interpolation is linear in the reflection coefficients (so every sub-frame
+    is stable when the frames are) and linear in log gain. Sub-frame ``j`` of
+    frame ``t`` has weight ``(j+1)/n_sub`` on frame ``t``.
+
+    Parameters
+    ----------
+    k_prev : np.ndarray [shape=(p,)], last frame of the previous call
+    k : np.ndarray [shape=(n, p)]
+    log_g_prev : float; log_g : np.ndarray [shape=(n,)]
+
+    Returns
+    -------
+    a : np.ndarray [shape=(n, n_sub, p+1)]; gain : np.ndarray [shape=(n, n_sub)]
+    """
+    k_before = np.vstack([k_prev[None, :], k[:-1]])
+    g_before = np.concatenate([[log_g_prev], log_g[:-1]])
+    w = (np.arange(n_sub) + 1.0) / n_sub
+    k_sub = k_before[:, None, :] * (1 - w)[None, :, None] + k[:, None, :] * w[None, :, None]
+    g_sub = g_before[:, None] * (1 - w)[None, :] + log_g[:, None] * w[None, :]
+    return lpc.from_reflection(k_sub), np.exp(g_sub)
+
+
+class AllPoleSynthesizer:
+    """``G / A(z)`` synthesis with per-sub-frame interpolated coefficients.
+
+    The filter memory is the last ``order`` output samples (direct form), so a
+    coefficient change at a sub-frame boundary continues the recursion on the
+    true past output: no clicks at frame boundaries.
+    """
+
+    def __init__(self, *, order: int, hop_length: int = HOP_WB, n_sub: int = N_SUBFRAMES):
+        if hop_length % n_sub:
+            raise ValueError(f"hop_length={hop_length} must be a multiple of n_sub={n_sub}")
+        self.order = order
+        self.hop_length = hop_length
+        self.n_sub = n_sub
+        self._past = np.zeros(order)  # y[n-1], y[n-2], ..., y[n-order]
+        self._k_prev = np.zeros(order)
+        self._log_g_prev = np.log(1e-9)
+        i = np.arange(order)
+        self._idx = i[:, None] + 1 + i[None, :]  # zi[m] = -sum_i a[m+1+i] * y[n-1-i]
+        self._mask = self._idx <= order
+        self._idx = np.minimum(self._idx, order)
+
+    def process(self, u: np.ndarray, *, a: np.ndarray, gain: np.ndarray) -> np.ndarray:
+        """Synthesize one or more hops.
+
+        Parameters
+        ----------
+        u : np.ndarray [shape=(n * hop_length,)], excitation
+        a : np.ndarray [shape=(n, order+1)], stable predictor coefficients per hop
+        gain : np.ndarray [shape=(n,)], amplitude per hop (> 0)
+
+        Returns
+        -------
+        np.ndarray [shape=(n * hop_length,)]
+        """
+        n = a.shape[0]
+        if n == 0:
+            return np.zeros(0)
+        k, _ = lpc.reflection(a)
+        k = np.clip(np.nan_to_num(k), -MAX_REFLECTION, MAX_REFLECTION)
+        log_g = np.log(np.maximum(gain, 1e-12))
+        a_sub, g_sub = interpolate_envelopes(self._k_prev, k, self._log_g_prev, log_g, n_sub=self.n_sub)
+        self._k_prev = k[-1].copy()
+        self._log_g_prev = float(log_g[-1])
+        sub = self.hop_length // self.n_sub
+        u = u.reshape(n * self.n_sub, sub)
+        a_sub = a_sub.reshape(n * self.n_sub, self.order + 1)
+        g_sub = g_sub.reshape(-1)
+        out = np.empty_like(u)
+        past = self._past
+        idx, mask = self._idx, self._mask
+        for j in range(u.shape[0]):
+            aj = a_sub[j]
+            zi = -np.sum(aj[idx] * mask * past[None, :], axis=1)
+            y = signal.lfilter([g_sub[j]], aj, u[j], zi=zi)[0]
+            out[j] = y
+            if sub >= self.order:
+                past = y[: -self.order - 1 : -1]
+            else:
+                past = np.concatenate([y[::-1], past])[: self.order]
+        self._past = past.copy()
+        return out.reshape(-1)
