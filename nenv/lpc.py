@@ -320,7 +320,8 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tupl
     Returns
     -------
     a : np.ndarray [shape=(..., order+1)]
-    gain : np.ndarray [shape=(...)], amplitude G with G**2 the model's error power
+    gain : np.ndarray [shape=(...)], amplitude G with G**2 the model's error power;
+        +inf (never NaN) when the cepstrum's level overflows float64
     """
     logmag = log_magnitude(np.asarray(c, dtype=np.float64), n_fft=n_fft)
     top = np.max(logmag, axis=-1, keepdims=True)
@@ -329,7 +330,9 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tupl
     rel = np.maximum(logmag - top, -STABLE_FLOOR_DB * np.log(10) / 20)
     r = np.fft.irfft(np.exp(2.0 * rel), n=n_fft, axis=-1)[..., : order + 1]
     a, _, err = levinson(r, order=order)
-    return a, np.sqrt(np.maximum(err, 0.0)) * np.exp(top[..., 0])
+    with np.errstate(over="ignore"):  # an absurd c_0 gives gain = inf, which the guard rejects
+        gain = np.sqrt(np.maximum(err, 0.0)) * np.exp(top[..., 0])
+    return a, gain
 
 
 def power_spectrum(a: np.ndarray, *, gain: np.ndarray | float = 1.0, n_fft: int = 512) -> np.ndarray:

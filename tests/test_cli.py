@@ -1,0 +1,116 @@
+"""The command line, as a user meets it: good runs, and one clear line for every bad input."""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import pytest
+import soundfile as sf
+from typer.testing import CliRunner
+
+from nenv.cli import app
+from tests.conftest import ARCTIC
+
+runner = CliRunner()
+
+
+def _run(*args):
+    return runner.invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+def _assert_user_error(res, needle):
+    assert res.exit_code == 2, res.output
+    err = res.stderr.strip()
+    assert err.startswith("nenv: error:") and len(err.splitlines()) == 1, err
+    assert needle in err, err
+    assert "Traceback" not in res.output
+
+
+@pytest.fixture
+def nb_file(tmp_path):
+    out = tmp_path / "call.wav"
+    res = _run("degrade", ARCTIC[0], out, "--law", "mulaw")
+    assert res.exit_code == 0, res.output
+    return out
+
+
+def test_degrade_then_extend(nb_file, tmp_path):
+    info = sf.info(nb_file)
+    assert info.samplerate == 8000 and info.frames == 32000
+    out = tmp_path / "wide.wav"
+    fig = tmp_path / "wide.png"
+    res = _run("extend", nb_file, out, "--figure", fig)
+    assert res.exit_code == 0, res.output
+    y, sr = sf.read(out)
+    assert sr == 16000 and y.size == 2 * info.frames
+    assert fig.stat().st_size > 10000
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["call.wav", "wide.png", "wide.wav"]
+
+
+def test_extend_oracle_needs_reference(nb_file, tmp_path):
+    _assert_user_error(_run("extend", nb_file, tmp_path / "o.wav", "--method", "oracle"), "--reference")
+    res = _run("extend", nb_file, tmp_path / "o.wav", "--method", "oracle", "--reference", ARCTIC[0])
+    assert res.exit_code == 0, res.output
+
+
+def test_evaluate_prints_every_system_and_measure(tmp_path):
+    res = _run("evaluate", *ARCTIC, "--out", tmp_path / "ev", "--law", "none", "--law", "alaw")
+    assert res.exit_code == 0, res.output
+    for word in ["unextended", "imaging", "oracle", "LSD 3.4-8k", "env LSD", "HB level err", "WB-PESQ", "alaw", "**mean**"]:
+        assert word in res.stdout
+    rows = (tmp_path / "ev" / "table.csv").read_text().splitlines()
+    assert len(rows) == 1 + 2 * 2 * 3 + 2 * 3
+    assert (tmp_path / "ev" / "spectrograms.png").stat().st_size > 20000
+    assert "estimated, not recorded" in (tmp_path / "ev" / "table.md").read_text()
+
+
+def test_demo_runs(tmp_path):
+    res = _run("demo", "--out", tmp_path / "d")
+    assert res.exit_code == 0, res.output
+    assert (tmp_path / "d" / "order_confirmation_16k.wav").exists()
+    assert (tmp_path / "d" / "order_confirmation.png").exists()
+
+
+def _write(path, data, sr, subtype="PCM_16"):
+    sf.write(path, data, sr, subtype=subtype)
+    return path
+
+
+def test_bad_inputs_get_one_clear_line_and_no_output(tmp_path):
+    out = tmp_path / "out.wav"
+    t = np.arange(8000) / 8000
+    speech = 0.1 * np.sin(2 * np.pi * 440 * t)
+    cases = [
+        (tmp_path / "missing.wav", "does not exist"),
+        (tmp_path, "folder"),
+        (tmp_path / "text.wav", "cannot read"),
+        (_write(tmp_path / "empty.wav", np.zeros(0), 8000), "no samples"),
+        (_write(tmp_path / "zeros.wav", np.zeros(8000), 8000), "silence"),
+        (_write(tmp_path / "nan.wav", np.where(t < 0.5, speech, np.nan), 8000, "FLOAT"), "NaN"),
+        (_write(tmp_path / "stereo.wav", np.stack([speech, speech], 1), 8000), "--channel"),
+        (_write(tmp_path / "odd.wav", speech, 11025), "sr=11025"),
+        (_write(tmp_path / "wide.wav", speech, 16000), "nenv degrade"),
+    ]
+    (tmp_path / "text.wav").write_text("RIFF? no, just text")
+    for path, needle in cases:
+        _assert_user_error(_run("extend", path, out), needle)
+        assert not out.exists()
+    ok = _write(tmp_path / "ok.wav", speech, 8000)
+    _assert_user_error(_run("extend", ok, tmp_path / "no" / "such" / "dir.wav"), "does not exist")
+    _assert_user_error(_run("extend", ok, tmp_path / "x.mp3"), ".wav")
+    _assert_user_error(_run("extend", ok, out, "--method", "magic"), "--method magic")
+    assert _run("extend", tmp_path / "stereo.wav", out, "--channel", "1").exit_code == 0
+    assert _run("extend", tmp_path / "odd.wav", tmp_path / "r.wav", "--resample").exit_code == 0
+    leftovers = [p for p in os.listdir(tmp_path) if p.endswith(".part.wav")]
+    assert leftovers == []
+
+
+def test_degrade_refuses_narrowband(tmp_path):
+    p = _write(tmp_path / "nb.wav", 0.1 * np.ones(800), 8000)
+    _assert_user_error(_run("degrade", p, tmp_path / "o.wav"), "wideband")
+    _assert_user_error(_run("degrade", ARCTIC[0], tmp_path / "o.wav", "--law", "ulaw"), "law")
+
+
+def test_evaluate_refuses_narrowband_reference(nb_file, tmp_path):
+    _assert_user_error(_run("evaluate", nb_file, "--out", tmp_path / "ev"), "wideband")

@@ -1,0 +1,61 @@
+"""Objective measures: definitions checked on signals whose answer is known."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from nenv import measures
+
+
+def test_identical_signals_score_perfectly(arctic_refs):
+    _, ref = arctic_refs[0]
+    s = measures.Scores.compute(ref, ref.copy())
+    assert s.lsd_high == 0 and s.lsd_full == 0 and s.lsd_env_high == pytest.approx(0, abs=1e-9)
+    assert s.level_error_high == 0
+    # ITU-T P.862.2's mapping tops out at MOS-LQO 4.64 for identical signals (value from memory).
+    assert s.pesq_wb == pytest.approx(4.64, abs=0.01)
+
+
+def test_gain_of_two_is_six_db_everywhere(arctic_refs, rng):
+    # 20 log10(2) = 6.0206 dB in every bin above the floor (white noise: no bin near the floor) ...
+    noise = 0.1 * rng.standard_normal(32000)
+    assert measures.lsd(noise, 2 * noise, band=measures.FULL_BAND) == pytest.approx(6.0206, abs=1e-6)
+    assert measures.lsd(noise, 2 * noise) == pytest.approx(6.0206, abs=1e-6)
+    assert measures.lsd_envelope(noise, 2 * noise) == pytest.approx(6.0206, abs=1e-6)
+    # ... and in the high-band level, for real speech.
+    _, ref = arctic_refs[1]
+    est = 2 * ref
+    assert measures.high_band_level_error(ref, est) == pytest.approx(6.0206, abs=1e-6)
+    assert measures.high_band_level_error(ref, ref / 2) == pytest.approx(-6.0206, abs=1e-6)
+
+
+def test_high_band_measures_ignore_the_low_band(rng):
+    t = np.arange(32000) / 16000
+    ref = 0.1 * np.sin(2 * np.pi * 1000 * t) + 0.01 * rng.standard_normal(t.size)
+    low_changed = ref + 0.1 * np.sin(2 * np.pi * 500 * t)
+    assert measures.lsd(ref, low_changed, band=measures.HIGH_BAND) < 0.05
+    assert measures.lsd(ref, low_changed, band=measures.FULL_BAND) > 0.5
+
+
+def test_an_empty_band_costs_the_floor_distance(rng):
+    # Noise with its high band removed: the high-band LSD is bounded by the 80 dB floor.
+    from scipy import signal
+
+    ref = rng.standard_normal(32000) * 0.1
+    lp = signal.sosfilt(signal.butter(12, 3000, fs=16000, output="sos"), ref)
+    d = measures.lsd(ref, lp)
+    assert 20 < d <= measures.FLOOR_DB
+
+
+def test_silent_reference_gives_nan():
+    z = np.zeros(16000)
+    assert np.isnan(measures.lsd(z, z))
+    assert np.isnan(measures.pesq_wb(z, z))
+
+
+def test_mismatched_lengths_are_refused():
+    from nenv.errors import InputError
+
+    with pytest.raises(InputError, match="equal length"):
+        measures.lsd(np.zeros(100), np.zeros(101))
