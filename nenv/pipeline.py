@@ -159,22 +159,52 @@ def extend(x: np.ndarray, *, system: System, on_progress: Callable[[int, int], N
     return Extended(y=y, sr=2 * NB_SR, n_limited=n_limited)
 
 
-def _oracle(reference: np.ndarray | None, excitation: Method) -> System:
+def _oracle(reference: np.ndarray | None, excitation: Method, model) -> System:
     if reference is None:
         raise InputError("the oracle system needs the wideband reference (it measures the true envelope)")
     return SourceFilterSystem(OracleEstimator(reference), excitation=excitation)
 
 
-# name -> factory(reference, excitation). The neural and codebook estimators register here.
-SYSTEMS: dict[str, Callable[[np.ndarray | None, Method], System]] = {
-    "unextended": lambda ref, exc: Unextended(),
-    "imaging": lambda ref, exc: ImagingSystem(),
+def _checkpoint(model):
+    from nenv import checkpoint
+
+    if model is None:
+        model = checkpoint.default_path()
+        if model is None:
+            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
+    return model if isinstance(model, checkpoint.Checkpoint) else checkpoint.load(model)
+
+
+def _neural(reference, excitation: Method, model) -> System:
+    from nenv.estimators.neural import NeuralEstimator
+
+    return SourceFilterSystem(NeuralEstimator(_checkpoint(model)), excitation=excitation)
+
+
+def _codebook(reference, excitation: Method, model) -> System:
+    from nenv.estimators.codebook import CodebookEstimator
+
+    return SourceFilterSystem(CodebookEstimator(_checkpoint(model).codebook), excitation=excitation)
+
+
+# name -> factory(reference, excitation, model). Model-based systems take a checkpoint folder or object.
+SYSTEMS: dict[str, Callable[[np.ndarray | None, Method, object], System]] = {
+    "unextended": lambda ref, exc, model: Unextended(),
+    "imaging": lambda ref, exc, model: ImagingSystem(),
+    "codebook": _codebook,
+    "neural": _neural,
     "oracle": _oracle,
 }
+MODEL_SYSTEMS = ("codebook", "neural")
 
 
-def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION) -> System:
-    """Build a system by name: 'unextended', 'imaging', 'oracle' (needs ``reference`` at 16 kHz)."""
+def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION, model=None) -> System:
+    """Build a system by name.
+
+    'unextended', 'imaging'; 'codebook' and 'neural' (need ``model``: a checkpoint
+    folder or :class:`nenv.checkpoint.Checkpoint`, default the shipped model);
+    'oracle' (needs ``reference``, the time-aligned 16 kHz original).
+    """
     if name not in SYSTEMS:
         raise InputError(f"method={name!r} is not known: choose one of {', '.join(SYSTEMS)}")
-    return SYSTEMS[name](reference, excitation)
+    return SYSTEMS[name](reference, excitation, model)

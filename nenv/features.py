@@ -1,0 +1,187 @@
+"""Per-hop features: the network's inputs (narrowband) and its training targets (wideband).
+
+Both training and the runtime compute inputs with these functions from the
+same :class:`nenv.estimators.base.NarrowbandAnalysis`, so a model sees at run
+time exactly what it saw in training. :class:`FeatureSettings` records every
+choice; a model carries it and the runtime refuses a model whose settings
+differ from its own.
+
+Inputs, per hop (``N_INPUTS`` values), from the narrowband analysis frame:
+  * ``c_1 .. c_10``: cepstrum of the order-10 LPC envelope (shape only, no gain)
+  * ``energy_db``: windowed frame power in dB re full scale (floored at -100 dB)
+  * ``prediction_gain_db``: frame power over LPC prediction-error power, in dB (a
+    spectral-flatness measure: 0 dB for white noise, high for peaky spectra)
+  * ``voicing``: largest normalised autocorrelation at lags 20-147 (54-400 Hz
+    pitch), 0 for noise, near 1 for steady voiced speech
+  * ``zcr``: zero-crossing rate of the hop, crossings per sample
+The network sees the current hop and ``context`` past hops (no look-ahead).
+
+Targets, per hop, from the time-aligned 16 kHz frame:
+  * ``c_1 .. c_20``: cepstrum of the order-16 LPC envelope (shape only)
+  * ``level_db``: high-band (3.4-8 kHz) power of the wideband frame relative to
+    the narrowband frame power, in dB
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, fields
+
+import numpy as np
+
+from nenv import lpc
+from nenv.errors import ConfigError
+from nenv.estimators.base import NarrowbandAnalysis
+from nenv.settings import BAND_EDGE_HZ, HOP_NB, HOP_WB, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
+
+FEATURE_VERSION = 1
+ENERGY_FLOOR_DB = -100.0  # dB re full scale
+PITCH_LAGS = (20, 147)  # samples at 8 kHz: 400 Hz down to 54 Hz
+LEVEL_N_FFT = 512  # FFT size for band powers at 16 kHz
+INPUT_NAMES = [f"c{i}" for i in range(1, 11)] + ["energy_db", "prediction_gain_db", "voicing", "zcr"]
+N_INPUTS = len(INPUT_NAMES)
+
+
+@dataclass(frozen=True)
+class FeatureSettings:
+    """Everything that defines the features; stored in every model and compared at load time."""
+
+    version: int = FEATURE_VERSION
+    nb_sr: int = NB_SR
+    wb_sr: int = WB_SR
+    hop_nb: int = HOP_NB
+    win_nb: int = WIN_NB
+    win_wb: int = WIN_WB
+    nb_order: int = NB_ORDER
+    wb_order: int = WB_ORDER
+    n_inputs: int = N_INPUTS
+    n_wb_ceps: int = 20
+    context: int = 4
+    band_edge_hz: float = BAND_EDGE_HZ
+
+    @property
+    def input_dim(self) -> int:
+        """Width of one stacked network input (current hop + context)."""
+        return self.n_inputs * (self.context + 1)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "FeatureSettings":
+        known = {f.name for f in fields(cls)}
+        unknown = set(d) - known
+        if unknown:
+            raise ConfigError(f"feature settings have unknown keys {sorted(unknown)}: made by a newer nenv?")
+        return cls(**d)
+
+    def check_compatible(self, other: "FeatureSettings", *, what: str) -> None:
+        """Raise ConfigError unless ``other`` computes the same features as ``self`` (context may differ)."""
+        mine, theirs = self.to_dict(), other.to_dict()
+        diff = [k for k in mine if k != "context" and mine[k] != theirs[k]]
+        if diff:
+            pairs = ", ".join(f"{k}={theirs[k]!r} (this nenv: {mine[k]!r})" for k in diff)
+            raise ConfigError(f"{what} was made with other feature settings: {pairs}; retrain it with this version of nenv")
+
+
+def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
+    """Per-hop input features [shape=(n, N_INPUTS)], see the module docstring."""
+    frames, a, gain = analysis.frames, analysis.a, analysis.gain
+    n = frames.shape[0]
+    if n == 0:
+        return np.zeros((0, N_INPUTS))
+    w = lpc.asymmetric_window(frames.shape[1])
+    xw = frames * w
+    power = np.sum(xw * xw, axis=1) / np.sum(w * w)
+    energy_db = np.maximum(10 * np.log10(np.maximum(power, 1e-30)), ENERGY_FLOOR_DB)
+    err_db = np.maximum(10 * np.log10(np.maximum(gain * gain, 1e-30)), ENERGY_FLOOR_DB)
+    pred_gain = np.clip(energy_db - err_db, 0.0, 60.0)
+    ceps = lpc.to_cepstrum(a, n_ceps=10)[:, 1:]
+    # normalised autocorrelation over the pitch range, from the full-lag autocorrelation
+    r = lpc.autocorrelation(xw, order=PITCH_LAGS[1])
+    r0 = r[:, 0]
+    voicing = np.where(r0 > 0, np.max(r[:, PITCH_LAGS[0] : PITCH_LAGS[1] + 1], axis=1) / np.where(r0 > 0, r0, 1.0), 0.0)
+    voicing = np.clip(voicing, 0.0, 1.0)
+    hop = frames[:, -HOP_NB - 1 :]
+    zcr = np.mean(np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1]), axis=1)
+    return np.column_stack([ceps, energy_db, pred_gain, voicing, zcr])
+
+
+class ContextStacker:
+    """Stack each hop's features with its ``context`` predecessors, oldest first, with state.
+
+    Before the first hop the history is the first hop itself repeated, so
+    stacking a signal in pieces gives the same rows as stacking it at once.
+    """
+
+    def __init__(self, context: int):
+        self.context = context
+        self._history: np.ndarray | None = None
+
+    def reset(self) -> None:
+        self._history = None
+
+    def push(self, feats: np.ndarray) -> np.ndarray:
+        """feats [shape=(n, d)] -> stacked [shape=(n, d * (context + 1))]."""
+        n, d = feats.shape
+        if n == 0:
+            return np.zeros((0, d * (self.context + 1)))
+        if self._history is None:
+            self._history = np.repeat(feats[:1], self.context, axis=0)
+        buf = np.vstack([self._history, feats])
+        if self.context:
+            self._history = buf[-self.context :].copy()
+        view = np.lib.stride_tricks.sliding_window_view(buf, (self.context + 1, d))[:, 0]
+        return view.reshape(n, -1)
+
+
+def _band_bins(lo: float, hi: float, *, n_fft: int = LEVEL_N_FFT, sr: int = WB_SR) -> np.ndarray:
+    f = np.fft.rfftfreq(n_fft, 1 / sr)
+    return (f >= lo) & (f <= hi)
+
+
+def band_power(frames: np.ndarray, *, lo: float, hi: float) -> np.ndarray:
+    """Power per sample of windowed 16 kHz frames inside lo..hi Hz (Parseval, one-sided).
+
+    frames : np.ndarray [shape=(n, WIN_WB)] raw -> np.ndarray [shape=(n,)]
+    """
+    w = lpc.asymmetric_window(frames.shape[1])
+    n_fft = max(LEVEL_N_FFT, 1 << int(np.ceil(np.log2(frames.shape[1]))))
+    spec = np.fft.rfft(frames * w, n=n_fft, axis=1)
+    p = spec.real**2 + spec.imag**2
+    sel = _band_bins(lo, hi, n_fft=n_fft)
+    return 2.0 * np.sum(p[:, sel], axis=1) / n_fft / np.sum(w * w)
+
+
+def wideband_targets(wb_frames: np.ndarray, nb_energy_db: np.ndarray, *, settings: FeatureSettings) -> tuple[np.ndarray, np.ndarray]:
+    """Training targets for hops whose 16 kHz frames are ``wb_frames`` [shape=(n, WIN_WB)].
+
+    Returns
+    -------
+    ceps : np.ndarray [shape=(n, n_wb_ceps)], shape cepstrum of the order-16 envelope
+    level_db : np.ndarray [shape=(n,)], high-band power re narrowband frame power, dB
+    """
+    a, _ = lpc.analyse(wb_frames, order=settings.wb_order, sr=settings.wb_sr)
+    ceps = lpc.to_cepstrum(a, n_ceps=settings.n_wb_ceps)[:, 1:]
+    hb = band_power(wb_frames, lo=settings.band_edge_hz, hi=settings.wb_sr / 2)
+    hb_db = np.maximum(10 * np.log10(np.maximum(hb, 1e-30)), ENERGY_FLOOR_DB)
+    return ceps, hb_db - nb_energy_db
+
+
+def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_db: np.ndarray, *, order: int = WB_ORDER) -> tuple[np.ndarray, np.ndarray]:
+    """Stable all-pole envelopes whose high-band power matches the predicted level.
+
+    The shape comes from the cepstrum by the always-stable route; the gain is then
+    set so that a unit-power white excitation through ``G/A`` has power
+    ``nb_power * 10**(level_db/10)`` in 3.4-8 kHz.
+
+    Returns a [shape=(n, order+1)], gain [shape=(n,)] (may be inf/NaN for non-finite input).
+    """
+    c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
+    a, g0 = lpc.from_cepstrum_stable(np.nan_to_num(c, nan=0.0, posinf=0.0, neginf=0.0), order=order)
+    env = lpc.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT)
+    sel = _band_bins(BAND_EDGE_HZ, WB_SR / 2)
+    model_hb = 2.0 * np.sum(env[:, sel], axis=1) / LEVEL_N_FFT
+    target = 10 ** ((nb_energy_db + level_db) / 10)
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        gain = g0 * np.sqrt(target / model_hb)
+    return a, gain

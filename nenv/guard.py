@@ -1,0 +1,146 @@
+"""The safety guard: every hop's network envelope is checked before it is used.
+
+Checks, each recorded per hop with its measured value:
+
+* ``nonfinite``: a predicted value or the derived gain is NaN or infinite;
+* ``unstable``: the envelope fails the step-down test with a margin
+  (some reflection coefficient has ``|k| >= 1 - stability_margin``);
+* ``level``: the predicted high-band level lies outside the range seen in
+  training (0.1st..99.9th percentile of the training targets, widened by
+  ``level_margin_db``);
+* ``mismatch``: the predicted envelope's telephone-band part (300-3400 Hz)
+  disagrees with the observed narrowband envelope by more than the training
+  99.9th percentile (RMS difference of the mean-removed log envelopes, dB);
+* ``novel``: the narrowband input lies farther from every codebook cell than
+  99.9% of the training frames did.
+
+A rejected hop gets the codebook envelope of its nearest cell instead.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, fields
+from enum import IntFlag
+
+import numpy as np
+
+from nenv import lpc
+from nenv.errors import ConfigError
+from nenv.settings import BAND_EDGE_HZ, CHANNEL_LOW_HZ, WB_SR
+
+MISMATCH_N_FFT_WB = 512  # 31.25 Hz bins at 16 kHz
+MISMATCH_N_FFT_NB = 256  # the same 31.25 Hz bins at 8 kHz
+
+
+class Check(IntFlag):
+    """Reasons a hop can be rejected (bit flags, combinable)."""
+
+    NONFINITE = 1
+    UNSTABLE = 2
+    LEVEL = 4
+    MISMATCH = 8
+    NOVEL = 16
+
+
+CHECK_NAMES = {c: c.name.lower() for c in Check}
+
+
+def reason_names(mask: int) -> list[str]:
+    """Names of the checks set in ``mask``, e.g. ['unstable', 'level']."""
+    return [CHECK_NAMES[c] for c in Check if mask & c]
+
+
+@dataclass(frozen=True)
+class GuardLimits:
+    """Thresholds, learned from training data and stored with the model."""
+
+    level_min_db: float
+    level_max_db: float
+    mismatch_max_db: float
+    novelty_max: float
+    stability_margin: float = 1e-3
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "GuardLimits":
+        names = {f.name for f in fields(cls)}
+        if set(d) - names or {"level_min_db", "level_max_db", "mismatch_max_db", "novelty_max"} - set(d):
+            raise ConfigError(f"guard limits must have exactly the keys {sorted(names)}, got {sorted(d)}")
+        return cls(**{k: float(v) for k, v in d.items()})
+
+
+@dataclass
+class Decisions:
+    """The guard's verdict on consecutive hops (arrays of shape (n,))."""
+
+    rejected: np.ndarray  # bool
+    reasons: np.ndarray  # int, Check bit mask
+    max_k: np.ndarray  # largest |reflection coefficient|
+    level_db: np.ndarray  # predicted high-band level re narrowband power
+    mismatch_db: np.ndarray  # telephone-band disagreement
+    novelty: np.ndarray  # distance to the nearest codebook cell
+    cell: np.ndarray  # int, nearest codebook cell (the fallback used when rejected)
+
+    @staticmethod
+    def concat(parts: list["Decisions"]) -> "Decisions":
+        if not parts:
+            z = np.zeros(0)
+            return Decisions(z.astype(bool), z.astype(int), z, z, z, z, z.astype(int))
+        return Decisions(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(Decisions)))
+
+
+def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
+    """RMS difference (dB) of the mean-removed log envelopes over 300-3400 Hz.
+
+    a_wb : np.ndarray [shape=(n, p+1)] at 16 kHz; a_nb : np.ndarray [shape=(n, q+1)] at 8 kHz
+    """
+    f = np.fft.rfftfreq(MISMATCH_N_FFT_WB, 1 / WB_SR)
+    sel = (f >= CHANNEL_LOW_HZ) & (f <= BAND_EDGE_HZ)  # the same bins exist on the 8 kHz grid
+    wb = 10 * np.log10(lpc.power_spectrum(a_wb, n_fft=MISMATCH_N_FFT_WB)[:, sel])
+    nb = 10 * np.log10(lpc.power_spectrum(a_nb, n_fft=MISMATCH_N_FFT_NB)[:, sel[: MISMATCH_N_FFT_NB // 2 + 1]])
+    d = (wb - wb.mean(axis=1, keepdims=True)) - (nb - nb.mean(axis=1, keepdims=True))
+    return np.sqrt(np.mean(d * d, axis=1))
+
+
+class Guard:
+    """Applies :class:`GuardLimits` to predicted envelopes."""
+
+    def __init__(self, limits: GuardLimits):
+        self.limits = limits
+
+    def check(
+        self,
+        *,
+        ceps: np.ndarray,
+        level_db: np.ndarray,
+        a: np.ndarray,
+        gain: np.ndarray,
+        a_nb: np.ndarray,
+        novelty: np.ndarray,
+        cell: np.ndarray,
+    ) -> Decisions:
+        """Verdict for each hop; see the module docstring for the checks."""
+        lim = self.limits
+        finite = np.all(np.isfinite(ceps), axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & np.all(np.isfinite(a), axis=1)
+        k, stable = lpc.reflection(np.where(np.isfinite(a), a, 0.0))
+        max_k = np.max(np.abs(k), axis=1)
+        stable &= max_k < 1.0 - lim.stability_margin
+        mismatch = np.where(finite, telephone_band_mismatch(np.where(np.isfinite(a), a, 0.0), a_nb), np.inf)
+        reasons = np.zeros(a.shape[0], dtype=int)
+        reasons |= np.where(~finite, int(Check.NONFINITE), 0)
+        reasons |= np.where(finite & ~stable, int(Check.UNSTABLE), 0)
+        level_bad = ~((level_db >= lim.level_min_db) & (level_db <= lim.level_max_db))
+        reasons |= np.where(np.isfinite(level_db) & level_bad, int(Check.LEVEL), 0)
+        reasons |= np.where(finite & (mismatch > lim.mismatch_max_db), int(Check.MISMATCH), 0)
+        reasons |= np.where(novelty > lim.novelty_max, int(Check.NOVEL), 0)
+        return Decisions(
+            rejected=reasons != 0,
+            reasons=reasons,
+            max_k=max_k,
+            level_db=np.asarray(level_db, dtype=float),
+            mismatch_db=mismatch,
+            novelty=np.asarray(novelty, dtype=float),
+            cell=np.asarray(cell, dtype=int),
+        )

@@ -1,0 +1,279 @@
+"""Corpus ingestion: find audio files, name their speakers, survey them, split by speaker.
+
+The survey checks every file and records why any file is excluded from
+training; nothing is dropped silently. Measures, per file, at 16 kHz:
+
+* ``active_fraction``: share of 20 ms frames above the noise floor (10th
+  percentile of frame energy) + 10 dB and within 50 dB of the loudest frame;
+* ``snr_db``: 95th minus 10th percentile of frame energy (a rough estimate,
+  common practice for single recordings without a noise reference);
+* ``hb_ratio_db``: 3.4-8 kHz power over 0.3-3.4 kHz power on active frames;
+* ``cutoff_hz``: the frequency of a band-limit cliff (a drop of more than
+  ``CLIFF_DB`` within 600 Hz in the long-term spectrum of the active frames,
+  searched from 4 to 7.9 kHz), or 8000 when there is none;
+* ``clipped_fraction``: share of samples in runs of 3 or more equal values at
+  95% or more of the file's peak.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+from dataclasses import asdict, dataclass, fields
+from pathlib import Path
+from typing import Callable, Sequence
+
+import numpy as np
+
+from nenv import audio
+from nenv.errors import ConfigError, InputError
+from nenv.settings import BAND_EDGE_HZ, CHANNEL_LOW_HZ, WB_SR
+from nenv.train.recipe import Recipe
+
+AUDIO_SUFFIXES = {".wav", ".flac", ".ogg"}
+CLIFF_DB = 25.0  # dB: a drop this large within 600 Hz marks a band-limit cliff
+FRAME = 320  # samples = 20 ms at 16 kHz
+
+
+@dataclass(frozen=True)
+class CorpusFile:
+    path: str
+    speaker: str
+
+
+def _speaker(path: Path, root: Path, rule: str) -> str:
+    rel = path.relative_to(root)
+    if rule == "parent":
+        return str(rel.parent) if str(rel.parent) != "." else path.stem
+    depth = int(rule.split(":", 1)[1])
+    parts = rel.parts[:-1]
+    return parts[depth] if depth < len(parts) else (str(rel.parent) if parts else path.stem)
+
+
+def scan(root: str | os.PathLike, *, speaker_rule: str = "parent", manifest: str = "") -> list[CorpusFile]:
+    """Every wav/flac/ogg file below ``root`` (sorted), with a speaker id.
+
+    The id comes from the path (``parent``: the folder holding the file, relative to
+    root; ``depth:N``: the N-th folder below root) or from a manifest CSV with the
+    columns ``path,speaker`` (paths relative to root or absolute).
+    """
+    r = Path(root)
+    if not r.is_dir():
+        raise InputError(f"corpus folder '{r}' does not exist")
+    if manifest:
+        m = Path(manifest)
+        if not m.is_file():
+            raise InputError(f"manifest '{m}' does not exist")
+        with open(m, newline="", encoding="utf-8") as fh:
+            rows = list(csv.DictReader(fh))
+        if not rows or not {"path", "speaker"} <= set(rows[0]):
+            raise ConfigError(f"manifest '{m}' needs a header with the columns path,speaker")
+        out = []
+        for row in rows:
+            p = Path(row["path"])
+            out.append(CorpusFile(str(p if p.is_absolute() else r / p), row["speaker"]))
+        return out
+    files = sorted(p for p in r.rglob("*") if p.is_file() and p.suffix.lower() in AUDIO_SUFFIXES)
+    if not files:
+        raise InputError(f"corpus folder '{r}' holds no .wav, .flac or .ogg files")
+    return [CorpusFile(str(p), _speaker(p, r, speaker_rule)) for p in files]
+
+
+@dataclass
+class FileReport:
+    path: str
+    speaker: str
+    sr: int = 0
+    channels: int = 0
+    duration_s: float = 0.0
+    active_s: float = 0.0
+    active_fraction: float = 0.0
+    snr_db: float = float("nan")
+    hb_ratio_db: float = float("nan")
+    cutoff_hz: float = float("nan")
+    clipped_fraction: float = float("nan")
+    excluded: str = ""  # empty = kept; otherwise the reason
+
+
+def load_wideband(path: str) -> np.ndarray:
+    """A corpus file as mono (channels averaged) at 16 kHz; InputError if unusable."""
+    a = audio.load(path, mix=True)
+    if a.sr < WB_SR:
+        raise InputError(f"sampled at {a.sr} Hz, below 16 kHz")
+    return audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR)
+
+
+def _clipped_fraction(y: np.ndarray) -> float:
+    peak = np.max(np.abs(y))
+    if peak == 0:
+        return 0.0
+    hot = np.abs(y) >= 0.95 * peak
+    starts = np.concatenate([[True], (y[1:] != y[:-1]) | (hot[1:] != hot[:-1])])
+    run_id = np.cumsum(starts) - 1
+    run_len = np.bincount(run_id)[run_id]
+    return float(np.count_nonzero(hot & (run_len >= 3)) / y.size)
+
+
+def measure(y: np.ndarray) -> dict:
+    """Survey measures of a 16 kHz mono signal (see the module docstring)."""
+    n = y.size // FRAME
+    if n < 3:
+        return dict(active_fraction=0.0, active_s=0.0, snr_db=float("nan"), hb_ratio_db=float("nan"), cutoff_hz=float("nan"), clipped_fraction=_clipped_fraction(y))
+    frames = y[: n * FRAME].reshape(n, FRAME)
+    e_db = 10 * np.log10(np.maximum(np.mean(frames**2, axis=1), 1e-20))
+    floor = np.percentile(e_db, 10)
+    active = (e_db > floor + 10) & (e_db > e_db.max() - 50)
+    snr = float(np.percentile(e_db, 95) - floor)
+    out = dict(active_fraction=float(np.mean(active)), active_s=float(np.count_nonzero(active) * FRAME / WB_SR), snr_db=snr, clipped_fraction=_clipped_fraction(y))
+    if not np.any(active):
+        out.update(hb_ratio_db=float("nan"), cutoff_hz=float("nan"))
+        return out
+    win = np.hanning(FRAME)
+    spec = np.abs(np.fft.rfft(frames[active] * win, axis=1)) ** 2
+    ltas = spec.mean(axis=0)
+    f = np.fft.rfftfreq(FRAME, 1 / WB_SR)  # 50 Hz bins
+    hb = ltas[(f >= BAND_EDGE_HZ)].sum()
+    nb = ltas[(f >= CHANNEL_LOW_HZ) & (f < BAND_EDGE_HZ)].sum()
+    out["hb_ratio_db"] = float(10 * np.log10(max(hb, 1e-30) / max(nb, 1e-30)))
+    ldb = 10 * np.log10(np.maximum(ltas, 1e-30))
+    cutoff = float(WB_SR / 2)
+    best = 0.0
+    for fc in np.arange(4000.0, 7900.0, 50.0):
+        below = ldb[(f > fc - 400) & (f <= fc)].mean()
+        above_sel = (f > fc + 100) & (f <= min(fc + 600, 7950))
+        if not np.any(above_sel):
+            continue
+        drop = below - ldb[above_sel].mean()
+        if drop > CLIFF_DB and drop > best:
+            best, cutoff = drop, fc
+    out["cutoff_hz"] = cutoff
+    return out
+
+
+def survey_file(cf: CorpusFile, recipe: Recipe) -> FileReport:
+    """Read and measure one file and decide whether training may use it."""
+    rep = FileReport(path=cf.path, speaker=cf.speaker)
+    try:
+        import soundfile as sf
+
+        info = sf.info(cf.path)
+        rep.sr, rep.channels = int(info.samplerate), int(info.channels)
+        y = load_wideband(cf.path)
+    except Exception as e:  # any reader failure becomes a recorded exclusion
+        rep.excluded = f"unreadable: {str(e).splitlines()[0] if str(e) else type(e).__name__}"
+        return rep
+    rep.duration_s = y.size / WB_SR
+    for k, v in measure(y).items():
+        setattr(rep, k, v)
+    reasons = []
+    if rep.active_s < recipe.min_active_s:
+        reasons.append(f"too little active speech ({rep.active_s:.2f} s < {recipe.min_active_s} s)")
+    if rep.clipped_fraction > recipe.max_clipped_fraction:
+        reasons.append(f"clipped ({100 * rep.clipped_fraction:.2f}% of samples)")
+    if np.isfinite(rep.snr_db) and rep.snr_db < recipe.min_snr_db:
+        reasons.append(f"noisy (SNR about {rep.snr_db:.0f} dB < {recipe.min_snr_db:g})")
+    if recipe.exclude_bandlimited and np.isfinite(rep.cutoff_hz) and rep.cutoff_hz < recipe.min_cutoff_hz:
+        reasons.append(f"band-limited (cliff at {rep.cutoff_hz:.0f} Hz)")
+    rep.excluded = "; ".join(reasons)
+    return rep
+
+
+def survey(files: Sequence[CorpusFile], recipe: Recipe, *, workers: int = 1, on_done: Callable[[], None] | None = None) -> list[FileReport]:
+    """Survey every file, in parallel over ``workers`` processes; order is kept."""
+    if workers <= 1:
+        out = []
+        for cf in files:
+            out.append(survey_file(cf, recipe))
+            if on_done:
+                on_done()
+        return out
+    from concurrent.futures import ProcessPoolExecutor
+
+    with ProcessPoolExecutor(max_workers=workers) as pool:
+        futures = [pool.submit(survey_file, cf, recipe) for cf in files]
+        out = []
+        for fut in futures:
+            out.append(fut.result())
+            if on_done:
+                on_done()
+    return out
+
+
+def reports_csv(reports: Sequence[FileReport]) -> str:
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    names = [f.name for f in fields(FileReport)]
+    w.writerow(names)
+    for r in reports:
+        d = asdict(r)
+        w.writerow([f"{d[k]:.4g}" if isinstance(d[k], float) else d[k] for k in names])
+    return buf.getvalue()
+
+
+def summary(reports: Sequence[FileReport]) -> dict:
+    """Counts and hours, kept and excluded, with the exclusion reasons tallied."""
+    kept = [r for r in reports if not r.excluded]
+    reasons: dict[str, int] = {}
+    for r in reports:
+        for part in filter(None, r.excluded.split("; ")):
+            key = part.split(" (")[0].split(":")[0]
+            reasons[key] = reasons.get(key, 0) + 1
+    return {
+        "files": len(reports),
+        "kept_files": len(kept),
+        "kept_hours": round(sum(r.duration_s for r in kept) / 3600, 4),
+        "kept_active_hours": round(sum(r.active_s for r in kept) / 3600, 4),
+        "speakers": len({r.speaker for r in kept}),
+        "excluded_files": len(reports) - len(kept),
+        "exclusion_reasons": reasons,
+    }
+
+
+def survey_figure(reports: Sequence[FileReport], path: str | os.PathLike) -> None:
+    """Scatter of SNR vs high-band ratio and a histogram of cliff frequencies; excluded files in red."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from nenv.files import atomic_output
+
+    kept = [r for r in reports if not r.excluded and np.isfinite(r.snr_db)]
+    excl = [r for r in reports if r.excluded and np.isfinite(r.snr_db)]
+    fig, ax = plt.subplots(1, 3, figsize=(12, 3.6), layout="constrained")
+    for group, colour, label in ((kept, "tab:blue", "kept"), (excl, "tab:red", "excluded")):
+        ax[0].scatter([r.snr_db for r in group], [r.hb_ratio_db for r in group], s=8, c=colour, label=f"{label} ({len(group)})", alpha=0.6)
+        ax[1].scatter([r.cutoff_hz / 1000 for r in group], [r.clipped_fraction * 100 for r in group], s=8, c=colour, alpha=0.6)
+    ax[0].set_xlabel("estimated SNR [dB]")
+    ax[0].set_ylabel("3.4-8 kHz re 0.3-3.4 kHz [dB]")
+    ax[0].legend(fontsize=8)
+    ax[1].set_xlabel("band-limit cliff [kHz] (8 = none)")
+    ax[1].set_ylabel("clipped samples [%]")
+    tally = summary(reports)["exclusion_reasons"]
+    ax[2].barh(list(tally) or ["none"], list(tally.values()) or [0], color="tab:red")
+    ax[2].set_xlabel("files excluded, by reason")
+    with atomic_output(path) as tmp:
+        fig.savefig(tmp, dpi=110, format=Path(path).suffix[1:])
+    plt.close(fig)
+
+
+def split_speakers(reports: Sequence[FileReport], *, val_fraction: float, seed: int) -> tuple[list[FileReport], list[FileReport]]:
+    """Speaker-disjoint train/validation split of the kept files, reproducible from ``seed``."""
+    kept = [r for r in reports if not r.excluded]
+    speakers = sorted({r.speaker for r in kept})
+    if len(speakers) < 2:
+        raise ConfigError(f"a speaker-disjoint split needs at least 2 speakers among the kept files, found {len(speakers)}")
+    order = np.random.default_rng(seed).permutation(len(speakers))
+    n_val = min(len(speakers) - 1, max(1, int(round(val_fraction * len(speakers)))))
+    val = {speakers[i] for i in order[:n_val]}
+    return [r for r in kept if r.speaker not in val], [r for r in kept if r.speaker in val]
+
+
+
+def _fork():
+    """Worker processes by fork (Linux default; cheap). Callers build features before torch runs anything."""
+    import multiprocessing
+
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+    return multiprocessing.get_context(method)

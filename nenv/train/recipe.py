@@ -1,0 +1,149 @@
+"""Training recipes: flat, commented TOML files in configs/, with command-line overrides.
+
+Every key must be a field of :class:`Recipe` and have its type; anything else
+is refused with a message naming the key.
+"""
+
+from __future__ import annotations
+
+import os
+import tomllib
+import typing
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+
+from nenv.errors import ConfigError
+
+
+@dataclass
+class Recipe:
+    """One training run, start to finish. Units in the names; see configs/default.toml for comments."""
+
+    # corpus and survey
+    corpus: str = ""
+    manifest: str = ""
+    speaker_rule: str = "parent"
+    min_active_s: float = 0.3
+    max_clipped_fraction: float = 0.001
+    min_snr_db: float = 20.0
+    exclude_bandlimited: bool = True
+    min_cutoff_hz: float = 7500.0
+    val_fraction: float = 0.2
+    split_seed: int = 0
+    max_files: int = 0
+    # paired features and augmentation
+    copies: int = 2
+    laws: list[str] = field(default_factory=lambda: ["none", "mulaw", "alaw"])
+    level_min_dbov: float = -36.0
+    level_max_dbov: float = -16.0
+    noise_probability: float = 0.3
+    snr_min_db: float = 20.0
+    snr_max_db: float = 45.0
+    active_range_db: float = 50.0
+    workers: int = 2
+    # model
+    context: int = 4
+    hidden: list[int] = field(default_factory=lambda: [256, 256])
+    dropout: float = 0.0
+    # optimisation
+    epochs: int = 60
+    batch_size: int = 512
+    learning_rate: float = 2e-3
+    weight_decay: float = 1e-5
+    patience: int = 8
+    level_weight: float = 1.0
+    over_weight: float = 4.0
+    seed: int = 0
+    threads: int = 2
+    # codebook and guard
+    codebook_size: int = 64
+    stability_margin: float = 1e-3
+    level_margin_db: float = 3.0
+    guard_percentile: float = 99.9
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+def _check_type(key: str, value, tp) -> object:
+    origin = typing.get_origin(tp)
+    if origin is list:
+        (inner,) = typing.get_args(tp)
+        if not isinstance(value, list):
+            raise ConfigError(f"recipe key '{key}' must be a list of {inner.__name__}, got {value!r}")
+        return [_check_type(key, v, inner) for v in value]
+    if tp is bool:
+        if not isinstance(value, bool):
+            raise ConfigError(f"recipe key '{key}' must be true or false, got {value!r}")
+        return value
+    if tp is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"recipe key '{key}' must be a whole number, got {value!r}")
+        return value
+    if tp is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ConfigError(f"recipe key '{key}' must be a number, got {value!r}")
+        return float(value)
+    if tp is str:
+        if not isinstance(value, str):
+            raise ConfigError(f"recipe key '{key}' must be a string, got {value!r}")
+        return value
+    raise AssertionError(f"unhandled recipe type {tp}")
+
+
+def _parse_override(item: str) -> tuple[str, object]:
+    if "=" not in item:
+        raise ConfigError(f"override '{item}' must look like key=value")
+    key, raw = item.split("=", 1)
+    key = key.strip()
+    try:
+        value = tomllib.loads(f"v = {raw}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = raw  # a bare word is taken as a string
+    return key, value
+
+
+def load(path: str | os.PathLike | None, *, overrides: typing.Sequence[str] = ()) -> Recipe:
+    """Read a recipe file (or start from defaults) and apply ``key=value`` overrides."""
+    data: dict = {}
+    if path is not None:
+        p = Path(path)
+        if not p.is_file():
+            raise ConfigError(f"recipe '{p}' does not exist")
+        try:
+            data = tomllib.loads(p.read_text(encoding="utf-8"))
+        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as e:
+            raise ConfigError(f"recipe '{p}' is not valid TOML: {e}") from e
+        nested = [k for k, v in data.items() if isinstance(v, dict)]
+        if nested:
+            raise ConfigError(f"recipe '{p}' must be flat (key = value lines), but has tables {nested}")
+        if path and data.get("corpus"):  # a relative corpus path is relative to the recipe's folder
+            c = Path(data["corpus"]).expanduser()
+            data["corpus"] = str(c if c.is_absolute() else (p.parent / c).resolve())
+    for item in overrides:
+        k, v = _parse_override(item)
+        data[k] = v
+    types = typing.get_type_hints(Recipe)
+    known = {f.name for f in fields(Recipe)}
+    unknown = sorted(set(data) - known)
+    if unknown:
+        raise ConfigError(f"unknown recipe key(s) {unknown}; known keys: {', '.join(sorted(known))}")
+    recipe = Recipe(**{k: _check_type(k, v, types[k]) for k, v in data.items()})
+    _validate(recipe)
+    return recipe
+
+
+def _validate(r: Recipe) -> None:
+    from nenv.g711 import LAWS
+
+    bad = [law for law in r.laws if law not in LAWS]
+    if bad or not r.laws:
+        raise ConfigError(f"recipe key 'laws' must list some of {LAWS}, got {r.laws}")
+    if not 0 < r.val_fraction < 1:
+        raise ConfigError(f"recipe key 'val_fraction' must lie between 0 and 1, got {r.val_fraction}")
+    if r.context < 0 or r.copies < 1 or r.epochs < 1 or r.batch_size < 1 or r.codebook_size < 2 or not r.hidden:
+        raise ConfigError("recipe keys context >= 0, copies >= 1, epochs >= 1, batch_size >= 1, codebook_size >= 2 and a non-empty hidden list are required")
+    if not (r.speaker_rule == "parent" or r.speaker_rule.startswith("depth:") and r.speaker_rule[6:].isdigit()):
+        raise ConfigError(f"recipe key 'speaker_rule' must be 'parent' or 'depth:N', got {r.speaker_rule!r}")
+    if r.level_min_dbov > r.level_max_dbov or r.snr_min_db > r.snr_max_db:
+        raise ConfigError("recipe ranges must have min <= max (level_*_dbov, snr_*_db)")
