@@ -111,7 +111,8 @@ def degrade(
 def extend(
     narrowband: Annotated[Path, typer.Argument(help="Telephone speech at 8 kHz (wav, flac, ogg).")],
     wideband: Annotated[Path, typer.Argument(help="Where to write the 16 kHz result (.wav, .flac).")],
-    method: Annotated[str, typer.Option(help="System: imaging, unextended, or oracle (needs --reference).")] = "imaging",
+    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended, or oracle (needs --reference).")] = None,
+    model: Annotated[Optional[Path], typer.Option(help="Model folder made by 'nenv train' (default: $NENV_MODEL, else the shipped model).")] = None,
     excitation: Annotated[str, typer.Option(help="Excitation extension for source-filter systems: rectify, fold or modulate.")] = "rectify",
     reference: Annotated[Optional[Path], typer.Option(help="Wideband original, for --method oracle only.")] = None,
     figure: Annotated[Optional[Path], typer.Option(help="Also write a spectrogram figure (.png, .svg, .pdf): input vs output.")] = None,
@@ -120,10 +121,16 @@ def extend(
     mix: MixOpt = False,
 ) -> None:
     """Extend 8 kHz telephone speech to 16 kHz wideband speech."""
-    _extend(narrowband, wideband, method=method, excitation=excitation, reference=reference, figure=figure, resample=resample, channel=channel, mix=mix)
+    _extend(narrowband, wideband, method=method, model=model, excitation=excitation, reference=reference, figure=figure, resample=resample, channel=channel, mix=mix)
 
 
-def _extend(narrowband, wideband, *, method, excitation, reference, figure, resample, channel, mix) -> None:
+def _default_method(model: Optional[Path]) -> str:
+    from nenv.checkpoint import default_path
+
+    return "neural" if model is not None or default_path() is not None else "imaging"
+
+
+def _extend(narrowband, wideband, *, method, model, excitation, reference, figure, resample, channel, mix) -> None:
     from nenv import audio, pipeline
     from nenv.excitation import METHODS
     from nenv.figures import FIGURE_SUFFIXES, spectrogram_grid
@@ -132,6 +139,7 @@ def _extend(narrowband, wideband, *, method, excitation, reference, figure, resa
     out = check_output(wideband, suffixes=(".wav", ".flac"))
     if figure is not None:
         check_output(figure, suffixes=FIGURE_SUFFIXES)
+    method = method or _default_method(model)
     if method not in pipeline.SYSTEMS:
         raise InputError(f"--method {method} is not known: choose one of {', '.join(pipeline.SYSTEMS)}")
     if excitation not in METHODS:
@@ -145,7 +153,7 @@ def _extend(narrowband, wideband, *, method, excitation, reference, figure, resa
 
         ref = prepare_reference(reference)
         ref = ref * _match_gain(ref, x)
-    system = pipeline.make_system(method, reference=ref, excitation=excitation)
+    system = pipeline.make_system(method, reference=ref, excitation=excitation, model=model)
     t0 = time.perf_counter()
     with _progress() as bar:
         task = bar.add_task(f"extending {narrowband.name}", total=x.size)
@@ -156,6 +164,18 @@ def _extend(narrowband, wideband, *, method, excitation, reference, figure, resa
     _say(f"wrote {out} (16 kHz, {dur:.2f} s, method={method}, {dur / max(elapsed, 1e-9):.0f}x real time)")
     if result.n_limited:
         _say(f"nenv: warning: {result.n_limited} sample(s) exceeded -0.1 dBFS and were limited; lower the input level")
+    record = getattr(getattr(system, "estimator", None), "record", None)
+    if record is not None:
+        dec = record()
+        if dec.rejected.size:
+            from nenv.guard import reason_names
+
+            counts: dict[str, int] = {}
+            for mask in dec.reasons[dec.rejected]:
+                for name in reason_names(int(mask)):
+                    counts[name] = counts.get(name, 0) + 1
+            detail = ", ".join(f"{k} {v}" for k, v in sorted(counts.items())) or "none"
+            _say(f"guard: {int(dec.rejected.sum())} of {dec.rejected.size} hops ({100 * dec.rejected.mean():.1f}%) fell back to the codebook ({detail})")
     if figure is not None:
         up = audio.resample(x, orig_sr=8000, target_sr=16000)
         spectrogram_grid([[("input (8 kHz, shown at 16 kHz)", up), (f"output: {method}", result.y)]], figure, title=narrowband.name)
@@ -182,6 +202,7 @@ def evaluate(
     law: Annotated[list[str], typer.Option(help="Channel G.711 law; repeat to compare several (none, mulaw, alaw).")] = ["none"],
     method: Annotated[list[str], typer.Option(help="Systems to compare; repeat. Default: every available system.")] = [],
     excitation: Annotated[str, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
+    model: Annotated[Optional[Path], typer.Option(help="Model folder for the neural and codebook systems (default: the shipped model, if any).")] = None,
 ) -> None:
     """Score every system against wideband references passed through the telephone channel."""
     from nenv import evaluate as ev
@@ -194,10 +215,15 @@ def evaluate(
             raise InputError(f"--law {lw} is not known: choose from {', '.join(LAWS)}")
     if out.exists() and not out.is_dir():
         raise InputError(f"--out {out} exists and is not a folder")
-    systems = tuple(method) or ev.DEFAULT_SYSTEMS
+    if method:
+        systems = tuple(method)
+    elif model is not None or _default_method(None) == "neural":
+        systems = ev.ALL_SYSTEMS
+    else:
+        systems = ev.DEFAULT_SYSTEMS
     with _progress() as bar:
         task = bar.add_task("evaluating", total=len(references) * len(law) * len(systems))
-        rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, on_step=lambda s: bar.advance(task))
+        rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task))
     table = rows + ev.means(rows)
     out.mkdir(parents=True, exist_ok=True)
     md = ev.to_markdown(table)
@@ -219,9 +245,98 @@ def demo(
     out.mkdir(parents=True, exist_ok=True)
     with resources.as_file(resources.files("nenv") / "data" / "demo" / DEMO_CLIP) as clip:
         _say(f"demo input: {clip} (8 kHz, G.711 mu-law telephone speech; invented scenario)")
-        _extend(clip, out / "order_confirmation_16k.wav", method="imaging", excitation="rectify", reference=None,
+        _extend(clip, out / "order_confirmation_16k.wav", method=None, model=None, excitation="rectify", reference=None,
                 figure=out / "order_confirmation.png", resample=False, channel=None, mix=False)
     _say("listen at a moderate level: the added high band is estimated, not recorded")
+
+
+RecipeOpt = Annotated[Optional[Path], typer.Option("--config", help="Training recipe (flat TOML, see configs/).")]
+SetOpt = Annotated[list[str], typer.Option("--set", help="Override a recipe key: --set epochs=20 (repeatable).")]
+
+
+@app.command()
+@_guarded
+def survey(
+    corpus: Annotated[Path, typer.Argument(help="Folder of wideband recordings (wav, flac, ogg; any rate; sub-folders = speakers).")],
+    out: Annotated[Path, typer.Option(help="Folder for survey.csv and survey.png (created if missing).")],
+    config: RecipeOpt = None,
+    set_: SetOpt = [],
+) -> None:
+    """Check every file of a corpus and say which ones training would use, and why not."""
+    from nenv.files import write_text
+    from nenv.train import corpus as corp
+    from nenv.train import recipe as rcp
+
+    recipe = rcp.load(config, overrides=list(set_))
+    files = corp.scan(corpus, speaker_rule=recipe.speaker_rule, manifest=recipe.manifest)
+    out.mkdir(parents=True, exist_ok=True)
+    with _progress() as bar:
+        task = bar.add_task(f"surveying {len(files)} files", total=len(files))
+        reports = corp.survey(files, recipe, workers=recipe.workers, on_done=lambda: bar.advance(task))
+    write_text(out / "survey.csv", corp.reports_csv(reports))
+    corp.survey_figure(reports, out / "survey.png")
+    summ = corp.summary(reports)
+    typer.echo(f"files: {summ['files']}  kept: {summ['kept_files']} ({summ['kept_hours'] * 60:.1f} min, {summ['kept_active_hours'] * 60:.1f} min active, {summ['speakers']} speakers)")
+    for reason, n in sorted(summ["exclusion_reasons"].items(), key=lambda kv: -kv[1]):
+        typer.echo(f"  excluded, {reason}: {n}")
+    _say(f"wrote {out / 'survey.csv'}, {out / 'survey.png'}")
+
+
+class _RichReporter:
+    def __init__(self, bar):
+        self.bar = bar
+        self.task = None
+
+    def stage(self, name, total=None):
+        if self.task is not None:
+            self.bar.remove_task(self.task)
+        self.task = self.bar.add_task(name, total=total)
+        return lambda: self.bar.advance(self.task)
+
+    def log(self, msg):
+        self.bar.console.print(msg) if self.bar.console.is_terminal else _say(msg)
+
+
+@app.command()
+@_guarded
+def train(
+    out: Annotated[Path, typer.Option(help="Model folder to create (replaced only with --force, and only once training succeeded).")],
+    config: RecipeOpt = None,
+    set_: SetOpt = [],
+    cache: Annotated[Optional[Path], typer.Option(help="Feature cache folder (reused across runs). Default: none.")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Replace an existing model folder.")] = False,
+) -> None:
+    """Train an envelope network and its codebook on a wideband corpus, on CPU, and export it to ONNX."""
+    from nenv.train import recipe as rcp
+
+    recipe = rcp.load(config, overrides=list(set_))
+    try:
+        from nenv.train.loop import train as run
+    except ImportError as e:
+        raise InputError(f"training needs the train extra: pip install 'nenv[train]' ({e})") from e
+    with _progress() as bar:
+        res = run(recipe, out, cache_dir=str(cache) if cache else None, force=force, reporter=_RichReporter(bar))
+    m = res.record["metrics"]
+    typer.echo(
+        f"model {res.record['record_id']} written to {out} in {res.record['wall_s']:.0f} s\n"
+        f"held-out speakers: envelope LSD 3.4-8 kHz neural {m['val_envelope_lsd_high_db']['neural']:.2f} dB vs codebook "
+        f"{m['val_envelope_lsd_high_db']['codebook']:.2f} dB; median level error {m['val_median_level_error_db']['neural']:+.2f} dB; "
+        f"guard rejects {100 * m['val_guard_rejection_rate']:.2f}% of hops"
+    )
+
+
+@app.command()
+@_guarded
+def export(
+    model: Annotated[Path, typer.Argument(help="Model folder made by 'nenv train' (needs model.pt and nenv.json).")],
+) -> None:
+    """Re-export a model folder's torch weights to model.onnx and check it against torch."""
+    try:
+        from nenv.train.export import export_checkpoint
+    except ImportError as e:
+        raise InputError(f"export needs the train extra: pip install 'nenv[train]' ({e})") from e
+    diff = export_checkpoint(model)
+    typer.echo(f"wrote {model / 'model.onnx'} (onnx.checker passed; onnxruntime vs torch max difference {diff:.1e})")
 
 
 @app.command()

@@ -23,7 +23,8 @@ from nenv.errors import InputError
 from nenv.measures import Scores
 from nenv.settings import WB_SR
 
-DEFAULT_SYSTEMS = ("unextended", "imaging", "oracle")
+DEFAULT_SYSTEMS = ("unextended", "imaging", "oracle")  # when no model is available
+ALL_SYSTEMS = ("unextended", "imaging", "codebook", "neural", "oracle")
 EVAL_LEVEL_DBOV = channel.NOMINAL_LEVEL_DBOV
 MEASURE_NAMES = [f.name for f in fields(Scores)]
 MEASURE_LABELS = {
@@ -74,6 +75,7 @@ def run(
     systems: Sequence[str] = DEFAULT_SYSTEMS,
     laws: Sequence[str] = ("none",),
     excitation: str = pipeline.DEFAULT_EXCITATION,
+    model=None,
     on_step: Callable[[str], None] | None = None,
 ) -> tuple[list[Row], list[Clip]]:
     """Score every system on every reference and channel law.
@@ -83,6 +85,8 @@ def run(
     for s in systems:
         if s not in pipeline.SYSTEMS:
             raise InputError(f"system {s!r} is not known: choose from {', '.join(pipeline.SYSTEMS)}")
+    if any(s in pipeline.MODEL_SYSTEMS for s in systems):
+        model = pipeline._checkpoint(model)  # load once, fail early
     refs = [(Path(p).stem, prepare_reference(p)) for p in references]  # fail early, before any scoring
     rows: list[Row] = []
     clips: list[Clip] = []
@@ -91,7 +95,7 @@ def run(
             nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
             outs = {}
             for s in systems:
-                y = pipeline.extend(nb, system=pipeline.make_system(s, reference=ref, excitation=excitation)).y
+                y = pipeline.extend(nb, system=pipeline.make_system(s, reference=ref, excitation=excitation, model=model)).y
                 outs[s] = y
                 rows.append(Row(name, law, s, Scores.compute(ref, y)))
                 if on_step:

@@ -12,7 +12,7 @@ Inputs, per hop (``N_INPUTS`` values), from the narrowband analysis frame:
   * ``prediction_gain_db``: frame power over LPC prediction-error power, in dB (a
     spectral-flatness measure: 0 dB for white noise, high for peaky spectra)
   * ``voicing``: largest normalised autocorrelation at lags 20-147 (54-400 Hz
-    pitch), 0 for noise, near 1 for steady voiced speech
+    pitch), corrected for the window; 0 for noise, near 1 for steady voiced speech
   * ``zcr``: zero-crossing rate of the hop, crossings per sample
 The network sees the current hop and ``context`` past hops (no look-ahead).
 
@@ -96,11 +96,14 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
     err_db = np.maximum(10 * np.log10(np.maximum(gain * gain, 1e-30)), ENERGY_FLOOR_DB)
     pred_gain = np.clip(energy_db - err_db, 0.0, 60.0)
     ceps = lpc.to_cepstrum(a, n_ceps=10)[:, 1:]
-    # normalised autocorrelation over the pitch range, from the full-lag autocorrelation
+    # normalised autocorrelation over the pitch range, divided by the window's own normalised
+    # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17)
     r = lpc.autocorrelation(xw, order=PITCH_LAGS[1])
+    rw = lpc.autocorrelation(w[None, :], order=PITCH_LAGS[1])[0]
     r0 = r[:, 0]
-    voicing = np.where(r0 > 0, np.max(r[:, PITCH_LAGS[0] : PITCH_LAGS[1] + 1], axis=1) / np.where(r0 > 0, r0, 1.0), 0.0)
-    voicing = np.clip(voicing, 0.0, 1.0)
+    lags = slice(PITCH_LAGS[0], PITCH_LAGS[1] + 1)
+    norm = r[:, lags] / np.where(r0 > 0, r0, 1.0)[:, None] / (rw[lags] / rw[0])[None, :]
+    voicing = np.where(r0 > 0, np.clip(np.max(norm, axis=1), 0.0, 1.0), 0.0)
     hop = frames[:, -HOP_NB - 1 :]
     zcr = np.mean(np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1]), axis=1)
     return np.column_stack([ceps, energy_db, pred_gain, voicing, zcr])

@@ -114,3 +114,33 @@ def test_degrade_refuses_narrowband(tmp_path):
 
 def test_evaluate_refuses_narrowband_reference(nb_file, tmp_path):
     _assert_user_error(_run("evaluate", nb_file, "--out", tmp_path / "ev"), "wideband")
+
+
+def test_model_commands(trained, synthetic_corpus, tmp_path):
+    pytest.importorskip("torch")
+    # survey
+    res = _run("survey", synthetic_corpus, "--out", tmp_path / "sv", "--set", "min_snr_db=0")
+    assert res.exit_code == 0, res.output
+    assert "kept:" in res.stdout and (tmp_path / "sv" / "survey.csv").is_file()
+    # a short training run through the command line
+    res = _run("train", "--config", "configs/small.toml", "--set", f"corpus={synthetic_corpus}", "--set", "epochs=2",
+               "--set", "codebook_size=8", "--set", "min_snr_db=0", "--out", tmp_path / "m")
+    assert res.exit_code == 0, res.output
+    assert "held-out speakers" in res.stdout and (tmp_path / "m" / "model.onnx").is_file()
+    _assert_user_error(_run("train", "--set", "epochz=2", "--out", tmp_path / "m2"), "epochz")
+    _assert_user_error(_run("train", "--set", f"corpus={synthetic_corpus}", "--out", tmp_path / "m"), "--force")
+    # export
+    res = _run("export", tmp_path / "m")
+    assert res.exit_code == 0 and "onnx.checker passed" in res.stdout
+    # extend with the model, the guard reporting on stderr
+    nb = tmp_path / "nb.wav"
+    assert _run("degrade", ARCTIC[1], nb).exit_code == 0
+    res = _run("extend", nb, tmp_path / "wb.wav", "--model", trained.out)
+    assert res.exit_code == 0, res.output
+    assert "method=neural" in res.stderr and "guard:" in res.stderr
+    _assert_user_error(_run("extend", nb, tmp_path / "wb2.wav", "--model", tmp_path / "nomodel"), "does not exist")
+    # evaluate with every system
+    res = _run("evaluate", ARCTIC[1], "--out", tmp_path / "ev", "--model", trained.out)
+    assert res.exit_code == 0, res.output
+    for s in ("unextended", "imaging", "codebook", "neural", "oracle"):
+        assert f"| {s} |" in res.stdout

@@ -10,9 +10,17 @@ training; nothing is dropped silently. Measures, per file, at 16 kHz:
 * ``hb_ratio_db``: 3.4-8 kHz power over 0.3-3.4 kHz power on active frames;
 * ``cutoff_hz``: the frequency of a band-limit cliff (a drop of more than
   ``CLIFF_DB`` within 600 Hz in the long-term spectrum of the active frames,
-  searched from 4 to 7.9 kHz), or 8000 when there is none;
-* ``clipped_fraction``: share of samples in runs of 3 or more equal values at
-  95% or more of the file's peak.
+  searched from 4 to 7.3 kHz), or 8000 when there is none. The search stops
+  below 7.4 kHz because every 16 kHz signal rolls off there (soxr's
+  resampler, measured: -0.4 dB at 7.5 kHz, -10 dB at 7.7 kHz; and the
+  anti-alias filter of any 16 kHz recording). A file without such a cliff
+  whose 6.4-7.0 kHz band is more than ``TOP_DROP_DB`` above its 7.3-7.6 kHz
+  band is reported as cut at 7.2 kHz (measured on klettres-data: Spanish
+  files, known to stop near 7 kHz, median 20 dB; other languages 6 dB or less);
+* ``clipped_fraction``: the larger of the share of samples in runs of 3 or
+  more equal values at 95% or more of the peak (clipped PCM), and, when the
+  peak is at or beyond 95% of full scale, the share of samples within 90% of
+  the peak (clipped, then lossy-coded: natural speech measured 0.01-0.1%).
 """
 
 from __future__ import annotations
@@ -33,6 +41,9 @@ from nenv.train.recipe import Recipe
 
 AUDIO_SUFFIXES = {".wav", ".flac", ".ogg"}
 CLIFF_DB = 25.0  # dB: a drop this large within 600 Hz marks a band-limit cliff
+CLIFF_SEARCH_TOP_HZ = 7300.0  # Hz: highest cliff frequency searched (see the module docstring)
+TOP_DROP_DB = 12.0  # dB: 6.4-7.0 kHz over 7.3-7.6 kHz beyond this = rolled off near 7.2 kHz
+TOP_ROLLOFF_HZ = 7200.0  # Hz: the cutoff reported for such a roll-off
 FRAME = 320  # samples = 20 ms at 16 kHz
 
 
@@ -105,6 +116,7 @@ def load_wideband(path: str) -> np.ndarray:
 
 
 def _clipped_fraction(y: np.ndarray) -> float:
+    """Share of samples that look clipped (see the module docstring)."""
     peak = np.max(np.abs(y))
     if peak == 0:
         return 0.0
@@ -112,7 +124,11 @@ def _clipped_fraction(y: np.ndarray) -> float:
     starts = np.concatenate([[True], (y[1:] != y[:-1]) | (hot[1:] != hot[:-1])])
     run_id = np.cumsum(starts) - 1
     run_len = np.bincount(run_id)[run_id]
-    return float(np.count_nonzero(hot & (run_len >= 3)) / y.size)
+    flat = np.count_nonzero(hot & (run_len >= 3)) / y.size
+    # lossy coding (Ogg Vorbis) turns clipped plateaus into ripples around full scale:
+    # count the pile-up of samples near a peak at or beyond full scale instead
+    piled = np.count_nonzero(np.abs(y) >= 0.9 * peak) / y.size if peak >= 0.95 else 0.0
+    return float(max(flat, piled))
 
 
 def measure(y: np.ndarray) -> dict:
@@ -121,7 +137,7 @@ def measure(y: np.ndarray) -> dict:
     if n < 3:
         return dict(active_fraction=0.0, active_s=0.0, snr_db=float("nan"), hb_ratio_db=float("nan"), cutoff_hz=float("nan"), clipped_fraction=_clipped_fraction(y))
     frames = y[: n * FRAME].reshape(n, FRAME)
-    e_db = 10 * np.log10(np.maximum(np.mean(frames**2, axis=1), 1e-20))
+    e_db = 10 * np.log10(np.maximum(np.mean(frames**2, axis=1), 1e-10))  # floor -100 dBFS: digital silence
     floor = np.percentile(e_db, 10)
     active = (e_db > floor + 10) & (e_db > e_db.max() - 50)
     snr = float(np.percentile(e_db, 95) - floor)
@@ -139,14 +155,19 @@ def measure(y: np.ndarray) -> dict:
     ldb = 10 * np.log10(np.maximum(ltas, 1e-30))
     cutoff = float(WB_SR / 2)
     best = 0.0
-    for fc in np.arange(4000.0, 7900.0, 50.0):
+    for fc in np.arange(4000.0, CLIFF_SEARCH_TOP_HZ, 50.0):
         below = ldb[(f > fc - 400) & (f <= fc)].mean()
-        above_sel = (f > fc + 100) & (f <= min(fc + 600, 7950))
+        above_sel = (f > fc + 100) & (f <= min(fc + 600, CLIFF_SEARCH_TOP_HZ + 100))
         if not np.any(above_sel):
             continue
         drop = below - ldb[above_sel].mean()
         if drop > CLIFF_DB and drop > best:
             best, cutoff = drop, fc
+    if cutoff >= WB_SR / 2:
+        # a roll-off starting just below the searched range: compare 6.4-7.0 kHz with 7.3-7.6 kHz
+        top_drop = ldb[(f >= 6400) & (f < 7000)].mean() - ldb[(f >= 7300) & (f < 7600)].mean()
+        if top_drop > TOP_DROP_DB:
+            cutoff = TOP_ROLLOFF_HZ
     out["cutoff_hz"] = cutoff
     return out
 

@@ -24,10 +24,10 @@ class Recipe:
     manifest: str = ""
     speaker_rule: str = "parent"
     min_active_s: float = 0.3
-    max_clipped_fraction: float = 0.001
+    max_clipped_fraction: float = 0.002
     min_snr_db: float = 20.0
     exclude_bandlimited: bool = True
-    min_cutoff_hz: float = 7500.0
+    min_cutoff_hz: float = 7300.0
     val_fraction: float = 0.2
     split_seed: int = 0
     max_files: int = 0
@@ -71,7 +71,10 @@ def _check_type(key: str, value, tp) -> object:
         (inner,) = typing.get_args(tp)
         if not isinstance(value, list):
             raise ConfigError(f"recipe key '{key}' must be a list of {inner.__name__}, got {value!r}")
-        return [_check_type(key, v, inner) for v in value]
+        try:
+            return [_check_type(key, v, inner) for v in value]
+        except ConfigError:
+            raise ConfigError(f"recipe key '{key}' must be a list of {inner.__name__}, got {value!r}") from None
     if tp is bool:
         if not isinstance(value, bool):
             raise ConfigError(f"recipe key '{key}' must be true or false, got {value!r}")

@@ -1,0 +1,80 @@
+"""Feature definitions on signals whose answers are known."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from nenv import lpc
+from nenv.estimators.base import NarrowbandAnalysis
+from nenv.features import INPUT_NAMES, ContextStacker, FeatureSettings, band_power, envelope_from_prediction, narrowband_features
+from nenv.errors import ConfigError
+
+
+def _features(x):
+    frames = lpc.frame(x, frame_length=240, hop_length=80)
+    a, gain = lpc.analyse(frames, order=10, sr=8000)
+    return narrowband_features(NarrowbandAnalysis(frames, a, gain))[5:]
+
+
+def col(name):
+    return INPUT_NAMES.index(name)
+
+
+def test_white_noise_and_a_pulse_train(rng):
+    noise = _features(0.1 * rng.standard_normal(8000))
+    assert np.median(noise[:, col("prediction_gain_db")]) < 1.0  # white: nothing to predict
+    assert np.median(noise[:, col("voicing")]) < 0.3
+    assert np.median(noise[:, col("zcr")]) == pytest.approx(0.5, abs=0.08)  # sign flips half the time
+    # energy of uniform noise of std 0.1 = -20 dB re full scale
+    assert np.median(noise[:, col("energy_db")]) == pytest.approx(-20.0, abs=0.5)
+    pulses = np.zeros(8000)
+    pulses[::64] = 1.0  # 125 Hz
+    from scipy.signal import lfilter
+
+    voiced = _features(lfilter([1.0], [1.0, -1.8 * np.cos(2 * np.pi * 700 / 8000), 0.81], pulses) * 0.05)
+    assert np.median(voiced[:, col("voicing")]) > 0.7
+    assert np.median(voiced[:, col("prediction_gain_db")]) > 5
+
+
+def test_alternating_signal_crosses_zero_every_sample():
+    x = 0.1 * (-1.0) ** np.arange(2000)
+    assert np.all(_features(x)[:, col("zcr")] == 1.0)
+
+
+def test_silence_is_floored_not_nan():
+    f = _features(np.zeros(2000))
+    assert np.all(np.isfinite(f)) and np.all(f[:, col("energy_db")] == -100.0)
+
+
+def test_context_stacking_is_chunk_invariant(rng):
+    f = rng.standard_normal((50, 14))
+    whole = ContextStacker(3).push(f)
+    s = ContextStacker(3)
+    parts = np.vstack([s.push(f[:1]), s.push(f[1:2]), s.push(f[2:30]), s.push(f[30:])])
+    np.testing.assert_array_equal(whole, parts)
+    np.testing.assert_array_equal(whole[10], f[7:11].reshape(-1))  # oldest first, current last
+    np.testing.assert_array_equal(whole[0], np.tile(f[0], 4))
+
+
+def test_envelope_gain_gives_the_requested_high_band_power(rng):
+    # Parseval: for a unit-power white excitation through G/A, the 3.4-8 kHz power of the
+    # output must be nb_power * 10^(level/10). Checked by filtering real noise (scipy.signal.lfilter).
+    from scipy.signal import lfilter
+
+    a = lpc.from_reflection(np.array([[0.7, -0.4, 0.2, 0.1, -0.1, 0.05]]))
+    ceps = lpc.to_cepstrum(a, n_ceps=20)[:, 1:]
+    a2, gain = envelope_from_prediction(ceps, np.array([-12.0]), np.array([-30.0]), order=6)
+    y = lfilter([gain[0]], a2[0], rng.standard_normal(400000))
+    frames = y[1000 : 1000 + 480 * 800].reshape(-1, 480)
+    hb = np.mean(band_power(frames, lo=3400, hi=8000))
+    assert 10 * np.log10(hb) == pytest.approx(-42.0, abs=0.3)
+
+
+def test_feature_settings_compatibility():
+    s = FeatureSettings()
+    s.check_compatible(FeatureSettings(context=2), what="x")  # context is the model's own choice
+    with pytest.raises(ConfigError, match="nb_order=12"):
+        s.check_compatible(FeatureSettings(nb_order=12), what="the model")
+    with pytest.raises(ConfigError, match="unknown keys"):
+        FeatureSettings.from_dict({**s.to_dict(), "mystery": 1})

@@ -1,0 +1,247 @@
+"""Training on a synthetic corpus: numbers, not just that it ran; export parity; guard behaviour."""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import numpy as np
+import pytest
+
+torch = pytest.importorskip("torch")
+
+from nenv import channel, checkpoint, measures, pipeline  # noqa: E402
+from nenv.errors import ConfigError  # noqa: E402
+from nenv.guard import Check  # noqa: E402
+from nenv.train import loop, recipe  # noqa: E402
+from tests import synthetic  # noqa: E402
+from tests.conftest import SYNTHETIC_RECIPE as RECIPE  # noqa: E402
+
+@pytest.fixture(scope="session")
+def held_out():
+    """Utterances of four synthetic speakers the model never saw (another seed)."""
+    rng = np.random.default_rng(2024)
+    refs = []
+    for _ in range(4):
+        spk = synthetic.speaker(rng)
+        refs.append(channel.set_level(synthetic.utterance(rng, seconds=3.0, **spk), sr=16000, level_dbov=-26))
+    return refs
+
+
+def test_network_beats_codebook_on_held_out_speakers(trained):
+    m = trained.record["metrics"]
+    nn_lsd, cb_lsd = m["val_envelope_lsd_high_db"]["neural"], m["val_envelope_lsd_high_db"]["codebook"]
+    # measured on this corpus: neural 2.75 dB, codebook 4.71 dB (validation speakers never trained on)
+    assert nn_lsd < cb_lsd - 1.0
+    assert nn_lsd < 0.8 * cb_lsd
+    assert m["val_guard_rejection_rate"] < 0.05
+
+
+def test_full_pipeline_on_unseen_speakers(trained, held_out):
+    ck = checkpoint.load(trained.out)
+    scores = {s: [] for s in ("imaging", "codebook", "neural")}
+    for ref in held_out:
+        nb = channel.telephone(ref, sr=16000, level_dbov=None, law="mulaw")
+        for s in scores:
+            y = pipeline.extend(nb, system=pipeline.make_system(s, model=ck)).y
+            scores[s].append(measures.Scores.compute(ref, y))
+    env = {s: np.mean([x.lsd_env_high for x in v]) for s, v in scores.items()}
+    assert env["neural"] < env["codebook"] - 0.3
+    assert env["neural"] < env["imaging"] - 3
+    level = np.median([x.level_error_high for x in scores["neural"]])
+    assert -4 < level < 2  # under- rather than over-estimated
+
+
+def test_level_is_not_systematically_overestimated(trained):
+    m = trained.record["metrics"]["val_median_level_error_db"]["neural"]
+    assert -3 < m < 0.5
+    h = trained.record["history"]
+    assert all(np.isfinite(e["val_loss"]) for e in h)
+    assert h[-1]["val_loss"] < h[0]["val_loss"]
+
+
+def test_model_folder_is_complete_and_self_describing(trained):
+    out = trained.out
+    for name in ("model.onnx", "codebook.npz", "nenv.json", "model.pt", "record.json", "curves.png", "survey.csv", "survey.png"):
+        assert (out / name).is_file(), name
+    info = json.loads((out / "nenv.json").read_text())
+    assert info["features"]["context"] == 4 and info["model"]["hidden"] == [128, 128]
+    assert info["recipe"]["codebook_size"] == 16
+    assert set(info["normalisation"]) == {"x_mean", "x_std", "y_mean", "y_std"}
+    rec = json.loads((out / "record.json").read_text())
+    assert rec["record_id"] == info["record_id"] and rec["wall_s"] > 0
+    assert rec["data"]["feature_x_real_time"] > 1
+    assert set(rec["corpus"]["train_speakers"]).isdisjoint(rec["corpus"]["val_speakers"])
+    assert not list(out.parent.glob(".*partial*"))
+
+
+def test_onnx_matches_torch_and_passes_checker(trained):
+    import onnx
+    import onnxruntime as ort
+
+    from nenv.train.export import load_torch
+
+    onnx.checker.check_model(onnx.load(str(trained.out / "model.onnx")), full_check=True)
+    model, blob = load_torch(trained.out / "model.pt")
+    norm = {k: v.numpy().astype(np.float64) for k, v in blob["normalisation"].items()}
+    rng = np.random.default_rng(5)
+    x = (norm["x_mean"] + norm["x_std"] * rng.standard_normal((500, blob["config"]["input_dim"])) * 3).astype(np.float32)
+    with torch.no_grad():
+        c_ref, l_ref = (t.numpy() for t in model(torch.from_numpy(x)))
+    c, l = ort.InferenceSession(str(trained.out / "model.onnx"), providers=["CPUExecutionProvider"]).run(None, {"features": x})
+    # within 1e-5 in the network's own units (each output's training std); float32 throughout
+    assert np.max(np.abs(c - c_ref) / norm["y_std"][:-1]) < 1e-5
+    assert np.max(np.abs(l - l_ref) / norm["y_std"][-1]) < 1e-5
+
+
+def test_runtime_refuses_other_feature_settings(trained, tmp_path):
+    bad = tmp_path / "bad"
+    shutil.copytree(trained.out, bad)
+    info = json.loads((bad / "nenv.json").read_text())
+    info["features"]["nb_order"] = 12
+    (bad / "nenv.json").write_text(json.dumps(info))
+    with pytest.raises(ConfigError, match="nb_order=12"):
+        checkpoint.load(bad)
+    # an ONNX file whose embedded settings differ from nenv.json is refused at first use
+    import onnx
+
+    shutil.copytree(trained.out, tmp_path / "bad2")
+    proto = onnx.load(str(tmp_path / "bad2" / "model.onnx"))
+    for p in proto.metadata_props:
+        if p.key == checkpoint.META_FEATURES:
+            d = json.loads(p.value)
+            d["hop_nb"] = 160
+            p.value = json.dumps(d)
+    onnx.save(proto, str(tmp_path / "bad2" / "model.onnx"))
+    ck = checkpoint.load(tmp_path / "bad2")
+    with pytest.raises(ConfigError, match="hop_nb=160"):
+        ck.session()
+
+
+def test_missing_or_corrupt_model_files(trained, tmp_path):
+    with pytest.raises(ConfigError, match="does not exist"):
+        checkpoint.load(tmp_path / "nothing")
+    part = tmp_path / "part"
+    shutil.copytree(trained.out, part)
+    (part / "codebook.npz").unlink()
+    with pytest.raises(ConfigError, match="codebook.npz"):
+        checkpoint.load(part)
+    trunc = tmp_path / "trunc"
+    shutil.copytree(trained.out, trunc)
+    data = (trunc / "model.onnx").read_bytes()
+    (trunc / "model.onnx").write_bytes(data[: len(data) // 3])
+    with pytest.raises(ConfigError, match="cannot load"):
+        checkpoint.load(trunc).session()
+
+
+def _decisions(model, x):
+    system = pipeline.make_system("neural", model=model)
+    out = pipeline.extend(x, system=system)
+    return out, system.estimator.record()
+
+
+def test_guard_falls_back_on_exactly_the_perturbed_hops(trained, held_out, monkeypatch):
+    nb = channel.telephone(held_out[0], sr=16000, level_dbov=None)
+    ck = checkpoint.load(trained.out)
+    _, base = _decisions(ck, nb)
+    n = base.rejected.size
+    blocks = {Check.NONFINITE: range(40, 50), Check.LEVEL: range(80, 90), Check.UNSTABLE: range(120, 130), Check.MISMATCH: range(160, 170)}
+    original = ck.predict
+    calls = {"start": 0}
+
+    def perturbed(x):
+        ceps, level = original(x)
+        idx = np.arange(calls["start"], calls["start"] + x.shape[0])
+        calls["start"] += x.shape[0]
+        for check, hops in blocks.items():
+            sel = np.isin(idx, list(hops))
+            if check == Check.NONFINITE:
+                ceps[sel, 3] = np.nan
+            elif check == Check.LEVEL:
+                level[sel] = 80.0
+            elif check == Check.UNSTABLE:  # a resonance so sharp its reflection coefficient reaches 1
+                n_c = ceps.shape[1]
+                ceps[sel] = 2 * 0.99995 ** np.arange(1, n_c + 1) * np.cos(2 * np.pi * 5000 / 16000 * np.arange(1, n_c + 1)) / np.arange(1, n_c + 1) * 40
+            elif check == Check.MISMATCH:  # a telephone band that looks nothing like the input
+                ceps[sel, :8] = -ceps[sel, :8] * 3
+        return ceps, level
+
+    monkeypatch.setattr(ck, "predict", perturbed)
+    out, dec = _decisions(ck, nb)
+    assert dec.rejected.size == n
+    for check, hops in blocks.items():
+        hops = np.array(list(hops))
+        assert np.all(dec.reasons[hops] & check), (check, dec.reasons[hops])
+    others = np.setdiff1d(np.arange(n), np.concatenate([list(h) for h in blocks.values()]))
+    np.testing.assert_array_equal(dec.rejected[others], base.rejected[others])
+    assert np.all(np.isfinite(out.y)) and np.max(np.abs(out.y)) <= 0.99
+
+
+def test_guard_catches_perturbed_onnx_weights(trained, held_out, tmp_path):
+    import onnx
+    from onnx import numpy_helper
+
+    bad = tmp_path / "bad"
+    shutil.copytree(trained.out, bad)
+    proto = onnx.load(str(bad / "model.onnx"))
+    # the last Add of the graph carries the level's de-normalisation offset: push it 150 dB up
+    y_mean = next(i for i in proto.graph.initializer if "y_mean" in i.name)
+    arr = numpy_helper.to_array(y_mean).copy()
+    arr[-1] += 150.0
+    y_mean.CopyFrom(numpy_helper.from_array(arr, y_mean.name))
+    onnx.save(proto, str(bad / "model.onnx"))
+    nb = channel.telephone(held_out[1], sr=16000, level_dbov=None)
+    out, dec = _decisions(checkpoint.load(bad), nb)
+    assert np.all(dec.reasons & Check.LEVEL)
+    assert np.all(np.isfinite(out.y)) and np.max(np.abs(out.y)) <= 0.99
+    cb = pipeline.extend(nb, system=pipeline.make_system("codebook", model=checkpoint.load(trained.out))).y
+    np.testing.assert_allclose(out.y, cb, atol=1e-9)  # every hop fell back: the codebook system's output
+
+
+def test_guard_rejects_inputs_unlike_training(trained):
+    # Measured with this model: a 1 kHz tone trips level + mismatch on ~98% of hops,
+    # full-scale noise (far louder than any training level) trips novel on every hop.
+    ck = checkpoint.load(trained.out)
+    tone = 0.1 * np.sin(2 * np.pi * 1000 * np.arange(16000) / 8000)
+    out, dec = _decisions(ck, tone)
+    assert np.mean(dec.rejected[10:]) > 0.9 and np.mean(dec.reasons[10:] & (Check.LEVEL | Check.MISMATCH) > 0) > 0.9
+    assert np.all(np.isfinite(out.y)) and np.max(np.abs(out.y)) <= 0.99
+    noise = np.random.default_rng(0).uniform(-1, 1, 16000)
+    out, dec = _decisions(ck, noise)
+    assert np.mean(dec.reasons & Check.NOVEL > 0) > 0.9
+    assert np.all(np.isfinite(out.y)) and np.max(np.abs(out.y)) <= 0.99
+
+
+def test_train_refuses_to_overwrite_and_keeps_old_model(trained, tmp_path):
+    r = recipe.load(None, overrides=[f'corpus="{tmp_path / "none"}"'])
+    dst = tmp_path / "m"
+    shutil.copytree(trained.out, dst)
+    with pytest.raises(ConfigError, match="--force"):
+        loop.train(r, dst)
+    from nenv.errors import InputError
+
+    with pytest.raises(InputError, match="does not exist"):
+        loop.train(r, dst, force=True)
+    assert (dst / "model.onnx").is_file()  # a failed run leaves the old model whole
+    assert not list(tmp_path.glob(".*partial*"))
+
+
+def test_neural_runtime_runs_without_torch(trained):
+    import subprocess
+    import sys
+
+    code = f"""
+import sys
+class NoTorch:
+    def find_spec(self, name, path=None, target=None):
+        if name == "torch" or name.startswith("torch."):
+            raise ImportError("blocked")
+sys.meta_path.insert(0, NoTorch())
+import numpy as np
+from nenv import pipeline
+y = pipeline.extend(np.random.default_rng(0).standard_normal(8000) * 0.05, system=pipeline.make_system("neural", model={str(trained.out)!r})).y
+assert y.shape == (16000,) and "torch" not in sys.modules
+print("ok")
+"""
+    res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert res.returncode == 0, res.stderr
