@@ -120,9 +120,10 @@ def load(path: str | os.PathLike | None, *, overrides: typing.Sequence[str] = ()
         nested = [k for k, v in data.items() if isinstance(v, dict)]
         if nested:
             raise ConfigError(f"recipe '{p}' must be flat (key = value lines), but has tables {nested}")
-        if path and data.get("corpus"):  # a relative corpus path is relative to the recipe's folder
-            c = Path(data["corpus"]).expanduser()
-            data["corpus"] = str(c if c.is_absolute() else (p.parent / c).resolve())
+        for key in ("corpus", "manifest"):  # relative paths are relative to the recipe's folder
+            if isinstance(data.get(key), str) and data[key]:
+                c = Path(data[key]).expanduser()
+                data[key] = str(c if c.is_absolute() else (p.parent / c).resolve())
     for item in overrides:
         k, v = _parse_override(item)
         data[k] = v
