@@ -134,6 +134,15 @@ def resample(y: np.ndarray, *, orig_sr: int, target_sr: int) -> np.ndarray:
     return out[:n_out]
 
 
+def to_int16(y: np.ndarray) -> np.ndarray:
+    """Float samples (full scale 1.0) -> int16: x 32768, rounded half to even, saturated at the rails.
+
+    The one conversion nenv uses for every 16-bit output (files and streams), so
+    a streamed call and the same call written by ``extend`` are bit-identical.
+    """
+    return np.clip(np.round(np.asarray(y, dtype=np.float64) * 32768.0), -32768, 32767).astype(np.int16)
+
+
 def limit_peaks(y: np.ndarray, *, ceiling: float = 0.99 * FULL_SCALE) -> tuple[np.ndarray, int]:
     """Clip samples beyond ``ceiling`` and count them.
 
@@ -173,8 +182,10 @@ def write(path: str | os.PathLike, y: np.ndarray, *, sr: int, subtype: str | Non
     p = check_output(path, suffixes=AUDIO_SUFFIXES)
     ext = p.suffix.lower()
     with atomic_output(p) as tmp:
+        sub = subtype or _SUBTYPES[ext]
+        data = to_int16(y) if sub == "PCM_16" else np.clip(y, -1.0, 1.0)
         with open(tmp, "wb") as fh:
-            sf.write(fh, np.clip(y, -1.0, 1.0), sr, subtype=subtype or _SUBTYPES[ext], format=ext[1:].upper())
+            sf.write(fh, data, sr, subtype=sub, format=ext[1:].upper())
             fh.flush()
             os.fsync(fh.fileno())
 

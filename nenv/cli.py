@@ -250,6 +250,75 @@ def demo(
     _say("listen at a moderate level: the added high band is estimated, not recorded")
 
 
+class _Terminate(Exception):
+    pass
+
+
+@app.command()
+@_guarded
+def stream(
+    input_format: Annotated[str, typer.Option("--input-format", help="stdin encoding at 8 kHz: s16le (16-bit little-endian PCM), mulaw (PCMU bytes) or alaw (PCMA bytes).")] = "s16le",
+    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
+    model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
+    excitation: Annotated[str, typer.Option(help="Excitation extension: rectify, fold or modulate.")] = "rectify",
+) -> None:
+    """Extend a live call: 8 kHz audio on stdin, 16 kHz s16le on stdout, unbuffered.
+
+    Ends cleanly at end of input or on SIGTERM/SIGINT, writing the last samples first.
+    """
+    import signal as sig
+
+    import numpy as np
+
+    from nenv import g711, pipeline
+    from nenv.audio import to_int16
+    from nenv.runtime import CallEngine
+
+    if input_format not in ("s16le", "mulaw", "alaw"):
+        raise InputError(f"--input-format {input_format} is not known: choose s16le, mulaw or alaw")
+    method = method or _default_method(model)
+    if method not in pipeline.SYSTEMS or method == "oracle":
+        raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
+    engine = CallEngine(pipeline.make_system(method, model=model, excitation=excitation))
+    out = sys.stdout.buffer
+    fd = sys.stdin.fileno()
+
+    def stop(signum, frame):
+        raise _Terminate()
+
+    old = {s: sig.signal(s, stop) for s in (sig.SIGTERM, sig.SIGINT)}
+    leftover = b""
+    try:
+        while True:
+            try:
+                data = os.read(fd, 4096)
+            except _Terminate:
+                break
+            if not data:
+                break
+            if input_format == "s16le":
+                data = leftover + data
+                n = len(data) // 2 * 2
+                leftover = data[n:]
+                x = np.frombuffer(data[:n], dtype="<i2").astype(np.float64) / 32768.0
+            else:
+                x = g711.decode(np.frombuffer(data, dtype=np.uint8), law=input_format)
+            y = engine.feed(x)
+            if y.size:
+                out.write(to_int16(y).astype("<i2").tobytes())
+                out.flush()
+    except _Terminate:
+        pass
+    finally:
+        for s, h in old.items():
+            sig.signal(s, h)
+    y = engine.flush()
+    if y.size:
+        out.write(to_int16(y).astype("<i2").tobytes())
+    out.flush()
+    _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
+
+
 RecipeOpt = Annotated[Optional[Path], typer.Option("--config", help="Training recipe (flat TOML, see configs/).")]
 SetOpt = Annotated[list[str], typer.Option("--set", help="Override a recipe key: --set epochs=20 (repeatable).")]
 

@@ -22,6 +22,7 @@ from typing import Literal
 
 import numpy as np
 
+from nenv.audio import to_int16
 from nenv.errors import InputError
 
 Law = Literal["mulaw", "alaw", "none"]
@@ -86,11 +87,6 @@ def mulaw_decode(code: np.ndarray) -> np.ndarray:
     u = ~np.asarray(code, dtype=np.int32) & 0xFF
     t = (((u & 0xF) << 3) + 0x84) << ((u & 0x70) >> 4)
     return np.where(u & 0x80, 0x84 - t, t - 0x84).astype(np.int16)
-
-
-def to_int16(y: np.ndarray) -> np.ndarray:
-    """Float samples (full scale 1.0) -> int16 by rounding, saturating at the rails."""
-    return np.clip(np.round(np.asarray(y, dtype=np.float64) * 32768.0), -32768, 32767).astype(np.int16)
 
 
 def encode(y: np.ndarray, *, law: Law) -> np.ndarray:

@@ -1,0 +1,88 @@
+"""The streaming engine a gateway embeds: torch-free (numpy, scipy, onnxruntime).
+
+One :class:`CallEngine` per call. Feed it 8 kHz samples in chunks of any size
+(one sample to minutes); it returns 16 kHz samples as soon as whole 10 ms hops
+are complete. The concatenation of everything :meth:`CallEngine.feed`
+returns plus :meth:`CallEngine.flush` equals the offline ``nenv extend``
+output for the same input (same system, same model), whatever the chunking.
+
+Latency: a sample waits at most one hop (10 ms) for its hop to complete, then
+passes the interpolator's delay (23 samples at 16 kHz = 1.44 ms); the
+analysis window ends at the hop's end, so there is no look-ahead. The output
+stream therefore lags the input by ``LATENCY_MS`` = 11.44 ms at most.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from nenv.audio import limit_peaks
+from nenv.pipeline import LATENCY, Extender, System
+from nenv.settings import HOP_NB, NB_SR, WB_SR
+
+ALGORITHMIC_LATENCY_MS = 1000.0 * (HOP_NB / NB_SR + LATENCY / WB_SR)  # = 11.4375 ms
+
+
+class CallEngine:
+    """Streaming narrowband -> wideband conversion for one call."""
+
+    latency_ms = ALGORITHMIC_LATENCY_MS
+
+    def __init__(self, system: System):
+        self._ext = Extender(system)
+        self._pending = np.zeros(0)
+        self._skip = LATENCY  # output samples still to drop (the processing delay)
+        self.samples_in = 0
+        self.samples_out = 0
+        self.limited = 0  # output samples clipped by the peak limiter
+        self.bad_samples = 0  # non-finite input samples replaced by 0
+        self._closed = False
+
+    @property
+    def system(self) -> System:
+        return self._ext.system
+
+    def feed(self, x: np.ndarray) -> np.ndarray:
+        """Take any number of 8 kHz samples (float, full scale 1.0); return the 16 kHz samples now ready.
+
+        Non-finite samples are replaced by 0 (and counted in ``bad_samples``), so one
+        corrupt packet cannot poison the call's filter state.
+        """
+        if self._closed:
+            raise RuntimeError("this call has been flushed; start a new CallEngine")
+        x = np.asarray(x, dtype=np.float64).reshape(-1)
+        finite = np.isfinite(x)
+        if not np.all(finite):
+            self.bad_samples += int(np.count_nonzero(~finite))
+            x = np.where(finite, x, 0.0)
+        self.samples_in += x.size
+        buf = np.concatenate([self._pending, x]) if self._pending.size else x
+        n_whole = (buf.size // HOP_NB) * HOP_NB
+        self._pending = buf[n_whole:].copy()
+        if n_whole == 0:
+            return np.zeros(0)
+        return self._emit(self._ext.process(buf[:n_whole]))
+
+    def flush(self) -> np.ndarray:
+        """End of call: process the last partial hop and drain the delay; total output = 2 x input."""
+        if self._closed:
+            return np.zeros(0)
+        self._closed = True
+        tail = (LATENCY + 1) // 2
+        total = self._pending.size + tail
+        n_pad = -(-total // HOP_NB) * HOP_NB - self._pending.size
+        y = self._emit(self._ext.process(np.concatenate([self._pending, np.zeros(n_pad)])))
+        want = 2 * self.samples_in - (self.samples_out - y.size)
+        y = y[: max(want, 0)]
+        self.samples_out = 2 * self.samples_in
+        return y
+
+    def _emit(self, y: np.ndarray) -> np.ndarray:
+        if self._skip:
+            drop = min(self._skip, y.size)
+            y = y[drop:]
+            self._skip -= drop
+        y, n = limit_peaks(y)
+        self.limited += n
+        self.samples_out += y.size
+        return y

@@ -1,0 +1,130 @@
+"""The streaming engine: any chunking gives the offline output, with a fixed, reported latency."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from nenv import channel, pipeline
+from nenv.runtime import ALGORITHMIC_LATENCY_MS, CallEngine
+
+
+@pytest.fixture(scope="module")
+def call_audio(arctic_refs):
+    _, ref = arctic_refs[1]
+    return ref, channel.telephone(ref, sr=16000, law="mulaw")
+
+
+def _stream(x, chunks, system):
+    eng = CallEngine(system)
+    out, pos = [], 0
+    for c in chunks:
+        out.append(eng.feed(x[pos : pos + c]))
+        pos += c
+    out.append(eng.feed(x[pos:]))
+    out.append(eng.flush())
+    return np.concatenate(out), eng
+
+
+@settings(max_examples=30, deadline=None)
+@given(chunks=st.lists(st.integers(0, 2000), min_size=0, max_size=40), name=st.sampled_from(["imaging", "oracle", "unextended"]))
+def test_any_chunking_equals_offline(call_audio, chunks, name):
+    ref, x = call_audio
+    x = x[:12000]
+    offline = pipeline.extend(x, system=pipeline.make_system(name, reference=ref)).y
+    streamed, eng = _stream(x, chunks, pipeline.make_system(name, reference=ref))
+    assert streamed.shape == offline.shape == (2 * x.size,)
+    np.testing.assert_allclose(streamed, offline, atol=1e-9)
+    assert eng.samples_out == 2 * x.size
+
+
+def test_single_samples_and_empty_input(call_audio):
+    _, x = call_audio
+    x = x[:1000]
+    offline = pipeline.extend(x, system=pipeline.make_system("imaging")).y
+    streamed, _ = _stream(x, [1] * x.size, pipeline.make_system("imaging"))
+    np.testing.assert_allclose(streamed, offline, atol=1e-9)
+    eng = CallEngine(pipeline.make_system("imaging"))
+    assert eng.feed(np.zeros(0)).size == 0 and eng.flush().size == 0
+
+
+def test_latency_is_a_hop_plus_the_interpolator():
+    # 10 ms hop + 23 samples at 16 kHz; no look-ahead
+    assert ALGORITHMIC_LATENCY_MS == pytest.approx(10.0 + 23 / 16)
+    assert ALGORITHMIC_LATENCY_MS <= 20.0
+    eng = CallEngine(pipeline.make_system("imaging"))
+    assert eng.feed(np.zeros(79)).size == 0  # nothing before the first hop is whole
+    assert eng.feed(np.zeros(1)).size == 160 - 23
+
+
+def test_bad_samples_do_not_poison_the_call(call_audio):
+    _, x = call_audio
+    eng = CallEngine(pipeline.make_system("imaging"))
+    y1 = eng.feed(x[:800])
+    bad = x[800:1600].copy()
+    bad[100:110] = np.nan
+    y2 = eng.feed(bad)
+    y3 = eng.feed(x[1600:4000])
+    assert all(np.all(np.isfinite(y)) for y in (y1, y2, y3))
+    assert eng.bad_samples == 10
+
+
+def _nenv(*args, **kw):
+    import subprocess
+    import sys
+
+    return subprocess.run([sys.executable, "-m", "nenv", *map(str, args)], capture_output=True, **kw)
+
+
+@pytest.mark.parametrize("fmt", ["s16le", "mulaw", "alaw"])
+def test_stream_command_is_bit_exact_with_extend(tmp_path, call_audio, fmt):
+    import soundfile as sf
+
+    from nenv import g711
+    from nenv.audio import to_int16
+
+    _, x = call_audio
+    x = x[:8000]
+    if fmt == "s16le":
+        raw = to_int16(x).astype("<i2").tobytes()
+        sf.write(tmp_path / "nb.wav", to_int16(x), 8000, subtype="PCM_16")
+    else:
+        codes = g711.encode(x, law=fmt)
+        raw = codes.tobytes()
+        sf.write(tmp_path / "nb.wav", to_int16(g711.decode(codes, law=fmt)), 8000, subtype="PCM_16")
+    res = _nenv("stream", "--method", "imaging", "--input-format", fmt, input=raw)
+    assert res.returncode == 0, res.stderr
+    y = np.frombuffer(res.stdout, dtype="<i2")
+    assert _nenv("extend", tmp_path / "nb.wav", tmp_path / "wb.wav", "--method", "imaging").returncode == 0
+    ref, _ = sf.read(tmp_path / "wb.wav", dtype="int16")
+    np.testing.assert_array_equal(y, ref)
+
+
+def test_stream_flushes_its_tail_on_sigterm(call_audio):
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from nenv.audio import to_int16
+
+    _, x = call_audio
+    p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--method", "imaging"], stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    p.stdin.write(to_int16(x[:4001]).astype("<i2").tobytes())
+    p.stdin.flush()
+    deadline = time.time() + 60
+    while time.time() < deadline:  # wait until the engine is running (it has written output)
+        time.sleep(0.5)
+        if p.poll() is not None:
+            break
+        import select
+
+        if select.select([p.stdout], [], [], 0)[0]:
+            break
+    p.send_signal(signal.SIGTERM)
+    out, err = p.communicate(timeout=60)
+    assert p.returncode == 0, err
+    assert len(out) // 2 == 2 * 4001  # every sample that went in came out, tail included
+    assert b"stream ended" in err
