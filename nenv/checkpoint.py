@@ -117,9 +117,16 @@ def load(path: str | os.PathLike) -> Checkpoint:
 
 
 def default_path() -> Path | None:
-    """Where the shipped default model is, if anywhere: $NENV_MODEL, else checkpoints/default of this checkout."""
+    """Where the default model is: $NENV_MODEL, else the shipped one, else None.
+
+    The shipped model is checkpoints/default of a source checkout, installed as
+    nenv/_checkpoints/default.
+    """
     env = os.environ.get("NENV_MODEL")
     if env:
         return Path(env)
-    here = Path(__file__).resolve().parents[1] / "checkpoints" / "default"
-    return here if (here / MODEL_FILE).is_file() else None
+    here = Path(__file__).resolve().parent
+    for cand in (here.parent / "checkpoints" / "default", here / "_checkpoints" / "default"):
+        if (cand / MODEL_FILE).is_file():
+            return cand
+    return None

@@ -19,7 +19,7 @@ def _db(y: np.ndarray) -> np.ndarray:
     return 10 * np.log10(np.maximum(measures.power_spectra(y), 1e-20)).T
 
 
-def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: str | os.PathLike, *, title: str = "") -> None:
+def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: str | os.PathLike, *, title: str = "", dpi: int = 110) -> None:
     """Write a grid of 16 kHz spectrograms: ``panels[col][row] = (label, y)``.
 
     Every panel shares one colour scale (``DYNAMIC_RANGE_DB`` below the loudest
@@ -59,5 +59,5 @@ def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: s
     if image is not None:
         fig.colorbar(image, ax=axes, shrink=0.6, label="dB")
     with atomic_output(p) as tmp:
-        fig.savefig(tmp, dpi=110, format=p.suffix[1:])
+        fig.savefig(tmp, dpi=dpi, format=p.suffix[1:])
     plt.close(fig)

@@ -169,6 +169,14 @@ class AllPoleSynthesizer:
         u = u.reshape(n * self.n_sub, sub)
         a_sub = a_sub.reshape(n * self.n_sub, self.order + 1)
         g_sub = g_sub.reshape(-1)
+        if sub < 2 * self.order:
+            out = self._loop(u, a_sub, g_sub)
+        else:
+            out = self._block(u, a_sub, g_sub)
+        return out.reshape(-1)
+
+    def _loop(self, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
+        """Reference path: one lfilter call per sub-frame, memory rebuilt from past outputs."""
         out = np.empty_like(u)
         past = self._past
         idx, mask = self._idx, self._mask
@@ -177,9 +185,43 @@ class AllPoleSynthesizer:
             zi = -np.sum(aj[idx] * mask * past[None, :], axis=1)
             y = signal.lfilter([g_sub[j]], aj, u[j], zi=zi)[0]
             out[j] = y
-            if sub >= self.order:
-                past = y[: -self.order - 1 : -1]
-            else:
-                past = np.concatenate([y[::-1], past])[: self.order]
+            past = np.concatenate([y[::-1], past])[: self.order]
         self._past = past.copy()
-        return out.reshape(-1)
+        return out
+
+    def _block(self, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
+        """The same recursion, exactly, with the per-sub-frame work vectorised.
+
+        Each sub-frame's output is ``h * (g u + v)``: ``h`` its filter's impulse
+        response (all sub-frames at once), ``v = -K s`` the equivalent input of the
+        memory ``s`` (last ``order`` outputs). Only the memory update
+        ``s' = Z + F s`` (Z: last outputs of the zero-state response, F = -G K with
+        G built from h) runs sub-frame by sub-frame, as a small matrix-vector product.
+        """
+        n_sub, length = u.shape
+        p = self.order
+        # impulse responses and zero-state responses of all sub-frames, side by side
+        both = np.zeros((2, n_sub, length))
+        both[0, :, 0] = 1.0
+        both[1] = g_sub[:, None] * u
+        for t in range(1, length):
+            k = min(t, p)
+            both[:, :, t] -= np.einsum("jk,bjk->bj", a_sub[:, 1 : k + 1], both[:, :, t - 1 :: -1][:, :, :k])
+        both[1, :, 0] = g_sub * u[:, 0]
+        h, zs = both[0], both[1]
+        n_fft = 1 << int(np.ceil(np.log2(2 * length)))
+        hf = np.fft.rfft(h, n_fft, axis=1)
+        K = a_sub[:, self._idx] * self._mask  # v[m] = -sum_i K[m, i] s[i]
+        r = np.arange(p)
+        G = h[:, length - 1 - r[:, None] - r[None, :]]  # last outputs' response to v
+        F = list(-np.einsum("jrm,jmi->jri", G, K))
+        Z = list(zs[:, length - 1 - r])
+        states = np.empty((n_sub, p))
+        s = self._past
+        for j in range(n_sub):
+            states[j] = s
+            s = Z[j] + F[j].dot(s)
+        self._past = s.copy()
+        v = -np.einsum("jmi,ji->jm", K, states)
+        zi = np.fft.irfft(hf * np.fft.rfft(v, n_fft, axis=1), n_fft, axis=1)[:, :length]
+        return zs + zi

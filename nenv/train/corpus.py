@@ -107,12 +107,18 @@ class FileReport:
     excluded: str = ""  # empty = kept; otherwise the reason
 
 
-def load_wideband(path: str) -> np.ndarray:
-    """A corpus file as mono (channels averaged) at 16 kHz; InputError if unusable."""
+def load_native(path: str) -> tuple[np.ndarray, int]:
+    """A corpus file as mono (channels averaged) at its own rate; InputError if below 16 kHz."""
     a = audio.load(path, mix=True)
     if a.sr < WB_SR:
         raise InputError(f"sampled at {a.sr} Hz, below 16 kHz")
-    return audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR)
+    return a.y, a.sr
+
+
+def load_wideband(path: str) -> np.ndarray:
+    """A corpus file as mono (channels averaged) at 16 kHz; InputError if unusable."""
+    y, sr = load_native(path)
+    return audio.resample(y, orig_sr=sr, target_sr=WB_SR)
 
 
 def _clipped_fraction(y: np.ndarray) -> float:

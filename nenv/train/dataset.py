@@ -26,10 +26,11 @@ from nenv import channel, lpc
 from nenv.estimators.base import NarrowbandAnalysis
 from nenv.features import ContextStacker, FeatureSettings, narrowband_features, wideband_targets
 from nenv.settings import HOP_NB, HOP_WB, NB_SR, WB_SR
-from nenv.train.corpus import load_wideband
+from nenv import audio
+from nenv.train.corpus import load_native
 from nenv.train.recipe import Recipe
 
-AUGMENT_KEYS = ("copies", "laws", "level_min_dbov", "level_max_dbov", "noise_probability", "snr_min_db", "snr_max_db", "active_range_db", "seed")
+AUGMENT_KEYS = ("copies", "warp_max", "laws", "level_min_dbov", "level_max_dbov", "noise_probability", "snr_min_db", "snr_max_db", "active_range_db", "seed")
 
 
 @dataclass
@@ -62,18 +63,43 @@ class Pairs:
         )
 
 
-def pairs_from_signal(y: np.ndarray, *, recipe: Recipe, settings: FeatureSettings, rng: np.random.Generator) -> Pairs:
-    """All augmentation copies of one 16 kHz signal."""
+def warp(y: np.ndarray, *, sr: int, factor: float) -> np.ndarray:
+    """Vocal-tract-length perturbation: every frequency times ``factor``, returned at 16 kHz.
+
+    Played at 16 kHz after resampling from ``sr`` to ``16000 / factor``, so the output's
+    0-8 kHz comes from the source's 0-(8 kHz / factor): always there for factor >= 1,
+    and for factor < 1 only when ``sr >= 16000 / factor``.
+    """
+    return audio.resample(y, orig_sr=sr, target_sr=int(round(WB_SR / factor)))
+
+
+def pairs_from_signal(y: np.ndarray, *, recipe: Recipe, settings: FeatureSettings, rng: np.random.Generator, sr: int = WB_SR) -> Pairs:
+    """All augmentation copies of one signal at rate ``sr`` (>= 16 kHz).
+
+    With ``warp_max > 1`` each copy's frequencies are scaled by a random factor in
+    [1/warp_max, warp_max], raised where needed so that the source still fills 0-8 kHz
+    (``factor >= 16000 / sr``), which widens the range of vocal-tract lengths
+    (Jaitly & Hinton 2013, "Vocal tract length perturbation improves speech recognition").
+    """
     parts = []
-    n_hops = y.size // HOP_WB
-    y = y[: n_hops * HOP_WB]
-    if n_hops == 0 or not np.any(y):
+    base = audio.resample(y, orig_sr=sr, target_sr=WB_SR)
+    if base.size < HOP_WB or not np.any(base):
         return _empty(settings)
+    bottom = max(1.0 / recipe.warp_max, WB_SR / sr)
     for _ in range(recipe.copies):
+        wb_in = base
+        if recipe.warp_max > 1.0:
+            factor = float(np.exp(rng.uniform(np.log(min(bottom, 1.0)), np.log(recipe.warp_max))))
+            if abs(factor - 1.0) > 1e-3:
+                wb_in = warp(y, sr=sr, factor=factor)
+        n_hops = wb_in.size // HOP_WB
+        if n_hops == 0:
+            continue
+        wb_in = wb_in[: n_hops * HOP_WB]
         level = rng.uniform(recipe.level_min_dbov, recipe.level_max_dbov)
         law = recipe.laws[int(rng.integers(len(recipe.laws)))]
         snr = rng.uniform(recipe.snr_min_db, recipe.snr_max_db) if rng.random() < recipe.noise_probability else None
-        wb = channel.set_level(y, sr=WB_SR, level_dbov=level)
+        wb = channel.set_level(wb_in, sr=WB_SR, level_dbov=level)
         nb = channel.telephone(wb, sr=WB_SR, law=law, level_dbov=None, snr_db=snr, seed=int(rng.integers(2**31)))
         nb = nb[: n_hops * HOP_NB]
         frames = lpc.frame(nb, frame_length=settings.win_nb, hop_length=HOP_NB)
@@ -84,6 +110,8 @@ def pairs_from_signal(y: np.ndarray, *, recipe: Recipe, settings: FeatureSetting
         ceps, lev = wideband_targets(wb_frames, feats[:, 10], settings=settings)
         keep = feats[:, 10] > feats[:, 10].max() - recipe.active_range_db
         parts.append(Pairs(stacked[keep], feats[keep], ceps[keep], lev[keep], a[keep], np.zeros(int(keep.sum()), int), nb.size / NB_SR))
+    if not parts:
+        return _empty(settings)
     out = Pairs.concat(parts)
     out.group[:] = 0
     return out
@@ -107,7 +135,8 @@ def _file_pairs(path: str, index: int, recipe: Recipe, settings: FeatureSettings
         with np.load(cached, allow_pickle=False) as z:
             return Pairs(z["x"], z["current"], z["ceps"], z["level"], z["a_nb"], z["group"], float(z["seconds"]))
     rng = np.random.default_rng([recipe.seed, int(key[:8], 16)])
-    pairs = pairs_from_signal(load_wideband(path), recipe=recipe, settings=settings, rng=rng)
+    y, sr = load_native(path)
+    pairs = pairs_from_signal(y, sr=sr, recipe=recipe, settings=settings, rng=rng)
     if cached is not None:
         from nenv.files import atomic_output
 

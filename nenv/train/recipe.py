@@ -33,6 +33,7 @@ class Recipe:
     max_files: int = 0
     # paired features and augmentation
     copies: int = 2
+    warp_max: float = 1.0
     laws: list[str] = field(default_factory=lambda: ["none", "mulaw", "alaw"])
     level_min_dbov: float = -36.0
     level_max_dbov: float = -16.0
@@ -51,6 +52,7 @@ class Recipe:
     learning_rate: float = 2e-3
     weight_decay: float = 1e-5
     patience: int = 8
+    loss: str = "cepstra"
     level_weight: float = 1.0
     over_weight: float = 4.0
     seed: int = 0
@@ -149,5 +151,9 @@ def _validate(r: Recipe) -> None:
         raise ConfigError("recipe keys context >= 0, copies >= 1, epochs >= 1, batch_size >= 1, codebook_size >= 2 and a non-empty hidden list are required")
     if not (r.speaker_rule == "parent" or r.speaker_rule.startswith("depth:") and r.speaker_rule[6:].isdigit()):
         raise ConfigError(f"recipe key 'speaker_rule' must be 'parent' or 'depth:N', got {r.speaker_rule!r}")
+    if not 1.0 <= r.warp_max <= 1.3:
+        raise ConfigError(f"recipe key 'warp_max' must lie between 1.0 (off) and 1.3, got {r.warp_max}")
+    if r.loss not in ("cepstra", "spectrum"):
+        raise ConfigError(f"recipe key 'loss' must be 'cepstra' or 'spectrum', got {r.loss!r}")
     if r.level_min_dbov > r.level_max_dbov or r.snr_min_db > r.snr_max_db:
         raise ConfigError("recipe ranges must have min <= max (level_*_dbov, snr_*_db)")
