@@ -174,8 +174,11 @@ def _extend(narrowband, wideband, *, method, model, excitation, reference, figur
             for mask in dec.reasons[dec.rejected]:
                 for name in reason_names(int(mask)):
                     counts[name] = counts.get(name, 0) + 1
-            detail = ", ".join(f"{k} {v}" for k, v in sorted(counts.items())) or "none"
-            _say(f"guard: {int(dec.rejected.sum())} of {dec.rejected.size} hops ({100 * dec.rejected.mean():.1f}%) fell back to the codebook ({detail})")
+            if counts:
+                detail = ", ".join(f"{k} {v}" for k, v in sorted(counts.items()))
+                _say(f"guard: {int(dec.rejected.sum())} of {dec.rejected.size} hops ({100 * dec.rejected.mean():.1f}%) fell back to the codebook ({detail})")
+            else:
+                _say(f"guard: all {dec.rejected.size} hops passed; none fell back to the codebook")
     if figure is not None:
         up = audio.resample(x, orig_sr=8000, target_sr=16000)
         spectrogram_grid([[("input (8 kHz, shown at 16 kHz)", up), (f"output: {method}", result.y)]], figure, title=narrowband.name)

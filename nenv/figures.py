@@ -35,7 +35,7 @@ def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: s
     n_rows = max(len(c) for c in panels)
     specs = [[_db(y) for _, y in col] for col in panels]
     top = max(s.max() for col in specs for s in col)
-    fig, axes = plt.subplots(n_rows, n_cols, figsize=(4.2 * n_cols, 1.9 * n_rows + 0.6), squeeze=False, sharey=True, layout="constrained")
+    fig, axes = plt.subplots(n_rows, n_cols, figsize=(4.2 * n_cols if n_cols > 1 else 9.0, 1.9 * n_rows + 0.6), squeeze=False, sharey=True, layout="constrained")
     image = None
     for c, col in enumerate(panels):
         for r in range(n_rows):

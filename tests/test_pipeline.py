@@ -177,3 +177,14 @@ def test_any_input_gives_finite_bounded_output_of_twice_the_length(kind, n, amp,
     assert out.y.shape == (2 * n,)
     assert np.all(np.isfinite(out.y))
     assert np.max(np.abs(out.y)) <= 0.99
+
+
+def test_short_subframes_take_the_reference_path(rng):
+    # sub-frames shorter than twice the order use one lfilter call each; same answer as scipy
+    a = lpc.from_reflection(rng.uniform(-0.9, 0.9, 16))
+    u = rng.standard_normal(HOP_WB * 6)
+    syn = AllPoleSynthesizer(order=16, n_sub=8)
+    syn._k_prev, _ = lpc.reflection(a)
+    syn._log_g_prev = np.log(0.5)
+    out = syn.process(u, a=np.tile(a, (6, 1)), gain=np.full(6, 0.5))
+    np.testing.assert_allclose(out, signal.lfilter([0.5], a, u), rtol=1e-9, atol=1e-12)

@@ -1,0 +1,87 @@
+"""Gateway benchmarks, measured side by side in one run (not tests; nothing is asserted).
+
+Run: python tests/bench/bench_runtime.py [--model DIR] [--seconds 20]
+
+Prints, on one thread:
+  1. offline real-time factor of the neural system beside imaging on the same input;
+  2. streaming: processing time per 10 ms chunk for one call (p50, p99, max);
+  3. calls one core keeps in real time, from the mean per-call cost of (2)
+     (no cross-call batching yet: one engine after another);
+  4. memory per call: Python heap allocated by one running CallEngine (tracemalloc).
+"""
+
+from __future__ import annotations
+
+import os
+
+for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ[var] = "1"
+
+import argparse
+import statistics
+import time
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+
+from nenv import channel, checkpoint, pipeline
+from nenv.evaluate import prepare_reference
+from nenv.runtime import CallEngine
+
+DATA = Path(__file__).resolve().parents[1] / "data"
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--model", type=Path, default=None)
+    ap.add_argument("--seconds", type=float, default=20.0, help="length of the test call")
+    ap.add_argument("--repeats", type=int, default=5)
+    args = ap.parse_args()
+    model = checkpoint.load(args.model or checkpoint.default_path())
+    ref = np.concatenate([prepare_reference(DATA / n) for n in ("arctic_a0007.wav", "arctic_a0009.wav")])
+    x = channel.telephone(ref, sr=16000, law="mulaw")
+    x = np.tile(x, int(np.ceil(args.seconds * 8000 / x.size)))[: int(args.seconds * 8000)]
+    seconds = x.size / 8000
+
+    # 1. offline, interleaved rounds
+    times: dict[str, list[float]] = {"imaging": [], "neural": []}
+    for _ in range(args.repeats):
+        for name in times:
+            system = pipeline.make_system(name, model=model)
+            t0 = time.perf_counter()
+            pipeline.extend(x, system=system)
+            times[name].append(time.perf_counter() - t0)
+    print(f"offline, {seconds:.0f} s of G.711 speech, {args.repeats} interleaved rounds, 1 thread")
+    base = statistics.median(times["imaging"])
+    for name, t in times.items():
+        med = statistics.median(t)
+        print(f"  {name:<8} {seconds / med:8.0f}x real time   {med / base:5.2f}x the time of imaging")
+
+    # 2. streaming, one call, 10 ms chunks
+    eng = CallEngine(pipeline.make_system("neural", model=model))
+    per = []
+    for s in range(0, x.size - 80, 80):
+        t0 = time.perf_counter()
+        eng.feed(x[s : s + 80])
+        per.append(time.perf_counter() - t0)
+    per_ms = np.array(per[10:]) * 1000
+    print("streaming, one call, 10 ms chunks (80 samples in, 160 out)")
+    print(f"  per chunk: p50 {np.percentile(per_ms, 50):.3f} ms, p99 {np.percentile(per_ms, 99):.3f} ms, max {per_ms.max():.3f} ms")
+    mean_ms = float(per_ms.mean())
+    print(f"  calls per core in real time (10 ms / mean {mean_ms:.3f} ms per call-hop, no batching): {int(10.0 / mean_ms)}")
+
+    # 4. memory per call
+    tracemalloc.start()
+    before = tracemalloc.take_snapshot()
+    engines = [CallEngine(pipeline.make_system("neural", model=model)) for _ in range(20)]
+    for e in engines:
+        e.feed(x[:8000])
+    after = tracemalloc.take_snapshot()
+    tracemalloc.stop()
+    grown = sum(st.size_diff for st in after.compare_to(before, "filename"))
+    print(f"memory per call (Python heap, 20 running calls sharing one model): {grown / 20 / 1024:.0f} KiB")
+
+
+if __name__ == "__main__":
+    main()
