@@ -34,12 +34,15 @@ CODEBOOK_FILE = "codebook.npz"
 SETTINGS_FILE = "nenv.json"
 
 
-def session_options():
-    """onnxruntime settings for a gateway: one thread, no spin-waiting, denormals flushed.
+def session_options(*, flush_denormals: bool = False):
+    """onnxruntime settings for a gateway: one thread, no spin-waiting, optionally denormals flushed.
 
     One intra-op thread per session keeps one call on one core (a gateway runs
-    many calls side by side); spin-waiting would burn a core between hops;
-    flushing denormals avoids slow paths on the tiny values of decaying filters.
+    many calls side by side); spin-waiting would burn a core between hops.
+    ``flush_denormals`` makes onnxruntime switch the calling thread's floating-point
+    unit to flush-to-zero / denormals-are-zero, which avoids slow paths on tiny
+    values but changes that thread's arithmetic for everything else in the process
+    too (numpy included). ``nenv stream`` turns it on; a library caller decides.
     """
     import onnxruntime as ort
 
@@ -49,7 +52,8 @@ def session_options():
     so.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
     so.add_session_config_entry("session.intra_op.allow_spinning", "0")
     so.add_session_config_entry("session.inter_op.allow_spinning", "0")
-    so.add_session_config_entry("session.set_denormal_as_zero", "1")
+    if flush_denormals:
+        so.add_session_config_entry("session.set_denormal_as_zero", "1")
     so.log_severity_level = 3
     return so
 
@@ -63,6 +67,7 @@ class Checkpoint:
     limits: GuardLimits
     codebook: Codebook
     info: dict
+    flush_denormals: bool = False
     _session: object = field(default=None, repr=False)
 
     def session(self):
@@ -71,7 +76,7 @@ class Checkpoint:
             import onnxruntime as ort
 
             try:
-                self._session = ort.InferenceSession(str(self.path / MODEL_FILE), sess_options=session_options(), providers=["CPUExecutionProvider"])
+                self._session = ort.InferenceSession(str(self.path / MODEL_FILE), sess_options=session_options(flush_denormals=self.flush_denormals), providers=["CPUExecutionProvider"])
             except Exception as e:  # onnxruntime raises its own Fail / InvalidProtobuf types
                 raise ConfigError(f"cannot load '{self.path / MODEL_FILE}': {str(e).splitlines()[0]}") from e
             meta = self._session.get_modelmeta().custom_metadata_map
@@ -91,8 +96,11 @@ class Checkpoint:
         return ceps.astype(np.float64), level[:, 0].astype(np.float64)
 
 
-def load(path: str | os.PathLike) -> Checkpoint:
-    """Load and validate a checkpoint folder; ConfigError with the reason if anything is off."""
+def load(path: str | os.PathLike, *, flush_denormals: bool = False) -> Checkpoint:
+    """Load and validate a checkpoint folder; ConfigError with the reason if anything is off.
+
+    ``flush_denormals``: see :func:`session_options`.
+    """
     p = Path(path)
     if not p.is_dir():
         raise ConfigError(f"model folder '{p}' does not exist (train one with 'nenv train', or pass --model)")
@@ -113,7 +121,7 @@ def load(path: str | os.PathLike) -> Checkpoint:
     except (KeyError, TypeError) as e:
         raise ConfigError(f"'{p / SETTINGS_FILE}' lacks a valid 'features' or 'guard' section: {e}") from e
     FeatureSettings().check_compatible(feats, what=f"the model in '{p}'")
-    return Checkpoint(p, feats, limits, Codebook.load(p / CODEBOOK_FILE), info)
+    return Checkpoint(p, feats, limits, Codebook.load(p / CODEBOOK_FILE), info, flush_denormals)
 
 
 def default_path() -> Path | None:

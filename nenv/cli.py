@@ -282,6 +282,13 @@ def stream(
     method = method or _default_method(model)
     if method not in pipeline.SYSTEMS or method == "oracle":
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
+    if method in pipeline.MODEL_SYSTEMS:
+        from nenv import checkpoint
+
+        path = model or checkpoint.default_path()
+        if path is None:
+            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
+        model = checkpoint.load(path, flush_denormals=True)  # this process is ours: flush denormals
     engine = CallEngine(pipeline.make_system(method, model=model, excitation=excitation))
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()

@@ -55,7 +55,7 @@ def test_extend_oracle_needs_reference(nb_file, tmp_path):
 
 
 def test_evaluate_prints_every_system_and_measure(tmp_path):
-    res = _run("evaluate", *ARCTIC, "--out", tmp_path / "ev", "--law", "none", "--law", "alaw")
+    res = _run("evaluate", *ARCTIC, "--out", tmp_path / "ev", "--law", "none", "--law", "alaw", "--method", "unextended", "--method", "imaging", "--method", "oracle")
     assert res.exit_code == 0, res.output
     for word in ["unextended", "imaging", "oracle", "LSD 3.4-8k", "env LSD", "HB level err", "WB-PESQ", "alaw", "**mean**"]:
         assert word in res.stdout

@@ -128,3 +128,17 @@ def test_stream_flushes_its_tail_on_sigterm(call_audio):
     assert p.returncode == 0, err
     assert len(out) // 2 == 2 * 4001  # every sample that went in came out, tail included
     assert b"stream ended" in err
+
+
+def test_loading_a_model_leaves_the_floating_point_mode_alone():
+    # Subnormal numbers must still exist after a model has run (the library does not flush
+    # denormals unless asked): 2**-1074 is the smallest positive float64 (IEEE 754).
+    from nenv import checkpoint
+
+    path = checkpoint.default_path()
+    if path is None:
+        pytest.skip("no default model")
+    ck = checkpoint.load(path)
+    ck.predict(np.zeros((3, ck.features.input_dim)))
+    tiny = np.array([2.0**-1074])
+    assert tiny[0] > 0 and (tiny * 1.0)[0] > 0

@@ -1,0 +1,250 @@
+"""Many calls on one core: every stage runs once per hop for all active calls together.
+
+:class:`MultiCallEngine` keeps the state of every call as one row of shared
+arrays (filter memories, analysis history, context, synthesis memory), so each
+numpy operation and the single onnxruntime run per hop serve all calls at once;
+Python overhead is paid per hop, not per call. Calls join (:meth:`open`) and
+leave (:meth:`close`) at any time. Each call's output equals what its own
+:class:`nenv.runtime.CallEngine` would produce (tested to 1e-6).
+
+Only the neural system is batched (the gateway's case); one call's non-finite
+input is replaced by zeros for that call alone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import signal
+
+from nenv import lpc
+from nenv.audio import limit_peaks
+from nenv.checkpoint import Checkpoint
+from nenv.estimators.codebook import ENERGY_COLUMN
+from nenv.estimators.base import NarrowbandAnalysis
+from nenv.excitation import DC_POLE, WHITEN_ORDER, residual
+from nenv.features import ENERGY_FLOOR_DB, envelope_from_prediction, narrowband_features
+from nenv.guard import Guard
+from nenv.pipeline import LATENCY
+from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
+from nenv.synthesis import MAX_REFLECTION, AllPoleSynthesizer, interpolate_envelopes, isolation_sos, upsampler_taps
+
+
+@dataclass
+class _Call:
+    pending: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    out: list = field(default_factory=list)
+    skip: int = LATENCY
+    samples_in: int = 0
+    samples_out: int = 0
+    limited: int = 0
+    bad_samples: int = 0
+    rejected_hops: int = 0
+    hops: int = 0
+
+
+class MultiCallEngine:
+    """Batched streaming extension for many calls sharing one model."""
+
+    def __init__(self, checkpoint: Checkpoint, *, guard: bool = True):
+        self.ck = checkpoint
+        self.guard = Guard(checkpoint.limits) if guard else None
+        self.p = checkpoint.features.wb_order
+        self.context = checkpoint.features.context
+        self._up_taps = upsampler_taps()
+        self._iso = isolation_sos()
+        self._ids: list[str] = []
+        self._calls: dict[str, _Call] = {}
+        self._helper = AllPoleSynthesizer(order=self.p)  # index tables for the synthesis memory
+        n_in = checkpoint.features.n_inputs
+        self._state = {
+            "nb_hist": np.zeros((0, WIN_NB - HOP_NB)),
+            "wb_hist": np.zeros((0, WIN_WB - HOP_WB)),
+            "ctx": np.zeros((0, self.context * n_in)),
+            "ctx_ready": np.zeros(0, dtype=bool),
+            "up_x": np.zeros((0, self._up_taps.size - 1)),
+            "up_e": np.zeros((0, self._up_taps.size - 1)),
+            "dc": np.zeros((0, 1)),
+            "iso": np.zeros((self._iso.shape[0], 0, 2)),
+            "past": np.zeros((0, self.p)),
+            "k_prev": np.zeros((0, self.p)),
+            "g_prev": np.zeros(0),
+        }
+
+    # ---- calls joining and leaving -------------------------------------------------
+    def open(self, call_id: str) -> None:
+        """Start a call (its state starts from silence, like a new CallEngine)."""
+        if call_id in self._calls:
+            raise ValueError(f"call {call_id!r} is already open")
+        self._ids.append(call_id)
+        self._calls[call_id] = _Call()
+        for k, v in self._state.items():
+            if k == "iso":
+                self._state[k] = np.concatenate([v, np.zeros((v.shape[0], 1, 2))], axis=1)
+            elif k == "g_prev":
+                self._state[k] = np.append(v, np.log(1e-9))
+            else:
+                self._state[k] = np.concatenate([v, np.zeros((1,) + v.shape[1:], dtype=v.dtype)])
+
+    def close(self, call_id: str) -> np.ndarray:
+        """End a call: flush its tail (total output = 2 x its input) and forget it."""
+        call = self._calls[call_id]
+        tail = (LATENCY + 1) // 2
+        n_pad = -(-(call.pending.size + tail) // HOP_NB) * HOP_NB - call.pending.size
+        call.pending = np.concatenate([call.pending, np.zeros(n_pad)])
+        self._run(only=call_id)
+        y = np.concatenate(call.out) if call.out else np.zeros(0)
+        want = 2 * call.samples_in - (call.samples_out - y.size)
+        y = y[: max(want, 0)]
+        i = self._ids.index(call_id)
+        keep = np.arange(len(self._ids)) != i
+        for k, v in self._state.items():
+            self._state[k] = v[:, keep] if k == "iso" else v[keep]
+        self._ids.pop(i)
+        del self._calls[call_id]
+        return y
+
+    @property
+    def calls(self) -> list[str]:
+        return list(self._ids)
+
+    def stats(self, call_id: str) -> dict:
+        c = self._calls[call_id]
+        return {"samples_in": c.samples_in, "samples_out": c.samples_out, "limited": c.limited, "bad_samples": c.bad_samples, "hops": c.hops, "rejected_hops": c.rejected_hops}
+
+    # ---- audio in and out ------------------------------------------------------------
+    def feed(self, call_id: str, x: np.ndarray) -> None:
+        """Queue 8 kHz samples for a call (processed by the next :meth:`step`)."""
+        call = self._calls[call_id]
+        x = np.asarray(x, dtype=np.float64).reshape(-1)
+        finite = np.isfinite(x)
+        if not np.all(finite):
+            call.bad_samples += int(np.count_nonzero(~finite))
+            x = np.where(finite, x, 0.0)
+        call.samples_in += x.size
+        call.pending = np.concatenate([call.pending, x])
+
+    def step(self) -> dict[str, np.ndarray]:
+        """Process every whole hop queued, all calls together; return each call's new 16 kHz samples."""
+        self._run()
+        out = {}
+        for cid, call in self._calls.items():
+            out[cid] = np.concatenate(call.out) if call.out else np.zeros(0)
+            call.out = []
+        return out
+
+    # ---- one hop for a set of calls ----------------------------------------------------
+    def _run(self, only: str | None = None) -> None:
+        while True:
+            rows = [i for i, cid in enumerate(self._ids) if (only is None or cid == only) and self._calls[cid].pending.size >= HOP_NB]
+            if not rows:
+                return
+            x = np.stack([self._calls[self._ids[i]].pending[:HOP_NB] for i in rows])
+            for i in rows:
+                c = self._calls[self._ids[i]]
+                c.pending = c.pending[HOP_NB:]
+            y = self._hop(np.array(rows), x)
+            for r, i in enumerate(rows):
+                c = self._calls[self._ids[i]]
+                yi = y[r]
+                if c.skip:
+                    drop = min(c.skip, yi.size)
+                    yi = yi[drop:]
+                    c.skip -= drop
+                yi, n = limit_peaks(yi)
+                c.limited += n
+                c.samples_out += yi.size
+                c.hops += 1
+                c.out.append(yi)
+
+    def _hop(self, rows: np.ndarray, x: np.ndarray) -> np.ndarray:
+        st = self._state
+        B = rows.size
+        # narrowband analysis and features
+        frames = np.concatenate([st["nb_hist"][rows], x], axis=1)
+        st["nb_hist"][rows] = frames[:, HOP_NB:]
+        a_nb, g_nb = lpc.analyse(frames, order=NB_ORDER, sr=NB_SR)
+        feats = narrowband_features(NarrowbandAnalysis(frames, a_nb, g_nb))
+        fresh = ~st["ctx_ready"][rows]
+        if np.any(fresh):
+            st["ctx"][rows[fresh]] = np.tile(feats[fresh], (1, self.context))
+            st["ctx_ready"][rows[fresh]] = True
+        stacked = np.concatenate([st["ctx"][rows], feats], axis=1)
+        if self.context:
+            st["ctx"][rows] = stacked[:, feats.shape[1] :]
+        # the network, once for all calls, then the guard
+        energy = feats[:, ENERGY_COLUMN]
+        ceps, level = self.ck.predict(stacked)
+        a_wb, gain = envelope_from_prediction(ceps, level, energy, order=self.p)
+        book = self.ck.codebook
+        cell, novelty = book.nearest(feats)
+        if self.guard is not None:
+            dec = self.guard.check(ceps=ceps, level_db=level, a=a_wb, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell)
+            if np.any(dec.rejected):
+                a_cb, g_cb = book.envelopes(cell[dec.rejected], energy[dec.rejected])
+                a_wb[dec.rejected] = a_cb
+                gain[dec.rejected] = g_cb
+                for r in np.flatnonzero(dec.rejected):
+                    self._calls[self._ids[rows[r]]].rejected_hops += 1
+        gain = np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain)
+        # excitation: residual -> interpolate -> rectify -> DC removal -> power match -> whiten
+        e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, HOP_NB)
+        z = np.zeros((B, HOP_WB))
+        z[:, ::2] = e
+        up, st["up_e"][rows] = signal.lfilter(self._up_taps, [1.0], z, axis=1, zi=st["up_e"][rows])
+        r, st["dc"][rows] = signal.lfilter([1.0, -1.0], [1.0, -DC_POLE], np.abs(up), axis=1, zi=st["dc"][rows])
+        scale = np.sqrt(np.mean(up**2, axis=1) / np.maximum(np.mean(r**2, axis=1), 1e-30))
+        u = r * scale[:, None]
+        wb_frames = np.concatenate([st["wb_hist"][rows], u], axis=1)
+        st["wb_hist"][rows] = wb_frames[:, HOP_WB:]
+        a_w, _ = lpc.analyse(wb_frames, order=WHITEN_ORDER, sr=WB_SR)
+        u = residual(wb_frames, a_w, hop_length=HOP_WB).reshape(B, HOP_WB)
+        rms = np.maximum(np.sqrt(np.mean(u**2, axis=1)), 1e-9)
+        # synthesis: interpolated envelopes, memory carried per call
+        k, _ = lpc.reflection(a_wb)
+        k = np.clip(np.nan_to_num(k), -MAX_REFLECTION, MAX_REFLECTION)
+        log_g = np.log(np.maximum(gain / rms, 1e-12))
+        w = (np.arange(N_SUBFRAMES) + 1.0) / N_SUBFRAMES
+        k_sub = st["k_prev"][rows][:, None, :] * (1 - w)[None, :, None] + k[:, None, :] * w[None, :, None]
+        g_sub = np.exp(st["g_prev"][rows][:, None] * (1 - w)[None, :] + log_g[:, None] * w[None, :])
+        st["k_prev"][rows] = k
+        st["g_prev"][rows] = log_g
+        a_sub = lpc.from_reflection(k_sub)  # (B, n_sub, p+1)
+        synth = self._synthesize(rows, u.reshape(B, N_SUBFRAMES, -1), a_sub, g_sub)
+        # band isolation and mixing with the interpolated input
+        zx = np.zeros((B, HOP_WB))
+        zx[:, ::2] = x
+        low, st["up_x"][rows] = signal.lfilter(self._up_taps, [1.0], zx, axis=1, zi=st["up_x"][rows])
+        iso_zi = st["iso"][:, rows]
+        hb, iso_zi = signal.sosfilt(self._iso, synth, axis=1, zi=iso_zi)
+        st["iso"][:, rows] = iso_zi
+        return low + hb
+
+    def _synthesize(self, rows: np.ndarray, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
+        """All-pole synthesis of one hop for B calls: the block method of AllPoleSynthesizer, batched."""
+        B, n_sub, length = u.shape
+        p = self.p
+        a = a_sub.reshape(B * n_sub, p + 1)
+        both = np.zeros((2, B * n_sub, length))
+        both[0, :, 0] = 1.0
+        both[1] = g_sub.reshape(-1, 1) * u.reshape(B * n_sub, length)
+        for t in range(1, length):
+            kk = min(t, p)
+            both[:, :, t] -= np.einsum("jk,bjk->bj", a[:, 1 : kk + 1], both[:, :, t - 1 :: -1][:, :, :kk])
+        h, zs = both[0], both[1]
+        K = a[:, self._helper._idx] * self._helper._mask
+        r = np.arange(p)
+        G = h[:, length - 1 - r[:, None] - r[None, :]]
+        F = -np.einsum("jrm,jmi->jri", G, K).reshape(B, n_sub, p, p)
+        Z = zs[:, length - 1 - r].reshape(B, n_sub, p)
+        states = np.empty((B, n_sub, p))
+        s = self._state["past"][rows]
+        for j in range(n_sub):
+            states[:, j] = s
+            s = Z[:, j] + np.einsum("bri,bi->br", F[:, j], s)
+        self._state["past"][rows] = s
+        v = -np.einsum("jmi,ji->jm", K, states.reshape(B * n_sub, p))
+        n_fft = 1 << int(np.ceil(np.log2(2 * length)))
+        zi = np.fft.irfft(np.fft.rfft(h, n_fft, axis=1) * np.fft.rfft(v, n_fft, axis=1), n_fft, axis=1)[:, :length]
+        return (zs + zi).reshape(B, n_sub * length)

@@ -1,0 +1,86 @@
+"""Many calls batched together give each call exactly its own engine's output."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from nenv import channel, checkpoint, pipeline
+from nenv.multicall import MultiCallEngine
+from nenv.runtime import CallEngine
+
+
+@pytest.fixture(scope="module")
+def model():
+    path = checkpoint.default_path()
+    if path is None:
+        pytest.skip("no default model")
+    return checkpoint.load(path)
+
+
+@pytest.fixture(scope="module")
+def calls(arctic_refs):
+    """Four different calls: two sentences, plain and mu-law, different lengths."""
+    out = []
+    for i, (_, ref) in enumerate(arctic_refs):
+        for law in ("none", "mulaw"):
+            x = channel.telephone(ref, sr=16000, law=law)
+            out.append(x[: x.size - 333 * len(out)])
+    return out
+
+
+def _alone(model, x, chunks):
+    eng = CallEngine(pipeline.make_system("neural", model=model))
+    pos, out = 0, []
+    for c in chunks:
+        out.append(eng.feed(x[pos : pos + c]))
+        pos += c
+    out.append(eng.feed(x[pos:]))
+    out.append(eng.flush())
+    return np.concatenate(out), eng.system.estimator.record()
+
+
+def test_batched_calls_equal_their_own_engines(model, calls):
+    rng = np.random.default_rng(0)
+    engine = MultiCallEngine(model)
+    outs = {i: [] for i in range(len(calls))}
+    pos = [0] * len(calls)
+    # calls join at different times and send chunks of random size
+    start = [0, 3, 7, 12]
+    step = 0
+    while any(pos[i] < calls[i].size for i in range(len(calls))):
+        for i, x in enumerate(calls):
+            if step == start[i]:
+                engine.open(str(i))
+            if step >= start[i] and pos[i] < x.size:
+                n = int(rng.integers(1, 400))
+                engine.feed(str(i), x[pos[i] : pos[i] + n])
+                pos[i] += n
+        for cid, y in engine.step().items():
+            outs[int(cid)].append(y)
+        step += 1
+    for i, x in enumerate(calls):
+        stats = engine.stats(str(i))
+        tail = engine.close(str(i))
+        y = np.concatenate(outs[i] + [tail])
+        ref, dec = _alone(model, x, [])
+        assert y.shape == ref.shape == (2 * x.size,)
+        np.testing.assert_allclose(y, ref, atol=1e-6)
+        assert stats["rejected_hops"] == int(dec.rejected[: stats["hops"]].sum())
+    assert engine.calls == []
+
+
+def test_one_bad_call_does_not_disturb_another(model, calls):
+    engine = MultiCallEngine(model)
+    engine.open("good")
+    engine.open("bad")
+    good = calls[0][:16000]
+    bad = np.full(16000, np.nan)
+    bad[::7] = np.inf
+    engine.feed("good", good)
+    engine.feed("bad", bad)
+    y = engine.step()
+    ref, _ = _alone(model, good, [])
+    tail = engine.close("good")
+    np.testing.assert_allclose(np.concatenate([y["good"], tail]), ref, atol=1e-6)
+    assert np.all(np.isfinite(y["bad"])) and engine.stats("bad")["bad_samples"] == 16000
