@@ -63,7 +63,7 @@ class MultiCallEngine:
             "wb_hist": np.zeros((0, WIN_WB - HOP_WB)),
             "ctx": np.zeros((0, self.context * n_in)),
             "ctx_ready": np.zeros(0, dtype=bool),
-            "up_x": np.zeros((0, self._up_taps.size - 1)),
+            "up_x": np.zeros((0, self._up_taps.size - 1)),  # last inputs of the interpolation FIR
             "up_e": np.zeros((0, self._up_taps.size - 1)),
             "dc": np.zeros((0, 1)),
             "iso": np.zeros((self._iso.shape[0], 0, 2)),
@@ -192,7 +192,7 @@ class MultiCallEngine:
         e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, HOP_NB)
         z = np.zeros((B, HOP_WB))
         z[:, ::2] = e
-        up, st["up_e"][rows] = signal.lfilter(self._up_taps, [1.0], z, axis=1, zi=st["up_e"][rows])
+        up = self._fir(z, "up_e", rows)
         r, st["dc"][rows] = signal.lfilter([1.0, -1.0], [1.0, -DC_POLE], np.abs(up), axis=1, zi=st["dc"][rows])
         scale = np.sqrt(np.mean(up**2, axis=1) / np.maximum(np.mean(r**2, axis=1), 1e-30))
         u = r * scale[:, None]
@@ -215,11 +215,22 @@ class MultiCallEngine:
         # band isolation and mixing with the interpolated input
         zx = np.zeros((B, HOP_WB))
         zx[:, ::2] = x
-        low, st["up_x"][rows] = signal.lfilter(self._up_taps, [1.0], zx, axis=1, zi=st["up_x"][rows])
+        low = self._fir(zx, "up_x", rows)
         iso_zi = st["iso"][:, rows]
         hb, iso_zi = signal.sosfilt(self._iso, synth, axis=1, zi=iso_zi)
         st["iso"][:, rows] = iso_zi
         return low + hb
+
+    def _fir(self, z: np.ndarray, key: str, rows: np.ndarray) -> np.ndarray:
+        """The interpolation FIR on B rows at once; state = the last len(taps)-1 input samples.
+
+        (scipy's lfilter runs an FIR row by row; a sliding-window product does all rows in one go.)
+        """
+        hist = self._state[key][rows]
+        buf = np.concatenate([hist, z], axis=1)
+        self._state[key][rows] = buf[:, z.shape[1] :]
+        win = np.lib.stride_tricks.sliding_window_view(buf, self._up_taps.size, axis=1)
+        return win @ self._up_taps[::-1]
 
     def _synthesize(self, rows: np.ndarray, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
         """All-pole synthesis of one hop for B calls: the block method of AllPoleSynthesizer, batched."""
@@ -236,15 +247,15 @@ class MultiCallEngine:
         K = a[:, self._helper._idx] * self._helper._mask
         r = np.arange(p)
         G = h[:, length - 1 - r[:, None] - r[None, :]]
-        F = -np.einsum("jrm,jmi->jri", G, K).reshape(B, n_sub, p, p)
+        F = -np.matmul(G, K).reshape(B, n_sub, p, p)
         Z = zs[:, length - 1 - r].reshape(B, n_sub, p)
         states = np.empty((B, n_sub, p))
         s = self._state["past"][rows]
         for j in range(n_sub):
             states[:, j] = s
-            s = Z[:, j] + np.einsum("bri,bi->br", F[:, j], s)
+            s = Z[:, j] + np.matmul(F[:, j], s[:, :, None])[:, :, 0]
         self._state["past"][rows] = s
-        v = -np.einsum("jmi,ji->jm", K, states.reshape(B * n_sub, p))
+        v = -np.matmul(K, states.reshape(B * n_sub, p, 1))[:, :, 0]
         n_fft = 1 << int(np.ceil(np.log2(2 * length)))
         zi = np.fft.irfft(np.fft.rfft(h, n_fft, axis=1) * np.fft.rfft(v, n_fft, axis=1), n_fft, axis=1)[:, :length]
         return (zs + zi).reshape(B, n_sub * length)
