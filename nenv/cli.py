@@ -329,6 +329,64 @@ def stream(
     _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
 
 
+def _hostport(text: str, what: str) -> tuple[str, int]:
+    host, sep, port = text.rpartition(":")
+    if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise InputError(f"{what} {text!r} must look like HOST:PORT, e.g. 127.0.0.1:5004")
+    return host or "127.0.0.1", int(port)
+
+
+@app.command()
+@_guarded
+def relay(
+    to: Annotated[str, typer.Option("--to", help="Where to send the wideband RTP (L16/16000), HOST:PORT.")],
+    listen: Annotated[str, typer.Option(help="Where to receive PCMU/PCMA RTP, HOST:PORT. Loopback unless you say otherwise.")] = "127.0.0.1:5004",
+    allow: Annotated[list[str], typer.Option(help="Accept packets only from this source address (repeatable). Default: any.")] = [],
+    payload_type: Annotated[int, typer.Option(help="Dynamic RTP payload type of the output (96-127).")] = 96,
+    max_streams: Annotated[int, typer.Option(min=1, help="Most concurrent streams (SSRCs); packets of further streams are dropped and counted.")] = 64,
+    idle_timeout: Annotated[float, typer.Option(help="Seconds without packets after which a stream is flushed and closed.")] = 2.0,
+    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
+    model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
+) -> None:
+    """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one engine per SSRC. Stops on SIGTERM/Ctrl-C."""
+    import signal as sig
+
+    from nenv import checkpoint, pipeline, rtp
+
+    method = method or _default_method(model)
+    if method not in pipeline.SYSTEMS or method == "oracle":
+        raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
+    if not 96 <= payload_type <= 127:
+        raise InputError(f"--payload-type {payload_type}: dynamic payload types are 96-127 (RFC 3551)")
+    ck = None
+    if method in pipeline.MODEL_SYSTEMS:
+        path = model or checkpoint.default_path()
+        if path is None:
+            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
+        ck = checkpoint.load(path, flush_denormals=True)
+    try:
+        r = rtp.Relay(lambda: pipeline.make_system(method, model=ck), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
+                      payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout)
+    except OSError as e:
+        raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
+    _say(f"relaying RTP from {r.address[0]}:{r.address[1]} to {to} (method={method}, output payload type {payload_type}); stop with Ctrl-C")
+
+    def stop(signum, frame):
+        raise _Terminate()
+
+    old = {s_: sig.signal(s_, stop) for s_ in (sig.SIGTERM, sig.SIGINT)}
+    try:
+        r.serve()
+    except _Terminate:
+        r._shutdown()
+    finally:
+        for s_, h in old.items():
+            sig.signal(s_, h)
+    for ssrc, c in r.closed.items():
+        _say(f"stream {ssrc:08x}: {c.packets} packets in, {c.packets_out} out, {c.lost_packets} lost ({c.filled_samples} samples filled), {c.late_or_duplicate} late or duplicate")
+    _say(f"relay: {r.counters.malformed} malformed, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit")
+
+
 RecipeOpt = Annotated[Optional[Path], typer.Option("--config", help="Training recipe (flat TOML, see configs/).")]
 SetOpt = Annotated[list[str], typer.Option("--set", help="Override a recipe key: --set epochs=20 (repeatable).")]
 

@@ -1,0 +1,270 @@
+"""An RTP relay: PCMU/PCMA calls in, wideband L16 out, one engine per SSRC.
+
+Receives RTP (RFC 3550) on a UDP port carrying G.711 mu-law (PCMU, static
+payload type 0) or A-law (PCMA, payload type 8) at 8 kHz (RFC 3551, Table 4),
+extends each stream with its own :class:`nenv.runtime.CallEngine`, and sends
+the result as RTP L16 at 16 kHz mono (RFC 3551 section 4.5.11: 16-bit signed,
+network byte order) with a configurable dynamic payload type, 20 ms per packet.
+
+Per stream: packets up to ``reorder_window`` ahead of the next expected
+sequence number wait for the missing ones; a gap that does not fill in time
+is declared lost and filled with silence of the gap's timestamp length
+(capped); late and duplicate packets are dropped. Sequence numbers and
+timestamps wrap modulo 2^16 and 2^32. Malformed packets, wrong payload types
+and packets from addresses not allowed are dropped and counted, never raised.
+A stream idle for ``idle_timeout_s`` is flushed (its tail sent) and closed.
+"""
+
+from __future__ import annotations
+
+import os
+import select
+import socket
+import struct
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+
+from nenv import g711
+from nenv.audio import to_int16
+from nenv.runtime import CallEngine
+
+PT_PCMU = 0
+PT_PCMA = 8
+LAW_OF_PT = {PT_PCMU: "mulaw", PT_PCMA: "alaw"}
+OUT_SAMPLES = 320  # per outgoing packet: 20 ms at 16 kHz
+MAX_FILL = 8000  # samples: longest gap filled with silence (1 s); longer gaps restart the timing
+HEADER = struct.Struct("!BBHII")
+
+
+@dataclass(frozen=True)
+class RtpPacket:
+    payload_type: int
+    marker: bool
+    seq: int
+    timestamp: int
+    ssrc: int
+    payload: bytes
+
+
+def parse(data: bytes) -> RtpPacket | None:
+    """Parse one RTP packet (RFC 3550 section 5.1); None if it is not a valid RTP version 2 packet."""
+    if len(data) < HEADER.size:
+        return None
+    b0, b1, seq, ts, ssrc = HEADER.unpack_from(data)
+    if b0 >> 6 != 2:
+        return None
+    pos = HEADER.size + 4 * (b0 & 0x0F)  # CSRC list
+    if b0 & 0x10:  # header extension: 16-bit profile, 16-bit length in 32-bit words
+        if len(data) < pos + 4:
+            return None
+        (ext_words,) = struct.unpack_from("!H", data, pos + 2)
+        pos += 4 + 4 * ext_words
+    end = len(data)
+    if b0 & 0x20:  # padding: the last octet counts the padding octets
+        if end == 0 or data[-1] == 0 or data[-1] > end - pos:
+            return None
+        end -= data[-1]
+    if pos > end:
+        return None
+    return RtpPacket(b1 & 0x7F, bool(b1 & 0x80), seq, ts, ssrc, bytes(data[pos:end]))
+
+
+def build(*, payload_type: int, seq: int, timestamp: int, ssrc: int, payload: bytes, marker: bool = False) -> bytes:
+    """An RTP version 2 packet with no CSRC, extension or padding."""
+    return HEADER.pack(0x80, (0x80 if marker else 0) | (payload_type & 0x7F), seq & 0xFFFF, timestamp & 0xFFFFFFFF, ssrc & 0xFFFFFFFF) + payload
+
+
+@dataclass
+class StreamCounters:
+    packets: int = 0
+    samples_in: int = 0
+    late_or_duplicate: int = 0
+    lost_packets: int = 0
+    filled_samples: int = 0
+    arrived_early: int = 0
+    packets_out: int = 0
+    limited: int = 0
+
+
+@dataclass
+class _Stream:
+    engine: CallEngine
+    law: str
+    next_seq: int
+    next_ts: int
+    out_ssrc: int
+    last_seen: float
+    held: dict = field(default_factory=dict)  # seq -> packet
+    out_buf: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    out_seq: int = 0
+    out_ts: int = 0
+    counters: StreamCounters = field(default_factory=StreamCounters)
+
+
+@dataclass
+class RelayCounters:
+    malformed: int = 0
+    wrong_payload_type: int = 0
+    not_allowed: int = 0
+    over_stream_limit: int = 0
+    streams_opened: int = 0
+    streams_closed: int = 0
+
+
+class Relay:
+    """Receive PCMU/PCMA RTP, send L16/16000 RTP; see the module docstring."""
+
+    def __init__(
+        self,
+        make_system: Callable[[], object],
+        *,
+        listen: tuple[str, int] = ("127.0.0.1", 0),
+        send_to: tuple[str, int],
+        payload_type_out: int = 96,
+        allowed_sources: list[str] | None = None,
+        max_streams: int = 64,
+        reorder_window: int = 4,
+        idle_timeout_s: float = 2.0,
+    ):
+        if not 96 <= payload_type_out <= 127:
+            raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
+        self.make_system = make_system
+        self.send_to = send_to
+        self.pt_out = payload_type_out
+        self.allowed = set(allowed_sources) if allowed_sources else None
+        self.max_streams = max_streams
+        self.window = reorder_window
+        self.idle = idle_timeout_s
+        self.sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        self.sock.bind(listen)
+        self.address = self.sock.getsockname()
+        self.out = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        self.streams: dict[int, _Stream] = {}
+        self.closed: dict[int, StreamCounters] = {}
+        self.counters = RelayCounters()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    # ---- lifecycle ---------------------------------------------------------------------
+    def start(self) -> "Relay":
+        self._thread = threading.Thread(target=self.serve, name="nenv-rtp-relay", daemon=True)
+        self._thread.start()
+        return self
+
+    def stop(self) -> None:
+        """Stop receiving, flush every stream's tail, close the sockets."""
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=30)
+        else:
+            self._shutdown()
+
+    def serve(self) -> None:
+        try:
+            while not self._stop.is_set():
+                ready, _, _ = select.select([self.sock], [], [], 0.05)
+                if ready:
+                    data, addr = self.sock.recvfrom(65535)
+                    self.handle(data, addr)
+                self._expire()
+        finally:
+            self._shutdown()
+
+    def _shutdown(self) -> None:
+        for ssrc in list(self.streams):
+            self._close(ssrc)
+        self.sock.close()
+        self.out.close()
+
+    # ---- packets in ----------------------------------------------------------------------
+    def handle(self, data: bytes, addr: tuple[str, int]) -> None:
+        if self.allowed is not None and addr[0] not in self.allowed:
+            self.counters.not_allowed += 1
+            return
+        pkt = parse(data)
+        if pkt is None:
+            self.counters.malformed += 1
+            return
+        if pkt.payload_type not in LAW_OF_PT:
+            self.counters.wrong_payload_type += 1
+            return
+        st = self.streams.get(pkt.ssrc)
+        if st is None:
+            if len(self.streams) >= self.max_streams:
+                self.counters.over_stream_limit += 1
+                return
+            st = _Stream(CallEngine(self.make_system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
+            st.out_seq = int.from_bytes(os.urandom(2), "big")
+            st.out_ts = int.from_bytes(os.urandom(4), "big")
+            self.streams[pkt.ssrc] = st
+            self.counters.streams_opened += 1
+        st.last_seen = time.monotonic()
+        ahead = (pkt.seq - st.next_seq) & 0xFFFF
+        if ahead >= 0x8000 or pkt.seq in st.held:  # behind the play-out point, or a copy
+            st.counters.late_or_duplicate += 1
+            return
+        if ahead > 0:
+            st.counters.arrived_early += 1  # an earlier packet is late (reordered) or lost
+        st.held[pkt.seq] = pkt
+        st.counters.packets += 1
+        self._drain(st, force=False)
+
+    def _drain(self, st: _Stream, *, force: bool) -> None:
+        while st.held:
+            pkt = st.held.pop(st.next_seq, None)
+            if pkt is not None:
+                self._play(st, pkt)
+                continue
+            if not force and len(st.held) <= self.window:
+                return
+            # the next expected packet did not come in time: declare it (and any run) lost
+            nearest = min(st.held, key=lambda s: (s - st.next_seq) & 0xFFFF)
+            n_lost = (nearest - st.next_seq) & 0xFFFF
+            gap = (st.held[nearest].timestamp - st.next_ts) & 0xFFFFFFFF
+            st.counters.lost_packets += n_lost
+            if 0 < gap <= MAX_FILL:
+                st.counters.filled_samples += gap
+                self._emit(st, st.engine.feed(np.zeros(gap)))
+            st.next_seq = nearest
+            st.next_ts = st.held[nearest].timestamp
+
+    def _play(self, st: _Stream, pkt: RtpPacket) -> None:
+        codes = np.frombuffer(pkt.payload, dtype=np.uint8)
+        x = g711.decode(codes, law=LAW_OF_PT[pkt.payload_type])
+        st.counters.samples_in += x.size
+        st.next_seq = (pkt.seq + 1) & 0xFFFF
+        st.next_ts = (pkt.timestamp + x.size) & 0xFFFFFFFF
+        self._emit(st, st.engine.feed(x))
+
+    # ---- packets out ---------------------------------------------------------------------
+    def _emit(self, st: _Stream, y: np.ndarray, *, final: bool = False) -> None:
+        buf = np.concatenate([st.out_buf, y]) if st.out_buf.size else y
+        n_full = buf.size // OUT_SAMPLES * OUT_SAMPLES
+        if final:
+            n_full = buf.size
+        for s in range(0, n_full, OUT_SAMPLES):
+            chunk = buf[s : min(s + OUT_SAMPLES, n_full)]
+            payload = to_int16(chunk).astype(">i2").tobytes()
+            self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload), self.send_to)
+            st.out_seq = (st.out_seq + 1) & 0xFFFF
+            st.out_ts = (st.out_ts + chunk.size) & 0xFFFFFFFF
+            st.counters.packets_out += 1
+        st.out_buf = buf[n_full:].copy()
+
+    def _expire(self) -> None:
+        now = time.monotonic()
+        for ssrc, st in list(self.streams.items()):
+            if now - st.last_seen > self.idle:
+                self._close(ssrc)
+
+    def _close(self, ssrc: int) -> None:
+        st = self.streams.pop(ssrc)
+        self._drain(st, force=True)
+        self._emit(st, st.engine.flush(), final=True)
+        st.counters.limited = st.engine.limited
+        self.closed[ssrc] = st.counters
+        self.counters.streams_closed += 1

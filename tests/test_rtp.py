@@ -1,0 +1,141 @@
+"""The RTP relay on loopback: a sender plays a real clip as PCMU packets, a receiver checks what comes back."""
+
+from __future__ import annotations
+
+import socket
+import time
+
+import numpy as np
+import pytest
+
+from nenv import channel, g711, pipeline, rtp
+
+
+def test_parse_and_build_round_trip_with_csrc_extension_and_padding():
+    pkt = rtp.build(payload_type=0, seq=65535, timestamp=2**32 - 80, ssrc=0xDEADBEEF, payload=b"\x01\x02\x03", marker=True)
+    p = rtp.parse(pkt)
+    assert (p.payload_type, p.seq, p.timestamp, p.ssrc, p.payload, p.marker) == (0, 65535, 2**32 - 80, 0xDEADBEEF, b"\x01\x02\x03", True)
+    # RFC 3550 section 5.1: CC=1 CSRC, X=1 extension of one word, P=1 with 2 padding octets
+    head = bytes([0x80 | 0x20 | 0x10 | 0x01, 8]) + (7).to_bytes(2, "big") + (160).to_bytes(4, "big") + (5).to_bytes(4, "big")
+    raw = head + b"CSRC" + b"\xbe\xde\x00\x01" + b"EXT!" + b"\xd5\xd5\xd5" + b"\x00\x02"
+    p = rtp.parse(raw)
+    assert p.payload_type == 8 and p.seq == 7 and p.payload == b"\xd5\xd5\xd5"
+    for bad in (b"", b"\x80\x00", bytes([0x40]) + raw[1:], raw[:14], head[:12] + b"\x00" * 3 + b"\xff"):
+        assert rtp.parse(bad) is None
+
+
+def _receiver():
+    s = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    s.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4 * 2**20)  # the test reads after sending everything
+    s.bind(("127.0.0.1", 0))
+    s.settimeout(0.2)
+    return s
+
+
+def _collect(sock, seconds, quiet=1.5):
+    """Packets until ``quiet`` seconds pass without one (after the first), or ``seconds`` in all."""
+    got, end, last = [], time.time() + seconds, time.time()
+    while time.time() < end:
+        try:
+            got.append(sock.recv(65535))
+            last = time.time()
+        except socket.timeout:
+            if got and time.time() - last > quiet:
+                break
+    return [rtp.parse(g) for g in got]
+
+
+def test_relay_extends_a_clip_with_reordering_and_loss(arctic_refs):
+    _, ref = arctic_refs[0]
+    x = channel.telephone(ref, sr=16000, law="mulaw")[:16000]  # 2 s
+    codes = g711.encode(x, law="mulaw")
+    packets = [codes[i : i + 160] for i in range(0, codes.size, 160)]  # 20 ms each
+    from concurrent.futures import ThreadPoolExecutor
+
+    rx = _receiver()
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), reorder_window=3, idle_timeout_s=0.5).start()
+    pool = ThreadPoolExecutor(1)
+    receiving = pool.submit(_collect, rx, 30.0)  # reads while we send, so no datagram waits in the socket buffer
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    seq0, ts0, ssrc = 65530, 2**32 - 400, 0x1234  # both counters wrap during the call
+    order = list(range(len(packets)))
+    order[10], order[11] = order[11], order[10]  # one swap: reordered within the window
+    lost = 40
+    order.remove(lost)  # one packet never arrives
+    for i in order:
+        tx.sendto(rtp.build(payload_type=0, seq=seq0 + i, timestamp=ts0 + 160 * i, ssrc=ssrc, payload=packets[i].tobytes()), relay.address)
+        if i == 20:
+            tx.sendto(rtp.build(payload_type=0, seq=seq0 + 5, timestamp=ts0 + 800, ssrc=ssrc, payload=packets[5].tobytes()), relay.address)  # a late duplicate
+        time.sleep(0.002)
+    tx.sendto(b"garbage", relay.address)
+    tx.sendto(rtp.build(payload_type=18, seq=1, timestamp=1, ssrc=7, payload=b"x" * 10), relay.address)  # G.729: not ours
+    got = receiving.result()  # includes the tail the relay flushes when the stream goes idle
+    relay.stop()
+    assert got and all(p is not None and p.payload_type == 96 for p in got)
+    seq_first = min((p.seq for p in got), key=lambda s: (s - got[0].seq + 0x8000) & 0xFFFF)
+    got.sort(key=lambda p: (p.seq - seq_first) & 0xFFFF)
+    y = np.concatenate([np.frombuffer(p.payload, dtype=">i2") for p in got]).astype(np.int64)
+    # reference: the same G.711 audio with the lost packet as silence, extended offline
+    played = g711.decode(codes, law="mulaw")
+    played[lost * 160 : (lost + 1) * 160] = 0.0
+    from nenv.audio import to_int16
+
+    expected = to_int16(pipeline.extend(played, system=pipeline.make_system("imaging")).y).astype(np.int64)
+    assert y.size == expected.size == 2 * x.size
+    assert np.max(np.abs(y - expected)) <= 1
+    c = relay.closed[ssrc]
+    assert c.lost_packets == 1 and c.filled_samples == 160 and c.late_or_duplicate == 1 and c.arrived_early >= 2
+    assert relay.counters.malformed == 1 and relay.counters.wrong_payload_type == 1
+    # output timestamps advance by the samples sent (16 kHz clock)
+    steps = {(b.timestamp - a.timestamp) & 0xFFFFFFFF for a, b in zip(got[:-1], got[1:])}
+    assert steps == {rtp.OUT_SAMPLES}
+
+
+def test_relay_drops_what_it_must(arctic_refs):
+    rx = _receiver()
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), allowed_sources=["127.0.0.2"], max_streams=2, idle_timeout_s=0.3).start()
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    tx.sendto(rtp.build(payload_type=0, seq=1, timestamp=0, ssrc=1, payload=b"\xff" * 160), relay.address)
+    time.sleep(0.3)
+    relay.stop()
+    assert relay.counters.not_allowed == 1 and relay.counters.streams_opened == 0
+    # a flood of random SSRCs is capped at max_streams
+    rx2 = _receiver()
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx2.getsockname(), max_streams=3, idle_timeout_s=5).start()
+    rng = np.random.default_rng(0)
+    for ssrc in rng.integers(1, 2**31, 200):
+        tx.sendto(rtp.build(payload_type=0, seq=1, timestamp=0, ssrc=int(ssrc), payload=b"\xff" * 160), relay.address)
+    time.sleep(0.5)
+    assert len(relay.streams) == 3 and relay.counters.over_stream_limit == 197
+    relay.stop()
+
+
+def test_dynamic_payload_type_is_required():
+    with pytest.raises(ValueError, match="96-127"):
+        rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=8)
+
+
+def test_relay_command_runs_and_stops_on_sigterm(arctic_refs):
+    import signal
+    import subprocess
+    import sys
+
+    rx = _receiver()
+    port = rx.getsockname()[1]
+    probe = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    probe.bind(("127.0.0.1", 0))
+    listen_port = probe.getsockname()[1]
+    probe.close()
+    p = subprocess.Popen([sys.executable, "-m", "nenv", "relay", "--to", f"127.0.0.1:{port}", "--listen", f"127.0.0.1:{listen_port}", "--method", "imaging"],
+                         stderr=subprocess.PIPE, stdout=subprocess.PIPE)
+    time.sleep(3.0)  # start-up
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for i in range(25):
+        tx.sendto(rtp.build(payload_type=8, seq=i, timestamp=160 * i, ssrc=99, payload=b"\xd5" * 160), ("127.0.0.1", listen_port))
+        time.sleep(0.005)
+    got = _collect(rx, 10.0, quiet=1.0)
+    p.send_signal(signal.SIGTERM)
+    _, err = p.communicate(timeout=30)
+    assert p.returncode == 0, err
+    assert len(got) >= 20
+    assert b"stream 00000063: 25 packets in" in err
