@@ -128,7 +128,11 @@ def test_relay_command_runs_and_stops_on_sigterm(arctic_refs):
     probe.close()
     p = subprocess.Popen([sys.executable, "-m", "nenv", "relay", "--to", f"127.0.0.1:{port}", "--listen", f"127.0.0.1:{listen_port}", "--method", "imaging"],
                          stderr=subprocess.PIPE, stdout=subprocess.PIPE)
-    time.sleep(3.0)  # start-up
+    import select
+
+    ready, _, _ = select.select([p.stderr], [], [], 120)  # wait for "relaying RTP from ..." (start-up)
+    assert ready, "relay did not start"
+    assert b"relaying RTP" in p.stderr.readline()
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     for i in range(25):
         tx.sendto(rtp.build(payload_type=8, seq=i, timestamp=160 * i, ssrc=99, payload=b"\xd5" * 160), ("127.0.0.1", listen_port))
