@@ -60,7 +60,21 @@ def _mean(table, system, key, law=None):
     return float(np.mean(vals))
 
 
-def write(folder: Path, *, sources: Path | None = None) -> dict:
+def _ablation_rows(ablations: dict[str, Path], table: list[dict]) -> str:
+    """Markdown rows: the network trained on each subset of the sources vs the full model."""
+    lines = ["| trained on | LSD 3.4-8k [dB] | env LSD 3.4-8k [dB] | HB level err [dB] | WB-PESQ |", "|---|---:|---:|---:|---:|"]
+
+    def row(label, tab):
+        vals = [_mean(tab, "neural", k) for k in ("lsd_high", "lsd_env_high", "level_error_high", "pesq_wb")]
+        lines.append(f"| {label} | {vals[0]:.2f} | {vals[1]:.2f} | {vals[2]:+.2f} | {vals[3]:.2f} |")
+
+    for label, path in ablations.items():
+        row(label, measure(path)["table"])
+    row("**all sources (this model)**", table)
+    return "\n".join(lines) + "\n"
+
+
+def write(folder: Path, *, sources: Path | None = None, ablations: dict[str, Path] | None = None) -> dict:
     info = json.loads((folder / "nenv.json").read_text())
     record = json.loads((folder / "record.json").read_text())
     res = measure(folder)
@@ -87,6 +101,14 @@ def write(folder: Path, *, sources: Path | None = None) -> dict:
     )
     m = record["metrics"]
     corpus = info["corpus"]
+    ablation_md = ""
+    if ablations:
+        ablation_md = (
+            "### Which sources help\n\nThe same recipe trained on part of the corpus, scored the same way (means over both clips\n"
+            "and both channels; the network only).\n\n"
+            + _ablation_rows(ablations, table)
+            + "\n"
+        )
     md = f"""# nenv default model `{info['record_id']}`
 
 The envelope network and codebook that `nenv extend` uses when no `--model` is given. Trained by
@@ -133,7 +155,7 @@ On the held-out speakers of the training sources ({', '.join(record['corpus']['v
 envelope LSD over 3.4-8 kHz {m['val_envelope_lsd_high_db']['neural']:.2f} dB (codebook {m['val_envelope_lsd_high_db']['codebook']:.2f} dB), median level
 error {m['val_median_level_error_db']['neural']:+.2f} dB, guard rejections {100 * m['val_guard_rejection_rate']:.2f}%.
 
-### Goals
+{ablation_md}### Goals
 
 {targets}
 ![spectrograms](evaluation.png)
@@ -159,8 +181,10 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("folder", type=Path)
     ap.add_argument("--sources", type=Path, default=None)
+    ap.add_argument("--ablation", action="append", default=[], metavar="LABEL=FOLDER", help="a model trained on part of the sources, for the 'which sources help' table")
     args = ap.parse_args()
-    write(args.folder, sources=args.sources)
+    abl = dict(a.split("=", 1) for a in args.ablation)
+    write(args.folder, sources=args.sources, ablations={k: Path(v) for k, v in abl.items()})
     print(f"wrote {args.folder / 'MODEL.md'}")
 
 
