@@ -31,7 +31,7 @@ import numpy as np
 from nenv import lpc
 from nenv.errors import ConfigError
 from nenv.estimators.base import NarrowbandAnalysis
-from nenv.settings import BAND_EDGE_HZ, HOP_NB, HOP_WB, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
+from nenv.settings import BAND_EDGE_HZ, HOP_NB, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
 
 FEATURE_VERSION = 1
 ENERGY_FLOOR_DB = -100.0  # dB re full scale

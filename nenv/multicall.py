@@ -28,7 +28,7 @@ from nenv.features import ENERGY_FLOOR_DB, envelope_from_prediction, narrowband_
 from nenv.guard import Guard
 from nenv.pipeline import LATENCY
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
-from nenv.synthesis import MAX_REFLECTION, AllPoleSynthesizer, interpolate_envelopes, isolation_sos, upsampler_taps
+from nenv.synthesis import MAX_REFLECTION, AllPoleSynthesizer, isolation_sos, upsampler_taps
 
 
 @dataclass

@@ -11,7 +11,7 @@ from scipy import signal
 from nenv import audio, channel, lpc, measures, pipeline
 from nenv.excitation import ExcitationExtender, residual
 from nenv.settings import HOP_NB, HOP_WB, WIN_NB
-from nenv.synthesis import UPSAMPLER_DELAY, AllPoleSynthesizer, isolation_sos, upsampler_taps
+from nenv.synthesis import AllPoleSynthesizer, isolation_sos, upsampler_taps
 
 SYSTEM_NAMES = ["unextended", "imaging", "oracle"]
 

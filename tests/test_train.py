@@ -15,7 +15,6 @@ from nenv.errors import ConfigError  # noqa: E402
 from nenv.guard import Check  # noqa: E402
 from nenv.train import loop, recipe  # noqa: E402
 from tests import synthetic  # noqa: E402
-from tests.conftest import SYNTHETIC_RECIPE as RECIPE  # noqa: E402
 
 @pytest.fixture(scope="session")
 def held_out():

@@ -1,0 +1,146 @@
+"""Commands for live audio: ``nenv stream`` (stdin/stdout) and ``nenv relay`` (RTP)."""
+
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from nenv.cli import _default_method, _guarded, _say, app
+from nenv.errors import InputError
+
+class _Terminate(Exception):
+    pass
+
+
+@app.command()
+@_guarded
+def stream(
+    input_format: Annotated[str, typer.Option("--input-format", help="stdin encoding at 8 kHz: s16le (16-bit little-endian PCM), mulaw (PCMU bytes) or alaw (PCMA bytes).")] = "s16le",
+    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
+    model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
+    excitation: Annotated[str, typer.Option(help="Excitation extension: rectify, fold or modulate.")] = "rectify",
+) -> None:
+    """Extend a live call: 8 kHz audio on stdin, 16 kHz s16le on stdout, unbuffered.
+
+    Ends cleanly at end of input or on SIGTERM/SIGINT, writing the last samples first.
+    """
+    import signal as sig
+
+    import numpy as np
+
+    from nenv import g711, pipeline
+    from nenv.audio import to_int16
+    from nenv.runtime import CallEngine
+
+    if input_format not in ("s16le", "mulaw", "alaw"):
+        raise InputError(f"--input-format {input_format} is not known: choose s16le, mulaw or alaw")
+    method = method or _default_method(model)
+    if method not in pipeline.SYSTEMS or method == "oracle":
+        raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
+    if method in pipeline.MODEL_SYSTEMS:
+        from nenv import checkpoint
+
+        path = model or checkpoint.default_path()
+        if path is None:
+            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
+        model = checkpoint.load(path, flush_denormals=True)  # this process is ours: flush denormals
+    engine = CallEngine(pipeline.make_system(method, model=model, excitation=excitation))
+    out = sys.stdout.buffer
+    fd = sys.stdin.fileno()
+
+    def stop(signum, frame):
+        raise _Terminate()
+
+    old = {s: sig.signal(s, stop) for s in (sig.SIGTERM, sig.SIGINT)}
+    leftover = b""
+    try:
+        while True:
+            try:
+                data = os.read(fd, 4096)
+            except _Terminate:
+                break
+            if not data:
+                break
+            if input_format == "s16le":
+                data = leftover + data
+                n = len(data) // 2 * 2
+                leftover = data[n:]
+                x = np.frombuffer(data[:n], dtype="<i2").astype(np.float64) / 32768.0
+            else:
+                x = g711.decode(np.frombuffer(data, dtype=np.uint8), law=input_format)
+            y = engine.feed(x)
+            if y.size:
+                out.write(to_int16(y).astype("<i2").tobytes())
+                out.flush()
+    except _Terminate:
+        pass
+    finally:
+        for s, h in old.items():
+            sig.signal(s, h)
+    y = engine.flush()
+    if y.size:
+        out.write(to_int16(y).astype("<i2").tobytes())
+    out.flush()
+    _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
+
+
+def _hostport(text: str, what: str) -> tuple[str, int]:
+    host, sep, port = text.rpartition(":")
+    if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise InputError(f"{what} {text!r} must look like HOST:PORT, e.g. 127.0.0.1:5004")
+    return host or "127.0.0.1", int(port)
+
+
+@app.command()
+@_guarded
+def relay(
+    to: Annotated[str, typer.Option("--to", help="Where to send the wideband RTP (L16/16000), HOST:PORT.")],
+    listen: Annotated[str, typer.Option(help="Where to receive PCMU/PCMA RTP, HOST:PORT. Loopback unless you say otherwise.")] = "127.0.0.1:5004",
+    allow: Annotated[list[str], typer.Option(help="Accept packets only from this source address (repeatable). Default: any.")] = [],
+    payload_type: Annotated[int, typer.Option(help="Dynamic RTP payload type of the output (96-127).")] = 96,
+    max_streams: Annotated[int, typer.Option(min=1, help="Most concurrent streams (SSRCs); packets of further streams are dropped and counted.")] = 64,
+    idle_timeout: Annotated[float, typer.Option(help="Seconds without packets after which a stream is flushed and closed.")] = 2.0,
+    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
+    model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
+) -> None:
+    """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one engine per SSRC. Stops on SIGTERM/Ctrl-C."""
+    import signal as sig
+
+    from nenv import checkpoint, pipeline, rtp
+
+    method = method or _default_method(model)
+    if method not in pipeline.SYSTEMS or method == "oracle":
+        raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
+    if not 96 <= payload_type <= 127:
+        raise InputError(f"--payload-type {payload_type}: dynamic payload types are 96-127 (RFC 3551)")
+    ck = None
+    if method in pipeline.MODEL_SYSTEMS:
+        path = model or checkpoint.default_path()
+        if path is None:
+            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
+        ck = checkpoint.load(path, flush_denormals=True)
+    try:
+        r = rtp.Relay(lambda: pipeline.make_system(method, model=ck), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
+                      payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout)
+    except OSError as e:
+        raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
+    _say(f"relaying RTP from {r.address[0]}:{r.address[1]} to {to} (method={method}, output payload type {payload_type}); stop with Ctrl-C")
+
+    def stop(signum, frame):
+        raise _Terminate()
+
+    old = {s_: sig.signal(s_, stop) for s_ in (sig.SIGTERM, sig.SIGINT)}
+    try:
+        r.serve()
+    except _Terminate:
+        r._shutdown()
+    finally:
+        for s_, h in old.items():
+            sig.signal(s_, h)
+    for ssrc, c in r.closed.items():
+        _say(f"stream {ssrc:08x}: {c.packets} packets in, {c.packets_out} out, {c.lost_packets} lost ({c.filled_samples} samples filled), {c.late_or_duplicate} late or duplicate")
+    _say(f"relay: {r.counters.malformed} malformed, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit")
