@@ -119,9 +119,11 @@ def extend(
     resample: Annotated[bool, typer.Option("--resample", help="Accept input at another rate and resample it to 8 kHz.")] = False,
     channel: ChannelOpt = None,
     mix: MixOpt = False,
+    record: Annotated[Optional[Path], typer.Option(help="Append the guard's record (rejected hops, summary) to this JSON Lines file (neural only).")] = None,
+    group: Annotated[Optional[str], typer.Option(help="Speaker group or codec label stored with the record.")] = None,
 ) -> None:
     """Extend 8 kHz telephone speech to 16 kHz wideband speech."""
-    _extend(narrowband, wideband, method=method, model=model, excitation=excitation, reference=reference, figure=figure, resample=resample, channel=channel, mix=mix)
+    _extend(narrowband, wideband, method=method, model=model, excitation=excitation, reference=reference, figure=figure, resample=resample, channel=channel, mix=mix, record=record, group=group)
 
 
 def _default_method(model: Optional[Path]) -> str:
@@ -130,7 +132,42 @@ def _default_method(model: Optional[Path]) -> str:
     return "neural" if model is not None or default_path() is not None else "imaging"
 
 
-def _extend(narrowband, wideband, *, method, model, excitation, reference, figure, resample, channel, mix) -> None:
+def _attach_record(system, path: Optional[Path], *, source: str, group: Optional[str], n_hops: int):
+    """Write the guard's rejected hops of ``system`` to ``path`` as they happen; returns the writer."""
+    if path is None:
+        return None
+    est = getattr(system, "estimator", None)
+    if getattr(est, "listener", "absent") == "absent" or est.guard is None:
+        raise InputError("--record needs the neural method (only the guard's decisions are recorded)")
+    from nenv.records import RecordWriter
+
+    writer = RecordWriter(path, checkpoint=est.checkpoint, context=est.checkpoint.features.context)
+
+    def listen(first_hop, dec, x, a_nb):
+        keep = max(0, min(dec.rejected.size, n_hops - first_hop))
+        if keep:
+            from nenv.guard import Decisions
+
+            part = Decisions(*(getattr(dec, f)[:keep] for f in ("rejected", "reasons", "max_k", "level_db", "mismatch_db", "novelty", "cell")))
+            writer.hops(source=source, group=group, first_hop=first_hop, dec=part, x=x[:keep], a_nb=a_nb[:keep])
+
+    est.listener = listen
+    return writer
+
+
+def _close_record(writer, system, *, source: str, group: Optional[str], n_hops: int, seconds: float) -> None:
+    if writer is None:
+        return
+    from nenv.guard import Decisions
+
+    dec = system.estimator.record()
+    dec = Decisions(*(getattr(dec, f)[:n_hops] for f in ("rejected", "reasons", "max_k", "level_db", "mismatch_db", "novelty", "cell")))
+    writer.summary(source=source, group=group, dec=dec, seconds=seconds)
+    writer.close()
+    _say(f"appended the guard record to {writer.path}")
+
+
+def _extend(narrowband, wideband, *, method, model, excitation, reference, figure, resample, channel, mix, record=None, group=None) -> None:
     from nenv import audio, pipeline
     from nenv.excitation import METHODS
     from nenv.figures import FIGURE_SUFFIXES, spectrogram_grid
@@ -154,12 +191,15 @@ def _extend(narrowband, wideband, *, method, model, excitation, reference, figur
         ref = prepare_reference(reference)
         ref = ref * _match_gain(ref, x)
     system = pipeline.make_system(method, reference=ref, excitation=excitation, model=model)
+    n_hops = -(-x.size // 80)
+    writer = _attach_record(system, record, source=str(narrowband), group=group, n_hops=n_hops)
     t0 = time.perf_counter()
     with _progress() as bar:
         task = bar.add_task(f"extending {narrowband.name}", total=x.size)
         result = pipeline.extend(x, system=system, on_progress=lambda done, total: bar.update(task, completed=done))
     elapsed = time.perf_counter() - t0
     audio.write(out, result.y, sr=result.sr)
+    _close_record(writer, system, source=str(narrowband), group=group, n_hops=n_hops, seconds=x.size / 8000)
     dur = x.size / 8000
     _say(f"wrote {out} (16 kHz, {dur:.2f} s, method={method}, {dur / max(elapsed, 1e-9):.0f}x real time)")
     if result.n_limited:
@@ -257,6 +297,36 @@ def demo(
 def version() -> None:
     """Print nenv's version."""
     typer.echo(__version__)
+
+
+@app.command()
+@_guarded
+def audit(
+    records: Annotated[list[Path], typer.Argument(help="Guard record files (JSON Lines) from extend/stream --record.")],
+    out: Annotated[Path, typer.Option(help="Folder for audit.html, by_source.csv and by_group.csv (created if missing).")],
+    model: Annotated[Optional[Path], typer.Option(help="Re-run every recorded decision with this model folder (e.g. a retrained one).")] = None,
+) -> None:
+    """Summarise where and why the guard rejected the network's envelope; write an HTML report."""
+    from nenv import audit as au
+    from nenv import checkpoint, records as rc
+    from nenv.files import write_text
+
+    if out.exists() and not out.is_dir():
+        raise InputError(f"--out {out} exists and is not a folder")
+    rec = rc.read(records)
+    rows = au.table(rec)
+    reruns = au.rerun(rec, checkpoint.load(model)) if model is not None else None
+    out.mkdir(parents=True, exist_ok=True)
+    write_text(out / "by_source.csv", au.to_csv(rows))
+    write_text(out / "by_group.csv", au.to_csv(au.totals(rows, key=lambda r: r.group or "(none)")))
+    write_text(out / "audit.html", au.html_page(rec, rows, au.figures(rec, rows), reruns))
+    typer.echo(au.to_text(rows + au.totals(rows)))
+    if reruns is not None:
+        fixed = sum(1 for r in reruns if not r["new"])
+        typer.echo(f"re-run with {model}: {fixed} of {len(reruns)} recorded rejections now pass the guard")
+    if rec.skipped_lines:
+        _say(f"nenv: note: skipped {rec.skipped_lines} incomplete or unreadable line(s)")
+    _say(f"wrote {out / 'audit.html'}, {out / 'by_source.csv'}, {out / 'by_group.csv'}")
 
 
 # the other commands register themselves on `app`

@@ -9,7 +9,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from nenv.cli import _default_method, _guarded, _say, app
+from nenv.cli import _attach_record, _close_record, _default_method, _guarded, _say, app
 from nenv.errors import InputError
 
 class _Terminate(Exception):
@@ -23,6 +23,9 @@ def stream(
     method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
     excitation: Annotated[str, typer.Option(help="Excitation extension: rectify, fold or modulate.")] = "rectify",
+    record: Annotated[Optional[Path], typer.Option(help="Append the guard's record to this JSON Lines file while the call runs (neural only).")] = None,
+    call_id: Annotated[str, typer.Option(help="Call id stored with the record.")] = "stdin",
+    group: Annotated[Optional[str], typer.Option(help="Speaker group or codec label stored with the record.")] = None,
 ) -> None:
     """Extend a live call: 8 kHz audio on stdin, 16 kHz s16le on stdout, unbuffered.
 
@@ -49,6 +52,7 @@ def stream(
             raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
         model = checkpoint.load(path, flush_denormals=True)  # this process is ours: flush denormals
     engine = CallEngine(pipeline.make_system(method, model=model, excitation=excitation))
+    writer = _attach_record(engine.system, record, source=call_id, group=group, n_hops=2**62)
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()
 
@@ -85,6 +89,7 @@ def stream(
     if y.size:
         out.write(to_int16(y).astype("<i2").tobytes())
     out.flush()
+    _close_record(writer, engine.system, source=call_id, group=group, n_hops=-(-engine.samples_in // 80), seconds=engine.samples_in / 8000)
     _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
 
 

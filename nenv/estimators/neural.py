@@ -24,16 +24,19 @@ class NeuralEstimator(EnvelopeEstimator):
         self.checkpoint = checkpoint
         self.order = checkpoint.features.wb_order
         self.guard = Guard(checkpoint.limits) if guard else None
+        self.listener = None  # called as listener(first_hop, decisions, stacked_inputs, a_nb) after each batch
         self.reset()
 
     def reset(self) -> None:
         self._stack = ContextStacker(self.checkpoint.features.context)
         self._parts: list[Decisions] = []
+        self._hops = 0
 
     def estimate(self, analysis: NarrowbandAnalysis) -> Envelope:
         feats = narrowband_features(analysis)
         energy = feats[:, ENERGY_COLUMN]
-        ceps, level = self.checkpoint.predict(self._stack.push(feats))
+        stacked = self._stack.push(feats)
+        ceps, level = self.checkpoint.predict(stacked)
         a, gain = envelope_from_prediction(ceps, level, energy, order=self.order)
         book = self.checkpoint.codebook
         cell, novelty = book.nearest(feats)
@@ -45,7 +48,10 @@ class NeuralEstimator(EnvelopeEstimator):
                 gain = gain.copy()
                 a[dec.rejected] = a_cb
                 gain[dec.rejected] = g_cb
+            if self.listener is not None:
+                self.listener(self._hops, dec, stacked, analysis.a)
             self._parts.append(dec)
+        self._hops += len(analysis)
         gain = np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain)
         return Envelope(a=a, gain=gain)
 

@@ -1,0 +1,87 @@
+"""Guard records on disk and the audit that reads them."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import soundfile as sf
+from typer.testing import CliRunner
+
+from nenv import checkpoint, records
+from nenv.audit import rerun, table
+from nenv.cli import app
+from nenv.errors import InputError
+from tests.conftest import ARCTIC
+
+pytestmark = pytest.mark.skipif(checkpoint.default_path() is None, reason="no default model")
+runner = CliRunner()
+
+
+@pytest.fixture(scope="module")
+def record_file(tmp_path_factory):
+    d = tmp_path_factory.mktemp("rec")
+    nb = d / "call.wav"
+    assert runner.invoke(app, ["degrade", str(ARCTIC[1]), str(nb), "--law", "alaw"]).exit_code == 0
+    t = np.arange(16000) / 8000
+    sf.write(d / "tone.wav", 0.2 * np.sin(2 * np.pi * 1000 * t), 8000)  # trips the level and novelty checks
+    rec = d / "guard.jsonl"
+    for src, grp in ((nb, "female"), (d / "tone.wav", "test-tones")):
+        res = runner.invoke(app, ["extend", str(src), str(d / f"{src.stem}-wb.wav"), "--record", str(rec), "--group", grp])
+        assert res.exit_code == 0, res.output
+    return rec
+
+
+def test_records_are_self_describing_and_complete(record_file):
+    lines = [json.loads(l) for l in record_file.read_text().splitlines()]
+    heads = [l for l in lines if l["type"] == "header"]
+    assert len(heads) == 2 and heads[0]["schema"] == records.SCHEMA and heads[0]["version"] == records.VERSION
+    assert len(heads[0]["x_names"]) == checkpoint.load(checkpoint.default_path()).features.input_dim
+    rec = records.read([record_file])
+    rows = {r.source.split("/")[-1]: r for r in table(rec)}
+    tone = rows["tone.wav"]
+    assert tone.hops == 200 and tone.rejected > 180 and tone.group == "test-tones"
+    # the summaries' counts equal the reject lines written for each source
+    for r in table(rec):
+        assert r.rejected == sum(1 for x in rec.rejects if x["source"] == r.source)
+    reasons = {name for x in rec.rejects if x["source"].endswith("tone.wav") for name in x["reasons"]}
+    assert {"level", "novel"} <= reasons
+    one = next(x for x in rec.rejects if x["source"].endswith("tone.wav"))
+    assert one["fallback"]["kind"] == "codebook" and one["limits"]["level_max_db"] == heads[0]["limits"]["level_max_db"]
+
+
+def test_a_truncated_record_still_loads(record_file, tmp_path):
+    data = record_file.read_bytes()
+    cut = tmp_path / "cut.jsonl"
+    cut.write_bytes(data[: len(data) - 37])  # killed mid-line
+    rec = records.read([cut])
+    assert rec.skipped_lines == 1
+    assert len(rec.rejects) + len(rec.summaries) >= sum(1 for l in data.splitlines() if b'"type":"reject"' in l or b'"type":"summary"' in l) - 1
+
+
+def test_rerun_with_the_same_model_reproduces_every_verdict(record_file):
+    rec = records.read([record_file])
+    again = rerun(rec, checkpoint.load(checkpoint.default_path()))
+    assert len(again) == len(rec.rejects)
+    assert all(sorted(r["new"]) == sorted(r["old"]) for r in again)
+
+
+def test_audit_command_writes_report(record_file, tmp_path):
+    res = runner.invoke(app, ["audit", str(record_file), "--out", str(tmp_path / "a"), "--model", str(checkpoint.default_path())])
+    assert res.exit_code == 0, res.output
+    page = (tmp_path / "a" / "audit.html").read_text()
+    assert page.count("data:image/png;base64,") == 2 and "tone.wav" in page and "test-tones" in page
+    assert "0 of" in res.stdout  # re-run line: the same model fixes none
+    rows = (tmp_path / "a" / "by_source.csv").read_text().splitlines()
+    assert len(rows) == 3
+
+
+def test_not_a_record_is_refused(tmp_path):
+    p = tmp_path / "x.jsonl"
+    p.write_text('{"type": "header", "schema": "something-else", "version": 1}\n')
+    with pytest.raises(InputError, match="not a nenv guard record"):
+        records.read([p])
+    p.write_text("hello\n")
+    with pytest.raises(InputError, match="no nenv record header"):
+        records.read([p])
