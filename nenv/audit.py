@@ -155,6 +155,34 @@ def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> di
         ax.set_title(f"{key} of rejected hops", fontsize=9)
         ax.set_xlabel("red: threshold", fontsize=8)
     out["values"] = _png(fig)
+    # the worst sources whose output file is at hand: spectrogram with the rejected hops marked
+    outputs = {x["source"]: x.get("output") for x in rec.summaries if x.get("output")}
+    worst = [r for r in rows if r.rejected and r.source in outputs][:3]
+    if worst:
+        import os
+
+        import soundfile as sf
+
+        from nenv import measures
+
+        fig, axes = plt.subplots(len(worst), 1, figsize=(10, 2.4 * len(worst)), layout="constrained", squeeze=False)
+        for ax, r in zip(axes[:, 0], worst):
+            path = outputs[r.source]
+            if not os.path.isfile(path):
+                ax.set_title(f"{r.source[-60:]}: output {path} not found", fontsize=8)
+                ax.axis("off")
+                continue
+            y, sr = sf.read(path, always_2d=True)
+            spec = 10 * np.log10(np.maximum(measures.power_spectra(y[:, 0]), 1e-12)).T
+            t = np.arange(spec.shape[1]) * measures.HOP / sr
+            ax.pcolormesh(t, np.fft.rfftfreq(measures.N_FFT, 1 / sr) / 1000, spec, vmin=spec.max() - 80, vmax=spec.max(), cmap="magma", shading="auto", rasterized=True)
+            for x in rec.rejects:
+                if x["source"] == r.source:
+                    ax.axvspan(x["t"], x["t"] + 0.01, ymin=0.96, ymax=1.0, color="cyan")
+            ax.set_title(f"{r.source[-70:]}: output, rejected hops marked in cyan ({r.rejected} of {r.hops})", fontsize=8)
+            ax.set_ylabel("kHz")
+        axes[-1, 0].set_xlabel("s")
+        out["worst"] = _png(fig)
     return out
 
 
@@ -171,6 +199,7 @@ def html_page(rec: Records, rows: list[SourceRow], figs: dict[str, str], reruns:
         return f"<table><tr>{head}</tr>{body}</table>"
 
     models = sorted({h["model"]["record_id"] or "?" for h in rec.headers})
+    worst_html = f'<h2>Worst sources</h2><img alt="spectrograms of the worst outputs" src="data:image/png;base64,{figs["worst"]}">' if "worst" in figs else ""
     rerun_html = ""
     if reruns is not None:
         fixed = sum(1 for r in reruns if not r["new"])
@@ -185,6 +214,7 @@ A rejected hop used the codebook envelope instead of the network's. The added ba
 <h2>By group</h2>{tab(groups)}
 <h2>When</h2><img alt="timeline of rejected hops" src="data:image/png;base64,{figs['timeline']}">
 <h2>How far past the thresholds</h2><img alt="check values against thresholds" src="data:image/png;base64,{figs['values']}">
+{worst_html}
 {rerun_html}
 </body></html>
 """

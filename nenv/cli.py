@@ -155,14 +155,14 @@ def _attach_record(system, path: Optional[Path], *, source: str, group: Optional
     return writer
 
 
-def _close_record(writer, system, *, source: str, group: Optional[str], n_hops: int, seconds: float) -> None:
+def _close_record(writer, system, *, source: str, group: Optional[str], n_hops: int, seconds: float, output: Optional[str] = None) -> None:
     if writer is None:
         return
     from nenv.guard import Decisions
 
     dec = system.estimator.record()
     dec = Decisions(*(getattr(dec, f)[:n_hops] for f in ("rejected", "reasons", "max_k", "level_db", "mismatch_db", "novelty", "cell")))
-    writer.summary(source=source, group=group, dec=dec, seconds=seconds)
+    writer.summary(source=source, group=group, dec=dec, seconds=seconds, output=output)
     writer.close()
     _say(f"appended the guard record to {writer.path}")
 
@@ -199,7 +199,7 @@ def _extend(narrowband, wideband, *, method, model, excitation, reference, figur
         result = pipeline.extend(x, system=system, on_progress=lambda done, total: bar.update(task, completed=done))
     elapsed = time.perf_counter() - t0
     audio.write(out, result.y, sr=result.sr)
-    _close_record(writer, system, source=str(narrowband), group=group, n_hops=n_hops, seconds=x.size / 8000)
+    _close_record(writer, system, source=str(narrowband), group=group, n_hops=n_hops, seconds=x.size / 8000, output=str(Path(out).resolve()))
     dur = x.size / 8000
     _say(f"wrote {out} (16 kHz, {dur:.2f} s, method={method}, {dur / max(elapsed, 1e-9):.0f}x real time)")
     if result.n_limited:

@@ -12,7 +12,8 @@ A record file is a sequence of lines, each one JSON object with a ``type``:
   ``limits`` (the thresholds it was held to), ``fallback`` (``{"kind":
   "codebook", "cell": N}``), and what is needed to recompute the verdict:
   ``x`` (the network's raw stacked input) and ``a_nb`` (narrowband LPC).
-* ``summary``: closes one source: hops seen, hops rejected, counts by reason.
+* ``summary``: closes one source: hops seen, hops rejected, counts by reason,
+  and the output file if there is one (the audit draws its spectrogram).
 
 Lines are written whole and flushed (and fsynced at each summary), so a
 killed process leaves at most one incomplete last line; :func:`read` skips
@@ -97,12 +98,12 @@ class RecordWriter:
                 }
             )
 
-    def summary(self, *, source: str, group: str | None, dec: Decisions, seconds: float) -> None:
+    def summary(self, *, source: str, group: str | None, dec: Decisions, seconds: float, output: str | None = None) -> None:
         by: dict[str, int] = {}
         for mask in dec.reasons[dec.rejected]:
             for name in reason_names(int(mask)):
                 by[name] = by.get(name, 0) + 1
-        self._write({"type": "summary", "source": source, "group": group, "hops": int(dec.rejected.size), "rejected": int(dec.rejected.sum()), "by_reason": by, "seconds": round(seconds, 3)}, sync=True)
+        self._write({"type": "summary", "source": source, "group": group, "hops": int(dec.rejected.size), "rejected": int(dec.rejected.sum()), "by_reason": by, "seconds": round(seconds, 3), "output": output}, sync=True)
 
     def close(self) -> None:
         self._fh.close()

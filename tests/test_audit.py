@@ -71,7 +71,7 @@ def test_audit_command_writes_report(record_file, tmp_path):
     res = runner.invoke(app, ["audit", str(record_file), "--out", str(tmp_path / "a"), "--model", str(checkpoint.default_path())])
     assert res.exit_code == 0, res.output
     page = (tmp_path / "a" / "audit.html").read_text()
-    assert page.count("data:image/png;base64,") == 2 and "tone.wav" in page and "test-tones" in page
+    assert page.count("data:image/png;base64,") == 3 and "tone.wav" in page and "test-tones" in page
     assert "0 of" in res.stdout  # re-run line: the same model fixes none
     rows = (tmp_path / "a" / "by_source.csv").read_text().splitlines()
     assert len(rows) == 3
