@@ -21,10 +21,10 @@ from scipy import signal
 from nenv import lpc
 from nenv.audio import limit_peaks
 from nenv.checkpoint import Checkpoint
-from nenv.estimators.codebook import ENERGY_COLUMN
 from nenv.estimators.base import NarrowbandAnalysis
+from nenv.estimators.neural import guarded_envelopes
 from nenv.excitation import DC_POLE, WHITEN_ORDER, residual
-from nenv.features import ENERGY_FLOOR_DB, envelope_from_prediction, narrowband_features
+from nenv.features import narrowband_features
 from nenv.guard import Guard
 from nenv.pipeline import LATENCY
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
@@ -174,20 +174,10 @@ class MultiCallEngine:
         if self.context:
             st["ctx"][rows] = stacked[:, feats.shape[1] :]
         # the network, once for all calls, then the guard
-        energy = feats[:, ENERGY_COLUMN]
-        ceps, level = self.ck.predict(stacked)
-        a_wb, gain = envelope_from_prediction(ceps, level, energy, order=self.p)
-        book = self.ck.codebook
-        cell, novelty = book.nearest(feats)
-        if self.guard is not None:
-            dec = self.guard.check(ceps=ceps, level_db=level, a=a_wb, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell)
-            if np.any(dec.rejected):
-                a_cb, g_cb = book.envelopes(cell[dec.rejected], energy[dec.rejected])
-                a_wb[dec.rejected] = a_cb
-                gain[dec.rejected] = g_cb
-                for r in np.flatnonzero(dec.rejected):
-                    self._calls[self._ids[rows[r]]].rejected_hops += 1
-        gain = np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain)
+        a_wb, gain, dec = guarded_envelopes(self.ck, self.guard, feats=feats, stacked=stacked, a_nb=a_nb)
+        if dec is not None:
+            for r in np.flatnonzero(dec.rejected):
+                self._calls[self._ids[rows[r]]].rejected_hops += 1
         # excitation: residual -> interpolate -> rectify -> DC removal -> power match -> whiten
         e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, HOP_NB)
         z = np.zeros((B, HOP_WB))

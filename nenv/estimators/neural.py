@@ -12,6 +12,27 @@ from nenv.guard import Decisions, Guard
 from nenv.settings import HOP_NB, NB_SR
 
 
+def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.ndarray, stacked: np.ndarray, a_nb: np.ndarray) -> tuple[np.ndarray, np.ndarray, Decisions | None]:
+    """Network -> envelope -> guard -> codebook fallback, for a batch of hops (of one call or many).
+
+    feats : [shape=(n, N_INPUTS)] current-hop features; stacked : [shape=(n, input_dim)] network input;
+    a_nb : [shape=(n, NB_ORDER+1)] narrowband LPC. Returns a, gain (0 for silent hops) and the verdicts.
+    """
+    energy = feats[:, ENERGY_COLUMN]
+    ceps, level = checkpoint.predict(stacked)
+    a, gain = envelope_from_prediction(ceps, level, energy, order=checkpoint.features.wb_order)
+    dec = None
+    if guard is not None:
+        book = checkpoint.codebook
+        cell, novelty = book.nearest(feats)
+        dec = guard.check(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell)
+        if np.any(dec.rejected):
+            a_cb, g_cb = book.envelopes(cell[dec.rejected], energy[dec.rejected])
+            a[dec.rejected] = a_cb
+            gain[dec.rejected] = g_cb
+    return a, np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain), dec
+
+
 class NeuralEstimator(EnvelopeEstimator):
     """Stacked narrowband features -> network -> envelope; the guard swaps in the codebook when needed.
 
@@ -34,25 +55,13 @@ class NeuralEstimator(EnvelopeEstimator):
 
     def estimate(self, analysis: NarrowbandAnalysis) -> Envelope:
         feats = narrowband_features(analysis)
-        energy = feats[:, ENERGY_COLUMN]
         stacked = self._stack.push(feats)
-        ceps, level = self.checkpoint.predict(stacked)
-        a, gain = envelope_from_prediction(ceps, level, energy, order=self.order)
-        book = self.checkpoint.codebook
-        cell, novelty = book.nearest(feats)
-        if self.guard is not None:
-            dec = self.guard.check(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=analysis.a, novelty=novelty, cell=cell)
-            if np.any(dec.rejected):
-                a_cb, g_cb = book.envelopes(cell[dec.rejected], energy[dec.rejected])
-                a = a.copy()
-                gain = gain.copy()
-                a[dec.rejected] = a_cb
-                gain[dec.rejected] = g_cb
+        a, gain, dec = guarded_envelopes(self.checkpoint, self.guard, feats=feats, stacked=stacked, a_nb=analysis.a)
+        if dec is not None:
             if self.listener is not None:
                 self.listener(self._hops, dec, stacked, analysis.a)
             self._parts.append(dec)
         self._hops += len(analysis)
-        gain = np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain)
         return Envelope(a=a, gain=gain)
 
     def record(self) -> Decisions:
