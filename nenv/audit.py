@@ -106,6 +106,41 @@ def rerun(rec: Records, checkpoint) -> list[dict]:
     return [{"source": r["source"], "hop": r["hop"], "old": r["reasons"], "new": reason_names(int(m))} for r, m in zip(rec.rejects, dec.reasons)]
 
 
+def segments(times: list[float], *, hop_s: float = 0.01, join_s: float = 0.1, pad_s: float = 0.2) -> list[tuple[float, float]]:
+    """Merge rejected hop start times into (start, end) spans in seconds, padded and joined when close."""
+    spans: list[list[float]] = []
+    for t in sorted(times):
+        if spans and t - spans[-1][1] <= join_s:
+            spans[-1][1] = t + hop_s
+        else:
+            spans.append([t, t + hop_s])
+    return [(max(0.0, a - pad_s), b + pad_s) for a, b in spans]
+
+
+def manifest(rec: Records, *, top: int = 50) -> str:
+    """CSV for the next training run: the sources behind the most rejections, with their spans.
+
+    Columns ``path,speaker`` are what ``nenv train`` reads (``manifest = ...``); ``rejected``,
+    ``main_reason`` and ``segments`` (``start-end;...`` in seconds) say where to look. Training needs
+    wideband audio: for narrowband call recordings, put the wideband originals (or recordings of the
+    same speakers) at these paths.
+    """
+    by_source: dict[str, list[dict]] = {}
+    for x in rec.rejects:
+        by_source.setdefault(x["source"], []).append(x)
+    ranked = sorted(by_source.items(), key=lambda kv: -len(kv[1]))[:top]
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["path", "speaker", "rejected", "main_reason", "segments"])
+    for src, xs in ranked:
+        group = next((x.get("group") for x in xs if x.get("group")), None)
+        speaker = group or (src.replace("\\", "/").rsplit("/", 2)[-2] if "/" in src else src)
+        reason = Counter(n for x in xs for n in x["reasons"]).most_common(1)[0][0] if xs else ""
+        spans = ";".join(f"{a:.2f}-{b:.2f}" for a, b in segments([x["t"] for x in xs]))
+        w.writerow([src, speaker, len(xs), reason, spans])
+    return buf.getvalue()
+
+
 def _png(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=90)

@@ -305,6 +305,8 @@ def audit(
     records: Annotated[list[Path], typer.Argument(help="Guard record files (JSON Lines) from extend/stream --record.")],
     out: Annotated[Path, typer.Option(help="Folder for audit.html, by_source.csv and by_group.csv (created if missing).")],
     model: Annotated[Optional[Path], typer.Option(help="Re-run every recorded decision with this model folder (e.g. a retrained one).")] = None,
+    manifest: Annotated[Optional[Path], typer.Option(help="Also write a training manifest (CSV: path,speaker,... with the rejected spans) of the sources behind the most rejections.")] = None,
+    top: Annotated[int, typer.Option(min=1, help="How many sources the manifest lists.")] = 50,
 ) -> None:
     """Summarise where and why the guard rejected the network's envelope; write an HTML report."""
     from nenv import audit as au
@@ -324,6 +326,11 @@ def audit(
     if reruns is not None:
         fixed = sum(1 for r in reruns if not r["new"])
         typer.echo(f"re-run with {model}: {fixed} of {len(reruns)} recorded rejections now pass the guard")
+    if manifest is not None:
+        from nenv.files import check_output
+
+        write_text(check_output(manifest, suffixes=(".csv",)), au.manifest(rec, top=top))
+        _say(f"wrote {manifest} (train with: nenv train --set manifest={manifest} ...; it needs wideband audio at those paths)")
     if rec.skipped_lines:
         _say(f"nenv: note: skipped {rec.skipped_lines} incomplete or unreadable line(s)")
     _say(f"wrote {out / 'audit.html'}, {out / 'by_source.csv'}, {out / 'by_group.csv'}")

@@ -85,3 +85,24 @@ def test_not_a_record_is_refused(tmp_path):
     p.write_text("hello\n")
     with pytest.raises(InputError, match="no nenv record header"):
         records.read([p])
+
+
+def test_segments_merge_and_pad():
+    from nenv.audit import segments
+
+    spans = segments([1.00, 1.01, 1.02, 1.50, 3.00], pad_s=0.1)
+    assert [(round(a, 2), round(b, 2)) for a, b in spans] == [(0.9, 1.13), (1.4, 1.61), (2.9, 3.11)]
+
+
+def test_manifest_lists_the_worst_sources_and_trains_from_it(record_file, tmp_path):
+    import csv
+
+    res = runner.invoke(app, ["audit", str(record_file), "--out", str(tmp_path / "a"), "--manifest", str(tmp_path / "m.csv"), "--top", "1"])
+    assert res.exit_code == 0, res.output
+    rows = list(csv.DictReader(open(tmp_path / "m.csv")))
+    assert len(rows) == 1 and rows[0]["path"].endswith("tone.wav") and rows[0]["speaker"] == "test-tones"
+    assert rows[0]["main_reason"] in ("level", "novel") and rows[0]["segments"].startswith("0.00-")
+    from nenv.train import corpus
+
+    found = corpus.scan(tmp_path, manifest=str(tmp_path / "m.csv"))  # the trainer reads it as is
+    assert [f.speaker for f in found] == ["test-tones"]
