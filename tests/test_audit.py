@@ -106,3 +106,25 @@ def test_manifest_lists_the_worst_sources_and_trains_from_it(record_file, tmp_pa
 
     found = corpus.scan(tmp_path, manifest=str(tmp_path / "m.csv"))  # the trainer reads it as is
     assert [f.speaker for f in found] == ["test-tones"]
+
+
+def test_report_renders_in_a_headless_browser(record_file, tmp_path):
+    # Debian's chromium, as a reader would open the page; the figures must be drawn (not broken images).
+    import shutil
+    import subprocess
+
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    if browser is None:
+        pytest.skip("chromium is not installed (apt-get install chromium)")
+    assert runner.invoke(app, ["audit", str(record_file), "--out", str(tmp_path / "a")]).exit_code == 0
+    shot = tmp_path / "shot.png"
+    cmd = [browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking",
+           "--disable-component-update", "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}", "--window-size=1300,2400",
+           f"--screenshot={shot}", (tmp_path / "a" / "audit.html").as_uri()]
+    subprocess.run(cmd, capture_output=True, timeout=120)
+    import matplotlib.image as mpimg
+
+    img = mpimg.imread(shot)[:, :, :3]
+    assert img.shape[0] == 2400
+    dark = np.mean(img.mean(axis=2) < 0.5)  # spectrograms and plots are largely dark; a text-only page is not
+    assert dark > 0.05
