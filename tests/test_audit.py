@@ -128,3 +128,76 @@ def test_report_renders_in_a_headless_browser(record_file, tmp_path):
     assert img.shape[0] == 2400
     dark = np.mean(img.mean(axis=2) < 0.5)  # spectrograms and plots are largely dark; a text-only page is not
     assert dark > 0.05
+
+
+def test_each_check_tripped_lands_in_the_record_with_its_reason(tmp_path, monkeypatch, arctic_refs):
+    # A model made to fail on chosen hops (as in test_train, but with the default model and on disk).
+    from nenv import channel, pipeline
+    from nenv.guard import Check
+
+    ck = checkpoint.load(checkpoint.default_path())
+    _, ref = arctic_refs[0]
+    x = channel.telephone(ref, sr=16000)
+    blocks = {"nonfinite": range(40, 45), "level": range(80, 85), "unstable": range(120, 125), "mismatch": range(160, 165)}
+    original = ck.predict
+    pos = {"n": 0}
+
+    def perturbed(inp):
+        ceps, level = original(inp)
+        idx = np.arange(pos["n"], pos["n"] + inp.shape[0])
+        pos["n"] += inp.shape[0]
+        n_c = ceps.shape[1]
+        for name, hops in blocks.items():
+            sel = np.isin(idx, list(hops))
+            if name == "nonfinite":
+                ceps[sel, 2] = np.inf
+            elif name == "level":
+                level[sel] = 90.0
+            elif name == "unstable":
+                ceps[sel] = 2 * 0.99995 ** np.arange(1, n_c + 1) * np.cos(2 * np.pi * 5000 / 16000 * np.arange(1, n_c + 1)) / np.arange(1, n_c + 1) * 40
+            else:
+                ceps[sel, :8] = -ceps[sel, :8] * 3
+        return ceps, level
+
+    monkeypatch.setattr(ck, "predict", perturbed)
+    from nenv.cli import _attach_record, _close_record
+
+    system = pipeline.make_system("neural", model=ck)
+    n_hops = -(-x.size // 80)
+    writer = _attach_record(system, tmp_path / "r.jsonl", source="perturbed", group="lab", n_hops=n_hops)
+    pipeline.extend(x, system=system)
+    _close_record(writer, system, source="perturbed", group="lab", n_hops=n_hops, seconds=x.size / 8000)
+    rec = records.read([tmp_path / "r.jsonl"])
+    by_hop = {r["hop"]: r for r in rec.rejects}
+    for name, hops in blocks.items():
+        for h in hops:
+            assert name in by_hop[h]["reasons"], (name, h, by_hop.get(h))
+    assert rec.summaries[0]["rejected"] == len(rec.rejects)
+    assert rec.summaries[0]["by_reason"][Check.LEVEL.name.lower()] >= 5
+
+
+def test_a_killed_stream_leaves_a_readable_record(tmp_path):
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from nenv.audio import to_int16
+
+    t = np.arange(8000 * 20) / 8000
+    tone = to_int16(0.2 * np.sin(2 * np.pi * 1000 * t)).astype("<i2").tobytes()  # every hop is rejected
+    rec_path = tmp_path / "live.jsonl"
+    p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--record", str(rec_path), "--call-id", "call-7"],
+                         stdin=subprocess.PIPE, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    p.stdin.write(tone)
+    p.stdin.flush()
+    deadline = time.time() + 120
+    while time.time() < deadline and (not rec_path.exists() or rec_path.read_bytes().count(b'"reject"') < 50):
+        time.sleep(0.2)
+    p.send_signal(signal.SIGKILL)  # no chance to finish a line or write the summary
+    p.wait(timeout=30)
+    rec = records.read([rec_path])
+    assert len(rec.headers) == 1 and len(rec.rejects) >= 50 and rec.skipped_lines <= 1
+    assert rec.summaries == []  # killed before the end of the call
+    rows = table(rec)
+    assert rows[0].source == "call-7" and rows[0].rejected == len(rec.rejects)
