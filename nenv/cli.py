@@ -323,6 +323,9 @@ def audit(
     write_text(out / "by_group.csv", au.to_csv(au.totals(rows, key=lambda r: r.group or "(none)")))
     write_text(out / "audit.html", au.html_page(rec, rows, au.figures(rec, rows), reruns))
     typer.echo(au.to_text(rows + au.totals(rows)))
+    groups = au.totals(rows, key=lambda r: r.group or "(none)")
+    if any(r.group for r in rows):
+        typer.echo("\nby group:\n" + au.to_text(groups))
     if reruns is not None:
         fixed = sum(1 for r in reruns if not r["new"])
         typer.echo(f"re-run with {model}: {fixed} of {len(reruns)} recorded rejections now pass the guard")

@@ -201,3 +201,19 @@ def test_a_killed_stream_leaves_a_readable_record(tmp_path):
     assert rec.summaries == []  # killed before the end of the call
     rows = table(rec)
     assert rows[0].source == "call-7" and rows[0].rejected == len(rec.rejects)
+
+
+def test_silence_with_a_click(tmp_path):
+    # Digital silence is never judged (nothing is added there). With the shipped model the click's own
+    # hops pass every check (measured: novelty up to 1.06 against a limit of 1.16): a click is broadband
+    # in a wideband world too. So the record holds no rejection at all, and says so in its summary.
+    y = np.zeros(16000)
+    y[8000] = 0.9
+    sf.write(tmp_path / "click.wav", y, 8000, subtype="FLOAT")
+    res = runner.invoke(app, ["extend", str(tmp_path / "click.wav"), str(tmp_path / "o.wav"), "--record", str(tmp_path / "r.jsonl")])
+    assert res.exit_code == 0, res.output
+    rec = records.read([tmp_path / "r.jsonl"])
+    assert all(100 <= r["hop"] <= 104 for r in rec.rejects)  # never in the silence around the click
+    assert rec.summaries[0]["hops"] == 200 and rec.summaries[0]["rejected"] == len(rec.rejects)
+    out, _ = sf.read(tmp_path / "o.wav")
+    assert np.all(np.abs(out[:15000]) < 1e-3)  # silence stays silent up to the click (sample 16000 at 16 kHz)

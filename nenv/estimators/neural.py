@@ -16,7 +16,8 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
     """Network -> envelope -> guard -> codebook fallback, for a batch of hops (of one call or many).
 
     feats : [shape=(n, N_INPUTS)] current-hop features; stacked : [shape=(n, input_dim)] network input;
-    a_nb : [shape=(n, NB_ORDER+1)] narrowband LPC. Returns a, gain (0 for silent hops) and the verdicts.
+    a_nb : [shape=(n, NB_ORDER+1)] narrowband LPC. Returns a, gain (0 for silent hops) and the verdicts
+    (hops of digital silence are never rejected: their gain is 0 whatever the envelope).
     """
     energy = feats[:, ENERGY_COLUMN]
     ceps, level = checkpoint.predict(stacked)
@@ -26,6 +27,9 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
         book = checkpoint.codebook
         cell, novelty = book.nearest(feats)
         dec = guard.check(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell)
+        silent = energy <= ENERGY_FLOOR_DB  # digital silence: nothing is added, nothing to judge
+        dec.rejected[silent] = False
+        dec.reasons[silent] = 0
         if np.any(dec.rejected):
             a_cb, g_cb = book.envelopes(cell[dec.rejected], energy[dec.rejected])
             a[dec.rejected] = a_cb
