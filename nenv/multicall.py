@@ -19,14 +19,13 @@ import numpy as np
 from scipy import signal
 
 from nenv import lpc
-from nenv.audio import limit_peaks
 from nenv.checkpoint import Checkpoint
 from nenv.estimators.base import NarrowbandAnalysis
 from nenv.estimators.neural import guarded_envelopes
 from nenv.excitation import DC_POLE, WHITEN_ORDER, residual
 from nenv.features import narrowband_features
 from nenv.guard import Guard
-from nenv.pipeline import LATENCY
+from nenv.runtime import OutputGate, tail_padding
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
 from nenv.synthesis import MAX_REFLECTION, AllPoleSynthesizer, isolation_sos, upsampler_taps
 
@@ -35,10 +34,8 @@ from nenv.synthesis import MAX_REFLECTION, AllPoleSynthesizer, isolation_sos, up
 class _Call:
     pending: np.ndarray = field(default_factory=lambda: np.zeros(0))
     out: list = field(default_factory=list)
-    skip: int = LATENCY
+    gate: OutputGate = field(default_factory=OutputGate)
     samples_in: int = 0
-    samples_out: int = 0
-    limited: int = 0
     bad_samples: int = 0
     rejected_hops: int = 0
     hops: int = 0
@@ -90,12 +87,10 @@ class MultiCallEngine:
     def close(self, call_id: str) -> np.ndarray:
         """End a call: flush its tail (total output = 2 x its input) and forget it."""
         call = self._calls[call_id]
-        tail = (LATENCY + 1) // 2
-        n_pad = -(-(call.pending.size + tail) // HOP_NB) * HOP_NB - call.pending.size
-        call.pending = np.concatenate([call.pending, np.zeros(n_pad)])
+        call.pending = np.concatenate([call.pending, np.zeros(tail_padding(call.pending.size))])
         self._run(only=call_id)
         y = np.concatenate(call.out) if call.out else np.zeros(0)
-        want = 2 * call.samples_in - (call.samples_out - y.size)
+        want = 2 * call.samples_in - (call.gate.samples_out - y.size)
         y = y[: max(want, 0)]
         i = self._ids.index(call_id)
         keep = np.arange(len(self._ids)) != i
@@ -111,7 +106,7 @@ class MultiCallEngine:
 
     def stats(self, call_id: str) -> dict:
         c = self._calls[call_id]
-        return {"samples_in": c.samples_in, "samples_out": c.samples_out, "limited": c.limited, "bad_samples": c.bad_samples, "hops": c.hops, "rejected_hops": c.rejected_hops}
+        return {"samples_in": c.samples_in, "samples_out": c.gate.samples_out, "limited": c.gate.limited, "bad_samples": c.bad_samples, "hops": c.hops, "rejected_hops": c.rejected_hops}
 
     # ---- audio in and out ------------------------------------------------------------
     def feed(self, call_id: str, x: np.ndarray) -> None:
@@ -147,16 +142,8 @@ class MultiCallEngine:
             y = self._hop(np.array(rows), x)
             for r, i in enumerate(rows):
                 c = self._calls[self._ids[i]]
-                yi = y[r]
-                if c.skip:
-                    drop = min(c.skip, yi.size)
-                    yi = yi[drop:]
-                    c.skip -= drop
-                yi, n = limit_peaks(yi)
-                c.limited += n
-                c.samples_out += yi.size
                 c.hops += 1
-                c.out.append(yi)
+                c.out.append(c.gate.emit(y[r]))
 
     def _hop(self, rows: np.ndarray, x: np.ndarray) -> np.ndarray:
         st = self._state

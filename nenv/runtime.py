@@ -9,7 +9,7 @@ output for the same input (same system, same model), whatever the chunking.
 Latency: a sample waits at most one hop (10 ms) for its hop to complete, then
 passes the interpolator's delay (23 samples at 16 kHz = 1.44 ms); the
 analysis window ends at the hop's end, so there is no look-ahead. The output
-stream therefore lags the input by ``LATENCY_MS`` = 11.44 ms at most.
+stream therefore lags the input by ``ALGORITHMIC_LATENCY_MS`` = 11.44 ms at most.
 """
 
 from __future__ import annotations
@@ -23,6 +23,35 @@ from nenv.settings import HOP_NB, NB_SR, WB_SR
 ALGORITHMIC_LATENCY_MS = 1000.0 * (HOP_NB / NB_SR + LATENCY / WB_SR)  # = 11.4375 ms
 
 
+def tail_padding(pending: int) -> int:
+    """Zeros to append to ``pending`` leftover input samples at the end of a call.
+
+    Enough to complete the last hop and push the interpolator's delay out, so the
+    call's output reaches exactly twice its input length.
+    """
+    total = pending + (LATENCY + 1) // 2
+    return -(-total // HOP_NB) * HOP_NB - pending
+
+
+class OutputGate:
+    """What every engine does to its output: drop the first LATENCY samples, limit peaks, count."""
+
+    def __init__(self):
+        self.skip = LATENCY
+        self.limited = 0
+        self.samples_out = 0
+
+    def emit(self, y: np.ndarray) -> np.ndarray:
+        if self.skip:
+            drop = min(self.skip, y.size)
+            y = y[drop:]
+            self.skip -= drop
+        y, n = limit_peaks(y)
+        self.limited += n
+        self.samples_out += y.size
+        return y
+
+
 class CallEngine:
     """Streaming narrowband -> wideband conversion for one call."""
 
@@ -31,16 +60,23 @@ class CallEngine:
     def __init__(self, system: System):
         self._ext = Extender(system)
         self._pending = np.zeros(0)
-        self._skip = LATENCY  # output samples still to drop (the processing delay)
+        self._out = OutputGate()
         self.samples_in = 0
-        self.samples_out = 0
-        self.limited = 0  # output samples clipped by the peak limiter
         self.bad_samples = 0  # non-finite input samples replaced by 0
         self._closed = False
 
     @property
     def system(self) -> System:
         return self._ext.system
+
+    @property
+    def samples_out(self) -> int:
+        return self._out.samples_out
+
+    @property
+    def limited(self) -> int:
+        """Output samples clipped by the peak limiter."""
+        return self._out.limited
 
     def feed(self, x: np.ndarray) -> np.ndarray:
         """Take any number of 8 kHz samples (float, full scale 1.0); return the 16 kHz samples now ready.
@@ -61,28 +97,16 @@ class CallEngine:
         self._pending = buf[n_whole:].copy()
         if n_whole == 0:
             return np.zeros(0)
-        return self._emit(self._ext.process(buf[:n_whole]))
+        return self._out.emit(self._ext.process(buf[:n_whole]))
 
     def flush(self) -> np.ndarray:
         """End of call: process the last partial hop and drain the delay; total output = 2 x input."""
         if self._closed:
             return np.zeros(0)
         self._closed = True
-        tail = (LATENCY + 1) // 2
-        total = self._pending.size + tail
-        n_pad = -(-total // HOP_NB) * HOP_NB - self._pending.size
-        y = self._emit(self._ext.process(np.concatenate([self._pending, np.zeros(n_pad)])))
-        want = 2 * self.samples_in - (self.samples_out - y.size)
+        n_pad = tail_padding(self._pending.size)
+        y = self._out.emit(self._ext.process(np.concatenate([self._pending, np.zeros(n_pad)])))
+        want = 2 * self.samples_in - (self._out.samples_out - y.size)
         y = y[: max(want, 0)]
-        self.samples_out = 2 * self.samples_in
-        return y
-
-    def _emit(self, y: np.ndarray) -> np.ndarray:
-        if self._skip:
-            drop = min(self._skip, y.size)
-            y = y[drop:]
-            self._skip -= drop
-        y, n = limit_peaks(y)
-        self.limited += n
-        self.samples_out += y.size
+        self._out.samples_out = 2 * self.samples_in
         return y
