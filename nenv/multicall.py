@@ -25,7 +25,8 @@ from nenv.estimators.neural import guarded_envelopes
 from nenv.excitation import DC_POLE, WHITEN_ORDER, residual
 from nenv.features import narrowband_features
 from nenv.guard import Guard
-from nenv.runtime import OutputGate, tail_padding
+from nenv.pipeline import tail_padding
+from nenv.runtime import OutputGate
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
 from nenv.synthesis import MAX_REFLECTION, AllPoleSynthesizer, isolation_sos, upsampler_taps
 

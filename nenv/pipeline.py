@@ -129,6 +129,16 @@ class Extended:
 CHUNK_HOPS = 1000  # hops per processing step in extend() = 10 s of input
 
 
+def tail_padding(pending: int) -> int:
+    """Zeros to append after the last ``pending`` input samples of a signal or call.
+
+    Enough to complete the last hop and push the interpolator's delay out, so the
+    output reaches exactly twice the input length (offline and streaming alike).
+    """
+    total = pending + (LATENCY + 1) // 2
+    return -(-total // HOP_NB) * HOP_NB - pending
+
+
 def extend(x: np.ndarray, *, system: System, on_progress: Callable[[int, int], None] | None = None) -> Extended:
     """Extend a whole 8 kHz signal offline; output is time-aligned and exactly twice as long.
 
@@ -144,9 +154,7 @@ def extend(x: np.ndarray, *, system: System, on_progress: Callable[[int, int], N
     x = np.asarray(x, dtype=np.float64)
     if x.ndim != 1 or x.size == 0:
         raise InputError("extend needs a non-empty mono 8 kHz signal")
-    tail = (LATENCY + 1) // 2  # input samples needed to flush the delay
-    n_pad = -(-(x.size + tail) // HOP_NB) * HOP_NB - x.size
-    xp = np.concatenate([x, np.zeros(n_pad)])
+    xp = np.concatenate([x, np.zeros(tail_padding(x.size))])
     ext = Extender(system)
     step = CHUNK_HOPS * HOP_NB
     parts = []

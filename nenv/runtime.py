@@ -17,20 +17,10 @@ from __future__ import annotations
 import numpy as np
 
 from nenv.audio import limit_peaks
-from nenv.pipeline import LATENCY, Extender, System
+from nenv.pipeline import LATENCY, Extender, System, tail_padding
 from nenv.settings import HOP_NB, NB_SR, WB_SR
 
 ALGORITHMIC_LATENCY_MS = 1000.0 * (HOP_NB / NB_SR + LATENCY / WB_SR)  # = 11.4375 ms
-
-
-def tail_padding(pending: int) -> int:
-    """Zeros to append to ``pending`` leftover input samples at the end of a call.
-
-    Enough to complete the last hop and push the interpolator's delay out, so the
-    call's output reaches exactly twice its input length.
-    """
-    total = pending + (LATENCY + 1) // 2
-    return -(-total // HOP_NB) * HOP_NB - pending
 
 
 class OutputGate:
