@@ -136,8 +136,10 @@ def _attach_record(system, path: Optional[Path], *, source: str, group: Optional
     """Write the guard's rejected hops of ``system`` to ``path`` as they happen; returns the writer."""
     if path is None:
         return None
+    from nenv.estimators.neural import NeuralEstimator
+
     est = getattr(system, "estimator", None)
-    if getattr(est, "listener", "absent") == "absent" or est.guard is None:
+    if not isinstance(est, NeuralEstimator) or est.guard is None:
         raise InputError("--record needs the neural method (only the guard's decisions are recorded)")
     from nenv.records import RecordWriter
 
@@ -146,10 +148,7 @@ def _attach_record(system, path: Optional[Path], *, source: str, group: Optional
     def listen(first_hop, dec, x, a_nb):
         keep = max(0, min(dec.rejected.size, n_hops - first_hop))
         if keep:
-            from nenv.guard import Decisions
-
-            part = Decisions(*(getattr(dec, f)[:keep] for f in ("rejected", "reasons", "max_k", "level_db", "mismatch_db", "novelty", "cell")))
-            writer.hops(source=source, group=group, first_hop=first_hop, dec=part, x=x[:keep], a_nb=a_nb[:keep])
+            writer.hops(source=source, group=group, first_hop=first_hop, dec=dec.head(keep), x=x[:keep], a_nb=a_nb[:keep])
 
     est.listener = listen
     return writer
@@ -158,10 +157,7 @@ def _attach_record(system, path: Optional[Path], *, source: str, group: Optional
 def _close_record(writer, system, *, source: str, group: Optional[str], n_hops: int, seconds: float, output: Optional[str] = None) -> None:
     if writer is None:
         return
-    from nenv.guard import Decisions
-
-    dec = system.estimator.record()
-    dec = Decisions(*(getattr(dec, f)[:n_hops] for f in ("rejected", "reasons", "max_k", "level_db", "mismatch_db", "novelty", "cell")))
+    dec = system.estimator.record().head(n_hops)
     writer.summary(source=source, group=group, dec=dec, seconds=seconds, output=output)
     writer.close()
     _say(f"appended the guard record to {writer.path}")

@@ -45,12 +45,7 @@ def stream(
     if method not in pipeline.SYSTEMS or method == "oracle":
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
     if method in pipeline.MODEL_SYSTEMS:
-        from nenv import checkpoint
-
-        path = model or checkpoint.default_path()
-        if path is None:
-            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
-        model = checkpoint.load(path, flush_denormals=True)  # this process is ours: flush denormals
+        model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
     engine = CallEngine(pipeline.make_system(method, model=model, excitation=excitation))
     writer = _attach_record(engine.system, record, source=call_id, group=group, n_hops=2**62)
     out = sys.stdout.buffer
@@ -115,19 +110,14 @@ def relay(
     """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one engine per SSRC. Stops on SIGTERM/Ctrl-C."""
     import signal as sig
 
-    from nenv import checkpoint, pipeline, rtp
+    from nenv import pipeline, rtp
 
     method = method or _default_method(model)
     if method not in pipeline.SYSTEMS or method == "oracle":
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
     if not 96 <= payload_type <= 127:
         raise InputError(f"--payload-type {payload_type}: dynamic payload types are 96-127 (RFC 3551)")
-    ck = None
-    if method in pipeline.MODEL_SYSTEMS:
-        path = model or checkpoint.default_path()
-        if path is None:
-            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
-        ck = checkpoint.load(path, flush_denormals=True)
+    ck = pipeline.load_model(model, flush_denormals=True) if method in pipeline.MODEL_SYSTEMS else None
     try:
         r = rtp.Relay(lambda: pipeline.make_system(method, model=ck), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
                       payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout)

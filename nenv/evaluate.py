@@ -86,7 +86,7 @@ def run(
         if s not in pipeline.SYSTEMS:
             raise InputError(f"system {s!r} is not known: choose from {', '.join(pipeline.SYSTEMS)}")
     if any(s in pipeline.MODEL_SYSTEMS for s in systems):
-        model = pipeline._checkpoint(model)  # load once, fail early
+        model = pipeline.load_model(model)  # load once, fail early
     refs = [(Path(p).stem, prepare_reference(p)) for p in references]  # fail early, before any scoring
     rows: list[Row] = []
     clips: list[Clip] = []

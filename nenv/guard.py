@@ -83,6 +83,10 @@ class Decisions:
     novelty: np.ndarray  # distance to the nearest codebook cell
     cell: np.ndarray  # int, nearest codebook cell (the fallback used when rejected)
 
+    def head(self, n: int) -> "Decisions":
+        """The verdicts on the first ``n`` hops."""
+        return Decisions(*(getattr(self, f.name)[:n] for f in fields(Decisions)))
+
     @staticmethod
     def concat(parts: list["Decisions"]) -> "Decisions":
         if not parts:

@@ -26,7 +26,7 @@ from nenv.excitation import DC_POLE, WHITEN_ORDER, residual
 from nenv.features import narrowband_features
 from nenv.guard import Guard
 from nenv.pipeline import tail_padding
-from nenv.runtime import OutputGate
+from nenv.runtime import OutputGate, sanitize
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
 from nenv.synthesis import MAX_REFLECTION, AllPoleSynthesizer, isolation_sos, upsampler_taps
 
@@ -113,11 +113,8 @@ class MultiCallEngine:
     def feed(self, call_id: str, x: np.ndarray) -> None:
         """Queue 8 kHz samples for a call (processed by the next :meth:`step`)."""
         call = self._calls[call_id]
-        x = np.asarray(x, dtype=np.float64).reshape(-1)
-        finite = np.isfinite(x)
-        if not np.all(finite):
-            call.bad_samples += int(np.count_nonzero(~finite))
-            x = np.where(finite, x, 0.0)
+        x, bad = sanitize(x)
+        call.bad_samples += bad
         call.samples_in += x.size
         call.pending = np.concatenate([call.pending, x])
 

@@ -173,26 +173,29 @@ def _oracle(reference: np.ndarray | None, excitation: Method, model) -> System:
     return SourceFilterSystem(OracleEstimator(reference), excitation=excitation)
 
 
-def _checkpoint(model):
+def load_model(model=None, *, flush_denormals: bool = False):
+    """A loaded checkpoint: ``model`` as given (Checkpoint), loaded from a folder, or the default model."""
     from nenv import checkpoint
 
+    if isinstance(model, checkpoint.Checkpoint):
+        return model
     if model is None:
         model = checkpoint.default_path()
         if model is None:
             raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
-    return model if isinstance(model, checkpoint.Checkpoint) else checkpoint.load(model)
+    return checkpoint.load(model, flush_denormals=flush_denormals)
 
 
 def _neural(reference, excitation: Method, model) -> System:
     from nenv.estimators.neural import NeuralEstimator
 
-    return SourceFilterSystem(NeuralEstimator(_checkpoint(model)), excitation=excitation)
+    return SourceFilterSystem(NeuralEstimator(load_model(model)), excitation=excitation)
 
 
 def _codebook(reference, excitation: Method, model) -> System:
     from nenv.estimators.codebook import CodebookEstimator
 
-    return SourceFilterSystem(CodebookEstimator(_checkpoint(model).codebook), excitation=excitation)
+    return SourceFilterSystem(CodebookEstimator(load_model(model).codebook), excitation=excitation)
 
 
 # name -> factory(reference, excitation, model). Model-based systems take a checkpoint folder or object.

@@ -23,6 +23,18 @@ from nenv.settings import HOP_NB, NB_SR, WB_SR
 ALGORITHMIC_LATENCY_MS = 1000.0 * (HOP_NB / NB_SR + LATENCY / WB_SR)  # = 11.4375 ms
 
 
+def sanitize(x: np.ndarray) -> tuple[np.ndarray, int]:
+    """Samples as a flat float64 array with non-finite values replaced by 0, and how many were replaced.
+
+    One corrupt packet must not poison a call's filter state.
+    """
+    x = np.asarray(x, dtype=np.float64).reshape(-1)
+    finite = np.isfinite(x)
+    if np.all(finite):
+        return x, 0
+    return np.where(finite, x, 0.0), int(np.count_nonzero(~finite))
+
+
 class OutputGate:
     """What every engine does to its output: drop the first LATENCY samples, limit peaks, count."""
 
@@ -76,11 +88,8 @@ class CallEngine:
         """
         if self._closed:
             raise RuntimeError("this call has been flushed; start a new CallEngine")
-        x = np.asarray(x, dtype=np.float64).reshape(-1)
-        finite = np.isfinite(x)
-        if not np.all(finite):
-            self.bad_samples += int(np.count_nonzero(~finite))
-            x = np.where(finite, x, 0.0)
+        x, bad = sanitize(x)
+        self.bad_samples += bad
         self.samples_in += x.size
         buf = np.concatenate([self._pending, x]) if self._pending.size else x
         n_whole = (buf.size // HOP_NB) * HOP_NB
