@@ -47,3 +47,35 @@ def trained(synthetic_corpus, tmp_path_factory):
     r = recipe.load(None, overrides=[f'corpus="{synthetic_corpus}"', *SYNTHETIC_RECIPE])
     out = tmp_path_factory.mktemp("models") / "syn"
     return loop.train(r, out, cache_dir=str(tmp_path_factory.mktemp("cache")))
+
+
+def perturb_predictions(ck, blocks: dict, monkeypatch) -> None:
+    """Make ``ck.predict`` fail on chosen hops, one way per guard check.
+
+    blocks : {Check: hop indices}. NONFINITE puts inf in a cepstrum, LEVEL a +90 dB level,
+    UNSTABLE a resonance so sharp its reflection coefficient reaches 1, MISMATCH a telephone band
+    unlike the input's. Hops are counted across calls in order.
+    """
+    from nenv.guard import Check
+
+    original = ck.predict
+    pos = {"n": 0}
+
+    def perturbed(x):
+        ceps, level = original(x)
+        idx = np.arange(pos["n"], pos["n"] + x.shape[0])
+        pos["n"] += x.shape[0]
+        n = np.arange(1, ceps.shape[1] + 1)
+        for check, hops in blocks.items():
+            sel = np.isin(idx, list(hops))
+            if check == Check.NONFINITE:
+                ceps[sel, 2] = np.inf
+            elif check == Check.LEVEL:
+                level[sel] = 90.0
+            elif check == Check.UNSTABLE:
+                ceps[sel] = 2 * 0.99995**n * np.cos(2 * np.pi * 5000 / 16000 * n) / n * 40
+            elif check == Check.MISMATCH:
+                ceps[sel, :8] = -ceps[sel, :8] * 3
+        return ceps, level
+
+    monkeypatch.setattr(ck, "predict", perturbed)

@@ -13,7 +13,7 @@ from nenv import checkpoint, records
 from nenv.audit import rerun, table
 from nenv.cli import app
 from nenv.errors import InputError
-from tests.conftest import ARCTIC
+from tests.conftest import ARCTIC, perturb_predictions
 
 pytestmark = pytest.mark.skipif(checkpoint.default_path() is None, reason="no default model")
 runner = CliRunner()
@@ -138,28 +138,8 @@ def test_each_check_tripped_lands_in_the_record_with_its_reason(tmp_path, monkey
     ck = checkpoint.load(checkpoint.default_path())
     _, ref = arctic_refs[0]
     x = channel.telephone(ref, sr=16000)
-    blocks = {"nonfinite": range(40, 45), "level": range(80, 85), "unstable": range(120, 125), "mismatch": range(160, 165)}
-    original = ck.predict
-    pos = {"n": 0}
-
-    def perturbed(inp):
-        ceps, level = original(inp)
-        idx = np.arange(pos["n"], pos["n"] + inp.shape[0])
-        pos["n"] += inp.shape[0]
-        n_c = ceps.shape[1]
-        for name, hops in blocks.items():
-            sel = np.isin(idx, list(hops))
-            if name == "nonfinite":
-                ceps[sel, 2] = np.inf
-            elif name == "level":
-                level[sel] = 90.0
-            elif name == "unstable":
-                ceps[sel] = 2 * 0.99995 ** np.arange(1, n_c + 1) * np.cos(2 * np.pi * 5000 / 16000 * np.arange(1, n_c + 1)) / np.arange(1, n_c + 1) * 40
-            else:
-                ceps[sel, :8] = -ceps[sel, :8] * 3
-        return ceps, level
-
-    monkeypatch.setattr(ck, "predict", perturbed)
+    blocks = {Check.NONFINITE: range(40, 45), Check.LEVEL: range(80, 85), Check.UNSTABLE: range(120, 125), Check.MISMATCH: range(160, 165)}
+    perturb_predictions(ck, blocks, monkeypatch)
     from nenv.cli import _attach_record, _close_record
 
     system = pipeline.make_system("neural", model=ck)
@@ -169,9 +149,9 @@ def test_each_check_tripped_lands_in_the_record_with_its_reason(tmp_path, monkey
     _close_record(writer, system, source="perturbed", group="lab", n_hops=n_hops, seconds=x.size / 8000)
     rec = records.read([tmp_path / "r.jsonl"])
     by_hop = {r["hop"]: r for r in rec.rejects}
-    for name, hops in blocks.items():
+    for check, hops in blocks.items():
         for h in hops:
-            assert name in by_hop[h]["reasons"], (name, h, by_hop.get(h))
+            assert check.name.lower() in by_hop[h]["reasons"], (check, h, by_hop.get(h))
     assert rec.summaries[0]["rejected"] == len(rec.rejects)
     assert rec.summaries[0]["by_reason"][Check.LEVEL.name.lower()] >= 5
 

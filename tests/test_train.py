@@ -15,6 +15,7 @@ from nenv.errors import ConfigError  # noqa: E402
 from nenv.guard import Check  # noqa: E402
 from nenv.train import loop, recipe  # noqa: E402
 from tests import synthetic  # noqa: E402
+from tests.conftest import perturb_predictions  # noqa: E402
 
 @pytest.fixture(scope="session")
 def held_out():
@@ -145,27 +146,7 @@ def test_guard_falls_back_on_exactly_the_perturbed_hops(trained, held_out, monke
     _, base = _decisions(ck, nb)
     n = base.rejected.size
     blocks = {Check.NONFINITE: range(40, 50), Check.LEVEL: range(80, 90), Check.UNSTABLE: range(120, 130), Check.MISMATCH: range(160, 170)}
-    original = ck.predict
-    calls = {"start": 0}
-
-    def perturbed(x):
-        ceps, level = original(x)
-        idx = np.arange(calls["start"], calls["start"] + x.shape[0])
-        calls["start"] += x.shape[0]
-        for check, hops in blocks.items():
-            sel = np.isin(idx, list(hops))
-            if check == Check.NONFINITE:
-                ceps[sel, 3] = np.nan
-            elif check == Check.LEVEL:
-                level[sel] = 80.0
-            elif check == Check.UNSTABLE:  # a resonance so sharp its reflection coefficient reaches 1
-                n_c = ceps.shape[1]
-                ceps[sel] = 2 * 0.99995 ** np.arange(1, n_c + 1) * np.cos(2 * np.pi * 5000 / 16000 * np.arange(1, n_c + 1)) / np.arange(1, n_c + 1) * 40
-            elif check == Check.MISMATCH:  # a telephone band that looks nothing like the input
-                ceps[sel, :8] = -ceps[sel, :8] * 3
-        return ceps, level
-
-    monkeypatch.setattr(ck, "predict", perturbed)
+    perturb_predictions(ck, blocks, monkeypatch)
     out, dec = _decisions(ck, nb)
     assert dec.rejected.size == n
     for check, hops in blocks.items():
