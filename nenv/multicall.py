@@ -28,7 +28,7 @@ from nenv.guard import Guard
 from nenv.pipeline import tail_padding
 from nenv.runtime import OutputGate, sanitize
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
-from nenv.synthesis import MAX_REFLECTION, AllPoleSynthesizer, isolation_sos, upsampler_taps
+from nenv.synthesis import MAX_REFLECTION, block_synthesis, isolation_sos, upsampler_taps
 
 
 @dataclass
@@ -54,7 +54,6 @@ class MultiCallEngine:
         self._iso = isolation_sos()
         self._ids: list[str] = []
         self._calls: dict[str, _Call] = {}
-        self._helper = AllPoleSynthesizer(order=self.p)  # index tables for the synthesis memory
         n_in = checkpoint.features.n_inputs
         self._state = {
             "nb_hist": np.zeros((0, WIN_NB - HOP_NB)),
@@ -208,29 +207,6 @@ class MultiCallEngine:
         return win @ self._up_taps[::-1]
 
     def _synthesize(self, rows: np.ndarray, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
-        """All-pole synthesis of one hop for B calls: the block method of AllPoleSynthesizer, batched."""
-        B, n_sub, length = u.shape
-        p = self.p
-        a = a_sub.reshape(B * n_sub, p + 1)
-        both = np.zeros((2, B * n_sub, length))
-        both[0, :, 0] = 1.0
-        both[1] = g_sub.reshape(-1, 1) * u.reshape(B * n_sub, length)
-        for t in range(1, length):
-            kk = min(t, p)
-            both[:, :, t] -= np.einsum("jk,bjk->bj", a[:, 1 : kk + 1], both[:, :, t - 1 :: -1][:, :, :kk])
-        h, zs = both[0], both[1]
-        K = a[:, self._helper._idx] * self._helper._mask
-        r = np.arange(p)
-        G = h[:, length - 1 - r[:, None] - r[None, :]]
-        F = -np.matmul(G, K).reshape(B, n_sub, p, p)
-        Z = zs[:, length - 1 - r].reshape(B, n_sub, p)
-        states = np.empty((B, n_sub, p))
-        s = self._state["past"][rows]
-        for j in range(n_sub):
-            states[:, j] = s
-            s = Z[:, j] + np.matmul(F[:, j], s[:, :, None])[:, :, 0]
-        self._state["past"][rows] = s
-        v = -np.matmul(K, states.reshape(B * n_sub, p, 1))[:, :, 0]
-        n_fft = 1 << int(np.ceil(np.log2(2 * length)))
-        zi = np.fft.irfft(np.fft.rfft(h, n_fft, axis=1) * np.fft.rfft(v, n_fft, axis=1), n_fft, axis=1)[:, :length]
-        return (zs + zi).reshape(B, n_sub * length)
+        """All-pole synthesis of one hop for B calls, each with its own filter memory."""
+        y, self._state["past"][rows] = block_synthesis(u, a_sub, g_sub, self._state["past"][rows])
+        return y.reshape(u.shape[0], -1)

@@ -190,38 +190,69 @@ class AllPoleSynthesizer:
         return out
 
     def _block(self, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
-        """The same recursion, exactly, with the per-sub-frame work vectorised.
+        """The same recursion, exactly, with the per-sub-frame work vectorised (see :func:`block_synthesis`)."""
+        y, past = block_synthesis(u[None], a_sub[None], g_sub[None], self._past[None])
+        self._past = past[0]
+        return y[0]
 
-        Each sub-frame's output is ``h * (g u + v)``: ``h`` its filter's impulse
-        response (all sub-frames at once), ``v = -K s`` the equivalent input of the
-        memory ``s`` (last ``order`` outputs). Only the memory update
-        ``s' = Z + F s`` (Z: last outputs of the zero-state response, F = -G K with
-        G built from h) runs sub-frame by sub-frame, as a small matrix-vector product.
-        """
-        n_sub, length = u.shape
-        p = self.order
-        # impulse responses and zero-state responses of all sub-frames, side by side
-        both = np.zeros((2, n_sub, length))
-        both[0, :, 0] = 1.0
-        both[1] = g_sub[:, None] * u
-        for t in range(1, length):
-            k = min(t, p)
-            both[:, :, t] -= np.einsum("jk,bjk->bj", a_sub[:, 1 : k + 1], both[:, :, t - 1 :: -1][:, :, :k])
-        both[1, :, 0] = g_sub * u[:, 0]
-        h, zs = both[0], both[1]
-        n_fft = 1 << int(np.ceil(np.log2(2 * length)))
-        hf = np.fft.rfft(h, n_fft, axis=1)
-        K = a_sub[:, self._idx] * self._mask  # v[m] = -sum_i K[m, i] s[i]
-        r = np.arange(p)
-        G = h[:, length - 1 - r[:, None] - r[None, :]]  # last outputs' response to v
-        F = list(-np.einsum("jrm,jmi->jri", G, K))
-        Z = list(zs[:, length - 1 - r])
-        states = np.empty((n_sub, p))
-        s = self._past
-        for j in range(n_sub):
-            states[j] = s
-            s = Z[j] + F[j].dot(s)
-        self._past = s.copy()
-        v = -np.einsum("jmi,ji->jm", K, states)
-        zi = np.fft.irfft(hf * np.fft.rfft(v, n_fft, axis=1), n_fft, axis=1)[:, :length]
-        return zs + zi
+
+@lru_cache(maxsize=None)
+def _memory_index(order: int) -> tuple[np.ndarray, np.ndarray]:
+    """Index table and mask of K: the memory's equivalent input is v[m] = -sum_i a[m+1+i] s[i]."""
+    i = np.arange(order)
+    idx = i[:, None] + 1 + i[None, :]
+    return np.minimum(idx, order), idx <= order
+
+
+def block_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """All-pole synthesis of consecutive sub-frames for B independent streams (calls), exactly.
+
+    Each sub-frame's output is ``h * (g u + v)``: ``h`` its filter's impulse response
+    (all sub-frames at once), ``v = -K s`` the equivalent input of the memory ``s`` (the
+    last ``order`` outputs). Only the memory update ``s' = Z + F s`` (Z: last outputs of
+    the zero-state response, F = -G K with G built from h) runs sub-frame by sub-frame,
+    as a small matrix-vector product per stream.
+
+    Parameters
+    ----------
+    u : np.ndarray [shape=(B, J, L)], excitation of J sub-frames of L samples (L >= 2 * order)
+    a_sub : np.ndarray [shape=(B, J, order+1)]; g_sub : np.ndarray [shape=(B, J)]
+    past : np.ndarray [shape=(B, order)], y[n-1], ..., y[n-order] of each stream
+
+    Returns
+    -------
+    y : np.ndarray [shape=(B, J, L)]; past : np.ndarray [shape=(B, order)], updated
+    """
+    B, J, length = u.shape
+    p = a_sub.shape[-1] - 1
+    a = a_sub.reshape(B * J, p + 1)
+    # impulse responses and zero-state responses of all sub-frames, side by side
+    both = np.zeros((2, B * J, length))
+    both[0, :, 0] = 1.0
+    both[1] = g_sub.reshape(-1, 1) * u.reshape(B * J, length)
+    for t in range(1, length):
+        k = min(t, p)
+        both[:, :, t] -= np.einsum("jk,bjk->bj", a[:, 1 : k + 1], both[:, :, t - 1 :: -1][:, :, :k])
+    h, zs = both[0], both[1]
+    idx, mask = _memory_index(p)
+    K = a[:, idx] * mask
+    r = np.arange(p)
+    G = h[:, length - 1 - r[:, None] - r[None, :]]  # last outputs' response to v
+    F = -np.matmul(G, K).reshape(B, J, p, p)
+    Z = zs[:, length - 1 - r].reshape(B, J, p)
+    states = np.empty((B, J, p))
+    s = past.copy()
+    if B == 1:  # one stream: plain matrix-vector products are cheaper per step
+        F1, Z1, s1 = list(F[0]), list(Z[0]), s[0]
+        for j in range(J):
+            states[0, j] = s1
+            s1 = Z1[j] + F1[j].dot(s1)
+        s = s1[None]
+    else:
+        for j in range(J):
+            states[:, j] = s
+            s = Z[:, j] + np.matmul(F[:, j], s[:, :, None])[:, :, 0]
+    v = -np.matmul(K, states.reshape(B * J, p, 1))[:, :, 0]
+    n_fft = 1 << int(np.ceil(np.log2(2 * length)))
+    zi = np.fft.irfft(np.fft.rfft(h, n_fft, axis=1) * np.fft.rfft(v, n_fft, axis=1), n_fft, axis=1)[:, :length]
+    return (zs + zi).reshape(B, J, length), s
