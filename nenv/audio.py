@@ -12,6 +12,8 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from contextlib import contextmanager
+from typing import Callable, Iterator
 
 import numpy as np
 
@@ -54,32 +56,112 @@ def load(path: str | os.PathLike, *, channel: int | None = None, mix: bool = Fal
         Missing, unreadable, empty, multichannel without a choice, non-finite samples,
         or a rate outside ``SUPPORTED_SR``.
     """
-    import soundfile as sf
+    with Reader(path, channel=channel, mix=mix) as r:
+        y = np.concatenate(list(r.blocks())) if r.frames else np.zeros(0)
+    if y.size == 0:
+        raise InputError(f"'{path}' holds no samples")
+    return Audio(np.ascontiguousarray(y), r.sr)
 
-    p = Path(path)
-    if not p.exists():
-        raise InputError(f"input file '{p}' does not exist")
-    if p.is_dir():
-        raise InputError(f"'{p}' is a folder, not an audio file")
+
+class Reader:
+    """An audio file read block by block as validated mono float64 (bounded memory for any length).
+
+    Opening checks everything that can be checked up front (exists, is a file,
+    is audio, has samples, has a supported rate, a channel choice for
+    multichannel files); :meth:`blocks` checks each block for NaN/inf and names
+    the time of the first bad sample. ``truncated`` holds a note when a WAV
+    header promises more samples than the file holds (the samples present are
+    used).
+    """
+
+    def __init__(self, path: str | os.PathLike, *, channel: int | None = None, mix: bool = False):
+        import soundfile as sf
+
+        p = Path(path)
+        self.path = p
+        if not p.exists():
+            raise InputError(f"input file '{p}' does not exist")
+        if p.is_dir():
+            raise InputError(f"'{p}' is a folder, not an audio file")
+        if not os.access(p, os.R_OK):
+            raise InputError(f"cannot read '{p}': permission denied")
+        if p.stat().st_size == 0:
+            raise InputError(f"'{p}' is empty (0 bytes)")
+        try:
+            self._fh = sf.SoundFile(str(p))
+        except Exception as e:  # soundfile raises LibsndfileError, RuntimeError, TypeError
+            raise InputError(f"cannot read '{p}' as audio: {_first_line(e)}") from e
+        try:
+            self.sr = int(self._fh.samplerate)
+            self.frames = int(self._fh.frames)
+            n_ch = self._fh.channels
+            if self.frames <= 0:
+                raise InputError(f"'{p}' holds no samples (a header without audio data)")
+            if mix:
+                self._pick = None
+            elif channel is not None:
+                if not 0 <= channel < n_ch:
+                    raise InputError(f"channel={channel} does not exist: '{p}' has {n_ch} channel(s), numbered from 0")
+                self._pick = channel
+            elif n_ch > 1:
+                raise InputError(f"'{p}' has {n_ch} channels: choose one with --channel N (0..{n_ch - 1}) or average them with --mix")
+            else:
+                self._pick = 0
+            if not SUPPORTED_SR[0] <= self.sr <= SUPPORTED_SR[1]:
+                raise InputError(f"'{p}': sr={self.sr} Hz is outside the supported range {SUPPORTED_SR[0]}..{SUPPORTED_SR[1]} Hz")
+            self.truncated = _wav_truncation(p, self.frames)
+        except BaseException:
+            self._fh.close()
+            raise
+        self.frames_read = 0
+
+    def blocks(self, size: int = 65536) -> Iterator[np.ndarray]:
+        """Yield the whole file as mono float64 blocks of up to ``size`` samples."""
+        while True:
+            try:
+                data = self._fh.read(size, dtype="float64", always_2d=True)
+            except Exception as e:
+                raise InputError(f"cannot read '{self.path}' after {self.frames_read / self.sr:.2f} s: {_first_line(e)} (the file is damaged)") from e
+            if data.shape[0] == 0:
+                return
+            y = data.mean(axis=1) if self._pick is None else data[:, self._pick]
+            finite = np.isfinite(y)
+            if not np.all(finite):
+                at = (self.frames_read + int(np.argmin(finite))) / self.sr
+                raise InputError(f"'{self.path}': sample(s) are NaN or infinite (first at {at:.3f} s)")
+            self.frames_read += y.size
+            yield np.ascontiguousarray(y)
+
+    def close(self) -> None:
+        self._fh.close()
+
+    def __enter__(self) -> "Reader":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+def _wav_truncation(path: Path, frames: int) -> str | None:
+    """A note if a RIFF/WAVE header declares more audio than the file holds, else None."""
     try:
-        data, sr = sf.read(str(p), dtype="float64", always_2d=True)
-    except Exception as e:  # soundfile raises LibsndfileError, RuntimeError, TypeError
-        raise InputError(f"cannot read '{p}' as audio: {_first_line(e)}") from e
-    if data.shape[0] == 0:
-        raise InputError(f"'{p}' holds no samples")
-    n_ch = data.shape[1]
-    if mix:
-        y = data.mean(axis=1)
-    elif channel is not None:
-        if not 0 <= channel < n_ch:
-            raise InputError(f"channel={channel} does not exist: '{p}' has {n_ch} channel(s), numbered from 0")
-        y = data[:, channel]
-    elif n_ch > 1:
-        raise InputError(f"'{p}' has {n_ch} channels: choose one with --channel N (0..{n_ch - 1}) or average them with --mix")
-    else:
-        y = data[:, 0]
-    validate(y, sr=int(sr), name=str(p))
-    return Audio(np.ascontiguousarray(y), int(sr))
+        with open(path, "rb") as fh:
+            head = fh.read(1 << 16)
+    except OSError:
+        return None
+    if len(head) < 12 or head[:4] != b"RIFF" or head[8:12] != b"WAVE":
+        return None
+    pos, block_align = 12, 0
+    while pos + 8 <= len(head):
+        cid, size = head[pos : pos + 4], int.from_bytes(head[pos + 4 : pos + 8], "little")
+        if cid == b"fmt " and pos + 22 <= len(head):
+            block_align = int.from_bytes(head[pos + 20 : pos + 22], "little")
+        if cid == b"data":
+            if block_align and size not in (0, 0xFFFFFFFF) and size // block_align > frames:
+                return f"the header promises {size // block_align} samples, the file holds {frames}: it is truncated (the samples present are used)"
+            return None
+        pos += 8 + size + (size & 1)
+    return None
 
 
 def validate(y: np.ndarray, *, sr: int, name: str = "signal") -> None:
@@ -177,15 +259,29 @@ def write(path: str | os.PathLike, y: np.ndarray, *, sr: int, subtype: str | Non
     OutputError
         The folder does not exist, the extension is unknown, or writing failed.
     """
+    with writer(path, sr=sr, subtype=subtype) as put:
+        put(y)
+
+
+@contextmanager
+def writer(path: str | os.PathLike, *, sr: int, subtype: str | None = None) -> Iterator[Callable[[np.ndarray], None]]:
+    """Write a mono file block by block, atomically: yields ``put(y)``; the file appears only if the block succeeds.
+
+    Same format rules as :func:`write`; 16-bit output goes through :func:`to_int16`.
+    """
     import soundfile as sf
 
     p = check_output(path, suffixes=AUDIO_SUFFIXES)
     ext = p.suffix.lower()
+    sub = subtype or _SUBTYPES[ext]
     with atomic_output(p) as tmp:
-        sub = subtype or _SUBTYPES[ext]
-        data = to_int16(y) if sub == "PCM_16" else np.clip(y, -1.0, 1.0)
         with open(tmp, "wb") as fh:
-            sf.write(fh, data, sr, subtype=sub, format=ext[1:].upper())
+            with sf.SoundFile(fh, "w", samplerate=sr, channels=1, subtype=sub, format=ext[1:].upper()) as out:
+
+                def put(y: np.ndarray) -> None:
+                    out.write(to_int16(y) if sub == "PCM_16" else np.clip(y, -1.0, 1.0))
+
+                yield put
             fh.flush()
             os.fsync(fh.fileno())
 

@@ -5,7 +5,6 @@ from __future__ import annotations
 import functools
 import os
 import sys
-import time
 from importlib import resources
 from pathlib import Path
 from typing import Annotated, Callable, Optional
@@ -53,27 +52,6 @@ def _progress():
     return Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"), TimeRemainingColumn(), transient=True, disable=not sys.stderr.isatty())
 
 
-def _load_narrowband(path: Path, *, channel: Optional[int], mix: bool, resample: bool):
-    from nenv import audio
-    from nenv.settings import NB_SR
-
-    a = audio.load(path, channel=channel, mix=mix)
-    if audio.is_silent(a.y):
-        raise InputError(f"'{path}' is digital silence (every sample is zero): there is nothing to extend")
-    if a.sr == NB_SR:
-        return a.y
-    if resample:
-        if a.sr > NB_SR:
-            _say(f"nenv: note: resampling {a.sr} Hz to 8 kHz; this does not simulate a telephone channel (use 'nenv degrade' for that)")
-        return audio.resample(a.y, orig_sr=a.sr, target_sr=NB_SR)
-    if a.sr >= 16000:
-        raise InputError(
-            f"'{path}' is sampled at {a.sr} Hz, which looks like wideband audio; extend takes 8 kHz telephone speech. "
-            f"Make a telephone version with 'nenv degrade {path} OUT.wav', or pass --resample to resample it to 8 kHz as it is"
-        )
-    raise InputError(f"sr={a.sr} Hz is not supported here: pass 8000 Hz narrowband input or add --resample")
-
-
 ChannelOpt = Annotated[Optional[int], typer.Option("--channel", min=0, help="Channel of a multichannel file to use (0 = first).")]
 MixOpt = Annotated[bool, typer.Option("--mix", help="Average all channels of a multichannel file.")]
 
@@ -109,21 +87,33 @@ def degrade(
 @app.command()
 @_guarded
 def extend(
-    narrowband: Annotated[Path, typer.Argument(help="Telephone speech at 8 kHz (wav, flac, ogg).")],
-    wideband: Annotated[Path, typer.Argument(help="Where to write the 16 kHz result (.wav, .flac).")],
+    inputs: Annotated[list[Path], typer.Argument(help="8 kHz telephone speech: one file, or folders (searched recursively), files and lists (.txt, one path per line).", show_default=False)],
+    output: Annotated[Path, typer.Argument(help="The 16 kHz result (.wav, .flac) for one input file; a folder (mirroring the input layout) otherwise.", show_default=False)],
     method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended, or oracle (needs --reference).")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder made by 'nenv train' (default: $NENV_MODEL, else the shipped model).")] = None,
     excitation: Annotated[str, typer.Option(help="Excitation extension for source-filter systems: rectify, fold or modulate.")] = "rectify",
-    reference: Annotated[Optional[Path], typer.Option(help="Wideband original, for --method oracle only.")] = None,
-    figure: Annotated[Optional[Path], typer.Option(help="Also write a spectrogram figure (.png, .svg, .pdf): input vs output.")] = None,
-    resample: Annotated[bool, typer.Option("--resample", help="Accept input at another rate and resample it to 8 kHz.")] = False,
+    reference: Annotated[Optional[Path], typer.Option(help="Wideband original, for --method oracle only (one file).")] = None,
+    figure: Annotated[Optional[Path], typer.Option(help="Also write a spectrogram figure (.png, .svg, .pdf): input vs output (one file).")] = None,
+    resample: Annotated[bool, typer.Option("--resample", help="Accept input at another rate (4-192 kHz) and resample it to 8 kHz.")] = False,
     channel: ChannelOpt = None,
     mix: MixOpt = False,
     record: Annotated[Optional[Path], typer.Option(help="Append the guard's record (rejected hops, summary) to this JSON Lines file (neural only).")] = None,
     group: Annotated[Optional[str], typer.Option(help="Speaker group or codec label stored with the record.")] = None,
+    jobs: Annotated[int, typer.Option(min=0, help="Folders and lists: files extended in parallel (0 = one per core).")] = 0,
+    overwrite: Annotated[bool, typer.Option("--overwrite", help="Folders and lists: redo outputs that already exist (default: skip them).")] = False,
+    format: Annotated[str, typer.Option("--format", help="Folders and lists: output format, wav or flac.")] = "wav",
+    scheduler: Annotated[Optional[str], typer.Option(help="Folders and lists: run on this dask.distributed scheduler (e.g. tcp://10.0.0.5:8786) instead of local processes.")] = None,
 ) -> None:
-    """Extend 8 kHz telephone speech to 16 kHz wideband speech."""
-    _extend(narrowband, wideband, method=method, model=model, excitation=excitation, reference=reference, figure=figure, resample=resample, channel=channel, mix=mix, record=record, group=group)
+    """Extend 8 kHz telephone speech to 16 kHz wideband speech: one file, or whole folders in parallel."""
+    from nenv import batch
+
+    opts = batch.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, resample=resample, channel=channel, mix=mix, group=group)
+    if batch.is_batch(inputs):
+        if reference is not None or figure is not None:
+            raise InputError("--reference and --figure work on one input file at a time")
+        _extend_many(inputs, output, opts, jobs=jobs, overwrite=overwrite, suffix="." + format.lower(), scheduler=scheduler, record=record)
+    else:
+        _extend_one(inputs[0], output, opts, reference=reference, figure=figure, record=record)
 
 
 def _default_method(model: Optional[Path]) -> str:
@@ -132,105 +122,72 @@ def _default_method(model: Optional[Path]) -> str:
     return "neural" if model is not None or default_path() is not None else "imaging"
 
 
-def _attach_record(system, path: Optional[Path], *, source: str, group: Optional[str], n_hops: int):
-    """Write the guard's rejected hops of ``system`` to ``path`` as they happen; returns the writer."""
-    if path is None:
-        return None
-    from nenv.estimators.neural import NeuralEstimator
-
-    est = getattr(system, "estimator", None)
-    if not isinstance(est, NeuralEstimator) or est.guard is None:
-        raise InputError("--record needs the neural method (only the guard's decisions are recorded)")
-    from nenv.records import RecordWriter
-
-    writer = RecordWriter(path, checkpoint=est.checkpoint, context=est.checkpoint.features.context)
-
-    def listen(first_hop, dec, x, a_nb):
-        keep = max(0, min(dec.rejected.size, n_hops - first_hop))
-        if keep:
-            writer.hops(source=source, group=group, first_hop=first_hop, dec=dec.head(keep), x=x[:keep], a_nb=a_nb[:keep])
-
-    est.listener = listen
-    return writer
+FIGURE_MAX_S = 600.0  # a spectrogram of more than 10 minutes is unreadable (and costly)
 
 
-def _close_record(writer, system, *, source: str, group: Optional[str], n_hops: int, seconds: float, output: Optional[str] = None) -> None:
-    if writer is None:
-        return
-    dec = system.estimator.record().head(n_hops)
-    writer.summary(source=source, group=group, dec=dec, seconds=seconds, output=output)
-    writer.close()
-    _say(f"appended the guard record to {writer.path}")
-
-
-def _extend(narrowband, wideband, *, method, model, excitation, reference, figure, resample, channel, mix, record=None, group=None) -> None:
-    from nenv import audio, pipeline
-    from nenv.excitation import METHODS
+def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, record=None) -> None:
+    from nenv import audio, batch
     from nenv.figures import FIGURE_SUFFIXES, spectrogram_grid
     from nenv.files import check_output
 
-    out = check_output(wideband, suffixes=(".wav", ".flac"))
+    check_output(dst, suffixes=batch.OUTPUT_SUFFIXES)
     if figure is not None:
         check_output(figure, suffixes=FIGURE_SUFFIXES)
-    method = method or _default_method(model)
-    if method not in pipeline.SYSTEMS:
-        raise InputError(f"--method {method} is not known: choose one of {', '.join(pipeline.SYSTEMS)}")
-    if excitation not in METHODS:
-        raise InputError(f"--excitation {excitation} is not known: choose one of {', '.join(METHODS)}")
-    x = _load_narrowband(narrowband, channel=channel, mix=mix, resample=resample)
-    ref = None
-    if method == "oracle":
-        if reference is None:
-            raise InputError("--method oracle needs --reference WIDEBAND.wav (the original the narrowband input was made from)")
-        from nenv.evaluate import prepare_reference
-
-        ref = prepare_reference(reference)
-        ref = ref * _match_gain(ref, x)
-    system = pipeline.make_system(method, reference=ref, excitation=excitation, model=model)
-    n_hops = -(-x.size // 80)
-    writer = _attach_record(system, record, source=str(narrowband), group=group, n_hops=n_hops)
-    t0 = time.perf_counter()
     with _progress() as bar:
-        task = bar.add_task(f"extending {narrowband.name}", total=x.size)
-        result = pipeline.extend(x, system=system, on_progress=lambda done, total: bar.update(task, completed=done))
-    elapsed = time.perf_counter() - t0
-    audio.write(out, result.y, sr=result.sr)
-    _close_record(writer, system, source=str(narrowband), group=group, n_hops=n_hops, seconds=x.size / 8000, output=str(Path(out).resolve()))
-    dur = x.size / 8000
-    _say(f"wrote {out} (16 kHz, {dur:.2f} s, method={method}, {dur / max(elapsed, 1e-9):.0f}x real time)")
-    if result.n_limited:
-        _say(f"nenv: warning: {result.n_limited} sample(s) exceeded -0.1 dBFS and were limited; lower the input level")
-    record = getattr(getattr(system, "estimator", None), "record", None)
+        task = bar.add_task(f"extending {src.name}", total=None)
+        res = batch.extend_file(src, dst, opts, reference=reference, record=record, on_progress=lambda done, total: bar.update(task, completed=done, total=total))
+    for note in res.notes:
+        _say(f"nenv: note: {note}")
     if record is not None:
-        dec = record()
-        if dec.rejected.size:
-            from nenv.guard import reason_names
-
-            counts: dict[str, int] = {}
-            for mask in dec.reasons[dec.rejected]:
-                for name in reason_names(int(mask)):
-                    counts[name] = counts.get(name, 0) + 1
-            if counts:
-                detail = ", ".join(f"{k} {v}" for k, v in sorted(counts.items()))
-                _say(f"guard: {int(dec.rejected.sum())} of {dec.rejected.size} hops ({100 * dec.rejected.mean():.1f}%) fell back to the codebook ({detail})")
-            else:
-                _say(f"guard: all {dec.rejected.size} hops passed; none fell back to the codebook")
+        _say(f"appended the guard record to {record}")
+    _say(f"wrote {dst} (16 kHz, {res.seconds:.2f} s, method={opts.method}, {res.seconds / max(res.wall_s, 1e-9):.0f}x real time)")
+    if res.limited:
+        _say(f"nenv: warning: {res.limited} sample(s) exceeded -0.1 dBFS and were limited; lower the input level")
+    if res.hops:
+        if res.rejected:
+            detail = ", ".join(f"{k} {v}" for k, v in res.by_reason.items())
+            _say(f"guard: {res.rejected} of {res.hops} hops ({100 * res.rejected / res.hops:.1f}%) fell back to the codebook ({detail})")
+        else:
+            _say(f"guard: all {res.hops} hops passed; none fell back to the codebook")
     if figure is not None:
-        up = audio.resample(x, orig_sr=8000, target_sr=16000)
-        spectrogram_grid([[("input (8 kHz, shown at 16 kHz)", up), (f"output: {method}", result.y)]], figure, title=narrowband.name)
+        if res.seconds > FIGURE_MAX_S:
+            _say(f"nenv: note: no figure: the input is longer than {FIGURE_MAX_S / 60:.0f} min")
+            return
+        x = audio.load(src, channel=opts.channel, mix=opts.mix)
+        up = audio.resample(x.y, orig_sr=x.sr, target_sr=16000)
+        spectrogram_grid([[("input (shown at 16 kHz)", up), (f"output: {opts.method}", audio.load(dst).y)]], figure, title=src.name)
         _say(f"wrote {figure}")
 
 
-def _match_gain(ref, x) -> float:
-    """Gain that brings a reference to the narrowband input's level (the oracle needs both alike)."""
-    import numpy as np
+def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: bool, suffix: str, scheduler: Optional[str], record: Optional[Path]) -> None:
+    from nenv import batch
+    from nenv.files import write_text
 
-    from nenv import channel as chan
+    if (out.exists() and not out.is_dir()) or (not out.exists() and out.suffix.lower() in batch.OUTPUT_SUFFIXES):
+        raise InputError(f"'{out}' looks like a file: with folders, lists or several inputs the output must be a folder")
+    work = batch.plan(inputs, out, suffix=suffix)
+    out.mkdir(parents=True, exist_ok=True)
+    n_cpu = os.cpu_count() or 1
+    where = f"scheduler {scheduler}" if scheduler else f"{min(jobs or n_cpu, len(work))} process(es)"
+    _say(f"extending {len(work)} file(s) into {out} on {where}")
+    with _progress() as bar:
+        task = bar.add_task("extending", total=len(work))
 
-    nb_of_ref = chan.telephone(ref, sr=16000, level_dbov=None)
-    n = min(nb_of_ref.size, x.size)
-    num = float(np.dot(nb_of_ref[:n], nb_of_ref[:n]))
-    return float(np.sqrt(np.dot(x[:n], x[:n]) / num)) if num > 0 else 1.0
+        def done(r):
+            bar.advance(task)
+            if r.status == "failed":
+                bar.console.print(f"nenv: failed: {r.source}: {r.message}") if bar.console.is_terminal else _say(f"nenv: failed: {r.source}: {r.message}")
+
+        summ = batch.run(work, opts, workers=jobs, scheduler=scheduler, overwrite=overwrite, record=record, on_result=done)
+    write_text(out / batch.REPORT_NAME, summ.to_csv())
+    files_h, audio_h = summ.throughput()
+    typer.echo(
+        f"done {summ.count('done')}, skipped {summ.count('skipped')} (output exists), failed {summ.count('failed')}; "
+        f"{summ.audio_s / 3600:.3f} h of audio in {summ.wall_s:.1f} s = {files_h:.0f} files/h, {audio_h:.1f} h of audio per hour"
+    )
+    _say(f"wrote {out / batch.REPORT_NAME}")
+    if summ.count("failed"):
+        raise typer.Exit(1)
 
 
 @app.command()
@@ -281,11 +238,12 @@ def demo(
     out: Annotated[Path, typer.Option(help="Folder for the demo output (created if missing).")] = Path("nenv-demo"),
 ) -> None:
     """Extend the bundled demo call (an invented order confirmation) and draw input vs output."""
+    from nenv import batch
+
     out.mkdir(parents=True, exist_ok=True)
     with resources.as_file(resources.files("nenv") / "data" / "demo" / DEMO_CLIP) as clip:
         _say(f"demo input: {clip} (8 kHz, G.711 mu-law telephone speech; invented scenario)")
-        _extend(clip, out / "order_confirmation_16k.wav", method=None, model=None, excitation="rectify", reference=None,
-                figure=out / "order_confirmation.png", resample=False, channel=None, mix=False)
+        _extend_one(clip, out / "order_confirmation_16k.wav", batch.Options(method=_default_method(None)), figure=out / "order_confirmation.png")
     _say("listen at a moderate level: the added high band is estimated, not recorded")
 
 

@@ -9,7 +9,8 @@ from typing import Annotated, Optional
 
 import typer
 
-from nenv.cli import _attach_record, _close_record, _default_method, _guarded, _say, app
+from nenv.batch import attach_record, close_record
+from nenv.cli import _default_method, _guarded, _say, app
 from nenv.errors import InputError
 
 class _Terminate(Exception):
@@ -47,7 +48,7 @@ def stream(
     if method in pipeline.MODEL_SYSTEMS:
         model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
     engine = CallEngine(pipeline.make_system(method, model=model, excitation=excitation))
-    writer = _attach_record(engine.system, record, source=call_id, group=group, n_hops=2**62)
+    writer = attach_record(engine.system, record, source=call_id, group=group, n_hops=2**62)
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()
 
@@ -84,7 +85,7 @@ def stream(
     if y.size:
         out.write(to_int16(y).astype("<i2").tobytes())
     out.flush()
-    _close_record(writer, engine.system, source=call_id, group=group, n_hops=-(-engine.samples_in // 80), seconds=engine.samples_in / 8000)
+    close_record(writer, engine.system, source=call_id, group=group, n_hops=-(-engine.samples_in // 80), seconds=engine.samples_in / 8000)
     _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
 
 

@@ -77,7 +77,7 @@ def test_write_is_atomic(tmp_path, monkeypatch):
     def boom(*args, **kwargs):
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(sf, "write", boom)
+    monkeypatch.setattr(sf.SoundFile, "write", boom)
     with pytest.raises(OutputError, match="No space"):
         audio.write(target, np.ones(160) * 0.1, sr=16000)
     assert target.read_bytes() == before  # the old file is intact

@@ -140,7 +140,7 @@ def test_each_check_tripped_lands_in_the_record_with_its_reason(tmp_path, monkey
     x = channel.telephone(ref, sr=16000)
     blocks = {Check.NONFINITE: range(40, 45), Check.LEVEL: range(80, 85), Check.UNSTABLE: range(120, 125), Check.MISMATCH: range(160, 165)}
     perturb_predictions(ck, blocks, monkeypatch)
-    from nenv.cli import _attach_record, _close_record
+    from nenv.batch import attach_record as _attach_record, close_record as _close_record
 
     system = pipeline.make_system("neural", model=ck)
     n_hops = -(-x.size // 80)

@@ -83,13 +83,13 @@ def test_bad_inputs_get_one_clear_line_and_no_output(tmp_path):
     speech = 0.1 * np.sin(2 * np.pi * 440 * t)
     cases = [
         (tmp_path / "missing.wav", "does not exist"),
-        (tmp_path, "folder"),
+        (tmp_path, "must be a folder"),
         (tmp_path / "text.wav", "cannot read"),
         (_write(tmp_path / "empty.wav", np.zeros(0), 8000), "no samples"),
         (_write(tmp_path / "zeros.wav", np.zeros(8000), 8000), "silence"),
         (_write(tmp_path / "nan.wav", np.where(t < 0.5, speech, np.nan), 8000, "FLOAT"), "NaN"),
         (_write(tmp_path / "stereo.wav", np.stack([speech, speech], 1), 8000), "--channel"),
-        (_write(tmp_path / "odd.wav", speech, 11025), "sr=11025"),
+        (_write(tmp_path / "odd.wav", speech, 11025), "11025 Hz"),
         (_write(tmp_path / "wide.wav", speech, 16000), "nenv degrade"),
     ]
     (tmp_path / "text.wav").write_text("RIFF? no, just text")
