@@ -176,7 +176,7 @@ def extend_file(
             blocks = (x[i : i + int(BLOCK_S * NB_SR)] for i in range(0, x.size, int(BLOCK_S * NB_SR)))
         system = _system(opts, ref)
         n_hops = -(-n // HOP_NB)
-        writer = attach_record(system, record, source=str(src), group=opts.group, n_hops=n_hops)
+        tally, writer = watch(system, record, source=str(src), group=opts.group, n_hops=n_hops)
         engine = CallEngine(system)
         done, heard = 0, False
         try:
@@ -195,12 +195,11 @@ def extend_file(
                 writer.close()
             raise
     res = FileResult(str(src), str(dst), seconds=n / NB_SR, wall_s=time.perf_counter() - t0, limited=engine.limited, notes=notes)
-    est = getattr(system, "estimator", None)
-    if hasattr(est, "record"):
-        dec = est.record().head(n_hops)
-        res.hops, res.rejected = int(dec.rejected.size), int(dec.rejected.sum())
-        res.by_reason = reason_counts(dec)
-    close_record(writer, system, source=str(src), group=opts.group, n_hops=n_hops, seconds=n / NB_SR, output=str(dst.resolve()))
+    if tally is not None:
+        res.hops, res.rejected, res.by_reason = tally.hops, tally.rejected, dict(sorted(tally.by_reason.items()))
+    if writer is not None:
+        writer.summary(source=str(src), group=opts.group, tally=tally, seconds=n / NB_SR, output=str(dst.resolve()))
+        writer.close()
     return res
 
 
@@ -216,45 +215,38 @@ def _oracle_reference(reference, x: np.ndarray) -> np.ndarray:
     return ref * (float(np.sqrt(np.dot(x[:n], x[:n]) / num)) if num > 0 else 1.0)
 
 
-def reason_counts(dec) -> dict[str, int]:
-    """Rejected hops by check name (a hop rejected by two checks counts under both)."""
-    from nenv.guard import reason_names
+def watch(system, record, *, source: str, group: Optional[str], n_hops: int):
+    """Count the guard's verdicts on the first ``n_hops`` hops (and write rejected ones to ``record``).
 
-    counts: dict[str, int] = {}
-    for mask in dec.reasons[dec.rejected]:
-        for name in reason_names(int(mask)):
-            counts[name] = counts.get(name, 0) + 1
-    return dict(sorted(counts.items()))
-
-
-def attach_record(system, path, *, source: str, group: Optional[str], n_hops: int):
-    """Write the guard's rejected hops of ``system`` to ``path`` as they happen; returns the writer (or None)."""
-    if path is None:
-        return None
+    Returns ``(tally, writer)``: a :class:`nenv.guard.Tally` (None for systems without a guard)
+    and a :class:`nenv.records.RecordWriter` (None without ``record``). Nothing is kept per hop,
+    so memory does not grow with the length of the file or call.
+    """
     from nenv.estimators.neural import NeuralEstimator
+    from nenv.guard import Tally
 
     est = getattr(system, "estimator", None)
-    if not isinstance(est, NeuralEstimator) or est.guard is None:
+    guarded = isinstance(est, NeuralEstimator) and est.guard is not None
+    if record is not None and not guarded:
         raise InputError("--record needs the neural method (only the guard's decisions are recorded)")
-    from nenv.records import RecordWriter
+    if not guarded:
+        return None, None
+    writer = None
+    if record is not None:
+        from nenv.records import RecordWriter
 
-    writer = RecordWriter(path, checkpoint=est.checkpoint, context=est.checkpoint.features.context)
+        writer = RecordWriter(record, checkpoint=est.checkpoint, context=est.checkpoint.features.context)
+    tally = Tally(limit=n_hops)
 
     def listen(first_hop, dec, x, a_nb):
-        keep = max(0, min(dec.rejected.size, n_hops - first_hop))
-        if keep:
-            writer.hops(source=source, group=group, first_hop=first_hop, dec=dec.head(keep), x=x[:keep], a_nb=a_nb[:keep])
+        dec = tally.add(first_hop, dec)
+        if writer is not None and dec.rejected.size:
+            k = dec.rejected.size
+            writer.hops(source=source, group=group, first_hop=first_hop, dec=dec, x=x[:k], a_nb=a_nb[:k])
 
+    est.keep_decisions = False
     est.listener = listen
-    return writer
-
-
-def close_record(writer, system, *, source: str, group: Optional[str], n_hops: int, seconds: float, output: Optional[str] = None) -> None:
-    if writer is None:
-        return
-    dec = system.estimator.record().head(n_hops)
-    writer.summary(source=source, group=group, dec=dec, seconds=seconds, output=output)
-    writer.close()
+    return tally, writer
 
 
 # ---------------------------------------------------------------------------------------------
@@ -450,7 +442,7 @@ def run(
         else:
             todo.append(job)
     if todo:
-        _check_model(opts)
+        check_options(opts)
     finished = results.append if on_result is None else (lambda r: (results.append(r), on_result(r)))
 
     def collect(r: FileResult) -> None:
@@ -470,7 +462,7 @@ def run(
     return Summary(results, time.perf_counter() - t0)
 
 
-def _check_model(opts: Options) -> None:
+def check_options(opts: Options) -> None:
     """Load the model once up front, so a missing or corrupt model stops the batch before it starts."""
     from nenv.pipeline import MODEL_SYSTEMS, SYSTEMS
 
@@ -517,13 +509,14 @@ def _run_dask(jobs: list[Job], opts: Options, scheduler: str, record: Optional[s
     try:
         from distributed import as_completed
 
-        futures = [client.submit(_work, job, opts, record, pure=False) for job in jobs]
-        try:
-            for fut in as_completed(futures):
-                collect(fut.result())
-        except BaseException:
-            client.cancel(futures)
-            raise
+        with client.as_current():
+            futures = [client.submit(_work, job, opts, record, pure=False) for job in jobs]
+            try:
+                for fut in as_completed(futures):
+                    collect(fut.result())
+            except BaseException:
+                client.cancel(futures)
+                raise
     finally:
         client.close()
 

@@ -166,6 +166,7 @@ def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: b
     if (out.exists() and not out.is_dir()) or (not out.exists() and out.suffix.lower() in batch.OUTPUT_SUFFIXES):
         raise InputError(f"'{out}' looks like a file: with folders, lists or several inputs the output must be a folder")
     work = batch.plan(inputs, out, suffix=suffix)
+    batch.check_options(opts)
     out.mkdir(parents=True, exist_ok=True)
     n_cpu = os.cpu_count() or 1
     where = f"scheduler {scheduler}" if scheduler else f"{min(jobs or n_cpu, len(work))} process(es)"

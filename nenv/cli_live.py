@@ -9,7 +9,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from nenv.batch import attach_record, close_record
+from nenv.batch import watch
 from nenv.cli import _default_method, _guarded, _say, app
 from nenv.errors import InputError
 
@@ -48,7 +48,7 @@ def stream(
     if method in pipeline.MODEL_SYSTEMS:
         model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
     engine = CallEngine(pipeline.make_system(method, model=model, excitation=excitation))
-    writer = attach_record(engine.system, record, source=call_id, group=group, n_hops=2**62)
+    tally, writer = watch(engine.system, record, source=call_id, group=group, n_hops=2**62)
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()
 
@@ -81,11 +81,15 @@ def stream(
     finally:
         for s, h in old.items():
             sig.signal(s, h)
+    if tally is not None:
+        tally.limit = -(-engine.samples_in // 80)  # the tail padding is not part of the call
     y = engine.flush()
     if y.size:
         out.write(to_int16(y).astype("<i2").tobytes())
     out.flush()
-    close_record(writer, engine.system, source=call_id, group=group, n_hops=-(-engine.samples_in // 80), seconds=engine.samples_in / 8000)
+    if writer is not None:
+        writer.summary(source=call_id, group=group, tally=tally, seconds=engine.samples_in / 8000)
+        writer.close()
     _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
 
 

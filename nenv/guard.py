@@ -19,7 +19,7 @@ A rejected hop gets the codebook envelope of its nearest cell instead.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass, field, fields
 from enum import IntFlag
 
 import numpy as np
@@ -93,6 +93,29 @@ class Decisions:
             z = np.zeros(0)
             return Decisions(z.astype(bool), z.astype(int), z, z, z, z, z.astype(int))
         return Decisions(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(Decisions)))
+
+
+@dataclass
+class Tally:
+    """Running counts of the guard's verdicts (constant memory, however long the call).
+
+    Only hops before ``limit`` count (the tail padding after a signal's end is not part of it).
+    """
+
+    limit: int = 2**62
+    hops: int = 0
+    rejected: int = 0
+    by_reason: dict = field(default_factory=dict)
+
+    def add(self, first_hop: int, dec: Decisions) -> Decisions:
+        """Count the verdicts on hops first_hop, first_hop+1, ... below the limit; return those."""
+        dec = dec.head(max(0, min(dec.rejected.size, self.limit - first_hop)))
+        self.hops += int(dec.rejected.size)
+        self.rejected += int(dec.rejected.sum())
+        for mask in dec.reasons[dec.rejected]:
+            for name in reason_names(int(mask)):
+                self.by_reason[name] = self.by_reason.get(name, 0) + 1
+        return dec
 
 
 def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:

@@ -34,7 +34,7 @@ import numpy as np
 from nenv import __version__
 from nenv.errors import InputError, OutputError
 from nenv.features import INPUT_NAMES
-from nenv.guard import CHECK_NAMES, Decisions, reason_names
+from nenv.guard import CHECK_NAMES, Decisions, Tally, reason_names
 from nenv.settings import HOP_NB, NB_SR
 
 SCHEMA = "nenv-guard-record"
@@ -98,12 +98,9 @@ class RecordWriter:
                 }
             )
 
-    def summary(self, *, source: str, group: str | None, dec: Decisions, seconds: float, output: str | None = None) -> None:
-        by: dict[str, int] = {}
-        for mask in dec.reasons[dec.rejected]:
-            for name in reason_names(int(mask)):
-                by[name] = by.get(name, 0) + 1
-        self._write({"type": "summary", "source": source, "group": group, "hops": int(dec.rejected.size), "rejected": int(dec.rejected.sum()), "by_reason": by, "seconds": round(seconds, 3), "output": output}, sync=True)
+    def summary(self, *, source: str, group: str | None, tally: Tally, seconds: float, output: str | None = None) -> None:
+        """Close one source with its counts (a :class:`nenv.guard.Tally`)."""
+        self._write({"type": "summary", "source": source, "group": group, "hops": tally.hops, "rejected": tally.rejected, "by_reason": dict(sorted(tally.by_reason.items())), "seconds": round(seconds, 3), "output": output}, sync=True)
 
     def close(self) -> None:
         self._fh.close()

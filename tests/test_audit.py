@@ -140,13 +140,15 @@ def test_each_check_tripped_lands_in_the_record_with_its_reason(tmp_path, monkey
     x = channel.telephone(ref, sr=16000)
     blocks = {Check.NONFINITE: range(40, 45), Check.LEVEL: range(80, 85), Check.UNSTABLE: range(120, 125), Check.MISMATCH: range(160, 165)}
     perturb_predictions(ck, blocks, monkeypatch)
-    from nenv.batch import attach_record as _attach_record, close_record as _close_record
+    from nenv.batch import watch
 
     system = pipeline.make_system("neural", model=ck)
     n_hops = -(-x.size // 80)
-    writer = _attach_record(system, tmp_path / "r.jsonl", source="perturbed", group="lab", n_hops=n_hops)
+    tally, writer = watch(system, tmp_path / "r.jsonl", source="perturbed", group="lab", n_hops=n_hops)
     pipeline.extend(x, system=system)
-    _close_record(writer, system, source="perturbed", group="lab", n_hops=n_hops, seconds=x.size / 8000)
+    writer.summary(source="perturbed", group="lab", tally=tally, seconds=x.size / 8000)
+    writer.close()
+    assert tally.hops == n_hops and tally.rejected == sum(len(h) for h in blocks.values())
     rec = records.read([tmp_path / "r.jsonl"])
     by_hop = {r["hop"]: r for r in rec.rejects}
     for check, hops in blocks.items():

@@ -40,13 +40,16 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
 class NeuralEstimator(EnvelopeEstimator):
     """Stacked narrowband features -> network -> envelope; the guard swaps in the codebook when needed.
 
-    Every hop's verdict is kept in :attr:`decisions` (see :meth:`record`).
+    Every hop's verdict is kept for :meth:`record` unless ``keep_decisions`` is
+    False (long files and calls: a ``listener`` sees each batch of verdicts as it
+    happens, and nothing grows with the call's length).
     """
 
     name = "neural"
 
-    def __init__(self, checkpoint: Checkpoint, *, guard: bool = True):
+    def __init__(self, checkpoint: Checkpoint, *, guard: bool = True, keep_decisions: bool = True):
         self.checkpoint = checkpoint
+        self.keep_decisions = keep_decisions
         self.order = checkpoint.features.wb_order
         self.guard = Guard(checkpoint.limits) if guard else None
         self.listener = None  # called as listener(first_hop, decisions, stacked_inputs, a_nb) after each batch
@@ -64,7 +67,8 @@ class NeuralEstimator(EnvelopeEstimator):
         if dec is not None:
             if self.listener is not None:
                 self.listener(self._hops, dec, stacked, analysis.a)
-            self._parts.append(dec)
+            if self.keep_decisions:
+                self._parts.append(dec)
         self._hops += len(analysis)
         return Envelope(a=a, gain=gain)
 

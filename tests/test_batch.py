@@ -1,0 +1,196 @@
+"""Extending many files: mirrored layout, skip finished, failures reported, kills leave complete-or-absent outputs."""
+
+from __future__ import annotations
+
+import os
+import random
+import signal
+import subprocess
+import sys
+import time
+import tracemalloc
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile as sf
+from typer.testing import CliRunner
+
+from nenv import audio, batch, channel, records
+from nenv.cli import app
+from tests.conftest import ARCTIC
+
+runner = CliRunner()
+REPO = Path(__file__).resolve().parents[1]
+
+
+def _run(*args):
+    return runner.invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+def _telephone(i: int, seconds: float) -> np.ndarray:
+    y, sr = sf.read(ARCTIC[i % 2])
+    y = np.tile(y, int(np.ceil(seconds * sr / y.size)))[: int(seconds * sr)]
+    return channel.telephone(y, sr=sr, law="mulaw")
+
+
+@pytest.fixture
+def tree(tmp_path):
+    """calls/ with good files in sub-folders (wav and flac), a broken one and a silent one."""
+    root = tmp_path / "calls"
+    for rel, i, sec in [("north/a.wav", 0, 3.0), ("north/b.flac", 1, 2.0), ("south/deep/c.wav", 0, 2.5)]:
+        (root / rel).parent.mkdir(parents=True, exist_ok=True)
+        sf.write(root / rel, _telephone(i, sec), 8000, subtype="PCM_16")
+    (root / "south" / "broken.wav").write_bytes(b"RIFF\x00\x00\x00\x00WAVEjunk" * 10)
+    sf.write(root / "south" / "silent.wav", np.zeros(4000), 8000)
+    (root / "notes.md").write_text("not audio, not picked up")
+    return root
+
+
+GOOD = {"north/a.wav": "north/a.wav", "north/b.flac": "north/b.wav", "south/deep/c.wav": "south/deep/c.wav"}
+
+
+def test_folder_mirrors_layout_reports_failures_and_skips_finished(tree, tmp_path):
+    out = tmp_path / "wide"
+    res = _run("extend", tree, out, "--method", "imaging", "--jobs", "2")
+    assert res.exit_code == 1, res.output  # two files failed: reported, the others done
+    assert "done 3, skipped 0 (output exists), failed 2" in res.stdout
+    assert "broken.wav" in res.stderr and "silent.wav" in res.stderr and "silence" in res.stderr
+    for src, dst in GOOD.items():
+        # each output equals the single-file command's output for the same input
+        single = tmp_path / "single.wav"
+        assert _run("extend", tree / src, single, "--method", "imaging").exit_code == 0
+        assert sf.read(out / dst, dtype="int16")[0].tobytes() == sf.read(single, dtype="int16")[0].tobytes()
+    assert not (out / "south" / "broken.wav").exists() and not (out / "south" / "silent.wav").exists()
+    report = (out / batch.REPORT_NAME).read_text().splitlines()
+    assert len(report) == 1 + 5 and sum(",failed," in r for r in report) == 2
+    # rerun: finished outputs are skipped, failures tried again
+    mtimes = {d: (out / d).stat().st_mtime_ns for d in GOOD.values()}
+    res = _run("extend", tree, out, "--method", "imaging")
+    assert "done 0, skipped 3 (output exists), failed 2" in res.stdout
+    assert all((out / d).stat().st_mtime_ns == t for d, t in mtimes.items())
+    res = _run("extend", tree, out, "--method", "imaging", "--overwrite", "--format", "flac")
+    assert "done 3, skipped 0" in res.stdout and (out / "north" / "a.flac").is_file()
+
+
+def test_lists_and_several_files(tree, tmp_path):
+    lst = tmp_path / "todo.txt"
+    lst.write_text(f"# calls to extend\n{tree / 'north' / 'a.wav'}\ncalls/south/deep/c.wav\n\n")
+    out = tmp_path / "from_list"
+    res = _run("extend", lst, out, "--method", "imaging", "--jobs", "1")
+    assert res.exit_code == 0, res.output
+    assert sorted(str(p.relative_to(out)) for p in out.rglob("*.wav")) == ["north/a.wav", "south/deep/c.wav"]
+    out2 = tmp_path / "loose"
+    assert _run("extend", tree / "north" / "a.wav", tree / "north" / "b.flac", out2, "--method", "imaging").exit_code == 0
+    assert sorted(p.name for p in out2.glob("*.wav")) == ["a.wav", "b.wav"]
+
+
+def test_batch_refusals(tree, tmp_path):
+    def err(res, needle):
+        assert res.exit_code == 2 and needle in res.stderr, res.output
+
+    sf.write(tree / "north" / "a.flac", _telephone(0, 1.0), 8000)  # a.wav and a.flac -> both a.wav
+    err(_run("extend", tree / "north", tmp_path / "o", "--method", "imaging"), "would both be written")
+    err(_run("extend", tree / "south" / "deep", tmp_path / "o.wav"), "must be a folder")
+    err(_run("extend", tree / "south" / "deep", tmp_path / "o2", "--format", "mp3"), "--format mp3")
+    err(_run("extend", tree / "south" / "deep", tmp_path / "o3", "--method", "oracle"), "reference per file")
+    err(_run("extend", tree / "south" / "deep", tmp_path / "o4", "--model", tmp_path / "nomodel"), "does not exist")
+    err(_run("extend", tree / "south" / "deep", tmp_path / "nope", "--figure", tmp_path / "f.png"), "one input file")
+    err(_run("extend", tmp_path / "missing", tree / "north" / "a.wav", tmp_path / "o5"), "does not exist")
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    err(_run("extend", empty, tmp_path / "o6"), "holds no audio files")
+    assert not any((tmp_path / f"o{i}").exists() for i in range(2, 7))
+
+
+def test_batch_record_holds_every_file(tree, tmp_path):
+    rec = tmp_path / "guard.jsonl"
+    res = _run("extend", tree / "north", tmp_path / "o", "--jobs", "2", "--record", rec, "--group", "north")
+    assert res.exit_code == 0, res.output
+    r = records.read([rec])
+    assert sorted(Path(s["source"]).name for s in r.summaries) == ["a.wav", "b.flac"]
+    assert [s["hops"] for s in sorted(r.summaries, key=lambda s: s["source"])] == [300, 200]
+    assert not list(tmp_path.glob(".guard.jsonl.*"))  # per-file parts were merged and removed
+
+
+def _reference_outputs(tree, tmp_path) -> dict[str, bytes]:
+    ref = tmp_path / "ref"
+    res = _run("extend", tree, ref, "--jobs", "1")
+    assert res.exit_code == 1
+    return {d: sf.read(ref / d, dtype="int16")[0].tobytes() for d in GOOD.values()}
+
+
+def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
+    """SIGKILL and Ctrl-C (SIGINT) at random moments; then a rerun finishes the job."""
+    (tree / "long").mkdir()
+    for i in range(3):  # longer inputs, so kills land while files are being written
+        sf.write(tree / "long" / f"l{i}.wav", _telephone(i, 20.0), 8000)
+    expected = _reference_outputs(tree, tmp_path)
+    long_ref = {f"long/l{i}.wav" for i in range(3)}
+    out = tmp_path / "out"
+    cmd = [sys.executable, "-m", "nenv", "extend", str(tree), str(out), "--jobs", "2"]
+    rng = random.Random(7)
+    for sig in (signal.SIGKILL, signal.SIGINT, signal.SIGKILL):
+        proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True)
+        time.sleep(rng.uniform(2.0, 4.5))
+        os.killpg(proc.pid, signal.SIGINT) if sig == signal.SIGINT else os.killpg(proc.pid, signal.SIGKILL)
+        _, err = proc.communicate(timeout=60)
+        if sig == signal.SIGINT and proc.returncode == 130:
+            assert not list(out.rglob(".*.part.*")), "Ctrl-C left a temporary file"
+        for p in out.rglob("*.wav"):
+            if p.name.startswith("."):
+                continue  # a temporary file a SIGKILL left; never an output name
+            y, sr = sf.read(p, dtype="int16")  # every output present is a whole, readable file
+            rel = str(p.relative_to(out))
+            if rel in expected:
+                assert y.tobytes() == expected[rel], rel
+            else:
+                assert rel in long_ref and sr == 16000 and y.size == 2 * 20 * 8000, rel
+    res = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True, timeout=300)
+    assert res.returncode == 1 and "failed 2" in res.stdout, res.stdout + res.stderr  # broken + silent
+    assert not list(out.rglob(".*.part.*"))  # the rerun removed what the kills left
+    for rel, data in expected.items():
+        assert sf.read(out / rel, dtype="int16")[0].tobytes() == data
+
+
+def test_dask_cluster_gives_the_same_outputs(tree, tmp_path):
+    distributed = pytest.importorskip("distributed")
+    local = tmp_path / "local"
+    assert _run("extend", tree, local, "--method", "codebook", "--jobs", "1").exit_code == 1
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        res = _run("extend", tree, tmp_path / "dask", "--method", "codebook", "--scheduler", cluster.scheduler_address)
+    assert res.exit_code == 1 and "done 3, skipped 0 (output exists), failed 2" in res.stdout, res.output
+    assert "scheduler tcp://" in res.stderr
+    for d in GOOD.values():
+        assert (tmp_path / "dask" / d).read_bytes() == (local / d).read_bytes()
+    res = _run("extend", tree, tmp_path / "x", "--scheduler", "tcp://127.0.0.1:9")
+    assert res.exit_code == 2 and "cannot reach the dask scheduler" in res.stderr
+
+
+@pytest.mark.parametrize("method", ["neural", "imaging"])
+def test_extend_file_memory_does_not_grow_with_length(tmp_path, method):
+    """Peak traced memory for 20 s and 200 s of input is the same (blocks in, blocks out)."""
+    peaks = []
+    for seconds in (20.0, 200.0):
+        src = tmp_path / f"in{seconds:.0f}.wav"
+        sf.write(src, _telephone(0, seconds), 8000)
+        tracemalloc.start()
+        res = batch.extend_file(src, tmp_path / "out.wav", batch.Options(method=method))
+        peaks.append(tracemalloc.get_traced_memory()[1])
+        tracemalloc.stop()
+        assert res.seconds == seconds and sf.info(tmp_path / "out.wav").frames == 2 * int(seconds * 8000)
+    # 10x the input, < 15% more peak memory (a whole-file path would grow 10x)
+    assert peaks[1] < 1.15 * peaks[0], peaks
+    assert peaks[1] < 64e6, peaks  # about 45 MB: one 10 s block through the engine
+
+
+def test_streamed_file_equals_offline_pipeline(tmp_path):
+    """extend_file (blocks through the streaming engine) == pipeline.extend on the whole signal, in int16."""
+    from nenv import pipeline
+
+    x = _telephone(1, 23.37)
+    src = tmp_path / "x.wav"
+    sf.write(src, x, 8000, subtype="FLOAT")
+    batch.extend_file(src, tmp_path / "y.wav", batch.Options(method="neural"))
+    offline = pipeline.extend(x, system=pipeline.make_system("neural"))
+    assert sf.read(tmp_path / "y.wav", dtype="int16")[0].tobytes() == audio.to_int16(offline.y).tobytes()
