@@ -130,13 +130,25 @@ def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
     out = tmp_path / "out"
     cmd = [sys.executable, "-m", "nenv", "extend", str(tree), str(out), "--jobs", "2"]
     rng = random.Random(7)
-    for sig in (signal.SIGKILL, signal.SIGINT, signal.SIGKILL):
+
+    def parts():
+        return set(out.rglob(".*.part.*"))
+
+    for sig in (signal.SIGKILL, signal.SIGINT, signal.SIGKILL, signal.SIGINT):
         proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True)
-        time.sleep(rng.uniform(2.0, 4.5))
-        os.killpg(proc.pid, signal.SIGINT) if sig == signal.SIGINT else os.killpg(proc.pid, signal.SIGKILL)
+        if sig == signal.SIGKILL:
+            time.sleep(rng.uniform(2.0, 4.5))  # anywhere: start-up, reading, writing, renaming
+        else:
+            before = parts()
+            deadline = time.monotonic() + 30
+            while not (parts() - before) and time.monotonic() < deadline and proc.poll() is None:
+                time.sleep(0.02)  # Ctrl-C while an output is being written
+            assert parts() - before, "no output was being written when Ctrl-C came"
+        os.killpg(proc.pid, sig)
         _, err = proc.communicate(timeout=60)
-        if sig == signal.SIGINT and proc.returncode == 130:
-            assert not list(out.rglob(".*.part.*")), "Ctrl-C left a temporary file"
+        if sig == signal.SIGINT:
+            assert proc.returncode == 130 and b"interrupted" in err, err.decode()[-2000:]
+            assert parts() <= before, "Ctrl-C left a temporary file"
         for p in out.rglob("*.wav"):
             if p.name.startswith("."):
                 continue  # a temporary file a SIGKILL left; never an output name
