@@ -451,12 +451,12 @@ def run(
                 _append(Path(note[len("record:") :]), Path(record))
         finished(r)
 
-    if not todo:
-        pass
-    elif scheduler:
-        _run_dask(todo, opts, scheduler, None if record is None else str(record), collect)
-    else:
-        _run_local(todo, opts, workers or os.cpu_count() or 1, None if record is None else str(record), collect)
+    if todo:
+        from nenv.parallel import as_done
+
+        rec = None if record is None else str(record)
+        for _, r in as_done(_work, [(job, opts, rec) for job in todo], workers=workers, scheduler=scheduler):
+            collect(r)
     order = {str(j.src): j.index for j in jobs}
     results.sort(key=lambda r: order.get(r.source, 0))
     return Summary(results, time.perf_counter() - t0)
@@ -482,52 +482,3 @@ def _append(part: Path, record: Path) -> None:
         out.flush()
         os.fsync(out.fileno())
     part.unlink()
-
-
-def _run_local(jobs: list[Job], opts: Options, workers: int, record: Optional[str], collect: Callable[[FileResult], None]) -> None:
-    if workers <= 1:
-        for job in jobs:
-            collect(_work(job, opts, record))
-        return
-    from concurrent.futures import ProcessPoolExecutor, as_completed
-
-    from nenv.train.dataset import _fork
-
-    pool = ProcessPoolExecutor(max_workers=min(workers, len(jobs)), mp_context=_fork())
-    try:
-        futures = [pool.submit(_work, job, opts, record) for job in jobs]
-        for fut in as_completed(futures):
-            collect(fut.result())
-    except BaseException:
-        pool.shutdown(wait=True, cancel_futures=True)  # workers clean their temporary files on Ctrl-C
-        raise
-    pool.shutdown(wait=True)
-
-
-def _run_dask(jobs: list[Job], opts: Options, scheduler: str, record: Optional[str], collect: Callable[[FileResult], None]) -> None:
-    client = dask_client(scheduler)
-    try:
-        from distributed import as_completed
-
-        with client.as_current():
-            futures = [client.submit(_work, job, opts, record, pure=False) for job in jobs]
-            try:
-                for fut in as_completed(futures):
-                    collect(fut.result())
-            except BaseException:
-                client.cancel(futures)
-                raise
-    finally:
-        client.close()
-
-
-def dask_client(scheduler: str):
-    """A dask.distributed client for ``scheduler`` (an address, or a Client/LocalCluster object in tests)."""
-    try:
-        from distributed import Client
-    except ImportError as e:
-        raise InputError(f"--scheduler needs dask.distributed: pip install 'nenv[cluster]' ({e})") from e
-    try:
-        return Client(scheduler, timeout="10s", set_as_default=False)
-    except (OSError, TimeoutError, ValueError) as e:
-        raise InputError(f"cannot reach the dask scheduler at {scheduler!r}: {e}") from e

@@ -11,6 +11,7 @@ from nenv.cli import _guarded, _progress, _say, app
 from nenv.errors import InputError
 
 RecipeOpt = Annotated[Optional[Path], typer.Option("--config", help="Training recipe (flat TOML, see configs/).")]
+SchedulerOpt = Annotated[Optional[str], typer.Option(help="Run the survey and feature extraction on this dask.distributed scheduler (e.g. tcp://10.0.0.5:8786); its workers must see the corpus at the same path.")]
 SetOpt = Annotated[list[str], typer.Option("--set", help="Override a recipe key: --set epochs=20 (repeatable).")]
 
 
@@ -21,6 +22,7 @@ def survey(
     out: Annotated[Path, typer.Option(help="Folder for survey.csv and survey.png (created if missing).")],
     config: RecipeOpt = None,
     set_: SetOpt = [],
+    scheduler: SchedulerOpt = None,
 ) -> None:
     """Check every file of a corpus and say which ones training would use, and why not."""
     from nenv.files import write_text
@@ -32,7 +34,7 @@ def survey(
     out.mkdir(parents=True, exist_ok=True)
     with _progress() as bar:
         task = bar.add_task(f"surveying {len(files)} files", total=len(files))
-        reports = corp.survey(files, recipe, workers=recipe.workers, on_done=lambda: bar.advance(task))
+        reports = corp.survey(files, recipe, workers=recipe.workers, scheduler=scheduler, on_done=lambda: bar.advance(task))
     write_text(out / "survey.csv", corp.reports_csv(reports))
     corp.survey_figure(reports, out / "survey.png")
     summ = corp.summary(reports)
@@ -64,7 +66,9 @@ def train(
     config: RecipeOpt = None,
     set_: SetOpt = [],
     cache: Annotated[Optional[Path], typer.Option(help="Feature cache folder (reused across runs). Default: none.")] = None,
-    force: Annotated[bool, typer.Option("--force", help="Replace an existing model folder.")] = False,
+    force: Annotated[bool, typer.Option("--force", help="Replace an existing model folder (and discard an interrupted run).")] = False,
+    resume: Annotated[bool, typer.Option("--resume", help="Continue the interrupted run for --out from its last finished epoch (same recipe).")] = False,
+    scheduler: SchedulerOpt = None,
 ) -> None:
     """Train an envelope network and its codebook on a wideband corpus, on CPU, and export it to ONNX."""
     from nenv.train import recipe as rcp
@@ -74,8 +78,14 @@ def train(
         from nenv.train.loop import train as run
     except ImportError as e:
         raise InputError(f"training needs the train extra: pip install 'nenv[train]' ({e})") from e
-    with _progress() as bar:
-        res = run(recipe, out, cache_dir=str(cache) if cache else None, force=force, reporter=_RichReporter(bar))
+    try:
+        with _progress() as bar:
+            res = run(recipe, out, cache_dir=str(cache) if cache else None, force=force, resume=resume, scheduler=scheduler, reporter=_RichReporter(bar))
+    except KeyboardInterrupt:
+        from nenv.train.loop import partial_folder
+
+        _say(f"nenv: training interrupted; its state is kept in {partial_folder(out)}: continue with the same command and --resume")
+        raise typer.Exit(130) from None
     m = res.record["metrics"]
     typer.echo(
         f"model {res.record['record_id']} written to {out} in {res.record['wall_s']:.0f} s\n"

@@ -206,25 +206,11 @@ def survey_file(cf: CorpusFile, recipe: Recipe) -> FileReport:
     return rep
 
 
-def survey(files: Sequence[CorpusFile], recipe: Recipe, *, workers: int = 1, on_done: Callable[[], None] | None = None) -> list[FileReport]:
-    """Survey every file, in parallel over ``workers`` processes; order is kept."""
-    if workers <= 1:
-        out = []
-        for cf in files:
-            out.append(survey_file(cf, recipe))
-            if on_done:
-                on_done()
-        return out
-    from concurrent.futures import ProcessPoolExecutor
+def survey(files: Sequence[CorpusFile], recipe: Recipe, *, workers: int = 1, scheduler: str | None = None, on_done: Callable[[], None] | None = None) -> list[FileReport]:
+    """Survey every file, in parallel over ``workers`` processes (or a dask ``scheduler``); order is kept."""
+    from nenv.parallel import in_order
 
-    with ProcessPoolExecutor(max_workers=workers) as pool:
-        futures = [pool.submit(survey_file, cf, recipe) for cf in files]
-        out = []
-        for fut in futures:
-            out.append(fut.result())
-            if on_done:
-                on_done()
-    return out
+    return in_order(survey_file, [(cf, recipe) for cf in files], workers=workers, scheduler=scheduler, on_done=on_done)
 
 
 def reports_csv(reports: Sequence[FileReport]) -> str:
@@ -295,12 +281,3 @@ def split_speakers(reports: Sequence[FileReport], *, val_fraction: float, seed: 
     n_val = min(len(speakers) - 1, max(1, int(round(val_fraction * len(speakers)))))
     val = {speakers[i] for i in order[:n_val]}
     return [r for r in kept if r.speaker not in val], [r for r in kept if r.speaker in val]
-
-
-
-def _fork():
-    """Worker processes by fork (Linux default; cheap). Callers build features before torch runs anything."""
-    import multiprocessing
-
-    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
-    return multiprocessing.get_context(method)

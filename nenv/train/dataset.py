@@ -153,6 +153,7 @@ def build(
     settings: FeatureSettings,
     cache_dir: str | None = None,
     workers: int = 1,
+    scheduler: str | None = None,
     on_done: Callable[[], None] | None = None,
 ) -> tuple[Pairs, dict]:
     """Pairs for every file (in parallel over processes), and throughput facts.
@@ -162,31 +163,10 @@ def build(
     """
     if cache_dir:
         Path(cache_dir).mkdir(parents=True, exist_ok=True)
-    t0 = time.perf_counter()
-    results: list[Pairs] = []
-    if workers <= 1:
-        for i, p in enumerate(paths):
-            results.append(_file_pairs(p, i, recipe, settings, cache_dir))
-            if on_done:
-                on_done()
-    else:
-        from concurrent.futures import ProcessPoolExecutor
+    from nenv.parallel import in_order
 
-        with ProcessPoolExecutor(max_workers=workers, mp_context=_fork()) as pool:
-            futures = [pool.submit(_file_pairs, p, i, recipe, settings, cache_dir) for i, p in enumerate(paths)]
-            for fut in futures:
-                results.append(fut.result())
-                if on_done:
-                    on_done()
+    t0 = time.perf_counter()
+    results = in_order(_file_pairs, [(p, i, recipe, settings, cache_dir) for i, p in enumerate(paths)], workers=workers, scheduler=scheduler, on_done=on_done)
     wall = time.perf_counter() - t0
     pairs = Pairs.concat(results) if results else _empty(settings)
     return pairs, {"seconds_audio": pairs.seconds, "wall_s": wall, "x_real_time": pairs.seconds / max(wall, 1e-9)}
-
-
-
-def _fork():
-    """Worker processes by fork (Linux default; cheap). Callers build features before torch runs anything."""
-    import multiprocessing
-
-    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
-    return multiprocessing.get_context(method)

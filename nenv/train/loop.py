@@ -29,7 +29,7 @@ import numpy as np
 
 from nenv import __version__, lpc
 from nenv.checkpoint import CODEBOOK_FILE, FORMAT, FORMAT_VERSION, MODEL_FILE, SETTINGS_FILE
-from nenv.errors import ConfigError
+from nenv.errors import ConfigError, NenvError
 from nenv.estimators.codebook import Codebook
 from nenv.features import FeatureSettings, envelope_from_prediction
 from nenv.files import write_text
@@ -84,8 +84,26 @@ def _predict(model, x: np.ndarray, x_mean, x_std, y_mean, y_std) -> tuple[np.nda
     return y[:, :-1], y[:, -1]
 
 
-def train(recipe: Recipe, out: str | os.PathLike, *, cache_dir: str | None = None, force: bool = False, reporter: Reporter | None = None) -> Result:
-    """Run ``recipe`` and write a complete model folder at ``out`` (atomically: all or nothing)."""
+def train(
+    recipe: Recipe,
+    out: str | os.PathLike,
+    *,
+    cache_dir: str | None = None,
+    force: bool = False,
+    resume: bool = False,
+    scheduler: str | None = None,
+    reporter: Reporter | None = None,
+) -> Result:
+    """Run ``recipe`` and write a complete model folder at ``out`` (atomically: all or nothing).
+
+    The run works in a hidden folder next to ``out`` (``.NAME.partial``) and saves its
+    state there after every epoch (:data:`RESUME_FILE`, written atomically). If the run is
+    killed or interrupted, that folder stays; ``resume=True`` continues from the last
+    saved epoch with the same recipe and gives the same model as an uninterrupted run.
+    Without ``cache_dir`` the features are cached in the partial folder, so a resumed run
+    does not recompute them. ``scheduler``: a dask.distributed address for the survey and
+    the features (see :mod:`nenv.parallel`).
+    """
     rep = reporter or Reporter()
     out = Path(out)
     if out.exists() and not force and any(out.iterdir()):
@@ -95,10 +113,14 @@ def train(recipe: Recipe, out: str | os.PathLike, *, cache_dir: str | None = Non
     if not recipe.corpus:
         raise ConfigError("the recipe names no corpus: set corpus = \"FOLDER\" or pass --set corpus=FOLDER")
     t_start = time.perf_counter()
-    record_id = time.strftime("%Y%m%dT%H%M%S") + "-" + uuid.uuid4().hex[:6]
     settings = FeatureSettings(context=recipe.context)
-    work = out.parent / f".{out.name}.partial-{record_id}"
-    work.mkdir()
+    work = partial_folder(out)
+    state = _open_work(work, recipe, resume=resume, force=force)
+    record_id = state["record_id"] if state else time.strftime("%Y%m%dT%H%M%S") + "-" + uuid.uuid4().hex[:6]
+    if not state:
+        write_text(work / RECIPE_FILE, json.dumps({"record_id": record_id, "recipe": recipe.to_dict()}, indent=1))
+    cache_dir = cache_dir or str(work / "features")
+    keep_work = True  # a kill, Ctrl-C or crash leaves a resumable folder; a user error removes it
     try:
         # 1. corpus survey and speaker-disjoint split
         files = corpus.scan(recipe.corpus, speaker_rule=recipe.speaker_rule, manifest=recipe.manifest)
@@ -106,7 +128,7 @@ def train(recipe: Recipe, out: str | os.PathLike, *, cache_dir: str | None = Non
             pick = np.sort(np.random.default_rng(recipe.split_seed).choice(len(files), recipe.max_files, replace=False))
             files = [files[i] for i in pick]
         tick = rep.stage(f"surveying {len(files)} files", len(files))
-        reports = corpus.survey(files, recipe, workers=recipe.workers, on_done=tick)
+        reports = corpus.survey(files, recipe, workers=recipe.workers, scheduler=scheduler, on_done=tick)
         write_text(work / "survey.csv", corpus.reports_csv(reports))
         corpus.survey_figure(reports, work / "survey.png")
         corp = corpus.summary(reports)
@@ -114,8 +136,8 @@ def train(recipe: Recipe, out: str | os.PathLike, *, cache_dir: str | None = Non
         tr_files, va_files = corpus.split_speakers(reports, val_fraction=recipe.val_fraction, seed=recipe.split_seed)
         # 2. paired features
         tick = rep.stage("paired features", len(tr_files) + len(va_files))
-        tr, thr_tr = dataset.build([r.path for r in tr_files], recipe=recipe, settings=settings, cache_dir=cache_dir, workers=recipe.workers, on_done=tick)
-        va, thr_va = dataset.build([r.path for r in va_files], recipe=recipe, settings=settings, cache_dir=cache_dir, workers=recipe.workers, on_done=tick)
+        tr, thr_tr = dataset.build([r.path for r in tr_files], recipe=recipe, settings=settings, cache_dir=cache_dir, workers=recipe.workers, scheduler=scheduler, on_done=tick)
+        va, thr_va = dataset.build([r.path for r in va_files], recipe=recipe, settings=settings, cache_dir=cache_dir, workers=recipe.workers, scheduler=scheduler, on_done=tick)
         if tr.x.shape[0] < recipe.codebook_size or va.x.shape[0] == 0:
             raise ConfigError(f"too little usable speech: {tr.x.shape[0]} training and {va.x.shape[0]} validation hops")
         wall_feat = thr_tr["wall_s"] + thr_va["wall_s"]
@@ -166,8 +188,20 @@ def train(recipe: Recipe, out: str | os.PathLike, *, cache_dir: str | None = Non
         gen = torch.Generator().manual_seed(recipe.seed)
         history = []
         best = (float("inf"), None, -1)
+        first, finished = 0, False
+        state = _load_state(work) if state else None
+        if state:
+            rep.log(f"resuming run {record_id} after epoch {state['epoch']}")
+            model.load_state_dict(state["model"])
+            opt.load_state_dict(state["optimizer"])
+            sched.load_state_dict(state["scheduler"])
+            gen.set_state(state["generator"])
+            torch.set_rng_state(state["torch_rng"])
+            history, best, first, finished = state["history"], tuple(state["best"]), state["epoch"], state["finished"]
         tick = rep.stage("training", recipe.epochs)
-        for epoch in range(recipe.epochs):
+        for _ in range(first):
+            tick()
+        for epoch in range(first, recipe.epochs if not finished else first):
             model.train()
             perm = torch.randperm(xt.shape[0], generator=gen)
             total, count = 0.0, 0
@@ -191,6 +225,9 @@ def train(recipe: Recipe, out: str | os.PathLike, *, cache_dir: str | None = Non
                 best = (val_loss, {k: v.clone() for k, v in model.state_dict().items()}, epoch + 1)
             elif epoch + 1 - best[2] >= recipe.patience and epoch + 1 < recipe.epochs:
                 rep.log(f"early stop after epoch {epoch + 1}: no validation gain since epoch {best[2]}")
+                finished = True
+            _save_state(work, record_id=record_id, epoch=epoch + 1, finished=finished or epoch + 1 == recipe.epochs, model=model, opt=opt, sched=sched, gen=gen, history=history, best=best)
+            if finished:
                 break
         model.load_state_dict(best[1])
         model.eval()
@@ -258,11 +295,82 @@ def train(recipe: Recipe, out: str | os.PathLike, *, cache_dir: str | None = Non
         }
         write_text(work / "record.json", json.dumps(record, indent=1))
         _curves(history, work / "curves.png")
+        for leftover in (work / RESUME_FILE, work / RECIPE_FILE):
+            leftover.unlink(missing_ok=True)
+        shutil.rmtree(work / "features", ignore_errors=True)
         _install(work, out)
+    except NenvError:
+        keep_work = False
+        raise
     finally:
-        if work.exists():
+        if work.exists() and not keep_work:
             shutil.rmtree(work, ignore_errors=True)
     return Result(out, record)
+
+
+RESUME_FILE = "resume.pt"  # training state after the last finished epoch
+RECIPE_FILE = "run.json"  # the recipe and record id of the run a partial folder belongs to
+
+
+def partial_folder(out: str | os.PathLike) -> Path:
+    """Where a run for ``out`` works until it is finished (kept after a kill, for --resume)."""
+    out = Path(out)
+    return out.parent / f".{out.name}.partial"
+
+
+def _open_work(work: Path, recipe: Recipe, *, resume: bool, force: bool) -> dict | None:
+    """Prepare the partial folder; return the saved training state when resuming (None: start fresh)."""
+    if work.exists() and not resume:
+        if not force:
+            raise ConfigError(f"an interrupted run left '{work}': pass --resume to continue it, or --force to start over")
+        shutil.rmtree(work)
+    if not resume:
+        work.mkdir()
+        return None
+    if not (work / RECIPE_FILE).is_file():
+        raise ConfigError(f"nothing to resume: '{work}' does not hold an interrupted run")
+    saved = json.loads((work / RECIPE_FILE).read_text(encoding="utf-8"))
+    diff = sorted(k for k, v in recipe.to_dict().items() if saved["recipe"].get(k) != v)
+    if diff:
+        raise ConfigError(f"the interrupted run in '{work}' used another recipe (differs in: {', '.join(diff)}); resume it with the same recipe, or pass --force to start over")
+    # the saved training state itself is read later, once the feature workers are done (no fork after torch)
+    return {"record_id": saved["record_id"]}
+
+
+def _load_state(work: Path) -> dict | None:
+    """The training state saved after the last finished epoch (None if killed before the first ended)."""
+    if not (work / RESUME_FILE).is_file():
+        return None
+    import torch
+
+    try:
+        return torch.load(work / RESUME_FILE, weights_only=True)
+    except Exception as e:
+        raise ConfigError(f"cannot read the saved training state '{work / RESUME_FILE}': {str(e).splitlines()[0]}") from e
+
+
+def _save_state(work: Path, *, record_id, epoch, finished, model, opt, sched, gen, history, best) -> None:
+    import torch
+
+    from nenv.files import atomic_output
+
+    state = {
+        "record_id": record_id,
+        "epoch": epoch,
+        "finished": finished,
+        "model": model.state_dict(),
+        "optimizer": opt.state_dict(),
+        "scheduler": sched.state_dict(),
+        "generator": gen.get_state(),
+        "torch_rng": torch.get_rng_state(),
+        "history": history,
+        "best": list(best),
+    }
+    with atomic_output(work / RESUME_FILE) as tmp:
+        with open(tmp, "wb") as fh:
+            torch.save(state, fh)
+            fh.flush()
+            os.fsync(fh.fileno())
 
 
 def _install(work: Path, out: Path) -> None:

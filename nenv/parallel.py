@@ -1,0 +1,94 @@
+"""Run one function over many inputs: in this process, in local worker processes, or on a Dask cluster.
+
+Every parallel step of nenv (corpus survey, training features, batch
+extension) goes through :func:`as_done`, so all three behave alike: results
+arrive as they finish, tagged with their input's index; Ctrl-C cancels what
+has not started; the same inputs give the same results whichever way they
+run (each task is a pure function of its arguments).
+
+A Dask cluster is reached through a scheduler address ("tcp://host:8786").
+Its workers need nenv installed and must see the same paths as this machine
+(shared storage), because tasks name files, not their contents.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Callable, Iterator, Optional, Sequence
+
+from nenv.errors import InputError
+
+
+def _fork_context():
+    """Worker processes by fork (Linux default; cheap), spawn elsewhere."""
+    import multiprocessing
+
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+    return multiprocessing.get_context(method)
+
+
+def as_done(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, scheduler: Optional[str] = None) -> Iterator[tuple[int, object]]:
+    """Yield ``(i, fn(*arg_tuples[i]))`` as each call finishes.
+
+    workers : local processes (0 = one per core, 1 = in this process); ignored with ``scheduler``
+    scheduler : a dask.distributed scheduler address
+    """
+    if scheduler:
+        yield from _dask(fn, arg_tuples, scheduler)
+        return
+    workers = workers or os.cpu_count() or 1
+    if workers <= 1 or len(arg_tuples) <= 1:
+        for i, args in enumerate(arg_tuples):
+            yield i, fn(*args)
+        return
+    from concurrent.futures import ProcessPoolExecutor, as_completed
+
+    pool = ProcessPoolExecutor(max_workers=min(workers, len(arg_tuples)), mp_context=_fork_context())
+    try:
+        index = {pool.submit(fn, *args): i for i, args in enumerate(arg_tuples)}
+        for fut in as_completed(index):
+            yield index[fut], fut.result()
+    except BaseException:
+        pool.shutdown(wait=True, cancel_futures=True)  # running tasks see Ctrl-C themselves and clean up
+        raise
+    pool.shutdown(wait=True)
+
+
+def in_order(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, scheduler: Optional[str] = None, on_done: Optional[Callable[[], None]] = None) -> list:
+    """``[fn(*a) for a in arg_tuples]``, computed by :func:`as_done`; ``on_done()`` after each."""
+    out: list = [None] * len(arg_tuples)
+    for i, r in as_done(fn, arg_tuples, workers=workers, scheduler=scheduler):
+        out[i] = r
+        if on_done:
+            on_done()
+    return out
+
+
+def dask_client(scheduler: str):
+    """A dask.distributed client for the scheduler at ``scheduler``; InputError if unreachable."""
+    try:
+        from distributed import Client
+    except ImportError as e:
+        raise InputError(f"a dask scheduler needs dask.distributed: pip install 'nenv[cluster]' ({e})") from e
+    try:
+        return Client(scheduler, timeout="10s", set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as e:
+        raise InputError(f"cannot reach the dask scheduler at {scheduler!r}: {e}") from e
+
+
+def _dask(fn: Callable, arg_tuples: Sequence[tuple], scheduler: str) -> Iterator[tuple[int, object]]:
+    client = dask_client(scheduler)
+    try:
+        from distributed import as_completed
+
+        with client.as_current():
+            futures = [client.submit(fn, *args, pure=False) for args in arg_tuples]
+            index = {f.key: i for i, f in enumerate(futures)}
+            try:
+                for fut in as_completed(futures):
+                    yield index[fut.key], fut.result()
+            except BaseException:
+                client.cancel(futures)
+                raise
+    finally:
+        client.close()
