@@ -13,6 +13,16 @@ is declared lost and filled with silence of the gap's timestamp length
 timestamps wrap modulo 2^16 and 2^32. Malformed packets, wrong payload types
 and packets from addresses not allowed are dropped and counted, never raised.
 A stream idle for ``idle_timeout_s`` is flushed (its tail sent) and closed.
+
+Robustness (each case counted): a payload longer than ``MAX_PAYLOAD`` bytes
+is dropped (``oversized``); a timestamp jump between consecutive packets
+(silence suppression) is filled with silence up to ``MAX_FILL`` samples, and
+a longer one restarts the timing (``timing_restarts``); a sender that
+restarts with the same SSRC but far-away sequence numbers is followed after
+``RESYNC_AFTER`` consecutive out-of-place packets (``resyncs``); a new SSRC
+(a restarted sender) opens a new stream. Memory per stream is bounded (the
+reorder window holds at most ``reorder_window + 1`` packets); the counters of
+closed streams are kept for the last ``MAX_CLOSED`` streams only.
 """
 
 from __future__ import annotations
@@ -38,6 +48,9 @@ LAW_OF_PT = {PT_PCMU: "mulaw", PT_PCMA: "alaw"}
 OUT_SAMPLES = 320  # per outgoing packet: 20 ms at 16 kHz
 MAX_FILL = 8000  # samples: longest gap filled with silence (1 s); longer gaps restart the timing
 HEADER = struct.Struct("!BBHII")
+MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
+RESYNC_AFTER = 16  # consecutive late-looking packets after which a stream follows the new numbering
+MAX_CLOSED = 1024  # closed streams whose counters are kept
 
 
 @dataclass(frozen=True)
@@ -88,6 +101,9 @@ class StreamCounters:
     arrived_early: int = 0
     packets_out: int = 0
     limited: int = 0
+    silence_filled: int = 0  # samples of silence inserted for timestamp jumps (silence suppression)
+    timing_restarts: int = 0  # timestamp jumps too long to fill
+    resyncs: int = 0  # sender restarts with the same SSRC
 
 
 @dataclass
@@ -102,12 +118,14 @@ class _Stream:
     out_buf: np.ndarray = field(default_factory=lambda: np.zeros(0))
     out_seq: int = 0
     out_ts: int = 0
+    late_run: int = 0
     counters: StreamCounters = field(default_factory=StreamCounters)
 
 
 @dataclass
 class RelayCounters:
     malformed: int = 0
+    oversized: int = 0
     wrong_payload_type: int = 0
     not_allowed: int = 0
     over_stream_limit: int = 0
@@ -192,6 +210,9 @@ class Relay:
         if pkt.payload_type not in LAW_OF_PT:
             self.counters.wrong_payload_type += 1
             return
+        if len(pkt.payload) > MAX_PAYLOAD:
+            self.counters.oversized += 1
+            return
         st = self.streams.get(pkt.ssrc)
         if st is None:
             if len(self.streams) >= self.max_streams:
@@ -206,7 +227,15 @@ class Relay:
         ahead = (pkt.seq - st.next_seq) & 0xFFFF
         if ahead >= 0x8000 or pkt.seq in st.held:  # behind the play-out point, or a copy
             st.counters.late_or_duplicate += 1
-            return
+            st.late_run += 1
+            if st.late_run < RESYNC_AFTER:
+                return
+            # this many in a row: the sender restarted its numbering; follow it
+            self._drain(st, force=True)
+            st.next_seq, st.next_ts, st.late_run = pkt.seq, pkt.timestamp, 0
+            st.counters.resyncs += 1
+            ahead = 0
+        st.late_run = 0
         if ahead > 0:
             st.counters.arrived_early += 1  # an earlier packet is late (reordered) or lost
         st.held[pkt.seq] = pkt
@@ -233,6 +262,13 @@ class Relay:
             st.next_ts = st.held[nearest].timestamp
 
     def _play(self, st: _Stream, pkt: RtpPacket) -> None:
+        jump = (pkt.timestamp - st.next_ts) & 0xFFFFFFFF
+        if 0 < jump < 0x80000000:  # consecutive packets, later timestamp: suppressed silence
+            if jump <= MAX_FILL:
+                st.counters.silence_filled += jump
+                self._emit(st, st.engine.feed(np.zeros(jump)))
+            else:
+                st.counters.timing_restarts += 1
         codes = np.frombuffer(pkt.payload, dtype=np.uint8)
         x = g711.decode(codes, law=LAW_OF_PT[pkt.payload_type])
         st.counters.samples_in += x.size
@@ -267,4 +303,6 @@ class Relay:
         self._emit(st, st.engine.flush(), final=True)
         st.counters.limited = st.engine.limited
         self.closed[ssrc] = st.counters
+        while len(self.closed) > MAX_CLOSED:
+            self.closed.pop(next(iter(self.closed)))
         self.counters.streams_closed += 1

@@ -143,3 +143,52 @@ def test_relay_command_runs_and_stops_on_sigterm(arctic_refs):
     assert p.returncode == 0, err
     assert len(got) >= 20
     assert b"stream 00000063: 25 packets in" in err
+
+
+def test_relay_survives_junk_bursts_silence_and_sender_restarts(arctic_refs):
+    """Malformed and foreign packets, a burst, suppressed silence, a restart with the same SSRC, a new SSRC."""
+    _, ref = arctic_refs[1]
+    codes = g711.encode(channel.telephone(ref, sr=16000, law="alaw")[:12000], law="alaw")
+    packets = [codes[i : i + 160].tobytes() for i in range(0, codes.size, 160)]  # 75 packets of 20 ms
+    from concurrent.futures import ThreadPoolExecutor
+
+    rx = _receiver()
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), reorder_window=3, idle_timeout_s=0.6).start()
+    receiving = ThreadPoolExecutor(1).submit(_collect, rx, 40.0)
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    send = lambda raw: tx.sendto(raw, relay.address)  # noqa: E731
+    rng = np.random.default_rng(3)
+    a, b = 0xA1, 0xB2
+    for i in range(25):  # a burst: no pacing at all
+        send(rtp.build(payload_type=8, seq=100 + i, timestamp=1000 + 160 * i, ssrc=a, payload=packets[i]))
+    for n in rng.integers(0, 40, 50):  # junk of every length, including RTP-looking headers
+        send(bytes(rng.integers(0, 256, int(n), dtype=np.uint8)))
+    send(rtp.build(payload_type=9, seq=1, timestamp=0, ssrc=a, payload=b"\x00" * 160))  # G.722: not ours
+    send(rtp.build(payload_type=8, seq=125, timestamp=5000, ssrc=a, payload=b"\xd5" * 4000))  # 0.5 s in one packet
+    # silence suppression: the sequence continues, the timestamp jumps 0.25 s
+    for i in range(25, 40):
+        send(rtp.build(payload_type=8, seq=100 + i, timestamp=1000 + 160 * i + 2000, ssrc=a, payload=packets[i]))
+        time.sleep(0.002)
+    # the sender restarts with the same SSRC, numbering from far away
+    for i in range(40, 60):
+        send(rtp.build(payload_type=8, seq=40000 + i, timestamp=9_000_000 + 160 * i, ssrc=a, payload=packets[i]))
+        time.sleep(0.002)
+    # and once more as a new SSRC
+    for i in range(60, 75):
+        send(rtp.build(payload_type=8, seq=7 + i, timestamp=160 * i, ssrc=b, payload=packets[i]))
+        time.sleep(0.002)
+    got = receiving.result()
+    relay.stop()
+    c = relay.counters
+    assert c.malformed + c.wrong_payload_type >= 50 and c.oversized == 1 and c.streams_opened == 2
+    ca, cb = relay.closed[a], relay.closed[b]
+    assert ca.silence_filled == 2000 and ca.resyncs == 1 and ca.late_or_duplicate == rtp.RESYNC_AFTER
+    assert cb.packets == 15 and cb.samples_in == 15 * 160
+    # every sample a stream took in (decoded, filled or inserted) comes out twice: nothing dropped silently
+    per_out = {}
+    for p in got:
+        per_out[p.ssrc] = per_out.get(p.ssrc, 0) + len(p.payload) // 2
+    played_a = ca.samples_in + ca.filled_samples + ca.silence_filled
+    assert sorted(per_out.values()) == sorted([2 * played_a, 2 * cb.samples_in])
+    # the packets dropped before the restart was recognised are the only audio lost
+    assert ca.samples_in == (60 - (rtp.RESYNC_AFTER - 1)) * 160
