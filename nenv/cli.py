@@ -87,7 +87,7 @@ def degrade(
 @app.command()
 @_guarded
 def extend(
-    inputs: Annotated[list[Path], typer.Argument(help="8 kHz telephone speech: one file, or folders (searched recursively), files and lists (.txt, one path per line).", show_default=False)],
+    inputs: Annotated[list[Path], typer.Argument(help="8 kHz telephone speech: one file, or folders (searched recursively), files and lists (.txt, one path per line).", show_default=False, readable=False)],
     output: Annotated[Path, typer.Argument(help="The 16 kHz result (.wav, .flac) for one input file; a folder (mirroring the input layout) otherwise.", show_default=False)],
     method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended, or oracle (needs --reference).")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder made by 'nenv train' (default: $NENV_MODEL, else the shipped model).")] = None,
