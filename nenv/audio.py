@@ -225,7 +225,10 @@ def to_int16(y: np.ndarray) -> np.ndarray:
     return np.clip(np.round(np.asarray(y, dtype=np.float64) * 32768.0), -32768, 32767).astype(np.int16)
 
 
-def limit_peaks(y: np.ndarray, *, ceiling: float = 0.99 * FULL_SCALE) -> tuple[np.ndarray, int]:
+PEAK_CEILING = 0.99 * FULL_SCALE  # -0.09 dBFS: every output is limited here
+
+
+def limit_peaks(y: np.ndarray, *, ceiling: float = PEAK_CEILING) -> tuple[np.ndarray, int]:
     """Clip samples beyond ``ceiling`` and count them.
 
     Returns

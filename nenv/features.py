@@ -181,9 +181,9 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
     """
     c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
     a, g0 = lpc.from_cepstrum_stable(np.nan_to_num(c, nan=0.0, posinf=0.0, neginf=0.0), order=order)
-    env = lpc.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT)
-    sel = _band_bins(BAND_EDGE_HZ, WB_SR / 2)
-    model_hb = 2.0 * np.sum(env[:, sel], axis=1) / LEVEL_N_FFT
+    sel = np.flatnonzero(_band_bins(BAND_EDGE_HZ, WB_SR / 2))
+    env = lpc.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=(int(sel[0]), int(sel[-1])))
+    model_hb = 2.0 * np.sum(env, axis=1) / LEVEL_N_FFT
     target = 10 ** ((nb_energy_db + level_db) / 10)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         gain = g0 * np.sqrt(target / model_hb)

@@ -124,9 +124,10 @@ def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
     a_wb : np.ndarray [shape=(n, p+1)] at 16 kHz; a_nb : np.ndarray [shape=(n, q+1)] at 8 kHz
     """
     f = np.fft.rfftfreq(MISMATCH_N_FFT_WB, 1 / WB_SR)
-    sel = (f >= CHANNEL_LOW_HZ) & (f <= BAND_EDGE_HZ)  # the same bins exist on the 8 kHz grid
-    wb = 10 * np.log10(lpc.power_spectrum(a_wb, n_fft=MISMATCH_N_FFT_WB)[:, sel])
-    nb = 10 * np.log10(lpc.power_spectrum(a_nb, n_fft=MISMATCH_N_FFT_NB)[:, sel[: MISMATCH_N_FFT_NB // 2 + 1]])
+    sel = np.flatnonzero((f >= CHANNEL_LOW_HZ) & (f <= BAND_EDGE_HZ))  # the same bins exist on the 8 kHz grid
+    bins = (int(sel[0]), int(sel[-1]))
+    wb = 10 * np.log10(lpc.power_spectrum(a_wb, n_fft=MISMATCH_N_FFT_WB, bins=bins))
+    nb = 10 * np.log10(lpc.power_spectrum(a_nb, n_fft=MISMATCH_N_FFT_NB, bins=bins))
     d = (wb - wb.mean(axis=1, keepdims=True)) - (nb - nb.mean(axis=1, keepdims=True))
     return np.sqrt(np.mean(d * d, axis=1))
 

@@ -104,9 +104,29 @@ def autocorrelation(frames: np.ndarray, *, order: int) -> np.ndarray:
     frames : np.ndarray [shape=(..., L)] -> np.ndarray [shape=(..., order+1)]
     """
     length = frames.shape[-1]
+    if order <= DIRECT_MAX_ORDER:  # a few lags: direct products beat an FFT of the whole frame
+        x = np.asarray(frames, dtype=np.float64)
+        r = np.empty(x.shape[:-1] + (order + 1,))
+        for k in range(order + 1):
+            r[..., k] = np.einsum("...n,...n->...", x[..., : length - k], x[..., k:])
+        return r
     n_fft = 1 << int(np.ceil(np.log2(length + order + 1)))
     spec = np.fft.rfft(frames, n=n_fft, axis=-1)
     return np.fft.irfft(spec.real**2 + spec.imag**2, n=n_fft, axis=-1)[..., : order + 1]
+
+
+DIRECT_MAX_ORDER = 24  # autocorrelation up to this many lags by direct products, beyond by FFT
+
+
+@lru_cache(maxsize=None)
+def _cosines(n_terms: int, n_fft: int, first_bin: int = 0, last_bin: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """cos(i w_k) and sin(i w_k) for i < n_terms on rfft bins first_bin..last_bin of an n_fft grid."""
+    last = n_fft // 2 if last_bin is None else last_bin
+    w = 2 * np.pi * np.arange(first_bin, last + 1) / n_fft
+    arg = np.outer(np.arange(n_terms), w)
+    c, s = np.cos(arg), np.sin(arg)
+    c.flags.writeable = s.flags.writeable = False
+    return c, s
 
 
 def condition(r: np.ndarray, *, sr: int, lag_window_hz: float = LAG_WINDOW_HZ, white_noise: float = WHITE_NOISE_CORRECTION) -> np.ndarray:
@@ -302,11 +322,8 @@ def log_magnitude(c: np.ndarray, *, n_fft: int) -> np.ndarray:
     m = c.shape[-1] - 1
     if m >= n_fft // 2:
         raise ValueError(f"n_fft={n_fft} is too small for {m} cepstral coefficients")
-    full = np.zeros(c.shape[:-1] + (n_fft,))
-    full[..., 0] = c[..., 0]
-    full[..., 1 : m + 1] = 0.5 * c[..., 1:]
-    full[..., n_fft - m :] = 0.5 * c[..., :0:-1]
-    return np.fft.rfft(full, axis=-1).real
+    cos, _ = _cosines(m + 1, n_fft)  # a cosine series of a few terms: one matrix product
+    return np.asarray(c, dtype=np.float64) @ cos
 
 
 def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tuple[np.ndarray, np.ndarray]:
@@ -328,18 +345,34 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tupl
     # Spectrum relative to its peak, floored at -STABLE_FLOOR_DB: keeps Levinson well
     # conditioned in float64 however extreme the cepstrum.
     rel = np.maximum(logmag - top, -STABLE_FLOOR_DB * np.log(10) / 20)
-    r = np.fft.irfft(np.exp(2.0 * rel), n=n_fft, axis=-1)[..., : order + 1]
+    r = np.exp(2.0 * rel) @ _inverse_cosines(order + 1, n_fft)  # = irfft(...)[:order+1]
     a, _, err = levinson(r, order=order)
     with np.errstate(over="ignore"):  # an absurd c_0 gives gain = inf, which the guard rejects
         gain = np.sqrt(np.maximum(err, 0.0)) * np.exp(top[..., 0])
     return a, gain
 
 
-def power_spectrum(a: np.ndarray, *, gain: np.ndarray | float = 1.0, n_fft: int = 512) -> np.ndarray:
-    """Envelope power ``G**2 / |A(e^jw)|**2`` on the rfft grid.
+@lru_cache(maxsize=None)
+def _inverse_cosines(n_lags: int, n_fft: int) -> np.ndarray:
+    """W with ``S @ W == irfft(S, n_fft)[..., :n_lags]`` for real, even spectra S on the rfft grid."""
+    cos, _ = _cosines(n_lags, n_fft)
+    wt = np.full(n_fft // 2 + 1, 2.0 / n_fft)
+    wt[0] = wt[-1] = 1.0 / n_fft
+    w = (cos * wt).T.copy()
+    w.flags.writeable = False
+    return w
 
-    a : np.ndarray [shape=(..., p+1)] -> np.ndarray [shape=(..., n_fft//2+1)]
+
+def power_spectrum(a: np.ndarray, *, gain: np.ndarray | float = 1.0, n_fft: int = 512, bins: tuple[int, int] | None = None) -> np.ndarray:
+    """Envelope power ``G**2 / |A(e^jw)|**2`` on the rfft grid (or its bins ``first..last``).
+
+    A polynomial of a few terms is evaluated as two matrix products (cosine and sine
+    parts), cheaper than an FFT of the whole grid.
+
+    a : np.ndarray [shape=(..., p+1)] -> np.ndarray [shape=(..., n_fft//2+1)] (or last-first+1)
     """
-    A = np.fft.rfft(a, n=n_fft, axis=-1)
+    a = np.asarray(a, dtype=np.float64)
+    cos, sin = _cosines(a.shape[-1], n_fft, *(bins or (0, None)))
+    re, im = a @ cos, a @ sin
     g = np.asarray(gain, dtype=np.float64)[..., None]
-    return g * g / np.maximum(A.real**2 + A.imag**2, 1e-300)
+    return g * g / np.maximum(re * re + im * im, 1e-300)

@@ -26,9 +26,12 @@ from nenv.excitation import DC_POLE, WHITEN_ORDER, residual
 from nenv.features import narrowband_features
 from nenv.guard import Guard
 from nenv.pipeline import tail_padding
-from nenv.runtime import OutputGate, sanitize
+from nenv.audio import PEAK_CEILING as CEILING
+from nenv.runtime import OutputGate
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
-from nenv.synthesis import MAX_REFLECTION, block_synthesis, isolation_sos, upsampler_taps
+from nenv.synthesis import MAX_REFLECTION, block_synthesis, direct_synthesis, isolation_sos, upsampler_taps
+
+DIRECT_MIN_CALLS = 8  # from this many calls per hop the sample-by-sample recursion beats the block form
 
 
 @dataclass
@@ -112,10 +115,9 @@ class MultiCallEngine:
     def feed(self, call_id: str, x: np.ndarray) -> None:
         """Queue 8 kHz samples for a call (processed by the next :meth:`step`)."""
         call = self._calls[call_id]
-        x, bad = sanitize(x)
-        call.bad_samples += bad
+        x = np.asarray(x, dtype=np.float64).reshape(-1)  # non-finite samples are replaced per hop, in _run
         call.samples_in += x.size
-        call.pending = np.concatenate([call.pending, x])
+        call.pending = np.concatenate([call.pending, x]) if call.pending.size else x
 
     def step(self) -> dict[str, np.ndarray]:
         """Process every whole hop queued, all calls together; return each call's new 16 kHz samples."""
@@ -132,15 +134,23 @@ class MultiCallEngine:
             rows = [i for i, cid in enumerate(self._ids) if (only is None or cid == only) and self._calls[cid].pending.size >= HOP_NB]
             if not rows:
                 return
-            x = np.stack([self._calls[self._ids[i]].pending[:HOP_NB] for i in rows])
-            for i in rows:
-                c = self._calls[self._ids[i]]
+            calls = [self._calls[self._ids[i]] for i in rows]
+            x = np.stack([c.pending[:HOP_NB] for c in calls])
+            for c in calls:
                 c.pending = c.pending[HOP_NB:]
+            finite = np.isfinite(x)
+            if not finite.all():  # one corrupt packet must not poison a call's filter state
+                for r in np.flatnonzero(~finite.all(axis=1)):
+                    calls[r].bad_samples += int(np.count_nonzero(~finite[r]))
+                x = np.where(finite, x, 0.0)
             y = self._hop(np.array(rows), x)
-            for r, i in enumerate(rows):
-                c = self._calls[self._ids[i]]
+            # the output gate, batched: limit every row at once, then each call's own bookkeeping
+            over = np.abs(y) > CEILING
+            n_over = over.sum(axis=1) if over.any() else np.zeros(len(rows), dtype=int)
+            y_lim = np.clip(y, -CEILING, CEILING) if over.any() else y
+            for r, c in enumerate(calls):
                 c.hops += 1
-                c.out.append(c.gate.emit(y[r]))
+                c.out.append(c.gate.emit(y[r]) if c.gate.skip else c.gate.emit_limited(y_lim[r], int(n_over[r])))
 
     def _hop(self, rows: np.ndarray, x: np.ndarray) -> np.ndarray:
         st = self._state
@@ -198,15 +208,15 @@ class MultiCallEngine:
     def _fir(self, z: np.ndarray, key: str, rows: np.ndarray) -> np.ndarray:
         """The interpolation FIR on B rows at once; state = the last len(taps)-1 input samples.
 
-        (scipy's lfilter runs an FIR row by row; a sliding-window product does all rows in one go.)
+        (scipy's lfilter runs an FIR row by row; an overlap-add convolution does all rows in one go.)
         """
         hist = self._state[key][rows]
         buf = np.concatenate([hist, z], axis=1)
         self._state[key][rows] = buf[:, z.shape[1] :]
-        win = np.lib.stride_tricks.sliding_window_view(buf, self._up_taps.size, axis=1)
-        return win @ self._up_taps[::-1]
+        return signal.oaconvolve(buf, self._up_taps[None, :], mode="valid", axes=1)
 
     def _synthesize(self, rows: np.ndarray, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
         """All-pole synthesis of one hop for B calls, each with its own filter memory."""
-        y, self._state["past"][rows] = block_synthesis(u, a_sub, g_sub, self._state["past"][rows])
+        synth = direct_synthesis if u.shape[0] >= DIRECT_MIN_CALLS else block_synthesis
+        y, self._state["past"][rows] = synth(u, a_sub, g_sub, self._state["past"][rows])
         return y.reshape(u.shape[0], -1)

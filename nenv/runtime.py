@@ -53,6 +53,12 @@ class OutputGate:
         self.samples_out += y.size
         return y
 
+    def emit_limited(self, y: np.ndarray, n_limited: int) -> np.ndarray:
+        """:meth:`emit` for samples already limited (``n_limited`` of them) once the delay is dropped."""
+        self.limited += n_limited
+        self.samples_out += y.size
+        return y
+
 
 class CallEngine:
     """Streaming narrowband -> wideband conversion for one call."""

@@ -196,12 +196,25 @@ class AllPoleSynthesizer:
         return y[0]
 
 
-@lru_cache(maxsize=None)
-def _memory_index(order: int) -> tuple[np.ndarray, np.ndarray]:
-    """Index table and mask of K: the memory's equivalent input is v[m] = -sum_i a[m+1+i] s[i]."""
-    i = np.arange(order)
-    idx = i[:, None] + 1 + i[None, :]
-    return np.minimum(idx, order), idx <= order
+def direct_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The same result as :func:`block_synthesis` by the plain recursion, one sample at a time for all streams.
+
+    ``y[n] = g u[n] - sum_i a_i y[n-i]``, each numpy operation serving all B streams: the
+    cheaper route when many streams advance a few sub-frames (a gateway's hop), where
+    the block form's per-sub-frame matrices cost more than J * L vector steps.
+    """
+    B, J, length = u.shape
+    p = a_sub.shape[-1] - 1
+    n = J * length
+    y = np.empty((B, p + n))
+    y[:, :p] = past[:, ::-1]
+    gu = (g_sub[:, :, None] * u).reshape(B, n)
+    neg = -a_sub[:, :, :0:-1]  # -a_p .. -a_1
+    for j in range(J):
+        aj = np.ascontiguousarray(neg[:, j])
+        for t in range(j * length, (j + 1) * length):
+            y[:, p + t] = gu[:, t] + np.einsum("bi,bi->b", aj, y[:, t : t + p])
+    return y[:, p:].reshape(B, J, length), y[:, -1 : -p - 1 : -1].copy()
 
 
 def block_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -234,11 +247,12 @@ def block_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: n
         k = min(t, p)
         both[:, :, t] -= np.einsum("jk,bjk->bj", a[:, 1 : k + 1], both[:, :, t - 1 :: -1][:, :, :k])
     h, zs = both[0], both[1]
-    idx, mask = _memory_index(p)
-    K = a[:, idx] * mask
-    r = np.arange(p)
-    G = h[:, length - 1 - r[:, None] - r[None, :]]  # last outputs' response to v
+    # K[m, i] = a[m+1+i] (0 beyond p) and G[r, m] = h[L-1-r-m]: sliding windows, no copies
+    a_pad = np.concatenate([a[:, 1:], np.zeros((B * J, p))], axis=1)
+    K = np.lib.stride_tricks.sliding_window_view(a_pad, p, axis=1)[:, :p]
+    G = np.lib.stride_tricks.sliding_window_view(h[:, ::-1], p, axis=1)[:, :p]
     F = -np.matmul(G, K).reshape(B, J, p, p)
+    r = np.arange(p)
     Z = zs[:, length - 1 - r].reshape(B, J, p)
     states = np.empty((B, J, p))
     s = past.copy()
@@ -253,6 +267,8 @@ def block_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: n
             states[:, j] = s
             s = Z[:, j] + np.matmul(F[:, j], s[:, :, None])[:, :, 0]
     v = -np.matmul(K, states.reshape(B * J, p, 1))[:, :, 0]
-    n_fft = 1 << int(np.ceil(np.log2(2 * length)))
-    zi = np.fft.irfft(np.fft.rfft(h, n_fft, axis=1) * np.fft.rfft(v, n_fft, axis=1), n_fft, axis=1)[:, :length]
+    # the memory's response: h convolved with v (v has p samples), by p shifted products
+    zi = np.zeros_like(zs)
+    for m in range(p):
+        zi[:, m:] += h[:, : length - m] * v[:, m : m + 1]
     return (zs + zi).reshape(B, J, length), s
