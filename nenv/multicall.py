@@ -63,8 +63,8 @@ class MultiCallEngine:
             "wb_hist": np.zeros((0, WIN_WB - HOP_WB)),
             "ctx": np.zeros((0, self.context * n_in)),
             "ctx_ready": np.zeros(0, dtype=bool),
-            "up_x": np.zeros((0, self._up_taps.size - 1)),  # last inputs of the interpolation FIR
-            "up_e": np.zeros((0, self._up_taps.size - 1)),
+            "up_x": np.zeros((0, self._up_taps.size // 2)),  # last 8 kHz inputs of the interpolation FIR
+            "up_e": np.zeros((0, self._up_taps.size // 2)),
             "dc": np.zeros((0, 1)),
             "iso": np.zeros((self._iso.shape[0], 0, 2)),
             "past": np.zeros((0, self.p)),
@@ -174,9 +174,7 @@ class MultiCallEngine:
                 self._calls[self._ids[rows[r]]].rejected_hops += 1
         # excitation: residual -> interpolate -> rectify -> DC removal -> power match -> whiten
         e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, HOP_NB)
-        z = np.zeros((B, HOP_WB))
-        z[:, ::2] = e
-        up = self._fir(z, "up_e", rows)
+        up = self._fir(e, "up_e", rows)
         r, st["dc"][rows] = signal.lfilter([1.0, -1.0], [1.0, -DC_POLE], np.abs(up), axis=1, zi=st["dc"][rows])
         scale = np.sqrt(np.mean(up**2, axis=1) / np.maximum(np.mean(r**2, axis=1), 1e-30))
         u = r * scale[:, None]
@@ -197,23 +195,32 @@ class MultiCallEngine:
         a_sub = lpc.from_reflection(k_sub)  # (B, n_sub, p+1)
         synth = self._synthesize(rows, u.reshape(B, N_SUBFRAMES, -1), a_sub, g_sub)
         # band isolation and mixing with the interpolated input
-        zx = np.zeros((B, HOP_WB))
-        zx[:, ::2] = x
-        low = self._fir(zx, "up_x", rows)
+        low = self._fir(x, "up_x", rows)
         iso_zi = st["iso"][:, rows]
         hb, iso_zi = signal.sosfilt(self._iso, synth, axis=1, zi=iso_zi)
         st["iso"][:, rows] = iso_zi
         return low + hb
 
-    def _fir(self, z: np.ndarray, key: str, rows: np.ndarray) -> np.ndarray:
-        """The interpolation FIR on B rows at once; state = the last len(taps)-1 input samples.
+    def _fir(self, x: np.ndarray, key: str, rows: np.ndarray) -> np.ndarray:
+        """Interpolate B rows of 8 kHz samples by 2 with the upsampler's FIR, in polyphase form.
 
-        (scipy's lfilter runs an FIR row by row; an overlap-add convolution does all rows in one go.)
+        Zero insertion followed by the FIR is, per output phase, a short FIR on the 8 kHz
+        samples (even taps -> even outputs, odd taps -> odd outputs); state = the last
+        ``len(taps) // 2`` input samples. One slice product per tap serves every call.
         """
+        h = self._up_taps
         hist = self._state[key][rows]
-        buf = np.concatenate([hist, z], axis=1)
-        self._state[key][rows] = buf[:, z.shape[1] :]
-        return signal.oaconvolve(buf, self._up_taps[None, :], mode="valid", axes=1)
+        m = hist.shape[1]
+        buf = np.concatenate([hist, x], axis=1)
+        self._state[key][rows] = buf[:, x.shape[1] :]
+        n = x.shape[1]
+        out = np.zeros((x.shape[0], 2 * n))
+        even, odd = out[:, 0::2], out[:, 1::2]
+        for j in range(0, h.size, 2):
+            even += h[j] * buf[:, m - j // 2 : m - j // 2 + n]
+        for j in range(1, h.size, 2):
+            odd += h[j] * buf[:, m - j // 2 : m - j // 2 + n]
+        return out
 
     def _synthesize(self, rows: np.ndarray, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
         """All-pole synthesis of one hop for B calls, each with its own filter memory."""

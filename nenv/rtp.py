@@ -104,6 +104,7 @@ class StreamCounters:
     silence_filled: int = 0  # samples of silence inserted for timestamp jumps (silence suppression)
     timing_restarts: int = 0  # timestamp jumps too long to fill
     resyncs: int = 0  # sender restarts with the same SSRC
+    guard_fallbacks: int = 0  # hops where the guard replaced the network's envelope by the codebook's
 
 
 @dataclass
@@ -218,7 +219,8 @@ class Relay:
             if len(self.streams) >= self.max_streams:
                 self.counters.over_stream_limit += 1
                 return
-            st = _Stream(CallEngine(self.make_system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
+            st = _Stream(CallEngine(self._system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
+            self._count_fallbacks(st)
             st.out_seq = int.from_bytes(os.urandom(2), "big")
             st.out_ts = int.from_bytes(os.urandom(4), "big")
             self.streams[pkt.ssrc] = st
@@ -241,6 +243,23 @@ class Relay:
         st.held[pkt.seq] = pkt
         st.counters.packets += 1
         self._drain(st, force=False)
+
+    def _system(self):
+        system = self.make_system()
+        est = getattr(system, "estimator", None)
+        if hasattr(est, "keep_decisions"):
+            est.keep_decisions = False  # counted below instead: memory must not grow with a call's length
+        return system
+
+    @staticmethod
+    def _count_fallbacks(st: _Stream) -> None:
+        est = getattr(st.engine.system, "estimator", None)
+        if hasattr(est, "listener"):
+
+            def listen(first_hop, dec, x, a_nb):
+                st.counters.guard_fallbacks += int(dec.rejected.sum())
+
+            est.listener = listen
 
     def _drain(self, st: _Stream, *, force: bool) -> None:
         while st.held:

@@ -192,3 +192,33 @@ def test_relay_survives_junk_bursts_silence_and_sender_restarts(arctic_refs):
     assert sorted(per_out.values()) == sorted([2 * played_a, 2 * cb.samples_in])
     # the packets dropped before the restart was recognised are the only audio lost
     assert ca.samples_in == (60 - (rtp.RESYNC_AFTER - 1)) * 160
+
+
+def test_relay_counts_guard_fallbacks_without_keeping_per_hop_records(arctic_refs, monkeypatch):
+    """A long call must not grow memory: the relay counts fallbacks per stream instead of keeping every verdict."""
+    from nenv import checkpoint
+    from nenv.guard import Check
+    from tests.conftest import perturb_predictions
+
+    ck = checkpoint.load(checkpoint.default_path())
+    perturb_predictions(ck, {Check.LEVEL: range(100, 105)}, monkeypatch)  # hops 1.00-1.05 s
+    _, ref = arctic_refs[0]
+    codes = g711.encode(channel.telephone(ref, sr=16000, law="mulaw")[:16000], law="mulaw")
+    from concurrent.futures import ThreadPoolExecutor
+
+    rx = _receiver()
+    relay = rtp.Relay(lambda: pipeline.make_system("neural", model=ck), send_to=rx.getsockname(), idle_timeout_s=0.5).start()
+    receiving = ThreadPoolExecutor(1).submit(_collect, rx, 30.0)
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for i in range(codes.size // 160):
+        tx.sendto(rtp.build(payload_type=0, seq=i, timestamp=160 * i, ssrc=5, payload=codes[i * 160 : (i + 1) * 160].tobytes()), relay.address)
+        if i == 10:
+            deadline = time.time() + 10
+            while 5 not in relay.streams and time.time() < deadline:
+                time.sleep(0.01)
+            est = relay.streams[5].engine.system.estimator
+        time.sleep(0.002)
+    receiving.result()
+    relay.stop()
+    assert relay.closed[5].guard_fallbacks == 5
+    assert est.keep_decisions is False and est.record().rejected.size == 0
