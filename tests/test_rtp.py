@@ -222,3 +222,26 @@ def test_relay_counts_guard_fallbacks_without_keeping_per_hop_records(arctic_ref
     relay.stop()
     assert relay.closed[5].guard_fallbacks == 5
     assert est.keep_decisions is False and est.record().rejected.size == 0
+
+
+def test_relay_memory_per_stream_is_bounded(monkeypatch):
+    """One SSRC flooding random sequence numbers holds at most the reorder window; closed streams are capped."""
+    monkeypatch.setattr(rtp, "MAX_CLOSED", 5)
+    rx = _receiver()
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), reorder_window=4, idle_timeout_s=0.2)
+    rng = np.random.default_rng(11)
+    worst = 0
+    for seq, ts in zip(rng.integers(0, 2**16, 3000), rng.integers(0, 2**32, 3000)):
+        relay.handle(rtp.build(payload_type=0, seq=int(seq), timestamp=int(ts), ssrc=77, payload=b"\xff" * 160), ("127.0.0.1", 9))
+        st = relay.streams[77]
+        worst = max(worst, len(st.held), st.out_buf.size)
+    assert len(relay.streams[77].held) <= 4 + 1 and worst <= rtp.OUT_SAMPLES
+    c = relay.streams[77].counters
+    held = len(relay.streams[77].held)  # still waiting in the reorder window
+    assert c.packets + c.late_or_duplicate == 3000 and c.samples_in == 160 * (c.packets - held)  # each packet played once, held or dropped
+    # many short streams one after another: only the last MAX_CLOSED keep their counters
+    for ssrc in range(100, 120):
+        relay.handle(rtp.build(payload_type=0, seq=1, timestamp=0, ssrc=ssrc, payload=b"\xff" * 160), ("127.0.0.1", 9))
+        relay._close(ssrc)
+    assert len(relay.closed) == 5 and set(relay.closed) == set(range(115, 120))
+    relay.stop()
