@@ -20,6 +20,7 @@ axis is samples, lags or coefficients.
 
 from __future__ import annotations
 
+import math
 from functools import lru_cache
 
 import numpy as np
@@ -165,6 +166,9 @@ def levinson(r: np.ndarray, *, order: int) -> tuple[np.ndarray, np.ndarray, np.n
     lead = r.shape[:-1]
     r = r.reshape(-1, r.shape[-1])[:, : order + 1]
     n = r.shape[0]
+    if n <= SCALAR_MAX_ROWS:
+        a, k, err = _levinson_scalar(r, order)
+        return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
     silent = ~(r[:, 0] > 0)
     r = np.where(silent[:, None], np.eye(1, order + 1), r)
     a = np.zeros((n, order + 1))
@@ -180,6 +184,45 @@ def levinson(r: np.ndarray, *, order: int) -> tuple[np.ndarray, np.ndarray, np.n
         err = err * (1.0 - ki * ki)
     err = np.where(silent, 0.0, err)
     return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
+
+
+SCALAR_MAX_ROWS = 2  # up to this many rows the order recursions run on Python floats (fewer, cheaper steps)
+
+
+def _div(num: float, den: float) -> float:
+    """num / den with IEEE results for den == 0 (as numpy gives), not an exception."""
+    if den != 0.0:
+        return num / den
+    if num == 0.0 or math.isnan(num):
+        return math.nan
+    return math.copysign(math.inf, num) * math.copysign(1.0, den)
+
+
+def _levinson_scalar(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`levinson` for a few rows, on Python floats (same recursion, same edge cases)."""
+    n = r.shape[0]
+    a_out, k_out, e_out = np.zeros((n, order + 1)), np.zeros((n, order)), np.zeros(n)
+    for row in range(n):
+        rr = r[row].tolist()
+        a = [1.0] + [0.0] * order
+        if not rr[0] > 0:  # digital silence
+            a_out[row] = a
+            continue
+        err = rr[0]
+        ks = []
+        for i in range(1, order + 1):
+            acc = 0.0
+            for j in range(i):
+                acc += a[j] * rr[i - j]
+            ki = -_div(acc, err)
+            ks.append(ki)
+            prev = a[:]
+            for j in range(1, i):
+                a[j] = prev[j] + ki * prev[i - j]
+            a[i] = ki
+            err = err * (1.0 - ki * ki)
+        a_out[row], k_out[row], e_out[row] = a, ks, err
+    return a_out, k_out, e_out
 
 
 def analyse(frames: np.ndarray, *, order: int, sr: int) -> tuple[np.ndarray, np.ndarray]:
@@ -218,6 +261,9 @@ def reflection(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     a = np.asarray(a, dtype=np.float64)
     lead = a.shape[:-1]
     p = a.shape[-1] - 1
+    if a.size <= SCALAR_MAX_ROWS * (p + 1):
+        k, stable = _reflection_scalar(a.reshape(-1, p + 1))
+        return k.reshape(*lead, p), stable.reshape(lead)
     cur = a.reshape(-1, p + 1)[:, 1:].copy()
     k = np.zeros_like(cur)
     stable = np.ones(cur.shape[0], dtype=bool)
@@ -231,6 +277,28 @@ def reflection(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
             prev = cur[:, : i - 1]
             cur[:, : i - 1] = (prev - ki[:, None] * prev[:, ::-1]) / denom[:, None]
     return k.reshape(*lead, p), stable.reshape(lead)
+
+
+def _reflection_scalar(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`reflection` for a few rows, on Python floats (same recursion, same edge cases)."""
+    n, p = a.shape[0], a.shape[1] - 1
+    k_out, st_out = np.zeros((n, p)), np.ones(n, dtype=bool)
+    for row in range(n):
+        cur = a[row, 1:].tolist()
+        ks = [0.0] * p
+        stable = True
+        for i in range(p, 0, -1):
+            ki = cur[i - 1]
+            ks[i - 1] = ki
+            stable = stable and abs(ki) < 1.0
+            if i > 1:
+                denom = 1.0 - ki * ki
+                if abs(denom) < 1e-300:
+                    denom = 1.0
+                prev = cur[: i - 1]
+                cur[: i - 1] = [_div(prev[j] - ki * prev[i - 2 - j], denom) for j in range(i - 1)]
+        k_out[row], st_out[row] = ks, stable
+    return k_out, st_out
 
 
 def is_stable(a: np.ndarray, *, margin: float = 0.0) -> np.ndarray:
@@ -251,6 +319,17 @@ def from_reflection(k: np.ndarray) -> np.ndarray:
     lead = k.shape[:-1]
     p = k.shape[-1]
     kk = k.reshape(-1, p)
+    if kk.shape[0] <= SCALAR_MAX_ROWS:
+        out = np.zeros((kk.shape[0], p + 1))
+        for row in range(kk.shape[0]):
+            a = [1.0] + [0.0] * p
+            for i, ki in enumerate(kk[row].tolist(), start=1):
+                prev = a[:]
+                for j in range(1, i):
+                    a[j] = prev[j] + ki * prev[i - j]
+                a[i] = ki
+            out[row] = a
+        return out.reshape(*lead, p + 1)
     a = np.zeros((kk.shape[0], p + 1))
     a[:, 0] = 1.0
     for i in range(1, p + 1):

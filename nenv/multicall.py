@@ -32,6 +32,7 @@ from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, W
 from nenv.synthesis import MAX_REFLECTION, block_synthesis, direct_synthesis, isolation_sos, upsampler_taps
 
 DIRECT_MIN_CALLS = 8  # from this many calls per hop the sample-by-sample recursion beats the block form
+MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
 
 
 @dataclass
@@ -130,75 +131,89 @@ class MultiCallEngine:
 
     # ---- one hop for a set of calls ----------------------------------------------------
     def _run(self, only: str | None = None) -> None:
+        """Process queued whole hops: each round takes every call with a hop queued, as many hops
+        as all of them have (H), and runs them as one batch of B calls x H hops."""
         while True:
-            rows = [i for i, cid in enumerate(self._ids) if (only is None or cid == only) and self._calls[cid].pending.size >= HOP_NB]
-            if not rows:
+            ready = [(i, self._calls[cid]) for i, cid in enumerate(self._ids) if (only is None or cid == only) and self._calls[cid].pending.size >= HOP_NB]
+            if not ready:
                 return
-            calls = [self._calls[self._ids[i]] for i in rows]
-            x = np.stack([c.pending[:HOP_NB] for c in calls])
+            rows = [i for i, _ in ready]
+            calls = [c for _, c in ready]
+            n_hops = min(MAX_HOPS_PER_BATCH, min(c.pending.size for c in calls) // HOP_NB)
+            n = n_hops * HOP_NB
+            x = np.stack([c.pending[:n] for c in calls])
             for c in calls:
-                c.pending = c.pending[HOP_NB:]
+                c.pending = c.pending[n:]
             finite = np.isfinite(x)
             if not finite.all():  # one corrupt packet must not poison a call's filter state
                 for r in np.flatnonzero(~finite.all(axis=1)):
                     calls[r].bad_samples += int(np.count_nonzero(~finite[r]))
                 x = np.where(finite, x, 0.0)
-            y = self._hop(np.array(rows), x)
+            y = self._hops(np.array(rows), x, n_hops)
             # the output gate, batched: limit every row at once, then each call's own bookkeeping
             over = np.abs(y) > CEILING
             n_over = over.sum(axis=1) if over.any() else np.zeros(len(rows), dtype=int)
             y_lim = np.clip(y, -CEILING, CEILING) if over.any() else y
             for r, c in enumerate(calls):
-                c.hops += 1
+                c.hops += n_hops
                 c.out.append(c.gate.emit(y[r]) if c.gate.skip else c.gate.emit_limited(y_lim[r], int(n_over[r])))
 
-    def _hop(self, rows: np.ndarray, x: np.ndarray) -> np.ndarray:
+    def _hops(self, rows: np.ndarray, x: np.ndarray, H: int) -> np.ndarray:
+        """``H`` consecutive hops of B calls: x [shape=(B, H * HOP_NB)] -> 16 kHz [shape=(B, H * HOP_WB)]."""
         st = self._state
         B = rows.size
-        # narrowband analysis and features
-        frames = np.concatenate([st["nb_hist"][rows], x], axis=1)
-        st["nb_hist"][rows] = frames[:, HOP_NB:]
+        # narrowband analysis and features, B x H frames at once
+        buf = np.concatenate([st["nb_hist"][rows], x], axis=1)
+        st["nb_hist"][rows] = buf[:, H * HOP_NB :]
+        frames = np.lib.stride_tricks.sliding_window_view(buf, WIN_NB, axis=1)[:, ::HOP_NB][:, :H].reshape(B * H, WIN_NB)
         a_nb, g_nb = lpc.analyse(frames, order=NB_ORDER, sr=NB_SR)
         feats = narrowband_features(NarrowbandAnalysis(frames, a_nb, g_nb))
+        d = feats.shape[1]
+        first = feats.reshape(B, H, d)[:, 0]
         fresh = ~st["ctx_ready"][rows]
         if np.any(fresh):
-            st["ctx"][rows[fresh]] = np.tile(feats[fresh], (1, self.context))
+            st["ctx"][rows[fresh]] = np.tile(first[fresh], (1, self.context))
             st["ctx_ready"][rows[fresh]] = True
-        stacked = np.concatenate([st["ctx"][rows], feats], axis=1)
+        hist = np.concatenate([st["ctx"][rows].reshape(B, self.context, d), feats.reshape(B, H, d)], axis=1)
+        stacked = np.lib.stride_tricks.sliding_window_view(hist, self.context + 1, axis=1)  # (B, H, d, context+1)
+        stacked = stacked.transpose(0, 1, 3, 2).reshape(B * H, (self.context + 1) * d)
         if self.context:
-            st["ctx"][rows] = stacked[:, feats.shape[1] :]
-        # the network, once for all calls, then the guard
+            st["ctx"][rows] = hist[:, H:].reshape(B, self.context * d)
+        # the network, once for all calls and hops, then the guard
         a_wb, gain, dec = guarded_envelopes(self.ck, self.guard, feats=feats, stacked=stacked, a_nb=a_nb)
-        if dec is not None:
-            for r in np.flatnonzero(dec.rejected):
-                self._calls[self._ids[rows[r]]].rejected_hops += 1
+        if dec is not None and dec.rejected.any():
+            for r, n_rej in enumerate(dec.rejected.reshape(B, H).sum(axis=1)):
+                self._calls[self._ids[rows[r]]].rejected_hops += int(n_rej)
         # excitation: residual -> interpolate -> rectify -> DC removal -> power match -> whiten
-        e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, HOP_NB)
+        e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, H * HOP_NB)
         up = self._fir(e, "up_e", rows)
         r, st["dc"][rows] = signal.lfilter([1.0, -1.0], [1.0, -DC_POLE], np.abs(up), axis=1, zi=st["dc"][rows])
-        scale = np.sqrt(np.mean(up**2, axis=1) / np.maximum(np.mean(r**2, axis=1), 1e-30))
-        u = r * scale[:, None]
-        wb_frames = np.concatenate([st["wb_hist"][rows], u], axis=1)
-        st["wb_hist"][rows] = wb_frames[:, HOP_WB:]
+        up_h, r_h = up.reshape(B, H, HOP_WB), r.reshape(B, H, HOP_WB)
+        scale = np.sqrt(np.mean(up_h**2, axis=2) / np.maximum(np.mean(r_h**2, axis=2), 1e-30))
+        u = (r_h * scale[:, :, None]).reshape(B, H * HOP_WB)
+        wbuf = np.concatenate([st["wb_hist"][rows], u], axis=1)
+        st["wb_hist"][rows] = wbuf[:, H * HOP_WB :]
+        wb_frames = np.lib.stride_tricks.sliding_window_view(wbuf, WIN_WB, axis=1)[:, ::HOP_WB][:, :H].reshape(B * H, WIN_WB)
         a_w, _ = lpc.analyse(wb_frames, order=WHITEN_ORDER, sr=WB_SR)
-        u = residual(wb_frames, a_w, hop_length=HOP_WB).reshape(B, HOP_WB)
+        u = residual(wb_frames, a_w, hop_length=HOP_WB).reshape(B * H, HOP_WB)
         rms = np.maximum(np.sqrt(np.mean(u**2, axis=1)), 1e-9)
-        # synthesis: interpolated envelopes, memory carried per call
+        # synthesis: envelopes interpolated in the reflection domain from the previous hop's, memory per call
         k, _ = lpc.reflection(a_wb)
-        k = np.clip(np.nan_to_num(k), -MAX_REFLECTION, MAX_REFLECTION)
-        log_g = np.log(np.maximum(gain / rms, 1e-12))
+        k = np.clip(np.nan_to_num(k), -MAX_REFLECTION, MAX_REFLECTION).reshape(B, H, self.p)
+        log_g = np.log(np.maximum(gain / rms, 1e-12)).reshape(B, H)
+        k_from = np.concatenate([st["k_prev"][rows][:, None], k[:, :-1]], axis=1)
+        g_from = np.concatenate([st["g_prev"][rows][:, None], log_g[:, :-1]], axis=1)
         w = (np.arange(N_SUBFRAMES) + 1.0) / N_SUBFRAMES
-        k_sub = st["k_prev"][rows][:, None, :] * (1 - w)[None, :, None] + k[:, None, :] * w[None, :, None]
-        g_sub = np.exp(st["g_prev"][rows][:, None] * (1 - w)[None, :] + log_g[:, None] * w[None, :])
-        st["k_prev"][rows] = k
-        st["g_prev"][rows] = log_g
-        a_sub = lpc.from_reflection(k_sub)  # (B, n_sub, p+1)
-        synth = self._synthesize(rows, u.reshape(B, N_SUBFRAMES, -1), a_sub, g_sub)
+        k_sub = k_from[:, :, None, :] * (1 - w)[None, None, :, None] + k[:, :, None, :] * w[None, None, :, None]
+        g_sub = np.exp(g_from[:, :, None] * (1 - w)[None, None, :] + log_g[:, :, None] * w[None, None, :])
+        st["k_prev"][rows] = k[:, -1]
+        st["g_prev"][rows] = log_g[:, -1]
+        J = H * N_SUBFRAMES
+        a_sub = lpc.from_reflection(k_sub.reshape(B, J, self.p))
+        synth = self._synthesize(rows, u.reshape(B, J, -1), a_sub, g_sub.reshape(B, J))
         # band isolation and mixing with the interpolated input
         low = self._fir(x, "up_x", rows)
-        iso_zi = st["iso"][:, rows]
-        hb, iso_zi = signal.sosfilt(self._iso, synth, axis=1, zi=iso_zi)
-        st["iso"][:, rows] = iso_zi
+        hb, st["iso"][:, rows] = signal.sosfilt(self._iso, synth, axis=1, zi=st["iso"][:, rows])
         return low + hb
 
     def _fir(self, x: np.ndarray, key: str, rows: np.ndarray) -> np.ndarray:
