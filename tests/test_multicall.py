@@ -84,3 +84,24 @@ def test_one_bad_call_does_not_disturb_another(model, calls):
     tail = engine.close("good")
     np.testing.assert_allclose(np.concatenate([y["good"], tail]), ref, atol=1e-6)
     assert np.all(np.isfinite(y["bad"])) and engine.stats("bad")["bad_samples"] == 16000
+
+
+def test_many_calls_take_the_batched_synthesis_route_and_stay_exact(model, calls):
+    """With DIRECT_MIN_CALLS or more calls the synthesis runs sample by sample across calls; still each call's own output."""
+    from nenv import multicall
+
+    n_calls = multicall.DIRECT_MIN_CALLS + 3
+    xs = [calls[i % len(calls)][800 * i : 800 * i + 4000 + 37 * i] for i in range(n_calls)]
+    engine = MultiCallEngine(model)
+    for i in range(n_calls):
+        engine.open(str(i))
+    outs = {i: [] for i in range(n_calls)}
+    for start in range(0, max(x.size for x in xs), 160):  # 20 ms packets: two hops per step
+        for i, x in enumerate(xs):
+            engine.feed(str(i), x[start : start + 160])
+        for cid, y in engine.step().items():
+            outs[int(cid)].append(y)
+    for i, x in enumerate(xs):
+        y = np.concatenate(outs[i] + [engine.close(str(i))])
+        ref, _ = _alone(model, x, [])
+        np.testing.assert_allclose(y, ref, atol=1e-6)
