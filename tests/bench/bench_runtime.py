@@ -75,7 +75,7 @@ def main() -> None:
         n = packet_ms * 8
         print(f"capacity, MultiCallEngine, one core: N calls x {packet_ms} ms packets per step")
         best = 0
-        for n_calls in (1, 25, 50, 100, 200, 300, 400):
+        for n_calls in (1, 10, 20, 30, 40, 50, 60, 80, 100, 150, 200, 300, 400):
             multi = MultiCallEngine(model)
             for c in range(n_calls):
                 multi.open(str(c))
