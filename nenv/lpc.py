@@ -296,7 +296,7 @@ def _reflection_scalar(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
                 if abs(denom) < 1e-300:
                     denom = 1.0
                 prev = cur[: i - 1]
-                cur[: i - 1] = [_div(prev[j] - ki * prev[i - 2 - j], denom) for j in range(i - 1)]
+                cur[: i - 1] = [(prev[j] - ki * prev[i - 2 - j]) / denom for j in range(i - 1)]  # |denom| >= 1e-300
         k_out[row], st_out[row] = ks, stable
     return k_out, st_out
 
@@ -361,6 +361,16 @@ def to_cepstrum(a: np.ndarray, *, n_ceps: int, gain: np.ndarray | None = None) -
     c = np.zeros(a.shape[:-1] + (n_ceps + 1,))
     if gain is not None:
         c[..., 0] = np.log(np.maximum(gain, 1e-300))
+    if a.ndim == 2 and a.shape[0] <= SCALAR_MAX_ROWS:  # the same recursion on Python floats
+        for row in range(a.shape[0]):
+            ar, cr = a[row].tolist() + [0.0] * max(0, n_ceps - p), c[row].tolist()
+            for n in range(1, n_ceps + 1):
+                acc = -ar[n]
+                for k in range(max(1, n - p), n):
+                    acc = acc - (k / n) * cr[k] * ar[n - k]
+                cr[n] = acc
+            c[row] = cr
+        return c
     for n in range(1, n_ceps + 1):
         acc = -a[..., n] if n <= p else np.zeros(a.shape[:-1])
         for k in range(max(1, n - p), n):

@@ -121,6 +121,9 @@ def interpolate_envelopes(k_prev: np.ndarray, k: np.ndarray, log_g_prev: float, 
     return lpc.from_reflection(k_sub), np.exp(g_sub)
 
 
+LOOP_MAX_SUBFRAMES = 8  # up to two hops (a streaming call): one lfilter per sub-frame is cheapest
+
+
 class AllPoleSynthesizer:
     """``G / A(z)`` synthesis with per-sub-frame interpolated coefficients.
 
@@ -138,10 +141,6 @@ class AllPoleSynthesizer:
         self._past = np.zeros(order)  # y[n-1], y[n-2], ..., y[n-order]
         self._k_prev = np.zeros(order)
         self._log_g_prev = np.log(1e-9)
-        i = np.arange(order)
-        self._idx = i[:, None] + 1 + i[None, :]  # zi[m] = -sum_i a[m+1+i] * y[n-1-i]
-        self._mask = self._idx <= order
-        self._idx = np.minimum(self._idx, order)
 
     def process(self, u: np.ndarray, *, a: np.ndarray, gain: np.ndarray) -> np.ndarray:
         """Synthesize one or more hops.
@@ -169,31 +168,54 @@ class AllPoleSynthesizer:
         u = u.reshape(n * self.n_sub, sub)
         a_sub = a_sub.reshape(n * self.n_sub, self.order + 1)
         g_sub = g_sub.reshape(-1)
-        if sub < 2 * self.order:
+        if sub < 2 * self.order or u.shape[0] <= LOOP_MAX_SUBFRAMES:
             out = self._loop(u, a_sub, g_sub)
         else:
             out = self._block(u, a_sub, g_sub)
         return out.reshape(-1)
 
     def _loop(self, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
-        """Reference path: one lfilter call per sub-frame, memory rebuilt from past outputs."""
-        out = np.empty_like(u)
-        past = self._past
-        idx, mask = self._idx, self._mask
-        for j in range(u.shape[0]):
-            aj = a_sub[j]
-            zi = -np.sum(aj[idx] * mask * past[None, :], axis=1)
-            y = signal.lfilter([g_sub[j]], aj, u[j], zi=zi)[0]
-            out[j] = y
-            past = np.concatenate([y[::-1], past])[: self.order]
-        self._past = past.copy()
-        return out
+        """One lfilter call per sub-frame (see :func:`loop_synthesis`)."""
+        y, past = loop_synthesis(u[None], a_sub[None], g_sub[None], self._past[None])
+        self._past = past[0]
+        return y[0]
 
     def _block(self, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
         """The same recursion, exactly, with the per-sub-frame work vectorised (see :func:`block_synthesis`)."""
         y, past = block_synthesis(u[None], a_sub[None], g_sub[None], self._past[None])
         self._past = past[0]
         return y[0]
+
+
+@lru_cache(maxsize=None)
+def _memory_index(order: int) -> tuple[np.ndarray, np.ndarray]:
+    """Index table and mask for the filter memory's initial state: zi[m] = -sum_i a[m+1+i] y[n-1-i]."""
+    i = np.arange(order)
+    idx = i[:, None] + 1 + i[None, :]
+    return np.minimum(idx, order), idx <= order
+
+
+def loop_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The same result as :func:`block_synthesis` with one ``scipy.signal.lfilter`` call per sub-frame and stream.
+
+    The reference route, and the cheapest for a handful of sub-frames (a streaming call's hop):
+    each call starts from the state equivalent to the last ``order`` outputs.
+    """
+    B, J, _ = u.shape
+    p = a_sub.shape[-1] - 1
+    idx, mask = _memory_index(p)
+    out = np.empty_like(u)
+    new_past = np.empty_like(past)
+    for b in range(B):
+        mem = past[b]
+        for j in range(J):
+            aj = a_sub[b, j]
+            zi = -np.sum(aj[idx] * mask * mem[None, :], axis=1)
+            y = signal.lfilter([g_sub[b, j]], aj, u[b, j], zi=zi)[0]
+            out[b, j] = y
+            mem = np.concatenate([y[::-1], mem])[:p]
+        new_past[b] = mem
+    return out, new_past
 
 
 def direct_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

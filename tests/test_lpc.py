@@ -181,7 +181,7 @@ def test_stable_route_property(c):
 
 
 def test_scalar_paths_for_few_rows_match_the_vectorised_ones():
-    """Levinson, step-down and step-up run on Python floats for 1-2 rows; same results as the array code."""
+    """Levinson, step-down, step-up and the cepstrum recursion run on Python floats for 1-2 rows; same results as the array code."""
     rng = np.random.default_rng(1)
     for p in (8, 10, 16):
         for trial in range(200):
@@ -198,19 +198,23 @@ def test_scalar_paths_for_few_rows_match_the_vectorised_ones():
             np.testing.assert_allclose(k1[s1], k2[:n][s1], rtol=1e-8, atol=1e-10)  # k is meaningful only for stable rows
             kk = rng.uniform(-1, 1, (n, p))
             np.testing.assert_allclose(lpc.from_reflection(kk), lpc.from_reflection(np.concatenate([kk] * 3))[:n], rtol=1e-12, atol=1e-14)
+            g = rng.uniform(0.1, 2.0, n)
+            for n_ceps in (p - 2, p + 4):
+                np.testing.assert_allclose(lpc.to_cepstrum(a, n_ceps=n_ceps, gain=g), lpc.to_cepstrum(np.concatenate([a] * 3), n_ceps=n_ceps, gain=np.tile(g, 3))[:n], rtol=1e-12, atol=1e-12)
 
 
 def test_direct_synthesis_equals_block_synthesis():
-    """The two exact all-pole synthesis routes (many calls: sample by sample; few: block form) agree."""
-    from nenv.synthesis import block_synthesis, direct_synthesis
+    """The three exact all-pole synthesis routes (block form, sample by sample, lfilter per sub-frame) agree."""
+    from nenv.synthesis import block_synthesis, direct_synthesis, loop_synthesis
 
     rng = np.random.default_rng(4)
     B, J, L, p = 9, 8, 40, 16
     a = lpc.from_reflection(rng.uniform(-0.95, 0.95, (B, J, p)))
     u, g, past = rng.standard_normal((B, J, L)), rng.uniform(0.1, 3.0, (B, J)), rng.standard_normal((B, p))
-    (y1, s1), (y2, s2) = block_synthesis(u, a, g, past), direct_synthesis(u, a, g, past)
-    np.testing.assert_allclose(y1, y2, rtol=1e-9, atol=1e-9)
-    np.testing.assert_allclose(s1, s2, rtol=1e-9, atol=1e-9)
+    (y1, s1), (y2, s2), (y3, s3) = block_synthesis(u, a, g, past), direct_synthesis(u, a, g, past), loop_synthesis(u, a, g, past)
+    for y, st in ((y2, s2), (y3, s3)):
+        np.testing.assert_allclose(y1, y, rtol=1e-9, atol=1e-9)
+        np.testing.assert_allclose(s1, st, rtol=1e-9, atol=1e-9)
     # and both equal scipy's lfilter run sub-frame by sub-frame with the memory carried (reference)
     from scipy import signal
 
