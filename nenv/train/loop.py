@@ -198,6 +198,7 @@ def train(
             gen.set_state(state["generator"])
             torch.set_rng_state(state["torch_rng"])
             history, best, first, finished = state["history"], tuple(state["best"]), state["epoch"], state["finished"]
+            t_start -= float(state.get("wall_s", 0.0))  # the record's wall time covers the interrupted part too
         tick = rep.stage("training", recipe.epochs)
         for _ in range(first):
             tick()
@@ -226,7 +227,7 @@ def train(
             elif epoch + 1 - best[2] >= recipe.patience and epoch + 1 < recipe.epochs:
                 rep.log(f"early stop after epoch {epoch + 1}: no validation gain since epoch {best[2]}")
                 finished = True
-            _save_state(work, record_id=record_id, epoch=epoch + 1, finished=finished or epoch + 1 == recipe.epochs, model=model, opt=opt, sched=sched, gen=gen, history=history, best=best)
+            _save_state(work, record_id=record_id, epoch=epoch + 1, finished=finished or epoch + 1 == recipe.epochs, model=model, opt=opt, sched=sched, gen=gen, history=history, best=best, wall_s=time.perf_counter() - t_start)
             if finished:
                 break
         model.load_state_dict(best[1])
@@ -349,7 +350,7 @@ def _load_state(work: Path) -> dict | None:
         raise ConfigError(f"cannot read the saved training state '{work / RESUME_FILE}': {str(e).splitlines()[0]}") from e
 
 
-def _save_state(work: Path, *, record_id, epoch, finished, model, opt, sched, gen, history, best) -> None:
+def _save_state(work: Path, *, record_id, epoch, finished, model, opt, sched, gen, history, best, wall_s) -> None:
     import torch
 
     from nenv.files import atomic_output
@@ -365,6 +366,7 @@ def _save_state(work: Path, *, record_id, epoch, finished, model, opt, sched, ge
         "torch_rng": torch.get_rng_state(),
         "history": history,
         "best": list(best),
+        "wall_s": wall_s,
     }
     with atomic_output(work / RESUME_FILE) as tmp:
         with open(tmp, "wb") as fh:
