@@ -5,6 +5,7 @@ from __future__ import annotations
 import functools
 import os
 import sys
+import time
 from importlib import resources
 from pathlib import Path
 from typing import Annotated, Callable, Optional
@@ -171,15 +172,26 @@ def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: b
     n_cpu = os.cpu_count() or 1
     where = f"scheduler {scheduler}" if scheduler else f"{min(jobs or n_cpu, len(work))} process(es)"
     _say(f"extending {len(work)} file(s) into {out} on {where}")
+    finished: list = []
+    t0 = time.perf_counter()
     with _progress() as bar:
         task = bar.add_task("extending", total=len(work))
 
         def done(r):
+            finished.append(r)
             bar.advance(task)
             if r.status == "failed":
                 bar.console.print(f"nenv: failed: {r.source}: {r.message}") if bar.console.is_terminal else _say(f"nenv: failed: {r.source}: {r.message}")
 
-        summ = batch.run(work, opts, workers=jobs, scheduler=scheduler, overwrite=overwrite, record=record, on_result=done)
+        try:
+            summ = batch.run(work, opts, workers=jobs, scheduler=scheduler, overwrite=overwrite, record=record, on_result=done)
+        except KeyboardInterrupt:
+            # say what is finished (those outputs are whole and stay); rerun the command to go on
+            partial = batch.Summary(finished, time.perf_counter() - t0)
+            write_text(out / batch.REPORT_NAME, partial.to_csv())
+            _say(f"nenv: stopped after {partial.count('done')} file(s) done and {partial.count('skipped')} skipped of {len(work)}; "
+                 f"rerun the same command to finish (finished outputs are skipped); see {out / batch.REPORT_NAME}")
+            raise
     write_text(out / batch.REPORT_NAME, summ.to_csv())
     files_h, audio_h = summ.throughput()
     typer.echo(

@@ -147,6 +147,7 @@ def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
         _, err = proc.communicate(timeout=60)
         if sig == signal.SIGINT:
             assert proc.returncode == 130 and b"interrupted" in err, err.decode()[-2000:]
+            assert b"rerun the same command" in err and (out / batch.REPORT_NAME).is_file()  # what is finished is said
             assert parts() <= before, "Ctrl-C left a temporary file"
         for p in out.rglob("*.wav"):
             if p.name.startswith("."):
