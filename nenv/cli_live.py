@@ -112,7 +112,7 @@ def relay(
     method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
 ) -> None:
-    """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one engine per SSRC. Stops on SIGTERM/Ctrl-C."""
+    """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one call per SSRC. Stops on SIGTERM/Ctrl-C."""
     import signal as sig
 
     from nenv import pipeline, rtp
@@ -124,8 +124,10 @@ def relay(
         raise InputError(f"--payload-type {payload_type}: dynamic payload types are 96-127 (RFC 3551)")
     ck = pipeline.load_model(model, flush_denormals=True) if method in pipeline.MODEL_SYSTEMS else None
     try:
+        # the neural system runs every stream in one batched engine (one pass per hop for all calls)
         r = rtp.Relay(lambda: pipeline.make_system(method, model=ck), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
-                      payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout)
+                      payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout,
+                      batch_model=ck if method == "neural" else None)
     except OSError as e:
         raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
     _say(f"relaying RTP from {r.address[0]}:{r.address[1]} to {to} (method={method}, output payload type {payload_type}); stop with Ctrl-C")

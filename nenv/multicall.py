@@ -91,14 +91,19 @@ class MultiCallEngine:
             else:
                 self._state[k] = np.concatenate([v, np.zeros((1,) + v.shape[1:], dtype=v.dtype)])
 
-    def close(self, call_id: str) -> np.ndarray:
-        """End a call: flush its tail (total output = 2 x its input) and forget it."""
+    def close(self, call_id: str, *, stats: dict | None = None) -> np.ndarray:
+        """End a call: flush its tail (total output = 2 x its input) and forget it.
+
+        ``stats``: a dict to fill with the call's final :meth:`stats` (tail included).
+        """
         call = self._calls[call_id]
         call.pending = np.concatenate([call.pending, np.zeros(tail_padding(call.pending.size))])
         self._run(only=call_id)
         y = np.concatenate(call.out) if call.out else np.zeros(0)
         want = 2 * call.samples_in - (call.gate.samples_out - y.size)
         y = y[: max(want, 0)]
+        if stats is not None:
+            stats.update(self.stats(call_id))
         i = self._ids.index(call_id)
         keep = np.arange(len(self._ids)) != i
         for k, v in self._state.items():

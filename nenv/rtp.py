@@ -1,8 +1,10 @@
-"""An RTP relay: PCMU/PCMA calls in, wideband L16 out, one engine per SSRC.
+"""An RTP relay: PCMU/PCMA calls in, wideband L16 out, one call per SSRC.
 
 Receives RTP (RFC 3550) on a UDP port carrying G.711 mu-law (PCMU, static
 payload type 0) or A-law (PCMA, payload type 8) at 8 kHz (RFC 3551, Table 4),
-extends each stream with its own :class:`nenv.runtime.CallEngine`, and sends
+extends each stream with its own :class:`nenv.runtime.CallEngine` (or, given a
+neural checkpoint as ``batch_model``, as one call of a shared
+:class:`nenv.multicall.MultiCallEngine` stepped every ``tick_s``), and sends
 the result as RTP L16 at 16 kHz mono (RFC 3551 section 4.5.11: 16-bit signed,
 network byte order) with a configurable dynamic payload type, 20 ms per packet.
 
@@ -109,7 +111,7 @@ class StreamCounters:
 
 @dataclass
 class _Stream:
-    engine: CallEngine
+    engine: CallEngine | None  # None in batched mode (the relay's MultiCallEngine holds the call)
     law: str
     next_seq: int
     next_ts: int
@@ -120,6 +122,7 @@ class _Stream:
     out_seq: int = 0
     out_ts: int = 0
     late_run: int = 0
+    call_id: str = ""
     counters: StreamCounters = field(default_factory=StreamCounters)
 
 
@@ -148,7 +151,12 @@ class Relay:
         max_streams: int = 64,
         reorder_window: int = 4,
         idle_timeout_s: float = 2.0,
+        batch_model=None,
+        tick_s: float = 0.01,
     ):
+        """``batch_model``: a loaded neural checkpoint; if given, every stream is a call of one
+        :class:`nenv.multicall.MultiCallEngine` (``make_system`` is not used), stepped every
+        ``tick_s`` seconds, so all streams share each hop's work (a packet waits at most one tick)."""
         if not 96 <= payload_type_out <= 127:
             raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
         self.make_system = make_system
@@ -167,6 +175,14 @@ class Relay:
         self.counters = RelayCounters()
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
+        self.multi = None
+        if batch_model is not None:
+            from nenv.multicall import MultiCallEngine
+
+            self.multi = MultiCallEngine(batch_model)
+        self.tick = tick_s
+        self._last_step = time.monotonic()
+        self._by_call: dict[str, _Stream] = {}
 
     # ---- lifecycle ---------------------------------------------------------------------
     def start(self) -> "Relay":
@@ -185,13 +201,25 @@ class Relay:
     def serve(self) -> None:
         try:
             while not self._stop.is_set():
-                ready, _, _ = select.select([self.sock], [], [], 0.05)
+                wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - time.monotonic())
+                ready, _, _ = select.select([self.sock], [], [], wait)
                 if ready:
                     data, addr = self.sock.recvfrom(65535)
                     self.handle(data, addr)
+                if self.multi is not None and time.monotonic() - self._last_step >= self.tick:
+                    self.step()
                 self._expire()
         finally:
             self._shutdown()
+
+    def step(self) -> None:
+        """Batched mode: run every queued hop of every stream and send what is ready."""
+        self._last_step = time.monotonic()
+        if self.multi is None:
+            return
+        for call_id, y in self.multi.step().items():
+            if y.size:
+                self._emit(self._by_call[call_id], y)
 
     def _shutdown(self) -> None:
         for ssrc in list(self.streams):
@@ -219,8 +247,13 @@ class Relay:
             if len(self.streams) >= self.max_streams:
                 self.counters.over_stream_limit += 1
                 return
-            st = _Stream(CallEngine(self._system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
-            self._count_fallbacks(st)
+            if self.multi is None:
+                st = _Stream(CallEngine(self._system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
+                self._count_fallbacks(st)
+            else:
+                st = _Stream(None, LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic(), call_id=f"{pkt.ssrc:08x}-{self.counters.streams_opened}")
+                self.multi.open(st.call_id)
+                self._by_call[st.call_id] = st
             st.out_seq = int.from_bytes(os.urandom(2), "big")
             st.out_ts = int.from_bytes(os.urandom(4), "big")
             self.streams[pkt.ssrc] = st
@@ -276,7 +309,7 @@ class Relay:
             st.counters.lost_packets += n_lost
             if 0 < gap <= MAX_FILL:
                 st.counters.filled_samples += gap
-                self._emit(st, st.engine.feed(np.zeros(gap)))
+                self._feed(st, np.zeros(gap))
             st.next_seq = nearest
             st.next_ts = st.held[nearest].timestamp
 
@@ -285,7 +318,7 @@ class Relay:
         if 0 < jump < 0x80000000:  # consecutive packets, later timestamp: suppressed silence
             if jump <= MAX_FILL:
                 st.counters.silence_filled += jump
-                self._emit(st, st.engine.feed(np.zeros(jump)))
+                self._feed(st, np.zeros(jump))
             else:
                 st.counters.timing_restarts += 1
         codes = np.frombuffer(pkt.payload, dtype=np.uint8)
@@ -293,7 +326,13 @@ class Relay:
         st.counters.samples_in += x.size
         st.next_seq = (pkt.seq + 1) & 0xFFFF
         st.next_ts = (pkt.timestamp + x.size) & 0xFFFFFFFF
-        self._emit(st, st.engine.feed(x))
+        self._feed(st, x)
+
+    def _feed(self, st: _Stream, x: np.ndarray) -> None:
+        if st.engine is not None:
+            self._emit(st, st.engine.feed(x))
+        else:
+            self.multi.feed(st.call_id, x)  # processed, with every other stream, at the next step
 
     # ---- packets out ---------------------------------------------------------------------
     def _emit(self, st: _Stream, y: np.ndarray, *, final: bool = False) -> None:
@@ -319,8 +358,15 @@ class Relay:
     def _close(self, ssrc: int) -> None:
         st = self.streams.pop(ssrc)
         self._drain(st, force=True)
-        self._emit(st, st.engine.flush(), final=True)
-        st.counters.limited = st.engine.limited
+        if st.engine is not None:
+            self._emit(st, st.engine.flush(), final=True)
+            st.counters.limited = st.engine.limited
+        else:
+            stats: dict = {}
+            self._emit(st, self.multi.close(st.call_id, stats=stats), final=True)
+            del self._by_call[st.call_id]
+            st.counters.limited = stats["limited"]
+            st.counters.guard_fallbacks = stats["rejected_hops"]
         self.closed[ssrc] = st.counters
         while len(self.closed) > MAX_CLOSED:
             self.closed.pop(next(iter(self.closed)))

@@ -115,7 +115,8 @@ def test_dynamic_payload_type_is_required():
         rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=8)
 
 
-def test_relay_command_runs_and_stops_on_sigterm(arctic_refs):
+@pytest.mark.parametrize("method", ["imaging", "neural"])  # neural: the batched engine
+def test_relay_command_runs_and_stops_on_sigterm(arctic_refs, method):
     import signal
     import subprocess
     import sys
@@ -126,7 +127,7 @@ def test_relay_command_runs_and_stops_on_sigterm(arctic_refs):
     probe.bind(("127.0.0.1", 0))
     listen_port = probe.getsockname()[1]
     probe.close()
-    p = subprocess.Popen([sys.executable, "-m", "nenv", "relay", "--to", f"127.0.0.1:{port}", "--listen", f"127.0.0.1:{listen_port}", "--method", "imaging"],
+    p = subprocess.Popen([sys.executable, "-m", "nenv", "relay", "--to", f"127.0.0.1:{port}", "--listen", f"127.0.0.1:{listen_port}", "--method", method],
                          stderr=subprocess.PIPE, stdout=subprocess.PIPE)
     import select
 
@@ -245,3 +246,44 @@ def test_relay_memory_per_stream_is_bounded(monkeypatch):
         relay._close(ssrc)
     assert len(relay.closed) == 5 and set(relay.closed) == set(range(115, 120))
     relay.stop()
+
+
+def test_batched_relay_extends_many_streams_like_offline(arctic_refs):
+    """Neural relay, all streams in one MultiCallEngine: each stream's audio equals its own offline extension."""
+    from nenv import checkpoint
+    from nenv.audio import to_int16
+
+    ck = checkpoint.load(checkpoint.default_path())
+    clips = []
+    for i in range(6):
+        _, ref = arctic_refs[i % 2]
+        x = channel.telephone(ref, sr=16000, law="mulaw")[1600 * i : 1600 * i + 9600]  # 1.2 s each, different parts
+        clips.append(g711.encode(x, law="mulaw"))
+    from concurrent.futures import ThreadPoolExecutor
+
+    rx = _receiver()
+    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=0.5, batch_model=ck).start()
+    receiving = ThreadPoolExecutor(1).submit(_collect, rx, 30.0)
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for k in range(clips[0].size // 160):  # 20 ms packets, the six streams interleaved
+        for i, codes in enumerate(clips):
+            tx.sendto(rtp.build(payload_type=0, seq=1000 * i + k, timestamp=160 * k, ssrc=100 + i, payload=codes[160 * k : 160 * (k + 1)].tobytes()), relay.address)
+        time.sleep(0.004)
+    got = receiving.result()
+    relay.stop()
+    by_ssrc: dict[int, list] = {}
+    for p in got:
+        by_ssrc.setdefault(p.ssrc, []).append(p)
+    assert len(by_ssrc) == 6 and relay.counters.streams_opened == 6
+    outs = []
+    for pkts in by_ssrc.values():
+        first = pkts[0].seq
+        pkts.sort(key=lambda p: (p.seq - first) & 0xFFFF)
+        outs.append(np.concatenate([np.frombuffer(p.payload, dtype=">i2") for p in pkts]).astype(np.int64))
+    for i, codes in enumerate(clips):
+        played = g711.decode(codes, law="mulaw")
+        expected = to_int16(pipeline.extend(played, system=pipeline.make_system("neural", model=ck)).y).astype(np.int64)
+        match = [o for o in outs if o.size == expected.size and np.max(np.abs(o - expected)) <= 1]
+        assert len(match) == 1, i  # exactly one stream carries this clip, to within one LSB
+        c = relay.closed[100 + i]
+        assert c.packets == clips[0].size // 160 and c.packets_out > 0
