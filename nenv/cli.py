@@ -106,9 +106,9 @@ def extend(
     scheduler: Annotated[Optional[str], typer.Option(help="Folders and lists: run on this dask.distributed scheduler (e.g. tcp://10.0.0.5:8786) instead of local processes.")] = None,
 ) -> None:
     """Extend 8 kHz telephone speech to 16 kHz wideband speech: one file, or whole folders in parallel."""
-    from nenv import batch
+    from nenv import batch, streamfile
 
-    opts = batch.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, resample=resample, channel=channel, mix=mix, group=group)
+    opts = streamfile.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, resample=resample, channel=channel, mix=mix, group=group)
     if batch.is_batch(inputs):
         if reference is not None or figure is not None:
             raise InputError("--reference and --figure work on one input file at a time")
@@ -127,16 +127,16 @@ FIGURE_MAX_S = 600.0  # a spectrogram of more than 10 minutes is unreadable (and
 
 
 def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, record=None) -> None:
-    from nenv import audio, batch
+    from nenv import audio, streamfile
     from nenv.figures import FIGURE_SUFFIXES, spectrogram_grid
     from nenv.files import check_output
 
-    check_output(dst, suffixes=batch.OUTPUT_SUFFIXES)
+    check_output(dst, suffixes=streamfile.OUTPUT_SUFFIXES)
     if figure is not None:
         check_output(figure, suffixes=FIGURE_SUFFIXES)
     with _progress() as bar:
         task = bar.add_task(f"extending {src.name}", total=None)
-        res = batch.extend_file(src, dst, opts, reference=reference, record=record, on_progress=lambda done, total: bar.update(task, completed=done, total=total))
+        res = streamfile.extend_file(src, dst, opts, reference=reference, record=record, on_progress=lambda done, total: bar.update(task, completed=done, total=total))
     for note in res.notes:
         _say(f"nenv: note: {note}")
     if record is not None:
@@ -161,10 +161,10 @@ def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, reco
 
 
 def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: bool, suffix: str, scheduler: Optional[str], record: Optional[Path]) -> None:
-    from nenv import batch
+    from nenv import batch, streamfile
     from nenv.files import write_text
 
-    if (out.exists() and not out.is_dir()) or (not out.exists() and out.suffix.lower() in batch.OUTPUT_SUFFIXES):
+    if (out.exists() and not out.is_dir()) or (not out.exists() and out.suffix.lower() in streamfile.OUTPUT_SUFFIXES):
         raise InputError(f"'{out}' looks like a file: with folders, lists or several inputs the output must be a folder")
     work = batch.plan(inputs, out, suffix=suffix)
     batch.check_options(opts)
@@ -251,12 +251,12 @@ def demo(
     out: Annotated[Path, typer.Option(help="Folder for the demo output (created if missing).")] = Path("nenv-demo"),
 ) -> None:
     """Extend the bundled demo call (an invented order confirmation) and draw input vs output."""
-    from nenv import batch
+    from nenv import streamfile
 
     out.mkdir(parents=True, exist_ok=True)
     with resources.as_file(resources.files("nenv") / "data" / "demo" / DEMO_CLIP) as clip:
         _say(f"demo input: {clip} (8 kHz, G.711 mu-law telephone speech; invented scenario)")
-        _extend_one(clip, out / "order_confirmation_16k.wav", batch.Options(method=_default_method(None)), figure=out / "order_confirmation.png")
+        _extend_one(clip, out / "order_confirmation_16k.wav", streamfile.Options(method=_default_method(None)), figure=out / "order_confirmation.png")
     _say("listen at a moderate level: the added high band is estimated, not recorded")
 
 

@@ -9,7 +9,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from nenv.batch import watch
+from nenv.streamfile import watch
 from nenv.cli import _default_method, _guarded, _say, app
 from nenv.errors import InputError
 

@@ -3,8 +3,10 @@
 Every parallel step of nenv (corpus survey, training features, batch
 extension) goes through :func:`as_done`, so all three behave alike: results
 arrive as they finish, tagged with their input's index; Ctrl-C cancels what
-has not started; the same inputs give the same results whichever way they
-run (each task is a pure function of its arguments).
+has not started and stops running tasks cleanly (workers ignore SIGINT; the
+parent stops them with SIGTERM, which they turn into an exception, so
+temporary files are removed); the same inputs give the same results whichever
+way they run (each task is a pure function of its arguments).
 
 A Dask cluster is reached through a scheduler address ("tcp://host:8786").
 Its workers need nenv installed and must see the same paths as this machine
@@ -43,15 +45,36 @@ def as_done(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, sche
         return
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    pool = ProcessPoolExecutor(max_workers=min(workers, len(arg_tuples)), mp_context=_fork_context())
+    pool = ProcessPoolExecutor(max_workers=min(workers, len(arg_tuples)), mp_context=_fork_context(), initializer=_worker_signals)
     try:
         index = {pool.submit(fn, *args): i for i, args in enumerate(arg_tuples)}
         for fut in as_completed(index):
             yield index[fut], fut.result()
     except BaseException:
-        pool.shutdown(wait=True, cancel_futures=True)  # running tasks see Ctrl-C themselves and clean up
+        # Ctrl-C (or an error): stop every worker through SIGTERM, which each turns into an
+        # exception, so a task in the middle of writing removes its temporary file on the way out
+        for proc in list(getattr(pool, "_processes", {}).values()):
+            if proc.is_alive():
+                proc.terminate()
+        pool.shutdown(wait=True, cancel_futures=True)
         raise
     pool.shutdown(wait=True)
+
+
+class WorkerStopped(KeyboardInterrupt):
+    """Raised inside a worker process told to stop (SIGTERM from the parent)."""
+
+
+def _stop_worker(signum, frame):
+    raise WorkerStopped()
+
+
+def _worker_signals() -> None:
+    """In each worker: ignore Ctrl-C (the parent decides), turn SIGTERM into an exception that unwinds cleanly."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, _stop_worker)
 
 
 def in_order(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, scheduler: Optional[str] = None, on_done: Optional[Callable[[], None]] = None) -> list:

@@ -140,7 +140,7 @@ def test_each_check_tripped_lands_in_the_record_with_its_reason(tmp_path, monkey
     x = channel.telephone(ref, sr=16000)
     blocks = {Check.NONFINITE: range(40, 45), Check.LEVEL: range(80, 85), Check.UNSTABLE: range(120, 125), Check.MISMATCH: range(160, 165)}
     perturb_predictions(ck, blocks, monkeypatch)
-    from nenv.batch import watch
+    from nenv.streamfile import watch
 
     system = pipeline.make_system("neural", model=ck)
     n_hops = -(-x.size // 80)

@@ -140,14 +140,14 @@ def test_f9_huge_file_streams_in_bounded_memory(tmp_path, speech, method):
     """Peak traced memory for 20 s and 200 s of input is the same: blocks in, blocks out (an hour streams alike)."""
     import tracemalloc
 
-    from nenv import batch
+    from nenv import streamfile
 
     peaks = []
     for seconds in (20, 200):
         src = tmp_path / f"in{seconds}.wav"
         sf.write(src, np.tile(speech, seconds // 3 + 1)[: seconds * 8000], 8000)
         tracemalloc.start()
-        res = batch.extend_file(src, tmp_path / "out.wav", batch.Options(method=method))
+        res = streamfile.extend_file(src, tmp_path / "out.wav", streamfile.Options(method=method))
         peaks.append(tracemalloc.get_traced_memory()[1])
         tracemalloc.stop()
         assert res.seconds == seconds and sf.info(tmp_path / "out.wav").frames == 2 * seconds * 8000

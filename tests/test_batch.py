@@ -15,7 +15,7 @@ import pytest
 import soundfile as sf
 from typer.testing import CliRunner
 
-from nenv import audio, batch, channel, records
+from nenv import audio, batch, channel, records, streamfile
 from nenv.cli import app
 from tests.conftest import ARCTIC
 
@@ -186,6 +186,6 @@ def test_streamed_file_equals_offline_pipeline(tmp_path):
     x = _telephone(1, 23.37)
     src = tmp_path / "x.wav"
     sf.write(src, x, 8000, subtype="FLOAT")
-    batch.extend_file(src, tmp_path / "y.wav", batch.Options(method="neural"))
+    streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="neural"))
     offline = pipeline.extend(x, system=pipeline.make_system("neural"))
     assert sf.read(tmp_path / "y.wav", dtype="int16")[0].tobytes() == audio.to_int16(offline.y).tobytes()

@@ -16,7 +16,7 @@ import soundfile as sf
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from nenv import batch, pipeline
+from nenv import pipeline, streamfile
 from nenv.errors import NenvError
 from nenv.runtime import CallEngine
 
@@ -97,7 +97,7 @@ def test_damaged_files_get_our_error_or_a_sane_output(tmp_path, data):
     src.write_bytes(data)
     dst.unlink(missing_ok=True)
     try:
-        res = batch.extend_file(src, dst, batch.Options(method="imaging", resample=True, mix=True))
+        res = streamfile.extend_file(src, dst, streamfile.Options(method="imaging", resample=True, mix=True))
     except NenvError:
         assert not dst.exists()
         return

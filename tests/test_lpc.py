@@ -212,10 +212,10 @@ def test_direct_synthesis_equals_block_synthesis():
     a = lpc.from_reflection(rng.uniform(-0.95, 0.95, (B, J, p)))
     u, g, past = rng.standard_normal((B, J, L)), rng.uniform(0.1, 3.0, (B, J)), rng.standard_normal((B, p))
     (y1, s1), (y2, s2), (y3, s3) = block_synthesis(u, a, g, past), direct_synthesis(u, a, g, past), loop_synthesis(u, a, g, past)
-    for y, st in ((y2, s2), (y3, s3)):
+    for y, state in ((y2, s2), (y3, s3)):
         np.testing.assert_allclose(y1, y, rtol=1e-9, atol=1e-9)
-        np.testing.assert_allclose(s1, st, rtol=1e-9, atol=1e-9)
-    # and both equal scipy's lfilter run sub-frame by sub-frame with the memory carried (reference)
+        np.testing.assert_allclose(s1, state, rtol=1e-9, atol=1e-9)
+    # and all equal scipy's lfilter run sub-frame by sub-frame with the memory carried (reference)
     from scipy import signal
 
     y_ref, mem = [], past[0][::-1].tolist()  # oldest first

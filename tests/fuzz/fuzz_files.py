@@ -15,7 +15,7 @@ import tempfile
 import atheris
 
 with atheris.instrument_imports(include=["nenv"]):
-    from nenv import batch
+    from nenv import streamfile
     from nenv.errors import NenvError
 
 import numpy as np
@@ -24,7 +24,7 @@ import soundfile as sf
 WORK = tempfile.mkdtemp(prefix="nenv-fuzz-")
 SRC = os.path.join(WORK, "in.bin")
 DST = os.path.join(WORK, "out.wav")
-OPTS = batch.Options(method="imaging", resample=True, mix=True)
+OPTS = streamfile.Options(method="imaging", resample=True, mix=True)
 
 
 def one_input(data: bytes) -> None:
@@ -33,7 +33,7 @@ def one_input(data: bytes) -> None:
     if os.path.exists(DST):
         os.unlink(DST)
     try:
-        res = batch.extend_file(SRC, DST, OPTS)
+        res = streamfile.extend_file(SRC, DST, OPTS)
     except NenvError:
         assert not os.path.exists(DST), "an error left an output behind"
         return
