@@ -146,6 +146,12 @@ def condition(r: np.ndarray, *, sr: int, lag_window_hz: float = LAG_WINDOW_HZ, w
     return r * w
 
 
+# Autocorrelation energy below which a frame counts as silent: samples of about 1e-140 full scale,
+# thousands of dB below any real signal, where r's values near the bottom of float64's range
+# keep too few bits for the recursion (the white-noise correction is lost in rounding).
+SILENT_ENERGY = 1e-280
+
+
 def levinson(r: np.ndarray, *, order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Levinson-Durbin recursion, vectorised over frames.
 
@@ -160,7 +166,8 @@ def levinson(r: np.ndarray, *, order: int) -> tuple[np.ndarray, np.ndarray, np.n
     k : np.ndarray [shape=(..., order)], reflection coefficients
     err : np.ndarray [shape=(...)], final prediction-error energy (same unit as r[0])
 
-    Frames with ``r[0] <= 0`` (digital silence) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
+    Frames with ``r[0] <= SILENT_ENERGY`` (digital silence, or values so small that float64
+keeps only a few bits of them) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
     """
     r = np.asarray(r, dtype=np.float64)
     lead = r.shape[:-1]
@@ -169,7 +176,7 @@ def levinson(r: np.ndarray, *, order: int) -> tuple[np.ndarray, np.ndarray, np.n
     if n <= SCALAR_MAX_ROWS:
         a, k, err = _levinson_scalar(r, order)
         return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
-    silent = ~(r[:, 0] > 0)
+    silent = ~(r[:, 0] > SILENT_ENERGY)
     r = np.where(silent[:, None], np.eye(1, order + 1), r)
     a = np.zeros((n, order + 1))
     a[:, 0] = 1.0
@@ -205,7 +212,7 @@ def _levinson_scalar(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray,
     for row in range(n):
         rr = r[row].tolist()
         a = [1.0] + [0.0] * order
-        if not rr[0] > 0:  # digital silence
+        if not rr[0] > SILENT_ENERGY:  # digital silence
             a_out[row] = a
             continue
         err = rr[0]

@@ -4,8 +4,19 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import os
+
 import numpy as np
 import pytest
+from hypothesis import settings
+
+# Property tests run the same examples on every run ("ci", the default), so CI is reproducible and a
+# red run means a change broke something. Search fresh examples with NENV_HYPOTHESIS=explore
+# (random examples on every run; 2000 where a test does not set its own count); anything found goes
+# back in as an @example (as in tests/test_fuzz.py).
+settings.register_profile("ci", derandomize=True)
+settings.register_profile("explore", derandomize=False, max_examples=2000)
+settings.load_profile(os.environ.get("NENV_HYPOTHESIS", "ci"))
 
 DATA = Path(__file__).parent / "data"
 # Two CMU ARCTIC sentences (16 kHz, free licence; see data/COPYING.cmu_arctic and data/README.md).

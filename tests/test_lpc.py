@@ -229,3 +229,13 @@ def test_direct_synthesis_equals_block_synthesis():
     np.testing.assert_allclose(y1[0], np.array(y_ref), rtol=1e-9, atol=1e-9)
     zi = signal.lfiltic([g[0, 0]], a[0, 0], past[0])
     np.testing.assert_allclose(signal.lfilter([g[0, 0]], a[0, 0], u[0, 0], zi=zi)[0], y1[0, 0], rtol=1e-9, atol=1e-9)
+
+
+def test_frames_at_the_bottom_of_float64_count_as_silent():
+    """Values near the denormal range keep too few bits for Levinson-Durbin (found by the fuzz test): silent, finite."""
+    for amp in (3.05e-161, 1e-150, 1e-300, 5e-324):
+        a, gain = lpc.analyse(np.full((2, 240), amp), order=10, sr=8000)
+        assert np.all(np.isfinite(a)) and np.all(np.isfinite(gain))
+        np.testing.assert_array_equal(a, np.eye(1, 11).repeat(2, axis=0))
+    a, gain = lpc.analyse(1e-100 * np.random.default_rng(0).standard_normal((3, 240)), order=10, sr=8000)
+    assert np.all(np.isfinite(a)) and np.all(gain > 0) and np.all(lpc.is_stable(a))  # tiny but representable: analysed
