@@ -7,7 +7,8 @@ Prints, on one thread:
   2. streaming: processing time per 10 ms chunk for one call (p50, p99, max);
   3. capacity: MultiCallEngine with N calls, each fed one 10 ms (then 20 ms) packet per step;
      time per step (p50, p99) and the largest N whose p99 step stays under the packet time;
-  4. memory per call: Python heap allocated by running CallEngines (tracemalloc).
+  4. memory per call: Python heap allocated by running CallEngines, and per call of a MultiCallEngine
+     (tracemalloc).
 """
 
 from __future__ import annotations
@@ -104,6 +105,18 @@ def main() -> None:
     tracemalloc.stop()
     grown = sum(st.size_diff for st in after.compare_to(before, "filename"))
     print(f"memory per call (Python heap, 20 running calls sharing one model): {grown / 20 / 1024:.0f} KiB")
+    del engines
+    tracemalloc.start()
+    before = tracemalloc.take_snapshot()
+    multi = MultiCallEngine(model)
+    for c in range(100):
+        multi.open(str(c))
+        multi.feed(str(c), x[:8000])
+    multi.step()
+    after = tracemalloc.take_snapshot()
+    tracemalloc.stop()
+    grown = sum(st.size_diff for st in after.compare_to(before, "filename"))
+    print(f"memory per call in a MultiCallEngine (Python heap, 100 calls after 1 s each): {grown / 100 / 1024:.0f} KiB")
 
 
 if __name__ == "__main__":
