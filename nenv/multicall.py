@@ -1,9 +1,10 @@
-"""Many calls on one core: every stage runs once per hop for all active calls together.
+"""Many calls on one core: every stage runs once per step for all active calls and their queued hops.
 
 :class:`MultiCallEngine` keeps the state of every call as one row of shared
 arrays (filter memories, analysis history, context, synthesis memory), so each
-numpy operation and the single onnxruntime run per hop serve all calls at once;
-Python overhead is paid per hop, not per call. Calls join (:meth:`open`) and
+numpy operation and the single onnxruntime run serve all calls at once, and
+all hops queued since the last step (a 20 ms packet holds two) in one pass;
+Python overhead is paid per step, not per call or hop. Calls join (:meth:`open`) and
 leave (:meth:`close`) at any time. Each call's output equals what its own
 :class:`nenv.runtime.CallEngine` would produce (tested to 1e-6).
 
@@ -19,6 +20,7 @@ import numpy as np
 from scipy import signal
 
 from nenv import lpc
+from nenv.audio import PEAK_CEILING as CEILING
 from nenv.checkpoint import Checkpoint
 from nenv.estimators.base import NarrowbandAnalysis
 from nenv.estimators.neural import guarded_envelopes
@@ -26,7 +28,6 @@ from nenv.excitation import DC_POLE, WHITEN_ORDER, residual
 from nenv.features import narrowband_features
 from nenv.guard import Guard
 from nenv.pipeline import tail_padding
-from nenv.audio import PEAK_CEILING as CEILING
 from nenv.runtime import OutputGate
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
 from nenv.synthesis import LOOP_MAX_SUBFRAMES, MAX_REFLECTION, block_synthesis, direct_synthesis, isolation_sos, loop_synthesis, upsampler_taps
