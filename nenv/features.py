@@ -28,7 +28,7 @@ from dataclasses import asdict, dataclass, fields
 
 import numpy as np
 
-from nenv import lpc
+from nenv import cepstrum, lpc
 from nenv.errors import ConfigError
 from nenv.estimators.base import NarrowbandAnalysis
 from nenv.settings import BAND_EDGE_HZ, HOP_NB, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
@@ -95,7 +95,7 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
     energy_db = np.maximum(10 * np.log10(np.maximum(power, 1e-30)), ENERGY_FLOOR_DB)
     err_db = np.maximum(10 * np.log10(np.maximum(gain * gain, 1e-30)), ENERGY_FLOOR_DB)
     pred_gain = np.clip(energy_db - err_db, 0.0, 60.0)
-    ceps = lpc.to_cepstrum(a, n_ceps=10)[:, 1:]
+    ceps = cepstrum.to_cepstrum(a, n_ceps=10)[:, 1:]
     # normalised autocorrelation over the pitch range, divided by the window's own normalised
     # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17)
     r = lpc.autocorrelation(xw, order=PITCH_LAGS[1])
@@ -164,7 +164,7 @@ def wideband_targets(wb_frames: np.ndarray, nb_energy_db: np.ndarray, *, setting
     level_db : np.ndarray [shape=(n,)], high-band power re narrowband frame power, dB
     """
     a, _ = lpc.analyse(wb_frames, order=settings.wb_order, sr=settings.wb_sr)
-    ceps = lpc.to_cepstrum(a, n_ceps=settings.n_wb_ceps)[:, 1:]
+    ceps = cepstrum.to_cepstrum(a, n_ceps=settings.n_wb_ceps)[:, 1:]
     hb = band_power(wb_frames, lo=settings.band_edge_hz, hi=settings.wb_sr / 2)
     hb_db = np.maximum(10 * np.log10(np.maximum(hb, 1e-30)), ENERGY_FLOOR_DB)
     return ceps, hb_db - nb_energy_db
@@ -180,9 +180,9 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
     Returns a [shape=(n, order+1)], gain [shape=(n,)] (may be inf/NaN for non-finite input).
     """
     c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
-    a, g0 = lpc.from_cepstrum_stable(np.nan_to_num(c, nan=0.0, posinf=0.0, neginf=0.0), order=order)
+    a, g0 = cepstrum.from_cepstrum_stable(np.nan_to_num(c, nan=0.0, posinf=0.0, neginf=0.0), order=order)
     sel = np.flatnonzero(_band_bins(BAND_EDGE_HZ, WB_SR / 2))
-    env = lpc.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=(int(sel[0]), int(sel[-1])))
+    env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=(int(sel[0]), int(sel[-1])))
     model_hb = 2.0 * np.sum(env, axis=1) / LEVEL_N_FFT
     target = 10 ** ((nb_energy_db + level_db) / 10)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):

@@ -24,7 +24,7 @@ from enum import IntFlag
 
 import numpy as np
 
-from nenv import lpc
+from nenv import cepstrum, lpc
 from nenv.errors import ConfigError
 from nenv.settings import BAND_EDGE_HZ, CHANNEL_LOW_HZ, WB_SR
 
@@ -126,8 +126,8 @@ def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
     f = np.fft.rfftfreq(MISMATCH_N_FFT_WB, 1 / WB_SR)
     sel = np.flatnonzero((f >= CHANNEL_LOW_HZ) & (f <= BAND_EDGE_HZ))  # the same bins exist on the 8 kHz grid
     bins = (int(sel[0]), int(sel[-1]))
-    wb = 10 * np.log10(lpc.power_spectrum(a_wb, n_fft=MISMATCH_N_FFT_WB, bins=bins))
-    nb = 10 * np.log10(lpc.power_spectrum(a_nb, n_fft=MISMATCH_N_FFT_NB, bins=bins))
+    wb = 10 * np.log10(cepstrum.power_spectrum(a_wb, n_fft=MISMATCH_N_FFT_WB, bins=bins))
+    nb = 10 * np.log10(cepstrum.power_spectrum(a_nb, n_fft=MISMATCH_N_FFT_NB, bins=bins))
     d = (wb - wb.mean(axis=1, keepdims=True)) - (nb - nb.mean(axis=1, keepdims=True))
     return np.sqrt(np.mean(d * d, axis=1))
 

@@ -1,4 +1,4 @@
-"""Framing, autocorrelation, Levinson-Durbin, reflection coefficients and cepstra.
+"""Framing, autocorrelation, Levinson-Durbin and reflection coefficients (cepstra and spectra: :mod:`nenv.cepstrum`).
 
 Conventions used throughout nenv:
 
@@ -27,7 +27,6 @@ import numpy as np
 
 LAG_WINDOW_HZ = 60.0  # Hz, Gaussian lag-window bandwidth (ITU-T G.729 clause 3.2.1 uses 60 Hz)
 WHITE_NOISE_CORRECTION = 1.0001  # r[0] factor = -40 dB noise floor (ITU-T G.729 clause 3.2.1)
-STABLE_FLOOR_DB = 80.0  # dB below the peak: floor of the spectrum in the always-stable route
 
 
 class FrameBuffer:
@@ -117,17 +116,6 @@ def autocorrelation(frames: np.ndarray, *, order: int) -> np.ndarray:
 
 
 DIRECT_MAX_ORDER = 24  # autocorrelation up to this many lags by direct products, beyond by FFT
-
-
-@lru_cache(maxsize=None)
-def _cosines(n_terms: int, n_fft: int, first_bin: int = 0, last_bin: int | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """cos(i w_k) and sin(i w_k) for i < n_terms on rfft bins first_bin..last_bin of an n_fft grid."""
-    last = n_fft // 2 if last_bin is None else last_bin
-    w = 2 * np.pi * np.arange(first_bin, last + 1) / n_fft
-    arg = np.outer(np.arange(n_terms), w)
-    c, s = np.cos(arg), np.sin(arg)
-    c.flags.writeable = s.flags.writeable = False
-    return c, s
 
 
 def condition(r: np.ndarray, *, sr: int, lag_window_hz: float = LAG_WINDOW_HZ, white_noise: float = WHITE_NOISE_CORRECTION) -> np.ndarray:
@@ -344,131 +332,3 @@ def from_reflection(k: np.ndarray) -> np.ndarray:
         a[:, 1:i] = a[:, 1:i] + ki[:, None] * a[:, i - 1 : 0 : -1]
         a[:, i] = ki
     return a.reshape(*lead, p + 1)
-
-
-def to_cepstrum(a: np.ndarray, *, n_ceps: int, gain: np.ndarray | None = None) -> np.ndarray:
-    """Cepstrum of the all-pole model ``G / A(z)`` by the standard recursion.
-
-    ``c_0 = ln G``; for n >= 1, ``c_n = -a_n - sum_{k=1}^{n-1} (k/n) c_k a_{n-k}``
-    with ``a_n = 0`` for n > p (Markel & Gray, *Linear Prediction of Speech*, 1976;
-    Rabiner & Schafer, *Digital Processing of Speech Signals*, 1978).
-
-    Parameters
-    ----------
-    a : np.ndarray [shape=(..., p+1)]
-    n_ceps : int >= 1, number of coefficients after c_0
-    gain : np.ndarray [shape=(...)] or None (then c_0 = 0)
-
-    Returns
-    -------
-    np.ndarray [shape=(..., n_ceps+1)], ``[c_0, c_1, ..., c_n_ceps]``
-    """
-    a = np.asarray(a, dtype=np.float64)
-    p = a.shape[-1] - 1
-    c = np.zeros(a.shape[:-1] + (n_ceps + 1,))
-    if gain is not None:
-        c[..., 0] = np.log(np.maximum(gain, 1e-300))
-    if a.ndim == 2 and a.shape[0] <= SCALAR_MAX_ROWS:  # the same recursion on Python floats
-        for row in range(a.shape[0]):
-            ar, cr = a[row].tolist() + [0.0] * max(0, n_ceps - p), c[row].tolist()
-            for n in range(1, n_ceps + 1):
-                acc = -ar[n]
-                for k in range(max(1, n - p), n):
-                    acc = acc - (k / n) * cr[k] * ar[n - k]
-                cr[n] = acc
-            c[row] = cr
-        return c
-    for n in range(1, n_ceps + 1):
-        acc = -a[..., n] if n <= p else np.zeros(a.shape[:-1])
-        for k in range(max(1, n - p), n):
-            acc = acc - (k / n) * c[..., k] * a[..., n - k]
-        c[..., n] = acc
-    return c
-
-
-def from_cepstrum(c: np.ndarray, *, order: int) -> tuple[np.ndarray, np.ndarray]:
-    """Predictor coefficients from cepstra by inverting the recursion.
-
-    ``a_n = -c_n - sum_{k=1}^{n-1} (k/n) c_k a_{n-k}`` for n = 1..order. Exact for
-    cepstra of an all-pole model of that order, but *not* guaranteed stable for
-    arbitrary cepstra (e.g. a network's output): use :func:`from_cepstrum_stable` there.
-
-    Returns
-    -------
-    a : np.ndarray [shape=(..., order+1)]; gain : np.ndarray [shape=(...)] = exp(c_0)
-    """
-    c = np.asarray(c, dtype=np.float64)
-    a = np.zeros(c.shape[:-1] + (order + 1,))
-    a[..., 0] = 1.0
-    n_c = c.shape[-1] - 1
-    for n in range(1, order + 1):
-        acc = -c[..., n] if n <= n_c else np.zeros(c.shape[:-1])
-        for k in range(1, n):
-            if k <= n_c:
-                acc = acc - (k / n) * c[..., k] * a[..., n - k]
-        a[..., n] = acc
-    return a, np.exp(c[..., 0])
-
-
-def log_magnitude(c: np.ndarray, *, n_fft: int) -> np.ndarray:
-    """``ln|H(w)| = c_0 + sum_{n>=1} c_n cos(n w)`` on the rfft grid.
-
-    c : np.ndarray [shape=(..., m+1)] -> np.ndarray [shape=(..., n_fft//2+1)]
-    """
-    m = c.shape[-1] - 1
-    if m >= n_fft // 2:
-        raise ValueError(f"n_fft={n_fft} is too small for {m} cepstral coefficients")
-    cos, _ = _cosines(m + 1, n_fft)  # a cosine series of a few terms: one matrix product
-    return np.asarray(c, dtype=np.float64) @ cos
-
-
-def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tuple[np.ndarray, np.ndarray]:
-    """Always-stable route from cepstra to an all-pole model of ``order``.
-
-    cepstrum -> log magnitude -> power spectrum -> autocorrelation (inverse FFT)
-    -> Levinson-Durbin. The autocorrelation of a positive power spectrum is
-    positive definite, so the result is minimum phase for *any* finite cepstrum;
-    it is the order-``order`` all-pole fit of the envelope the cepstrum describes.
-
-    Returns
-    -------
-    a : np.ndarray [shape=(..., order+1)]
-    gain : np.ndarray [shape=(...)], amplitude G with G**2 the model's error power;
-        +inf (never NaN) when the cepstrum's level overflows float64
-    """
-    logmag = log_magnitude(np.asarray(c, dtype=np.float64), n_fft=n_fft)
-    top = np.max(logmag, axis=-1, keepdims=True)
-    # Spectrum relative to its peak, floored at -STABLE_FLOOR_DB: keeps Levinson well
-    # conditioned in float64 however extreme the cepstrum.
-    rel = np.maximum(logmag - top, -STABLE_FLOOR_DB * np.log(10) / 20)
-    r = np.exp(2.0 * rel) @ _inverse_cosines(order + 1, n_fft)  # = irfft(...)[:order+1]
-    a, _, err = levinson(r, order=order)
-    with np.errstate(over="ignore"):  # an absurd c_0 gives gain = inf, which the guard rejects
-        gain = np.sqrt(np.maximum(err, 0.0)) * np.exp(top[..., 0])
-    return a, gain
-
-
-@lru_cache(maxsize=None)
-def _inverse_cosines(n_lags: int, n_fft: int) -> np.ndarray:
-    """W with ``S @ W == irfft(S, n_fft)[..., :n_lags]`` for real, even spectra S on the rfft grid."""
-    cos, _ = _cosines(n_lags, n_fft)
-    wt = np.full(n_fft // 2 + 1, 2.0 / n_fft)
-    wt[0] = wt[-1] = 1.0 / n_fft
-    w = (cos * wt).T.copy()
-    w.flags.writeable = False
-    return w
-
-
-def power_spectrum(a: np.ndarray, *, gain: np.ndarray | float = 1.0, n_fft: int = 512, bins: tuple[int, int] | None = None) -> np.ndarray:
-    """Envelope power ``G**2 / |A(e^jw)|**2`` on the rfft grid (or its bins ``first..last``).
-
-    A polynomial of a few terms is evaluated as two matrix products (cosine and sine
-    parts), cheaper than an FFT of the whole grid.
-
-    a : np.ndarray [shape=(..., p+1)] -> np.ndarray [shape=(..., n_fft//2+1)] (or last-first+1)
-    """
-    a = np.asarray(a, dtype=np.float64)
-    cos, sin = _cosines(a.shape[-1], n_fft, *(bins or (0, None)))
-    re, im = a @ cos, a @ sin
-    g = np.asarray(gain, dtype=np.float64)[..., None]
-    return g * g / np.maximum(re * re + im * im, 1e-300)

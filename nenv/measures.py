@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from nenv import lpc
+from nenv import cepstrum, lpc
 from nenv.errors import InputError
 from nenv.settings import BAND_EDGE_HZ, WB_SR
 
@@ -54,7 +54,7 @@ def envelope_spectra(y: np.ndarray) -> np.ndarray:
     r = lpc.autocorrelation(fr, order=ENVELOPE_ORDER)
     r[:, 0] *= 1.0 + 1e-9  # keeps digital-silence frames well defined
     a, _, err = lpc.levinson(r, order=ENVELOPE_ORDER)
-    return lpc.power_spectrum(a, gain=np.sqrt(np.maximum(err, 0) / np.sum(w * w)), n_fft=N_FFT)
+    return cepstrum.power_spectrum(a, gain=np.sqrt(np.maximum(err, 0) / np.sum(w * w)), n_fft=N_FFT)
 
 
 def _check(ref: np.ndarray, est: np.ndarray) -> None:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from nenv import lpc
+from nenv import cepstrum, lpc
 from nenv.estimators.base import NarrowbandAnalysis
 from nenv.features import INPUT_NAMES, ContextStacker, FeatureSettings, band_power, envelope_from_prediction, narrowband_features
 from nenv.errors import ConfigError
@@ -63,7 +63,7 @@ def test_envelope_gain_gives_the_requested_high_band_power(rng):
     from scipy.signal import lfilter
 
     a = lpc.from_reflection(np.array([[0.7, -0.4, 0.2, 0.1, -0.1, 0.05]]))
-    ceps = lpc.to_cepstrum(a, n_ceps=20)[:, 1:]
+    ceps = cepstrum.to_cepstrum(a, n_ceps=20)[:, 1:]
     a2, gain = envelope_from_prediction(ceps, np.array([-12.0]), np.array([-30.0]), order=6)
     y = lfilter([gain[0]], a2[0], rng.standard_normal(400000))
     frames = y[1000 : 1000 + 480 * 800].reshape(-1, 480)

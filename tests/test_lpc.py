@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from nenv import lpc
+from nenv import cepstrum, lpc
 
 
 def _ar_frames(rng, n_frames=20, length=240, order=10):
@@ -80,26 +80,26 @@ def test_cepstrum_recursion_matches_fft_definition(rng):
     # real cepstrum (inverse FFT of ln|H|); recursion from Markel & Gray (1976).
     frames = _ar_frames(rng, n_frames=8)
     a, gain = lpc.analyse(frames, order=10, sr=8000)
-    c = lpc.to_cepstrum(a, n_ceps=40, gain=gain)
+    c = cepstrum.to_cepstrum(a, n_ceps=40, gain=gain)
     n_fft = 8192
     logmag = np.log(gain)[:, None] - np.log(np.abs(np.fft.fft(a, n_fft, axis=1)))
     real_ceps = np.fft.ifft(logmag, axis=1).real
     np.testing.assert_allclose(c[:, 0], real_ceps[:, 0], atol=1e-9)
     np.testing.assert_allclose(c[:, 1:], 2 * real_ceps[:, 1:41], atol=1e-9)
     # and log_magnitude() evaluates the same envelope
-    np.testing.assert_allclose(lpc.log_magnitude(lpc.to_cepstrum(a, n_ceps=400, gain=gain), n_fft=n_fft), logmag[:, : n_fft // 2 + 1], atol=1e-6)
+    np.testing.assert_allclose(cepstrum.log_magnitude(cepstrum.to_cepstrum(a, n_ceps=400, gain=gain), n_fft=n_fft), logmag[:, : n_fft // 2 + 1], atol=1e-6)
 
 
 def test_cepstrum_round_trips(rng):
     frames = _ar_frames(rng, n_frames=10)
     a, gain = lpc.analyse(frames, order=10, sr=8000)
-    c = lpc.to_cepstrum(a, n_ceps=10, gain=gain)
-    a_rec, g_rec = lpc.from_cepstrum(c, order=10)
+    c = cepstrum.to_cepstrum(a, n_ceps=10, gain=gain)
+    a_rec, g_rec = cepstrum.from_cepstrum(c, order=10)
     np.testing.assert_allclose(a_rec, a, atol=1e-10)
     np.testing.assert_allclose(g_rec, gain, rtol=1e-12)
     # The stable route recovers the model when the cepstrum is long enough to describe it.
-    c_long = lpc.to_cepstrum(a, n_ceps=200, gain=gain)
-    a_st, g_st = lpc.from_cepstrum_stable(c_long, order=10, n_fft=2048)
+    c_long = cepstrum.to_cepstrum(a, n_ceps=200, gain=gain)
+    a_st, g_st = cepstrum.from_cepstrum_stable(c_long, order=10, n_fft=2048)
     np.testing.assert_allclose(a_st, a, atol=2e-3)
     np.testing.assert_allclose(g_st, gain, rtol=2e-3)
 
@@ -108,13 +108,13 @@ def test_cepstrum_round_trips(rng):
 def test_stable_route_is_stable_for_random_cepstra(rng, scale):
     # Reference: numpy.roots; the recursion alone is unstable for many of these.
     c = rng.standard_normal((300, 21)) * scale
-    a, gain = lpc.from_cepstrum_stable(c, order=16)
+    a, gain = cepstrum.from_cepstrum_stable(c, order=16)
     assert np.all(np.isfinite(a)) and np.all(np.isfinite(gain)) and np.all(gain > 0)
     radii = np.array([np.max(np.abs(np.roots(row))) for row in a])
     assert np.all(radii < 1.0)
     assert np.all(lpc.is_stable(a))
     if scale >= 0.5:
-        a_rec, _ = lpc.from_cepstrum(c, order=16)
+        a_rec, _ = cepstrum.from_cepstrum(c, order=16)
         assert not np.all(lpc.is_stable(a_rec))  # the point of having a stable route
 
 
@@ -175,7 +175,7 @@ def test_analysis_is_finite_and_stable_on_degenerate_frames(kind, amp, seed):
 @settings(max_examples=40, deadline=None)
 @given(arrays(np.float64, st.tuples(st.integers(1, 5), st.integers(2, 24)), elements=st.floats(-50, 50)))
 def test_stable_route_property(c):
-    a, gain = lpc.from_cepstrum_stable(c, order=16)
+    a, gain = cepstrum.from_cepstrum_stable(c, order=16)
     assert np.all(np.isfinite(a)) and np.all(lpc.is_stable(a))
     assert not np.any(np.isnan(gain)) and np.all(gain > 0)  # +inf allowed for absurd levels
 
@@ -200,7 +200,7 @@ def test_scalar_paths_for_few_rows_match_the_vectorised_ones():
             np.testing.assert_allclose(lpc.from_reflection(kk), lpc.from_reflection(np.concatenate([kk] * 3))[:n], rtol=1e-12, atol=1e-14)
             g = rng.uniform(0.1, 2.0, n)
             for n_ceps in (p - 2, p + 4):
-                np.testing.assert_allclose(lpc.to_cepstrum(a, n_ceps=n_ceps, gain=g), lpc.to_cepstrum(np.concatenate([a] * 3), n_ceps=n_ceps, gain=np.tile(g, 3))[:n], rtol=1e-12, atol=1e-12)
+                np.testing.assert_allclose(cepstrum.to_cepstrum(a, n_ceps=n_ceps, gain=g), cepstrum.to_cepstrum(np.concatenate([a] * 3), n_ceps=n_ceps, gain=np.tile(g, 3))[:n], rtol=1e-12, atol=1e-12)
 
 
 def test_direct_synthesis_equals_block_synthesis():

@@ -27,7 +27,7 @@ from typing import Callable
 
 import numpy as np
 
-from nenv import __version__, lpc
+from nenv import __version__, cepstrum
 from nenv.checkpoint import CODEBOOK_FILE, FORMAT, FORMAT_VERSION, MODEL_FILE, SETTINGS_FILE
 from nenv.errors import ConfigError, NenvError
 from nenv.estimators.codebook import Codebook
@@ -68,7 +68,7 @@ def envelope_lsd(ceps_true, level_true, ceps_pred, level_pred) -> np.ndarray:
     a_p, g_p = envelope_from_prediction(ceps_pred, level_pred, z)
     n_fft = 512
     sel = np.fft.rfftfreq(n_fft, 1 / WB_SR) >= BAND_EDGE_HZ
-    d = 10 * np.log10(lpc.power_spectrum(a_t, gain=g_t, n_fft=n_fft)[:, sel]) - 10 * np.log10(lpc.power_spectrum(a_p, gain=g_p, n_fft=n_fft)[:, sel])
+    d = 10 * np.log10(cepstrum.power_spectrum(a_t, gain=g_t, n_fft=n_fft)[:, sel]) - 10 * np.log10(cepstrum.power_spectrum(a_p, gain=g_p, n_fft=n_fft)[:, sel])
     return np.sqrt(np.mean(d * d, axis=1))
 
 
