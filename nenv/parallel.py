@@ -47,7 +47,7 @@ def as_done(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, sche
 
     pool = ProcessPoolExecutor(max_workers=min(workers, len(arg_tuples)), mp_context=_fork_context(), initializer=_worker_signals)
     try:
-        index = {pool.submit(fn, *args): i for i, args in enumerate(arg_tuples)}
+        index = {pool.submit(_task, fn, args): i for i, args in enumerate(arg_tuples)}
         for fut in as_completed(index):
             yield index[fut], fut.result()
     except BaseException:
@@ -65,8 +65,31 @@ class WorkerStopped(KeyboardInterrupt):
     """Raised inside a worker process told to stop (SIGTERM from the parent)."""
 
 
+_stopped = False  # in a worker: set once it has been told to stop
+
+
 def _stop_worker(signum, frame):
+    import signal
+
+    global _stopped
+    # once only: a second SIGTERM (the pool stopping its workers again) must not interrupt the
+    # clean-up the first one started (removing a temporary file)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    _stopped = True
     raise WorkerStopped()
+
+
+def _task(fn: Callable, args: tuple):
+    """Run one task in a worker; a worker that was told to stop starts nothing new."""
+    if _stopped:
+        raise WorkerStopped()
+    try:
+        return fn(*args)
+    finally:
+        if _stopped:  # the clean-up is done: a further SIGTERM may end this process outright
+            import signal
+
+            signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
 def _worker_signals() -> None:
