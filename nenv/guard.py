@@ -138,7 +138,11 @@ class Guard:
     def __init__(self, limits: GuardLimits):
         self.limits = limits
 
-    def check(
+    def check(self, **kwargs) -> Decisions:
+        """Verdict for each hop; see the module docstring for the checks (arguments: :meth:`assess`)."""
+        return self.assess(**kwargs)[0]
+
+    def assess(
         self,
         *,
         ceps: np.ndarray,
@@ -148,14 +152,16 @@ class Guard:
         a_nb: np.ndarray,
         novelty: np.ndarray,
         cell: np.ndarray,
-    ) -> Decisions:
-        """Verdict for each hop; see the module docstring for the checks."""
+    ) -> tuple[Decisions, np.ndarray]:
+        """:meth:`check`, and the reflection coefficients of ``a`` its stability test computed
+        [shape=(n, p)] (the synthesis reuses them for the hops it accepts)."""
         lim = self.limits
         finite = np.all(np.isfinite(ceps), axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & np.all(np.isfinite(a), axis=1)
-        k, stable = lpc.reflection(np.where(np.isfinite(a), a, 0.0))
+        a_fin = np.where(np.isfinite(a), a, 0.0)
+        k, stable = lpc.reflection(a_fin)
         max_k = np.max(np.abs(k), axis=1)
         stable &= max_k < 1.0 - lim.stability_margin
-        mismatch = np.where(finite, telephone_band_mismatch(np.where(np.isfinite(a), a, 0.0), a_nb), np.inf)
+        mismatch = np.where(finite, telephone_band_mismatch(a_fin, a_nb), np.inf)
         reasons = np.zeros(a.shape[0], dtype=int)
         reasons |= np.where(~finite, int(Check.NONFINITE), 0)
         reasons |= np.where(finite & ~stable, int(Check.UNSTABLE), 0)
@@ -163,7 +169,7 @@ class Guard:
         reasons |= np.where(np.isfinite(level_db) & level_bad, int(Check.LEVEL), 0)
         reasons |= np.where(finite & (mismatch > lim.mismatch_max_db), int(Check.MISMATCH), 0)
         reasons |= np.where(novelty > lim.novelty_max, int(Check.NOVEL), 0)
-        return Decisions(
+        dec = Decisions(
             rejected=reasons != 0,
             reasons=reasons,
             max_k=max_k,
@@ -172,3 +178,4 @@ class Guard:
             novelty=np.asarray(novelty, dtype=float),
             cell=np.asarray(cell, dtype=int),
         )
+        return dec, k

@@ -26,7 +26,7 @@ from typing import Callable, Protocol
 
 import numpy as np
 
-from nenv import lpc
+from nenv import heap, lpc
 from nenv.audio import limit_peaks
 from nenv.errors import InputError
 from nenv.estimators.base import EnvelopeEstimator, NarrowbandAnalysis
@@ -82,13 +82,14 @@ class SourceFilterSystem:
         env = self.estimator.estimate(analysis)
         e = residual(analysis.frames, analysis.a, hop_length=HOP_NB)
         u, rms = self._extender.process(e)
-        return self._synth.process(u, a=env.a, gain=env.gain / rms)
+        return self._synth.process(u, a=env.a, gain=env.gain / rms, k=env.k)
 
 
 class Extender:
     """Stateful narrowband -> wideband processor around one :class:`System`."""
 
     def __init__(self, system: System):
+        heap.settle()  # per-hop temporaries reuse heap memory instead of faulting in fresh pages
         self.system = system
         self.reset()
 

@@ -142,7 +142,7 @@ class AllPoleSynthesizer:
         self._k_prev = np.zeros(order)
         self._log_g_prev = np.log(1e-9)
 
-    def process(self, u: np.ndarray, *, a: np.ndarray, gain: np.ndarray) -> np.ndarray:
+    def process(self, u: np.ndarray, *, a: np.ndarray, gain: np.ndarray, k: np.ndarray | None = None) -> np.ndarray:
         """Synthesize one or more hops.
 
         Parameters
@@ -150,6 +150,7 @@ class AllPoleSynthesizer:
         u : np.ndarray [shape=(n * hop_length,)], excitation
         a : np.ndarray [shape=(n, order+1)], stable predictor coefficients per hop
         gain : np.ndarray [shape=(n,)], amplitude per hop (> 0)
+        k : np.ndarray [shape=(n, order)] or None, reflection coefficients of ``a`` if known
 
         Returns
         -------
@@ -158,7 +159,8 @@ class AllPoleSynthesizer:
         n = a.shape[0]
         if n == 0:
             return np.zeros(0)
-        k, _ = lpc.reflection(a)
+        if k is None:
+            k, _ = lpc.reflection(a)
         k = np.clip(np.nan_to_num(k), -MAX_REFLECTION, MAX_REFLECTION)
         log_g = np.log(np.maximum(gain, 1e-12))
         a_sub, g_sub = interpolate_envelopes(self._k_prev, k, self._log_g_prev, log_g, n_sub=self.n_sub)
@@ -223,20 +225,24 @@ def direct_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: 
 
     ``y[n] = g u[n] - sum_i a_i y[n-i]``, each numpy operation serving all B streams: the
     cheaper route when many streams advance a few sub-frames (a gateway's hop), where
-    the block form's per-sub-frame matrices cost more than J * L vector steps.
+    the block form's per-sub-frame matrices cost more than J * L vector steps. Time runs
+    along the first axis (streams along the second), so every step reads and writes
+    contiguous memory.
     """
     B, J, length = u.shape
     p = a_sub.shape[-1] - 1
     n = J * length
-    y = np.empty((B, p + n))
-    y[:, :p] = past[:, ::-1]
-    gu = (g_sub[:, :, None] * u).reshape(B, n)
-    neg = -a_sub[:, :, :0:-1]  # -a_p .. -a_1
+    y = np.empty((p + n, B))
+    y[:p] = past[:, ::-1].T
+    gu = (g_sub[:, :, None] * u).reshape(B, n).T.copy()
+    neg = np.ascontiguousarray((-a_sub[:, :, :0:-1]).transpose(1, 2, 0))  # (J, p, B): -a_p .. -a_1
+    acc = np.empty(B)
     for j in range(J):
-        aj = np.ascontiguousarray(neg[:, j])
+        aj = neg[j]
         for t in range(j * length, (j + 1) * length):
-            y[:, p + t] = gu[:, t] + np.einsum("bi,bi->b", aj, y[:, t : t + p])
-    return y[:, p:].reshape(B, J, length), y[:, -1 : -p - 1 : -1].copy()
+            np.einsum("ib,ib->b", aj, y[t : t + p], out=acc)
+            np.add(gu[t], acc, out=y[p + t])
+    return y[p:].T.reshape(B, J, length), y[: -p - 1 : -1].T.copy()
 
 
 def block_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

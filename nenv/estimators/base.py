@@ -30,10 +30,14 @@ class Envelope:
 
     a : np.ndarray [shape=(n, p+1)], stable predictor coefficients at 16 kHz
     gain : np.ndarray [shape=(n,)], amplitude G of G/A(z) for a unit-power excitation
+    k : np.ndarray [shape=(n, p)] or None, the reflection coefficients of ``a`` when the
+        estimator has them already (exactly what :func:`nenv.lpc.reflection` gives for ``a``);
+        the synthesis computes them otherwise
     """
 
     a: np.ndarray
     gain: np.ndarray
+    k: np.ndarray | None = None
 
 
 class EnvelopeEstimator:

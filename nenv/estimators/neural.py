@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from nenv import lpc
 from nenv.checkpoint import Checkpoint
 from nenv.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAnalysis
 from nenv.estimators.codebook import ENERGY_COLUMN
@@ -12,12 +13,13 @@ from nenv.guard import Decisions, Guard
 from nenv.settings import HOP_NB, NB_SR
 
 
-def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.ndarray, stacked: np.ndarray, a_nb: np.ndarray) -> tuple[np.ndarray, np.ndarray, Decisions | None]:
+def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.ndarray, stacked: np.ndarray, a_nb: np.ndarray) -> tuple[np.ndarray, np.ndarray, Decisions | None, np.ndarray]:
     """Network -> envelope -> guard -> codebook fallback, for a batch of hops (of one call or many).
 
     feats : [shape=(n, N_INPUTS)] current-hop features; stacked : [shape=(n, input_dim)] network input;
-    a_nb : [shape=(n, NB_ORDER+1)] narrowband LPC. Returns a, gain (0 for silent hops) and the verdicts
-    (hops of digital silence are never rejected: their gain is 0 whatever the envelope).
+    a_nb : [shape=(n, NB_ORDER+1)] narrowband LPC. Returns a, gain (0 for silent hops), the verdicts
+    (hops of digital silence are never rejected: their gain is 0 whatever the envelope) and the
+    reflection coefficients of ``a`` (the guard's, recomputed only for the hops it replaced).
     """
     energy = feats[:, ENERGY_COLUMN]
     ceps, level = checkpoint.predict(stacked)
@@ -26,7 +28,7 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
     if guard is not None:
         book = checkpoint.codebook
         cell, novelty = book.nearest(feats)
-        dec = guard.check(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell)
+        dec, k = guard.assess(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell)
         silent = energy <= ENERGY_FLOOR_DB  # digital silence: nothing is added, nothing to judge
         dec.rejected[silent] = False
         dec.reasons[silent] = 0
@@ -34,7 +36,10 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
             a_cb, g_cb = book.envelopes(cell[dec.rejected], energy[dec.rejected])
             a[dec.rejected] = a_cb
             gain[dec.rejected] = g_cb
-    return a, np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain), dec
+            k[dec.rejected] = lpc.reflection(a_cb)[0]
+    else:
+        k = lpc.reflection(a)[0]
+    return a, np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain), dec, k
 
 
 class NeuralEstimator(EnvelopeEstimator):
@@ -63,14 +68,14 @@ class NeuralEstimator(EnvelopeEstimator):
     def estimate(self, analysis: NarrowbandAnalysis) -> Envelope:
         feats = narrowband_features(analysis)
         stacked = self._stack.push(feats)
-        a, gain, dec = guarded_envelopes(self.checkpoint, self.guard, feats=feats, stacked=stacked, a_nb=analysis.a)
+        a, gain, dec, k = guarded_envelopes(self.checkpoint, self.guard, feats=feats, stacked=stacked, a_nb=analysis.a)
         if dec is not None:
             if self.listener is not None:
                 self.listener(self._hops, dec, stacked, analysis.a)
             if self.keep_decisions:
                 self._parts.append(dec)
         self._hops += len(analysis)
-        return Envelope(a=a, gain=gain)
+        return Envelope(a=a, gain=gain, k=k)
 
     def record(self) -> Decisions:
         """All verdicts since the last reset, one per hop in order (hop t starts at t * 10 ms)."""
