@@ -122,8 +122,10 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tupl
     top = np.max(logmag, axis=-1, keepdims=True)
     # Spectrum relative to its peak, floored at -STABLE_FLOOR_DB: keeps Levinson well
     # conditioned in float64 however extreme the cepstrum.
-    rel = np.maximum(logmag - top, -STABLE_FLOOR_DB * np.log(10) / 20)
-    r = np.exp(2.0 * rel) @ _inverse_cosines(order + 1, n_fft)  # = irfft(...)[:order+1]
+    logmag -= top
+    np.maximum(logmag, -STABLE_FLOOR_DB * np.log(10) / 20, out=logmag)
+    logmag *= 2.0
+    r = np.exp(logmag, out=logmag) @ _inverse_cosines(order + 1, n_fft)  # = irfft(...)[:order+1]
     a, _, err = levinson(r, order=order)
     with np.errstate(over="ignore"):  # an absurd c_0 gives gain = inf, which the guard rejects
         gain = np.sqrt(np.maximum(err, 0.0)) * np.exp(top[..., 0])
@@ -149,8 +151,19 @@ def power_spectrum(a: np.ndarray, *, gain: np.ndarray | float = 1.0, n_fft: int 
 
     a : np.ndarray [shape=(..., p+1)] -> np.ndarray [shape=(..., n_fft//2+1)] (or last-first+1)
     """
+    g = np.asarray(gain, dtype=np.float64)[..., None]
+    return g * g / np.maximum(squared_magnitude(a, n_fft=n_fft, bins=bins), 1e-300)
+
+
+def squared_magnitude(a: np.ndarray, *, n_fft: int = 512, bins: tuple[int, int] | None = None) -> np.ndarray:
+    """``|A(e^jw)|**2`` on the rfft grid (or its bins ``first..last``), as two matrix products.
+
+    a : np.ndarray [shape=(..., p+1)] -> np.ndarray [shape=(..., n_fft//2+1)] (or last-first+1)
+    """
     a = np.asarray(a, dtype=np.float64)
     cos, sin = _cosines(a.shape[-1], n_fft, *(bins or (0, None)))
     re, im = a @ cos, a @ sin
-    g = np.asarray(gain, dtype=np.float64)[..., None]
-    return g * g / np.maximum(re * re + im * im, 1e-300)
+    re *= re
+    im *= im
+    re += im
+    return re

@@ -25,6 +25,7 @@ Targets, per hop, from the time-aligned 16 kHz frame:
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass, fields
+from functools import lru_cache
 
 import numpy as np
 
@@ -99,7 +100,7 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
     # normalised autocorrelation over the pitch range, divided by the window's own normalised
     # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17)
     r = lpc.autocorrelation(xw, order=PITCH_LAGS[1])
-    rw = lpc.autocorrelation(w[None, :], order=PITCH_LAGS[1])[0]
+    rw = _window_autocorrelation(frames.shape[1])
     r0 = r[:, 0]
     lags = slice(PITCH_LAGS[0], PITCH_LAGS[1] + 1)
     norm = r[:, lags] / np.where(r0 > 0, r0, 1.0)[:, None] / (rw[lags] / rw[0])[None, :]
@@ -107,6 +108,14 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
     hop = frames[:, -HOP_NB - 1 :]
     zcr = np.mean(np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1]), axis=1)
     return np.column_stack([ceps, energy_db, pred_gain, voicing, zcr])
+
+
+@lru_cache(maxsize=None)
+def _window_autocorrelation(length: int) -> np.ndarray:
+    """Autocorrelation of the analysis window over the pitch lags (read-only, computed once)."""
+    rw = lpc.autocorrelation(lpc.asymmetric_window(length)[None, :], order=PITCH_LAGS[1])[0]
+    rw.flags.writeable = False
+    return rw
 
 
 class ContextStacker:

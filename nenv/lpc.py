@@ -24,6 +24,7 @@ import math
 from functools import lru_cache
 
 import numpy as np
+import scipy.fft
 
 LAG_WINDOW_HZ = 60.0  # Hz, Gaussian lag-window bandwidth (ITU-T G.729 clause 3.2.1 uses 60 Hz)
 WHITE_NOISE_CORRECTION = 1.0001  # r[0] factor = -40 dB noise floor (ITU-T G.729 clause 3.2.1)
@@ -110,9 +111,11 @@ def autocorrelation(frames: np.ndarray, *, order: int) -> np.ndarray:
         for k in range(order + 1):
             r[..., k] = np.einsum("...n,...n->...", x[..., : length - k], x[..., k:])
         return r
-    n_fft = 1 << int(np.ceil(np.log2(length + order + 1)))
-    spec = np.fft.rfft(frames, n=n_fft, axis=-1)
-    return np.fft.irfft(spec.real**2 + spec.imag**2, n=n_fft, axis=-1)[..., : order + 1]
+    # circular autocorrelation equals the linear one for lags <= order once n_fft >= length + order
+    n_fft = scipy.fft.next_fast_len(length + order, real=True)
+    spec = scipy.fft.rfft(frames, n=n_fft, axis=-1)
+    power = spec.real**2 + spec.imag**2
+    return scipy.fft.irfft(power, n=n_fft, axis=-1, overwrite_x=True)[..., : order + 1]
 
 
 DIRECT_MAX_ORDER = 24  # autocorrelation up to this many lags by direct products, beyond by FFT
@@ -165,20 +168,23 @@ keeps only a few bits of them) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
         a, k, err = _levinson_scalar(r, order)
         return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
     silent = ~(r[:, 0] > SILENT_ENERGY)
-    r = np.where(silent[:, None], np.eye(1, order + 1), r)
-    a = np.zeros((n, order + 1))
-    a[:, 0] = 1.0
-    k = np.zeros((n, order))
-    err = r[:, 0].copy()
+    # coefficient-major (order+1, n) layout: every step reads and writes whole contiguous rows
+    rt = np.where(silent[None, :], np.eye(order + 1, 1), r.T)
+    a = np.zeros((order + 1, n))
+    a[0] = 1.0
+    k = np.empty((order, n))
+    err = rt[0].copy()
     for i in range(1, order + 1):
-        acc = np.einsum("nj,nj->n", a[:, :i], r[:, i:0:-1])
-        ki = -acc / err
-        k[:, i - 1] = ki
-        a[:, 1:i] = a[:, 1:i] + ki[:, None] * a[:, i - 1 : 0 : -1]
-        a[:, i] = ki
-        err = err * (1.0 - ki * ki)
+        ki = k[i - 1]
+        np.einsum("jn,jn->n", a[:i], rt[i:0:-1], out=ki)
+        np.divide(ki, err, out=ki)
+        np.negative(ki, out=ki)
+        if i > 1:
+            a[1:i] += ki * a[i - 1 : 0 : -1]
+        a[i] = ki
+        err *= 1.0 - ki * ki
     err = np.where(silent, 0.0, err)
-    return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
+    return a.T.reshape(*lead, order + 1), k.T.reshape(*lead, order), err.reshape(lead)
 
 
 SCALAR_MAX_ROWS = 2  # up to this many rows the order recursions run on Python floats (fewer, cheaper steps)
@@ -259,19 +265,19 @@ def reflection(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     if a.size <= SCALAR_MAX_ROWS * (p + 1):
         k, stable = _reflection_scalar(a.reshape(-1, p + 1))
         return k.reshape(*lead, p), stable.reshape(lead)
-    cur = a.reshape(-1, p + 1)[:, 1:].copy()
-    k = np.zeros_like(cur)
-    stable = np.ones(cur.shape[0], dtype=bool)
+    cur = a.reshape(-1, p + 1)[:, 1:].T.copy()  # coefficient-major (p, n): contiguous rows per step
+    k = np.empty_like(cur)
+    stable = np.ones(cur.shape[1], dtype=bool)
     for i in range(p, 0, -1):
-        ki = cur[:, i - 1]
-        k[:, i - 1] = ki
+        ki = cur[i - 1]
+        k[i - 1] = ki
         stable &= np.abs(ki) < 1.0
         if i > 1:
             denom = 1.0 - ki * ki
             denom = np.where(np.abs(denom) < 1e-300, 1.0, denom)
-            prev = cur[:, : i - 1]
-            cur[:, : i - 1] = (prev - ki[:, None] * prev[:, ::-1]) / denom[:, None]
-    return k.reshape(*lead, p), stable.reshape(lead)
+            prev = cur[: i - 1]
+            cur[: i - 1] = (prev - ki * prev[::-1]) / denom
+    return k.T.reshape(*lead, p), stable.reshape(lead)
 
 
 def _reflection_scalar(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -325,10 +331,12 @@ def from_reflection(k: np.ndarray) -> np.ndarray:
                 a[i] = ki
             out[row] = a
         return out.reshape(*lead, p + 1)
-    a = np.zeros((kk.shape[0], p + 1))
-    a[:, 0] = 1.0
+    kt = kk.T  # coefficient-major (p+1, n) work array: contiguous rows per step
+    a = np.zeros((p + 1, kk.shape[0]))
+    a[0] = 1.0
     for i in range(1, p + 1):
-        ki = kk[:, i - 1]
-        a[:, 1:i] = a[:, 1:i] + ki[:, None] * a[:, i - 1 : 0 : -1]
-        a[:, i] = ki
-    return a.reshape(*lead, p + 1)
+        ki = kt[i - 1]
+        if i > 1:
+            a[1:i] += ki * a[i - 1 : 0 : -1]
+        a[i] = ki
+    return a.T.reshape(*lead, p + 1)
