@@ -21,9 +21,8 @@ from __future__ import annotations
 from typing import Literal
 
 import numpy as np
-from scipy import signal
 
-from nenv import lpc
+from nenv import filters, lpc
 from nenv.errors import InputError
 from nenv.settings import HOP_WB, WB_SR, WIN_WB
 from nenv.synthesis import UPSAMPLER_DELAY, Delay, Upsampler
@@ -32,6 +31,7 @@ Method = Literal["fold", "modulate", "rectify"]
 METHODS = ("fold", "modulate", "rectify")
 WHITEN_ORDER = 8  # LPC order of the whitening filter at 16 kHz
 DC_POLE = 0.99  # pole of the DC-removal filter (-3 dB near 26 Hz at 16 kHz)
+DC_B, DC_A = np.array([1.0, -1.0]), np.array([1.0, -DC_POLE])  # the DC-removal filter (1 - z^-1) / (1 - DC_POLE z^-1)
 DEFAULT_SHIFT_HZ = 3400.0  # Hz, modulation shift: the band edge of the telephone channel
 
 
@@ -104,7 +104,7 @@ class ExcitationExtender:
                 t = self._n + np.arange(up.size, dtype=np.float64)  # global sample index: phase continues across calls
                 u = up * 2.0 * np.cos(2 * np.pi * self.shift_hz * t / WB_SR)
             else:
-                z, self._dc_zi = signal.lfilter([1.0, -1.0], [1.0, -DC_POLE], np.abs(up), zi=self._dc_zi)
+                z, self._dc_zi = filters.iir(DC_B, DC_A, np.abs(up), self._dc_zi)
                 p_up = np.mean(up.reshape(n_hops, HOP_WB) ** 2, axis=1)
                 p_z = np.mean(z.reshape(n_hops, HOP_WB) ** 2, axis=1)
                 scale = np.sqrt(p_up / np.maximum(p_z, 1e-30))

@@ -17,20 +17,19 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import signal
 
-from nenv import heap, lpc
+from nenv import filters, heap, lpc
 from nenv.audio import PEAK_CEILING as CEILING
 from nenv.checkpoint import Checkpoint
 from nenv.estimators.base import NarrowbandAnalysis
 from nenv.estimators.neural import guarded_envelopes
-from nenv.excitation import DC_POLE, WHITEN_ORDER, residual
+from nenv.excitation import DC_A, DC_B, WHITEN_ORDER, residual
 from nenv.features import narrowband_features
 from nenv.guard import Guard
 from nenv.pipeline import tail_padding
 from nenv.runtime import OutputGate
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
-from nenv.synthesis import LOOP_MAX_SUBFRAMES, MAX_REFLECTION, block_synthesis, direct_synthesis, isolation_sos, loop_synthesis, upsampler_taps
+from nenv.synthesis import LOOP_MAX_SUBFRAMES, MAX_REFLECTION, UPSAMPLER_HISTORY, block_synthesis, direct_synthesis, isolation_sos, loop_synthesis, upsample_hops
 
 DIRECT_MIN_CALLS = 32  # from this many calls per hop the sample-by-sample recursion beats the block form
 MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
@@ -56,15 +55,7 @@ class MultiCallEngine:
         self.guard = Guard(checkpoint.limits) if guard else None
         self.p = checkpoint.features.wb_order
         self.context = checkpoint.features.context
-        self._up_taps = upsampler_taps()
-        # polyphase interpolation: even outputs use the even taps, odd outputs the odd ones (time-reversed)
-        even, odd = self._up_taps[0::2][::-1], self._up_taps[1::2][::-1]
-        n_hist = self._up_taps.size // 2
-        self._toeplitz = np.zeros((n_hist + HOP_NB, HOP_WB))  # one hop: 8 kHz history + hop -> 16 kHz hop
-        for m in range(HOP_NB):
-            self._toeplitz[m : m + even.size, 2 * m] = even
-            self._toeplitz[m + 1 : m + 1 + odd.size, 2 * m + 1] = odd
-        self._iso = isolation_sos()
+        self._iso = np.ascontiguousarray(isolation_sos())
         self._ids: list[str] = []
         self._calls: dict[str, _Call] = {}
         n_in = checkpoint.features.n_inputs
@@ -73,10 +64,10 @@ class MultiCallEngine:
             "wb_hist": np.zeros((0, WIN_WB - HOP_WB)),
             "ctx": np.zeros((0, self.context * n_in)),
             "ctx_ready": np.zeros(0, dtype=bool),
-            "up_x": np.zeros((0, self._up_taps.size // 2)),  # last 8 kHz inputs of the interpolation FIR
-            "up_e": np.zeros((0, self._up_taps.size // 2)),
+            "up_x": np.zeros((0, UPSAMPLER_HISTORY)),  # last 8 kHz inputs of the interpolation FIR
+            "up_e": np.zeros((0, UPSAMPLER_HISTORY)),
             "dc": np.zeros((0, 1)),
-            "iso": np.zeros((self._iso.shape[0], 0, 2)),
+            "iso": np.zeros((0, self._iso.shape[0], 2)),
             "past": np.zeros((0, self.p)),
             "k_prev": np.zeros((0, self.p)),
             "g_prev": np.zeros(0),
@@ -90,9 +81,7 @@ class MultiCallEngine:
         self._ids.append(call_id)
         self._calls[call_id] = _Call()
         for k, v in self._state.items():
-            if k == "iso":
-                self._state[k] = np.concatenate([v, np.zeros((v.shape[0], 1, 2))], axis=1)
-            elif k == "g_prev":
+            if k == "g_prev":
                 self._state[k] = np.append(v, np.log(1e-9))
             else:
                 self._state[k] = np.concatenate([v, np.zeros((1,) + v.shape[1:], dtype=v.dtype)])
@@ -113,7 +102,7 @@ class MultiCallEngine:
         i = self._ids.index(call_id)
         keep = np.arange(len(self._ids)) != i
         for k, v in self._state.items():
-            self._state[k] = v[:, keep] if k == "iso" else v[keep]
+            self._state[k] = v[keep]
         self._ids.pop(i)
         del self._calls[call_id]
         return y
@@ -201,7 +190,7 @@ class MultiCallEngine:
         # excitation: residual -> interpolate -> rectify -> DC removal -> power match -> whiten
         e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, H * HOP_NB)
         up = self._fir(e, "up_e", rows)
-        r, st["dc"][rows] = signal.lfilter([1.0, -1.0], [1.0, -DC_POLE], np.abs(up), axis=1, zi=st["dc"][rows])
+        r, st["dc"][rows] = filters.iir(DC_B, DC_A, np.abs(up), st["dc"][rows])
         up_h, r_h = up.reshape(B, H, HOP_WB), r.reshape(B, H, HOP_WB)
         scale = np.sqrt(np.mean(up_h**2, axis=2) / np.maximum(np.mean(r_h**2, axis=2), 1e-30))
         u = (r_h * scale[:, :, None]).reshape(B, H * HOP_WB)
@@ -226,25 +215,14 @@ class MultiCallEngine:
         synth = self._synthesize(rows, u.reshape(B, J, -1), a_sub, g_sub.reshape(B, J))
         # band isolation and mixing with the interpolated input
         low = self._fir(x, "up_x", rows)
-        hb, st["iso"][:, rows] = signal.sosfilt(self._iso, synth, axis=1, zi=st["iso"][:, rows])
+        hb, st["iso"][rows] = filters.sos(self._iso, synth, st["iso"][rows])
         return low + hb
 
     def _fir(self, x: np.ndarray, key: str, rows: np.ndarray) -> np.ndarray:
-        """Interpolate B rows of 8 kHz samples by 2 with the upsampler's FIR, hop by hop as one matrix product.
-
-        Zero insertion followed by the FIR is, per output phase, a short FIR on the 8 kHz
-        samples (even taps -> even outputs, odd taps -> odd outputs). For one hop both phases
-        are a banded (Toeplitz) matrix ``T`` from the hop's 8 kHz samples and the
-        ``len(taps) // 2`` before them to its 16 kHz samples, already interleaved: every hop of
-        every call is one row of a single BLAS product (mostly zeros, still cheaper than
-        strided per-tap work). State = the last ``len(taps) // 2`` input samples.
-        """
-        hist = self._state[key][rows]
-        buf = np.concatenate([hist, x], axis=1)
+        """Interpolate B rows of whole 8 kHz hops by 2 (:func:`nenv.synthesis.upsample_hops`), state per row."""
+        buf = np.concatenate([self._state[key][rows], x], axis=1)
         self._state[key][rows] = buf[:, x.shape[1] :]
-        B, H = x.shape[0], x.shape[1] // HOP_NB
-        segs = np.lib.stride_tricks.sliding_window_view(buf, self._toeplitz.shape[0], axis=1)[:, ::HOP_NB][:, :H]
-        return (segs.reshape(B * H, -1) @ self._toeplitz).reshape(B, H * HOP_WB)
+        return upsample_hops(buf, x.shape[1] // HOP_NB)
 
     def _synthesize(self, rows: np.ndarray, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
         """All-pole synthesis of one hop for B calls, each with its own filter memory."""

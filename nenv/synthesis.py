@@ -11,8 +11,8 @@ from functools import lru_cache
 import numpy as np
 from scipy import signal
 
-from nenv import lpc
-from nenv.settings import BAND_EDGE_HZ, HOP_WB, N_SUBFRAMES, WB_SR
+from nenv import filters, lpc
+from nenv.settings import BAND_EDGE_HZ, HOP_NB, HOP_WB, N_SUBFRAMES, WB_SR
 
 UPSAMPLER_TAPS = 47  # at 16 kHz, linear phase
 UPSAMPLER_DELAY = (UPSAMPLER_TAPS - 1) // 2  # samples at 16 kHz = 1.44 ms
@@ -57,29 +57,74 @@ class FirStage:
 
 
 class SosStage:
-    """IIR filter in second-order sections with state."""
+    """IIR filter in second-order sections with state (:func:`nenv.filters.sos`)."""
 
     def __init__(self, sos: np.ndarray):
-        self.sos = sos
-        self._zi = np.zeros((sos.shape[0], 2))
+        self.sos = np.ascontiguousarray(sos, dtype=np.float64)
+        self._zi = np.zeros((1, sos.shape[0], 2))
 
     def process(self, x: np.ndarray) -> np.ndarray:
         if x.size == 0:
             return np.zeros(0)
-        y, self._zi = signal.sosfilt(self.sos, x, zi=self._zi)
-        return y
+        y, self._zi = filters.sos(self.sos, x[None, :], self._zi)
+        return y[0]
+
+
+@lru_cache(maxsize=None)
+def upsampler_matrix(hop: int = HOP_NB) -> np.ndarray:
+    """The interpolator for one hop as a banded (Toeplitz) matrix: 8 kHz history + hop -> 16 kHz hop.
+
+    Zero insertion followed by the :func:`upsampler_taps` FIR is, per output phase, a short
+    FIR on the 8 kHz samples (even taps -> even outputs, odd taps -> odd outputs). Row ``i``
+    of a hop's input vector ``[last UPSAMPLER_HISTORY samples, hop]`` times this matrix gives
+    the hop's ``2 * hop`` outputs, interleaved; every hop of every call is one row of a single
+    matrix product (mostly zeros, still cheaper than per-tap work on small arrays).
+
+    Returns np.ndarray [shape=(UPSAMPLER_HISTORY + hop, 2 * hop)], read-only.
+    """
+    taps = upsampler_taps()
+    even, odd = taps[0::2][::-1], taps[1::2][::-1]
+    t = np.zeros((UPSAMPLER_HISTORY + hop, 2 * hop))
+    for m in range(hop):
+        t[m : m + even.size, 2 * m] = even
+        t[m + 1 : m + 1 + odd.size, 2 * m + 1] = odd
+    t.flags.writeable = False
+    return t
+
+
+UPSAMPLER_HISTORY = UPSAMPLER_TAPS // 2  # 8 kHz samples of interpolator state
+
+
+def upsample_hops(buf: np.ndarray, n_hops: int) -> np.ndarray:
+    """Interpolate ``n_hops`` hops per row: buf [shape=(B, UPSAMPLER_HISTORY + n_hops * HOP_NB)]
+    (each row's history, then its hops) -> [shape=(B, n_hops * HOP_WB)]."""
+    t = upsampler_matrix()
+    segs = np.lib.stride_tricks.sliding_window_view(buf, t.shape[0], axis=-1)[:, ::HOP_NB][:, :n_hops]
+    return (segs.reshape(-1, t.shape[0]) @ t).reshape(buf.shape[0], n_hops * HOP_WB)
 
 
 class Upsampler:
-    """8 -> 16 kHz by zero insertion and the :func:`upsampler_taps` low-pass; delay UPSAMPLER_DELAY."""
+    """8 -> 16 kHz by zero insertion and the :func:`upsampler_taps` low-pass; delay UPSAMPLER_DELAY.
+
+    Whole hops go through :func:`upsample_hops` (one matrix product); other lengths through
+    the same polyphase FIR sample by sample. State: the last UPSAMPLER_HISTORY inputs.
+    """
 
     def __init__(self):
-        self._fir = FirStage(upsampler_taps())
+        self._hist = np.zeros(UPSAMPLER_HISTORY)
 
     def process(self, x: np.ndarray) -> np.ndarray:
-        z = np.zeros(2 * x.size)
-        z[::2] = x
-        return self._fir.process(z)
+        x = np.asarray(x, dtype=np.float64)
+        buf = np.concatenate([self._hist, x])
+        self._hist = buf[x.size :].copy()
+        if x.size % HOP_NB == 0:
+            return upsample_hops(buf[None, :], x.size // HOP_NB)[0]
+        taps = upsampler_taps()
+        win = np.lib.stride_tricks.sliding_window_view(buf, UPSAMPLER_HISTORY + 1)
+        y = np.empty(2 * x.size)
+        y[0::2] = win @ taps[0::2][::-1]
+        y[1::2] = win[:, 1:] @ taps[1::2][::-1]
+        return y
 
 
 class Delay:
@@ -213,7 +258,7 @@ def loop_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np
         for j in range(J):
             aj = a_sub[b, j]
             zi = -np.sum(aj[idx] * mask * mem[None, :], axis=1)
-            y = signal.lfilter([g_sub[b, j]], aj, u[b, j], zi=zi)[0]
+            y = filters.iir(g_sub[b, j : j + 1], aj, u[b, j], zi)[0]
             out[b, j] = y
             mem = np.concatenate([y[::-1], mem])[:p]
         new_past[b] = mem
