@@ -57,10 +57,17 @@ def residual(frames: np.ndarray, a: np.ndarray, *, hop_length: int) -> np.ndarra
     if length < hop_length + p:
         raise ValueError(f"frames of {length} samples are too short for hop {hop_length} and order {p}")
     start = length - hop_length
+    if n <= 2:  # a streaming hop: one convolution per frame
+        return np.concatenate([np.convolve(frames[i, start - p :], a[i], mode="valid") for i in range(n)])
     e = np.zeros((n, hop_length))
     for k in range(p + 1):
         e += a[:, k, None] * frames[:, start - k : length - k]
     return e.reshape(-1)
+
+
+def mean_square(x: np.ndarray) -> np.ndarray:
+    """Mean of squares along the last axis [shape=(..., n)] -> [shape=(...)] (one pass, no temporaries)."""
+    return np.einsum("...n,...n->...", x, x) / x.shape[-1]
 
 
 class ExcitationExtender:
@@ -105,8 +112,8 @@ class ExcitationExtender:
                 u = up * 2.0 * np.cos(2 * np.pi * self.shift_hz * t / WB_SR)
             else:
                 z, self._dc_zi = filters.iir(DC_B, DC_A, np.abs(up), self._dc_zi)
-                p_up = np.mean(up.reshape(n_hops, HOP_WB) ** 2, axis=1)
-                p_z = np.mean(z.reshape(n_hops, HOP_WB) ** 2, axis=1)
+                p_up = mean_square(up.reshape(n_hops, HOP_WB))
+                p_z = mean_square(z.reshape(n_hops, HOP_WB))
                 scale = np.sqrt(p_up / np.maximum(p_z, 1e-30))
                 u = (z.reshape(n_hops, HOP_WB) * scale[:, None]).reshape(-1)
         self._n += u.size
@@ -114,5 +121,5 @@ class ExcitationExtender:
         if self.whiten:
             a, _ = lpc.analyse(frames, order=WHITEN_ORDER, sr=WB_SR)
             u = residual(frames, a, hop_length=HOP_WB)
-        rms = np.sqrt(np.mean(u.reshape(n_hops, HOP_WB) ** 2, axis=1))
+        rms = np.sqrt(mean_square(u.reshape(n_hops, HOP_WB)))
         return u, np.maximum(rms, 1e-9)

@@ -142,11 +142,11 @@ class ContextStacker:
             return np.zeros((0, d * (self.context + 1)))
         if self._history is None:
             self._history = np.repeat(feats[:1], self.context, axis=0)
-        buf = np.vstack([self._history, feats])
+        buf = np.concatenate([self._history, feats])
         if self.context:
             self._history = buf[-self.context :].copy()
-        view = np.lib.stride_tricks.sliding_window_view(buf, (self.context + 1, d))[:, 0]
-        return view.reshape(n, -1)
+        # row t of the result is buf[t : t + context + 1] flattened: frames of (context + 1) * d values every d
+        return lpc.hop_frames(buf.reshape(1, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=n)[0]
 
 
 def _band_bins(lo: float, hi: float, *, n_fft: int = LEVEL_N_FFT, sr: int = WB_SR) -> np.ndarray:
@@ -192,7 +192,7 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
     Returns a [shape=(n, order+1)], gain [shape=(n,)] (may be inf/NaN for non-finite input).
     """
     c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
-    a, g0 = cepstrum.from_cepstrum_stable(np.nan_to_num(c, nan=0.0, posinf=0.0, neginf=0.0), order=order)
+    a, g0 = cepstrum.from_cepstrum_stable(np.where(np.isfinite(c), c, 0.0), order=order)
     sel = np.flatnonzero(_band_bins(BAND_EDGE_HZ, WB_SR / 2))
     env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=(int(sel[0]), int(sel[-1])))
     model_hb = 2.0 * np.sum(env, axis=1) / LEVEL_N_FFT

@@ -54,8 +54,23 @@ class FrameBuffer:
         n_frames = y.size // self.hop_length
         if n_frames == 0:
             return np.zeros((0, self.frame_length))
-        view = np.lib.stride_tricks.sliding_window_view(buf, self.frame_length)
-        return view[:: self.hop_length][:n_frames]
+        return hop_frames(buf[None, :], frame_length=self.frame_length, hop_length=self.hop_length, n_frames=n_frames)[0]
+
+
+def hop_frames(buf: np.ndarray, *, frame_length: int, hop_length: int, n_frames: int) -> np.ndarray:
+    """Read-only view of ``n_frames`` frames per row: frame ``t`` of row ``b`` is
+    ``buf[b, t*hop_length : t*hop_length + frame_length]``.
+
+    buf : np.ndarray [shape=(B, T)], T >= (n_frames - 1) * hop_length + frame_length
+    -> np.ndarray [shape=(B, n_frames, frame_length)], sharing buf's memory (no copy)
+    """
+    buf = np.ascontiguousarray(buf)
+    if n_frames < 1 or (n_frames - 1) * hop_length + frame_length > buf.shape[1]:
+        raise ValueError(f"{n_frames} frames of {frame_length} every {hop_length} do not fit in {buf.shape[1]} samples")
+    step = buf.itemsize
+    view = np.ndarray((buf.shape[0], n_frames, frame_length), buf.dtype, buf, 0, (buf.strides[0], hop_length * step, step))
+    view.flags.writeable = False
+    return view
 
 
 def frame(y: np.ndarray, *, frame_length: int, hop_length: int) -> np.ndarray:
@@ -105,6 +120,13 @@ def autocorrelation(frames: np.ndarray, *, order: int) -> np.ndarray:
     frames : np.ndarray [shape=(..., L)] -> np.ndarray [shape=(..., order+1)]
     """
     length = frames.shape[-1]
+    if order <= DIRECT_MAX_ORDER and frames.size <= SCALAR_MAX_ROWS * length:  # one or two frames: one product
+        x = np.asarray(frames, dtype=np.float64).reshape(-1, length)
+        padded = np.zeros((x.shape[0], length + order))
+        padded[:, :length] = x
+        step = padded.itemsize
+        lagged = np.ndarray((x.shape[0], order + 1, length), padded.dtype, padded, 0, (padded.strides[0], step, step))
+        return np.einsum("bn,bkn->bk", x, lagged).reshape(frames.shape[:-1] + (order + 1,))
     if order <= DIRECT_MAX_ORDER:  # a few lags: direct products beat an FFT of the whole frame
         x = np.asarray(frames, dtype=np.float64)
         r = np.empty(x.shape[:-1] + (order + 1,))
@@ -131,10 +153,16 @@ def condition(r: np.ndarray, *, sr: int, lag_window_hz: float = LAG_WINDOW_HZ, w
 
     r : np.ndarray [shape=(..., p+1)]; sr : int [Hz] -> np.ndarray, same shape
     """
-    lags = np.arange(r.shape[-1])
+    return r * _lag_window(r.shape[-1], sr, lag_window_hz, white_noise)
+
+
+@lru_cache(maxsize=None)
+def _lag_window(n_lags: int, sr: int, lag_window_hz: float, white_noise: float) -> np.ndarray:
+    lags = np.arange(n_lags)
     w = np.exp(-0.5 * (2 * np.pi * lag_window_hz * lags / sr) ** 2)
     w[0] = white_noise
-    return r * w
+    w.flags.writeable = False
+    return w
 
 
 # Autocorrelation energy below which a frame counts as silent: samples of about 1e-140 full scale,
@@ -217,9 +245,7 @@ def _levinson_scalar(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray,
                 acc += a[j] * rr[i - j]
             ki = -_div(acc, err)
             ks.append(ki)
-            prev = a[:]
-            for j in range(1, i):
-                a[j] = prev[j] + ki * prev[i - j]
+            a[1:i] = [a[j] + ki * a[i - j] for j in range(1, i)]  # the right side reads the old a
             a[i] = ki
             err = err * (1.0 - ki * ki)
         a_out[row], k_out[row], e_out[row] = a, ks, err

@@ -23,7 +23,7 @@ from nenv.audio import PEAK_CEILING as CEILING
 from nenv.checkpoint import Checkpoint
 from nenv.estimators.base import NarrowbandAnalysis
 from nenv.estimators.neural import guarded_envelopes
-from nenv.excitation import DC_A, DC_B, WHITEN_ORDER, residual
+from nenv.excitation import DC_A, DC_B, WHITEN_ORDER, mean_square, residual
 from nenv.features import narrowband_features
 from nenv.guard import Guard
 from nenv.pipeline import tail_padding
@@ -168,7 +168,7 @@ class MultiCallEngine:
         # narrowband analysis and features, B x H frames at once
         buf = np.concatenate([st["nb_hist"][rows], x], axis=1)
         st["nb_hist"][rows] = buf[:, H * HOP_NB :]
-        frames = np.lib.stride_tricks.sliding_window_view(buf, WIN_NB, axis=1)[:, ::HOP_NB][:, :H].reshape(B * H, WIN_NB)
+        frames = lpc.hop_frames(buf, frame_length=WIN_NB, hop_length=HOP_NB, n_frames=H).reshape(B * H, WIN_NB)
         a_nb, g_nb = lpc.analyse(frames, order=NB_ORDER, sr=NB_SR)
         feats = narrowband_features(NarrowbandAnalysis(frames, a_nb, g_nb))
         d = feats.shape[1]
@@ -192,16 +192,16 @@ class MultiCallEngine:
         up = self._fir(e, "up_e", rows)
         r, st["dc"][rows] = filters.iir(DC_B, DC_A, np.abs(up), st["dc"][rows])
         up_h, r_h = up.reshape(B, H, HOP_WB), r.reshape(B, H, HOP_WB)
-        scale = np.sqrt(np.mean(up_h**2, axis=2) / np.maximum(np.mean(r_h**2, axis=2), 1e-30))
+        scale = np.sqrt(mean_square(up_h) / np.maximum(mean_square(r_h), 1e-30))
         u = (r_h * scale[:, :, None]).reshape(B, H * HOP_WB)
         wbuf = np.concatenate([st["wb_hist"][rows], u], axis=1)
         st["wb_hist"][rows] = wbuf[:, H * HOP_WB :]
-        wb_frames = np.lib.stride_tricks.sliding_window_view(wbuf, WIN_WB, axis=1)[:, ::HOP_WB][:, :H].reshape(B * H, WIN_WB)
+        wb_frames = lpc.hop_frames(wbuf, frame_length=WIN_WB, hop_length=HOP_WB, n_frames=H).reshape(B * H, WIN_WB)
         a_w, _ = lpc.analyse(wb_frames, order=WHITEN_ORDER, sr=WB_SR)
         u = residual(wb_frames, a_w, hop_length=HOP_WB).reshape(B * H, HOP_WB)
-        rms = np.maximum(np.sqrt(np.mean(u**2, axis=1)), 1e-9)
+        rms = np.maximum(np.sqrt(mean_square(u)), 1e-9)
         # synthesis: envelopes interpolated in the reflection domain from the previous hop's, memory per call
-        k = np.clip(np.nan_to_num(k), -MAX_REFLECTION, MAX_REFLECTION).reshape(B, H, self.p)
+        k = np.clip(np.where(np.isnan(k), 0.0, k), -MAX_REFLECTION, MAX_REFLECTION).reshape(B, H, self.p)
         log_g = np.log(np.maximum(gain / rms, 1e-12)).reshape(B, H)
         k_from = np.concatenate([st["k_prev"][rows][:, None], k[:, :-1]], axis=1)
         g_from = np.concatenate([st["g_prev"][rows][:, None], log_g[:, :-1]], axis=1)

@@ -99,7 +99,7 @@ def upsample_hops(buf: np.ndarray, n_hops: int) -> np.ndarray:
     """Interpolate ``n_hops`` hops per row: buf [shape=(B, UPSAMPLER_HISTORY + n_hops * HOP_NB)]
     (each row's history, then its hops) -> [shape=(B, n_hops * HOP_WB)]."""
     t = upsampler_matrix()
-    segs = np.lib.stride_tricks.sliding_window_view(buf, t.shape[0], axis=-1)[:, ::HOP_NB][:, :n_hops]
+    segs = lpc.hop_frames(buf, frame_length=t.shape[0], hop_length=HOP_NB, n_frames=n_hops)
     return (segs.reshape(-1, t.shape[0]) @ t).reshape(buf.shape[0], n_hops * HOP_WB)
 
 
@@ -206,7 +206,7 @@ class AllPoleSynthesizer:
             return np.zeros(0)
         if k is None:
             k, _ = lpc.reflection(a)
-        k = np.clip(np.nan_to_num(k), -MAX_REFLECTION, MAX_REFLECTION)
+        k = np.clip(np.where(np.isnan(k), 0.0, k), -MAX_REFLECTION, MAX_REFLECTION)
         log_g = np.log(np.maximum(gain, 1e-12))
         a_sub, g_sub = interpolate_envelopes(self._k_prev, k, self._log_g_prev, log_g, n_sub=self.n_sub)
         self._k_prev = k[-1].copy()
@@ -234,14 +234,6 @@ class AllPoleSynthesizer:
         return y[0]
 
 
-@lru_cache(maxsize=None)
-def _memory_index(order: int) -> tuple[np.ndarray, np.ndarray]:
-    """Index table and mask for the filter memory's initial state: zi[m] = -sum_i a[m+1+i] y[n-1-i]."""
-    i = np.arange(order)
-    idx = i[:, None] + 1 + i[None, :]
-    return np.minimum(idx, order), idx <= order
-
-
 def loop_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The same result as :func:`block_synthesis` with one ``scipy.signal.lfilter`` call per sub-frame and stream.
 
@@ -250,14 +242,17 @@ def loop_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np
     """
     B, J, _ = u.shape
     p = a_sub.shape[-1] - 1
-    idx, mask = _memory_index(p)
     out = np.empty_like(u)
     new_past = np.empty_like(past)
+    padded = np.zeros(2 * p)
+    step = padded.itemsize
+    hankel = np.ndarray((p, p), padded.dtype, padded, 0, (step, step))  # hankel[m, i] = padded[m + i]
     for b in range(B):
         mem = past[b]
         for j in range(J):
             aj = a_sub[b, j]
-            zi = -np.sum(aj[idx] * mask * mem[None, :], axis=1)
+            padded[:p] = aj[1:]
+            zi = -(hankel @ mem)  # zi[m] = -sum_i a[m+1+i] y[n-1-i], a = 0 beyond p
             y = filters.iir(g_sub[b, j : j + 1], aj, u[b, j], zi)[0]
             out[b, j] = y
             mem = np.concatenate([y[::-1], mem])[:p]
