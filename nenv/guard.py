@@ -126,11 +126,12 @@ def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
     f = np.fft.rfftfreq(MISMATCH_N_FFT_WB, 1 / WB_SR)
     sel = np.flatnonzero((f >= CHANNEL_LOW_HZ) & (f <= BAND_EDGE_HZ))  # the same bins exist on the 8 kHz grid
     bins = (int(sel[0]), int(sel[-1]))
-    # envelope power is 1/|A|^2, so wb_dB - nb_dB = 10 log10(|A_nb|^2 / |A_wb|^2): one logarithm
-    # (the ratio is clipped so that a zero of either polynomial gives a huge, finite mismatch)
+    # envelope power is 1/|A|^2, so wb_dB - nb_dB = 10 log10(|A_nb|^2 / |A_wb|^2): one logarithm, in
+    # single precision (ample for a threshold in dB); the ratio is clipped to +-300 dB so that a zero
+    # of either polynomial on the unit circle gives a huge, finite mismatch
     ratio = np.maximum(cepstrum.squared_magnitude(a_nb, n_fft=MISMATCH_N_FFT_NB, bins=bins), 1e-300)
     ratio /= np.maximum(cepstrum.squared_magnitude(a_wb, n_fft=MISMATCH_N_FFT_WB, bins=bins), 1e-300)
-    d = 10 * np.log10(np.clip(ratio, 1e-300, 1e300))
+    d = 10 * np.log10(np.clip(ratio, 1e-30, 1e30).astype(np.float32)).astype(np.float64)
     d -= d.mean(axis=1, keepdims=True)
     return np.sqrt(np.mean(d * d, axis=1))
 

@@ -178,8 +178,8 @@ class MultiCallEngine:
             st["ctx"][rows[fresh]] = np.tile(first[fresh], (1, self.context))
             st["ctx_ready"][rows[fresh]] = True
         hist = np.concatenate([st["ctx"][rows].reshape(B, self.context, d), feats.reshape(B, H, d)], axis=1)
-        stacked = np.lib.stride_tricks.sliding_window_view(hist, self.context + 1, axis=1)  # (B, H, d, context+1)
-        stacked = stacked.transpose(0, 1, 3, 2).reshape(B * H, (self.context + 1) * d)
+        # row (b, h) = hist[b, h : h + context + 1] flattened: frames of (context + 1) * d values every d
+        stacked = lpc.hop_frames(hist.reshape(B, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=H).reshape(B * H, -1)
         if self.context:
             st["ctx"][rows] = hist[:, H:].reshape(B, self.context * d)
         # the network, once for all calls and hops, then the guard

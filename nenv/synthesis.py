@@ -307,14 +307,16 @@ def block_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: n
     B, J, length = u.shape
     p = a_sub.shape[-1] - 1
     a = a_sub.reshape(B * J, p + 1)
-    # impulse responses and zero-state responses of all sub-frames, side by side
-    both = np.zeros((2, B * J, length))
-    both[0, :, 0] = 1.0
-    both[1] = g_sub.reshape(-1, 1) * u.reshape(B * J, length)
+    # impulse responses and zero-state responses of all sub-frames, side by side, time-major
+    # (every step of the recursion reads and writes contiguous rows)
+    both = np.zeros((length, 2, B * J))
+    both[0, 0] = 1.0
+    both[:, 1] = (g_sub.reshape(-1, 1) * u.reshape(B * J, length)).T
+    coef = np.ascontiguousarray(a[:, 1:].T)  # (p, B*J): a_1 .. a_p
     for t in range(1, length):
         k = min(t, p)
-        both[:, :, t] -= np.einsum("jk,bjk->bj", a[:, 1 : k + 1], both[:, :, t - 1 :: -1][:, :, :k])
-    h, zs = both[0], both[1]
+        both[t] -= np.einsum("kj,kbj->bj", coef[:k], both[t - 1 :: -1][:k])
+    h, zs = both[:, 0].T.copy(), both[:, 1].T.copy()
     # K[m, i] = a[m+1+i] (0 beyond p) and G[r, m] = h[L-1-r-m]: sliding windows, no copies
     a_pad = np.concatenate([a[:, 1:], np.zeros((B * J, p))], axis=1)
     K = np.lib.stride_tricks.sliding_window_view(a_pad, p, axis=1)[:, :p]

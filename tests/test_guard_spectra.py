@@ -36,7 +36,7 @@ def test_mismatch_is_the_rms_of_mean_removed_log_envelopes_over_the_telephone_ba
         _, h_nb = signal.freqz([1.0], a_nb[i], worN=f, fs=8000)
         wb, nb = 20 * np.log10(np.abs(h_wb)), 20 * np.log10(np.abs(h_nb))
         d = (wb - wb.mean()) - (nb - nb.mean())
-        np.testing.assert_allclose(got[i], np.sqrt(np.mean(d * d)), rtol=1e-9)
+        np.testing.assert_allclose(got[i], np.sqrt(np.mean(d * d)), rtol=1e-5)  # logarithms in single precision
 
 
 def test_a_zero_of_the_envelope_on_the_unit_circle_gives_a_large_finite_mismatch():
