@@ -12,8 +12,9 @@ from functools import lru_cache
 
 import numpy as np
 
-from nenv.lpc import SCALAR_MAX_ROWS, levinson
+from nenv.lpc import levinson
 
+SCALAR_MAX_ROWS = 8  # up to this many rows the cepstrum recursion runs on Python floats (cheaper than ~60 array steps)
 STABLE_FLOOR_DB = 80.0  # dB below the peak: floor of the spectrum in the always-stable route
 
 

@@ -166,7 +166,7 @@ def interpolate_envelopes(k_prev: np.ndarray, k: np.ndarray, log_g_prev: float, 
     return lpc.from_reflection(k_sub), np.exp(g_sub)
 
 
-LOOP_MAX_SUBFRAMES = 8  # up to two hops (a streaming call): one lfilter per sub-frame is cheapest
+LOOP_MAX_SUBFRAMES = 48  # up to this many sub-frames (a few calls' hops) one compiled filter call per sub-frame is cheapest
 
 
 class AllPoleSynthesizer:

@@ -181,7 +181,7 @@ def test_stable_route_property(c):
 
 
 def test_scalar_paths_for_few_rows_match_the_vectorised_ones():
-    """Levinson, step-down, step-up and the cepstrum recursion run on Python floats for 1-2 rows; same results as the array code."""
+    """Levinson, step-down, step-up (1-2 rows) and the cepstrum recursion (up to 8 rows) run on Python floats; same results as the array code."""
     rng = np.random.default_rng(1)
     for p in (8, 10, 16):
         for trial in range(200):
@@ -200,7 +200,10 @@ def test_scalar_paths_for_few_rows_match_the_vectorised_ones():
             np.testing.assert_allclose(lpc.from_reflection(kk), lpc.from_reflection(np.concatenate([kk] * 3))[:n], rtol=1e-12, atol=1e-14)
             g = rng.uniform(0.1, 2.0, n)
             for n_ceps in (p - 2, p + 4):
-                np.testing.assert_allclose(cepstrum.to_cepstrum(a, n_ceps=n_ceps, gain=g), cepstrum.to_cepstrum(np.concatenate([a] * 3), n_ceps=n_ceps, gain=np.tile(g, 3))[:n], rtol=1e-12, atol=1e-12)
+                reps = cepstrum.SCALAR_MAX_ROWS + 1  # enough rows for the array code
+                np.testing.assert_allclose(cepstrum.to_cepstrum(a, n_ceps=n_ceps, gain=g), cepstrum.to_cepstrum(np.concatenate([a] * reps), n_ceps=n_ceps, gain=np.tile(g, reps))[:n], rtol=1e-12, atol=1e-12)
+            a8 = np.concatenate([np.ones((cepstrum.SCALAR_MAX_ROWS, 1)), rng.standard_normal((cepstrum.SCALAR_MAX_ROWS, p))], axis=1)
+            np.testing.assert_allclose(cepstrum.to_cepstrum(a8, n_ceps=p), cepstrum.to_cepstrum(np.concatenate([a8, a8]), n_ceps=p)[: a8.shape[0]], rtol=1e-12, atol=1e-12)
 
 
 def test_direct_synthesis_equals_block_synthesis():
