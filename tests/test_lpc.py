@@ -242,3 +242,14 @@ def test_frames_at_the_bottom_of_float64_count_as_silent():
         np.testing.assert_array_equal(a, np.eye(1, 11).repeat(2, axis=0))
     a, gain = lpc.analyse(1e-100 * np.random.default_rng(0).standard_normal((3, 240)), order=10, sr=8000)
     assert np.all(np.isfinite(a)) and np.all(gain > 0) and np.all(lpc.is_stable(a))  # tiny but representable: analysed
+
+
+def test_hop_frames_equal_numpy_sliding_windows(rng):
+    # Reference: numpy.lib.stride_tricks.sliding_window_view, every hop_length-th window.
+    buf = rng.standard_normal((3, 400))
+    got = lpc.hop_frames(buf, frame_length=240, hop_length=80, n_frames=3)
+    want = np.lib.stride_tricks.sliding_window_view(buf, 240, axis=1)[:, ::80][:, :3]
+    np.testing.assert_array_equal(got, want)
+    assert not got.flags.writeable
+    with pytest.raises(ValueError):
+        lpc.hop_frames(buf, frame_length=240, hop_length=80, n_frames=3 + 1)
