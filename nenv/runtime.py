@@ -65,7 +65,13 @@ class CallEngine:
 
     latency_ms = ALGORITHMIC_LATENCY_MS
 
-    def __init__(self, system: System):
+    def __init__(self, system: System, *, keep_decisions: bool = False):
+        """``keep_decisions``: keep every hop's guard verdict for ``system.estimator.record()``
+        (memory grows with the call's length; off by default: count verdicts with the
+        estimator's ``listener`` or :func:`nenv.streamfile.watch` instead)."""
+        estimator = getattr(system, "estimator", None)
+        if hasattr(estimator, "keep_decisions"):
+            estimator.keep_decisions = keep_decisions
         self._ext = Extender(system)
         self._pending = np.zeros(0)
         self._out = OutputGate()

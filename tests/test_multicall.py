@@ -30,7 +30,7 @@ def calls(arctic_refs):
 
 
 def _alone(model, x, chunks):
-    eng = CallEngine(pipeline.make_system("neural", model=model))
+    eng = CallEngine(pipeline.make_system("neural", model=model), keep_decisions=True)
     pos, out = 0, []
     for c in chunks:
         out.append(eng.feed(x[pos : pos + c]))

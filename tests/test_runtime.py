@@ -142,3 +142,22 @@ def test_loading_a_model_leaves_the_floating_point_mode_alone():
     ck.predict(np.zeros((3, ck.features.input_dim)))
     tiny = np.array([2.0**-1074])
     assert tiny[0] > 0 and (tiny * 1.0)[0] > 0
+
+
+def test_a_long_call_keeps_no_verdicts_unless_asked(call_audio):
+    """Memory must not grow with a call's length: the streaming engine keeps no per-hop verdicts by default."""
+    from nenv import checkpoint
+
+    path = checkpoint.default_path()
+    if path is None:
+        pytest.skip("no default model")
+    model = checkpoint.load(path)
+    x = np.tile(call_audio[1], 3)
+    quiet = CallEngine(pipeline.make_system("neural", model=model))
+    kept = CallEngine(pipeline.make_system("neural", model=model), keep_decisions=True)
+    for eng in (quiet, kept):
+        for s in range(0, x.size, 160):
+            eng.feed(x[s : s + 160])
+    hops = x.size // 80
+    assert quiet.system.estimator.record().rejected.size == 0
+    assert kept.system.estimator.record().rejected.size == hops
