@@ -99,12 +99,18 @@ def encode(y: np.ndarray, *, law: Law) -> np.ndarray:
 
 
 def decode(code: np.ndarray, *, law: Law) -> np.ndarray:
-    """G.711 characters -> float samples (full scale 1.0)."""
-    if law == "mulaw":
-        return mulaw_decode(code).astype(np.float64) / 32768.0
-    if law == "alaw":
-        return alaw_decode(code).astype(np.float64) / 32768.0
-    raise InputError(f"law={law!r} has no G.711 characters: choose 'mulaw' or 'alaw'")
+    """G.711 characters -> float samples (full scale 1.0), by a 256-entry table built from the decoders."""
+    if law not in _FLOAT_TABLES:
+        raise InputError(f"law={law!r} has no G.711 characters: choose 'mulaw' or 'alaw'")
+    return _FLOAT_TABLES[law][np.asarray(code, dtype=np.uint8)]
+
+
+_FLOAT_TABLES = {
+    "mulaw": mulaw_decode(np.arange(256)).astype(np.float64) / 32768.0,
+    "alaw": alaw_decode(np.arange(256)).astype(np.float64) / 32768.0,
+}
+for _t in _FLOAT_TABLES.values():
+    _t.flags.writeable = False
 
 
 def compand(y: np.ndarray, *, law: Law) -> np.ndarray:

@@ -53,6 +53,8 @@ HEADER = struct.Struct("!BBHII")
 MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
 RESYNC_AFTER = 16  # consecutive late-looking packets after which a stream follows the new numbering
 MAX_CLOSED = 1024  # closed streams whose counters are kept
+RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
+EXPIRY_CHECK_S = 0.1  # how often idle streams are looked for
 
 
 @dataclass(frozen=True)
@@ -152,11 +154,13 @@ class Relay:
         reorder_window: int = 4,
         idle_timeout_s: float = 2.0,
         batch_model=None,
-        tick_s: float = 0.01,
+        tick_s: float = 0.02,
     ):
         """``batch_model``: a loaded neural checkpoint; if given, every stream is a call of one
         :class:`nenv.multicall.MultiCallEngine` (``make_system`` is not used), stepped every
-        ``tick_s`` seconds, so all streams share each hop's work (a packet waits at most one tick)."""
+        ``tick_s`` seconds, so all streams share each hop's work (a packet waits at most one tick;
+        one tick per usual 20 ms packet time by default, ``0.01`` halves that wait for about twice
+        the fixed cost per second)."""
         if not 96 <= payload_type_out <= 127:
             raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
         self.make_system = make_system
@@ -181,7 +185,7 @@ class Relay:
 
             self.multi = MultiCallEngine(batch_model)
         self.tick = tick_s
-        self._last_step = time.monotonic()
+        self._last_step = self._last_expiry = time.monotonic()
         self._by_call: dict[str, _Stream] = {}
 
     # ---- lifecycle ---------------------------------------------------------------------
@@ -204,13 +208,22 @@ class Relay:
                 wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - time.monotonic())
                 ready, _, _ = select.select([self.sock], [], [], wait)
                 if ready:
-                    data, addr = self.sock.recvfrom(65535)
-                    self.handle(data, addr)
+                    self._receive_all()
                 if self.multi is not None and time.monotonic() - self._last_step >= self.tick:
                     self.step()
-                self._expire()
+                if time.monotonic() - self._last_expiry >= EXPIRY_CHECK_S:
+                    self._expire()
         finally:
             self._shutdown()
+
+    def _receive_all(self) -> None:
+        """Handle every datagram waiting in the socket (up to RECEIVE_BURST), without blocking."""
+        for _ in range(RECEIVE_BURST):
+            try:
+                data, addr = self.sock.recvfrom(65535, socket.MSG_DONTWAIT)
+            except (BlockingIOError, InterruptedError):
+                return
+            self.handle(data, addr)
 
     def step(self) -> None:
         """Batched mode: run every queued hop of every stream and send what is ready."""
@@ -340,17 +353,17 @@ class Relay:
         n_full = buf.size // OUT_SAMPLES * OUT_SAMPLES
         if final:
             n_full = buf.size
+        pcm = to_int16(buf[:n_full]).astype(">i2").tobytes() if n_full else b""  # all packets' samples, converted once
         for s in range(0, n_full, OUT_SAMPLES):
-            chunk = buf[s : min(s + OUT_SAMPLES, n_full)]
-            payload = to_int16(chunk).astype(">i2").tobytes()
-            self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload), self.send_to)
+            e = min(s + OUT_SAMPLES, n_full)
+            self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=pcm[2 * s : 2 * e]), self.send_to)
             st.out_seq = (st.out_seq + 1) & 0xFFFF
-            st.out_ts = (st.out_ts + chunk.size) & 0xFFFFFFFF
+            st.out_ts = (st.out_ts + e - s) & 0xFFFFFFFF
             st.counters.packets_out += 1
         st.out_buf = buf[n_full:].copy()
 
     def _expire(self) -> None:
-        now = time.monotonic()
+        now = self._last_expiry = time.monotonic()
         for ssrc, st in list(self.streams.items()):
             if now - st.last_seen > self.idle:
                 self._close(ssrc)
