@@ -75,9 +75,9 @@ def upsampler_matrix(hop: int = HOP_NB) -> np.ndarray:
     """The interpolator for one hop as a banded (Toeplitz) matrix: 8 kHz history + hop -> 16 kHz hop.
 
     Zero insertion followed by the :func:`upsampler_taps` FIR is, per output phase, a short
-    FIR on the 8 kHz samples (even taps -> even outputs, odd taps -> odd outputs). Row ``i``
-    of a hop's input vector ``[last UPSAMPLER_HISTORY samples, hop]`` times this matrix gives
-    the hop's ``2 * hop`` outputs, interleaved; every hop of every call is one row of a single
+    FIR on the 8 kHz samples (even taps -> even outputs, odd taps -> odd outputs). A hop's
+    input vector ``[last UPSAMPLER_HISTORY samples, the hop]`` times this matrix gives the
+    hop's ``2 * hop`` outputs, interleaved; every hop of every call is one row of a single
     matrix product (mostly zeros, still cheaper than per-tap work on small arrays).
 
     Returns np.ndarray [shape=(UPSAMPLER_HISTORY + hop, 2 * hop)], read-only.
@@ -115,6 +115,8 @@ class Upsampler:
 
     def process(self, x: np.ndarray) -> np.ndarray:
         x = np.asarray(x, dtype=np.float64)
+        if x.size == 0:
+            return np.zeros(0)
         buf = np.concatenate([self._hist, x])
         self._hist = buf[x.size :].copy()
         if x.size % HOP_NB == 0:
