@@ -100,7 +100,6 @@ class ExcitationExtender:
             with :class:`nenv.synthesis.Upsampler` output (delay UPSAMPLER_DELAY)
         rms : np.ndarray [shape=(n,)], RMS of ``u`` over each hop (> 0)
         """
-        n_hops = (2 * e.size) // HOP_WB
         if self.method == "fold":
             z = np.zeros(2 * e.size)
             z[::2] = np.sqrt(2.0) * e
@@ -111,15 +110,41 @@ class ExcitationExtender:
                 t = self._n + np.arange(up.size, dtype=np.float64)  # global sample index: phase continues across calls
                 u = up * 2.0 * np.cos(2 * np.pi * self.shift_hz * t / WB_SR)
             else:
-                z, self._dc_zi = filters.iir(DC_B, DC_A, np.abs(up), self._dc_zi)
-                p_up = mean_square(up.reshape(n_hops, HOP_WB))
-                p_z = mean_square(z.reshape(n_hops, HOP_WB))
-                scale = np.sqrt(p_up / np.maximum(p_z, 1e-30))
-                u = (z.reshape(n_hops, HOP_WB) * scale[:, None]).reshape(-1)
+                u, dc_zi = rectify_hops(up[None, :], self._dc_zi[None, :])
+                u, self._dc_zi = u[0], dc_zi[0]
         self._n += u.size
         frames = self._frames.push(u)
         if self.whiten:
-            a, _ = lpc.analyse(frames, order=WHITEN_ORDER, sr=WB_SR)
-            u = residual(frames, a, hop_length=HOP_WB)
-        rms = np.sqrt(mean_square(u.reshape(n_hops, HOP_WB)))
-        return u, np.maximum(rms, 1e-9)
+            return whiten_hops(frames)
+        return u, hop_rms(u)
+
+
+def rectify_hops(up: np.ndarray, dc_zi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The ``rectify`` extension for B rows of whole 16 kHz hops (one call, or many calls batched).
+
+    Full-wave rectification, DC removal with state, then each hop scaled back to the power
+    of the interpolated residual it came from.
+
+    up : np.ndarray [shape=(B, n * HOP_WB)], interpolated residual; dc_zi : [shape=(B, 1)]
+    Returns u [shape=(B, n * HOP_WB)] and the DC filter's new state [shape=(B, 1)].
+    """
+    z, dc_zi = filters.iir(DC_B, DC_A, np.abs(up), dc_zi)
+    up_h, z_h = up.reshape(up.shape[0], -1, HOP_WB), z.reshape(z.shape[0], -1, HOP_WB)
+    scale = np.sqrt(mean_square(up_h) / np.maximum(mean_square(z_h), 1e-30))
+    return (z_h * scale[..., None]).reshape(up.shape), dc_zi
+
+
+def whiten_hops(frames: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Whiten extended excitation: each hop through its own order-WHITEN_ORDER LPC inverse filter.
+
+    frames : np.ndarray [shape=(n, WIN_WB)], 16 kHz frames ending at each hop's end
+    Returns u [shape=(n * HOP_WB,)] and each hop's RMS [shape=(n,)] (> 0).
+    """
+    a, _ = lpc.analyse(frames, order=WHITEN_ORDER, sr=WB_SR)
+    u = residual(frames, a, hop_length=HOP_WB)
+    return u, hop_rms(u)
+
+
+def hop_rms(u: np.ndarray) -> np.ndarray:
+    """RMS of each 16 kHz hop of ``u`` [shape=(n * HOP_WB,)], floored at 1e-9."""
+    return np.maximum(np.sqrt(mean_square(u.reshape(-1, HOP_WB))), 1e-9)

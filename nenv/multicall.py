@@ -23,12 +23,12 @@ from nenv.audio import PEAK_CEILING as CEILING
 from nenv.checkpoint import Checkpoint
 from nenv.estimators.base import NarrowbandAnalysis
 from nenv.estimators.neural import guarded_envelopes
-from nenv.excitation import DC_A, DC_B, WHITEN_ORDER, mean_square, residual
+from nenv.excitation import rectify_hops, residual, whiten_hops
 from nenv.features import narrowband_features
 from nenv.guard import Guard
 from nenv.pipeline import tail_padding
 from nenv.runtime import OutputGate
-from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WB_SR, WIN_NB, WIN_WB
+from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WIN_NB, WIN_WB
 from nenv.synthesis import LOOP_MAX_SUBFRAMES, MAX_REFLECTION, UPSAMPLER_HISTORY, block_synthesis, direct_synthesis, isolation_sos, loop_synthesis, upsample_hops
 
 DIRECT_MIN_CALLS = 32  # from this many calls per hop the sample-by-sample recursion beats the block form
@@ -189,17 +189,11 @@ class MultiCallEngine:
                 self._calls[self._ids[rows[r]]].rejected_hops += int(n_rej)
         # excitation: residual -> interpolate -> rectify -> DC removal -> power match -> whiten
         e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, H * HOP_NB)
-        up = self._fir(e, "up_e", rows)
-        r, st["dc"][rows] = filters.iir(DC_B, DC_A, np.abs(up), st["dc"][rows])
-        up_h, r_h = up.reshape(B, H, HOP_WB), r.reshape(B, H, HOP_WB)
-        scale = np.sqrt(mean_square(up_h) / np.maximum(mean_square(r_h), 1e-30))
-        u = (r_h * scale[:, :, None]).reshape(B, H * HOP_WB)
+        u, st["dc"][rows] = rectify_hops(self._fir(e, "up_e", rows), st["dc"][rows])
         wbuf = np.concatenate([st["wb_hist"][rows], u], axis=1)
         st["wb_hist"][rows] = wbuf[:, H * HOP_WB :]
         wb_frames = lpc.hop_frames(wbuf, frame_length=WIN_WB, hop_length=HOP_WB, n_frames=H).reshape(B * H, WIN_WB)
-        a_w, _ = lpc.analyse(wb_frames, order=WHITEN_ORDER, sr=WB_SR)
-        u = residual(wb_frames, a_w, hop_length=HOP_WB).reshape(B * H, HOP_WB)
-        rms = np.maximum(np.sqrt(mean_square(u)), 1e-9)
+        u, rms = whiten_hops(wb_frames)
         # synthesis: envelopes interpolated in the reflection domain from the previous hop's, memory per call
         k = np.clip(np.where(np.isnan(k), 0.0, k), -MAX_REFLECTION, MAX_REFLECTION).reshape(B, H, self.p)
         log_g = np.log(np.maximum(gain / rms, 1e-12)).reshape(B, H)
