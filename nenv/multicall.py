@@ -29,7 +29,7 @@ from nenv.guard import Guard
 from nenv.pipeline import tail_padding
 from nenv.runtime import OutputGate
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WIN_NB, WIN_WB
-from nenv.synthesis import LOOP_MAX_SUBFRAMES, MAX_REFLECTION, UPSAMPLER_HISTORY, block_synthesis, direct_synthesis, isolation_sos, loop_synthesis, upsample_hops
+from nenv.synthesis import LOOP_MAX_SUBFRAMES, MAX_REFLECTION, UPSAMPLER_HISTORY, block_synthesis, direct_synthesis, interpolate_envelopes, isolation_sos, loop_synthesis, upsample_hops
 
 DIRECT_MIN_CALLS = 32  # from this many calls per hop the sample-by-sample recursion beats the block form
 MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
@@ -197,16 +197,11 @@ class MultiCallEngine:
         # synthesis: envelopes interpolated in the reflection domain from the previous hop's, memory per call
         k = np.clip(np.where(np.isnan(k), 0.0, k), -MAX_REFLECTION, MAX_REFLECTION).reshape(B, H, self.p)
         log_g = np.log(np.maximum(gain / rms, 1e-12)).reshape(B, H)
-        k_from = np.concatenate([st["k_prev"][rows][:, None], k[:, :-1]], axis=1)
-        g_from = np.concatenate([st["g_prev"][rows][:, None], log_g[:, :-1]], axis=1)
-        w = (np.arange(N_SUBFRAMES) + 1.0) / N_SUBFRAMES
-        k_sub = k_from[:, :, None, :] * (1 - w)[None, None, :, None] + k[:, :, None, :] * w[None, None, :, None]
-        g_sub = np.exp(g_from[:, :, None] * (1 - w)[None, None, :] + log_g[:, :, None] * w[None, None, :])
+        a_sub, g_sub = interpolate_envelopes(st["k_prev"][rows], k, st["g_prev"][rows], log_g, n_sub=N_SUBFRAMES)
         st["k_prev"][rows] = k[:, -1]
         st["g_prev"][rows] = log_g[:, -1]
         J = H * N_SUBFRAMES
-        a_sub = lpc.from_reflection(k_sub.reshape(B, J, self.p))
-        synth = self._synthesize(rows, u.reshape(B, J, -1), a_sub, g_sub.reshape(B, J))
+        synth = self._synthesize(rows, u.reshape(B, J, -1), a_sub.reshape(B, J, self.p + 1), g_sub.reshape(B, J))
         # band isolation and mixing with the interpolated input
         low = self._fir(x, "up_x", rows)
         hb, st["iso"][rows] = filters.sos(self._iso, synth, st["iso"][rows])

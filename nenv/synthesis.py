@@ -143,28 +143,29 @@ class Delay:
         return buf[: x.size]
 
 
-def interpolate_envelopes(k_prev: np.ndarray, k: np.ndarray, log_g_prev: float, log_g: np.ndarray, *, n_sub: int) -> tuple[np.ndarray, np.ndarray]:
+def interpolate_envelopes(k_prev: np.ndarray, k: np.ndarray, log_g_prev, log_g: np.ndarray, *, n_sub: int) -> tuple[np.ndarray, np.ndarray]:
     """Per-sub-frame envelopes interpolated from the previous frame to each frame.
 
     Interpolation is linear in the reflection coefficients (so every sub-frame
     is stable when the frames are) and linear in log gain. Sub-frame ``j`` of
-    frame ``t`` has weight ``(j+1)/n_sub`` on frame ``t``.
+    frame ``t`` has weight ``(j+1)/n_sub`` on frame ``t``. Leading axes (``...``)
+    are independent streams: one call, or many calls batched.
 
     Parameters
     ----------
-    k_prev : np.ndarray [shape=(p,)], last frame of the previous call
-    k : np.ndarray [shape=(n, p)]
-    log_g_prev : float; log_g : np.ndarray [shape=(n,)]
+    k_prev : np.ndarray [shape=(..., p)], each stream's last frame before these
+    k : np.ndarray [shape=(..., n, p)]
+    log_g_prev : float or np.ndarray [shape=(...)]; log_g : np.ndarray [shape=(..., n)]
 
     Returns
     -------
-    a : np.ndarray [shape=(n, n_sub, p+1)]; gain : np.ndarray [shape=(n, n_sub)]
+    a : np.ndarray [shape=(..., n, n_sub, p+1)]; gain : np.ndarray [shape=(..., n, n_sub)]
     """
-    k_before = np.vstack([k_prev[None, :], k[:-1]])
-    g_before = np.concatenate([[log_g_prev], log_g[:-1]])
+    k_before = np.concatenate([np.asarray(k_prev)[..., None, :], k[..., :-1, :]], axis=-2)
+    g_before = np.concatenate([np.asarray(log_g_prev, dtype=np.float64)[..., None], log_g[..., :-1]], axis=-1)
     w = (np.arange(n_sub) + 1.0) / n_sub
-    k_sub = k_before[:, None, :] * (1 - w)[None, :, None] + k[:, None, :] * w[None, :, None]
-    g_sub = g_before[:, None] * (1 - w)[None, :] + log_g[:, None] * w[None, :]
+    k_sub = k_before[..., :, None, :] * (1 - w)[:, None] + k[..., :, None, :] * w[:, None]
+    g_sub = g_before[..., :, None] * (1 - w) + log_g[..., :, None] * w
     return lpc.from_reflection(k_sub), np.exp(g_sub)
 
 
