@@ -124,8 +124,7 @@ def autocorrelation(frames: np.ndarray, *, order: int) -> np.ndarray:
         x = np.asarray(frames, dtype=np.float64).reshape(-1, length)
         padded = np.zeros((x.shape[0], length + order))
         padded[:, :length] = x
-        step = padded.itemsize
-        lagged = np.ndarray((x.shape[0], order + 1, length), padded.dtype, padded, 0, (padded.strides[0], step, step))
+        lagged = hop_frames(padded, frame_length=length, hop_length=1, n_frames=order + 1)  # lagged[b, k] = x[b, k:] + zeros
         return np.einsum("bn,bkn->bk", x, lagged).reshape(frames.shape[:-1] + (order + 1,))
     if order <= DIRECT_MAX_ORDER:  # a few lags: direct products beat an FFT of the whole frame
         x = np.asarray(frames, dtype=np.float64)

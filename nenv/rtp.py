@@ -172,6 +172,7 @@ class Relay:
         self.idle = idle_timeout_s
         self.sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
         self.sock.bind(listen)
+        self.sock.setblocking(False)  # serve() waits in select and then reads every datagram waiting
         self.address = self.sock.getsockname()
         self.out = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
         self.streams: dict[int, _Stream] = {}
@@ -220,7 +221,7 @@ class Relay:
         """Handle every datagram waiting in the socket (up to RECEIVE_BURST), without blocking."""
         for _ in range(RECEIVE_BURST):
             try:
-                data, addr = self.sock.recvfrom(65535, socket.MSG_DONTWAIT)
+                data, addr = self.sock.recvfrom(65535)
             except (BlockingIOError, InterruptedError):
                 return
             self.handle(data, addr)
@@ -261,8 +262,8 @@ class Relay:
                 self.counters.over_stream_limit += 1
                 return
             if self.multi is None:
-                st = _Stream(CallEngine(self._system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
-                self._count_fallbacks(st)
+                st = _Stream(CallEngine(self.make_system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
+                self._count_fallbacks(st)  # the engine keeps no per-hop verdicts: counted here
             else:
                 st = _Stream(None, LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic(), call_id=f"{pkt.ssrc:08x}-{self.counters.streams_opened}")
                 self.multi.open(st.call_id)
@@ -289,13 +290,6 @@ class Relay:
         st.held[pkt.seq] = pkt
         st.counters.packets += 1
         self._drain(st, force=False)
-
-    def _system(self):
-        system = self.make_system()
-        est = getattr(system, "estimator", None)
-        if hasattr(est, "keep_decisions"):
-            est.keep_decisions = False  # counted below instead: memory must not grow with a call's length
-        return system
 
     @staticmethod
     def _count_fallbacks(st: _Stream) -> None:

@@ -247,14 +247,13 @@ def loop_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np
     p = a_sub.shape[-1] - 1
     out = np.empty_like(u)
     new_past = np.empty_like(past)
-    padded = np.zeros(2 * p)
-    step = padded.itemsize
-    hankel = np.ndarray((p, p), padded.dtype, padded, 0, (step, step))  # hankel[m, i] = padded[m + i]
+    padded = np.zeros((1, 2 * p))
+    hankel = lpc.hop_frames(padded, frame_length=p, hop_length=1, n_frames=p)[0]  # hankel[m, i] = padded[m + i]
     for b in range(B):
         mem = past[b]
         for j in range(J):
             aj = a_sub[b, j]
-            padded[:p] = aj[1:]
+            padded[0, :p] = aj[1:]
             zi = -(hankel @ mem)  # zi[m] = -sum_i a[m+1+i] y[n-1-i], a = 0 beyond p
             y = filters.iir(g_sub[b, j : j + 1], aj, u[b, j], zi)[0]
             out[b, j] = y
