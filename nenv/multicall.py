@@ -29,9 +29,9 @@ from nenv.guard import Guard
 from nenv.pipeline import tail_padding
 from nenv.runtime import OutputGate
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WIN_NB, WIN_WB
-from nenv.synthesis import LOOP_MAX_SUBFRAMES, MAX_REFLECTION, UPSAMPLER_HISTORY, block_synthesis, direct_synthesis, interpolate_envelopes, isolation_sos, loop_synthesis, upsample_hops
+from nenv.synthesis import MAX_REFLECTION, UPSAMPLER_HISTORY, banded_synthesis, direct_synthesis, interpolate_envelopes, isolation_sos, upsample_hops
 
-DIRECT_MIN_CALLS = 32  # from this many calls per hop the sample-by-sample recursion beats the block form
+DIRECT_MIN_CALLS = 150  # from this many calls per hop the sample-by-sample recursion beats the banded solve (measured)
 MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
 
 
@@ -215,11 +215,6 @@ class MultiCallEngine:
 
     def _synthesize(self, rows: np.ndarray, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
         """All-pole synthesis of one hop for B calls, each with its own filter memory."""
-        if u.shape[0] * u.shape[1] <= LOOP_MAX_SUBFRAMES:
-            synth = loop_synthesis
-        elif u.shape[0] >= DIRECT_MIN_CALLS:
-            synth = direct_synthesis
-        else:
-            synth = block_synthesis
+        synth = direct_synthesis if u.shape[0] >= DIRECT_MIN_CALLS else banded_synthesis
         y, self._state["past"][rows] = synth(u, a_sub, g_sub, self._state["past"][rows])
         return y.reshape(u.shape[0], -1)

@@ -10,6 +10,7 @@ from functools import lru_cache
 
 import numpy as np
 from scipy import signal
+from scipy.linalg import lapack
 
 from nenv import filters, lpc
 from nenv.settings import BAND_EDGE_HZ, HOP_NB, HOP_WB, N_SUBFRAMES, WB_SR
@@ -169,9 +170,6 @@ def interpolate_envelopes(k_prev: np.ndarray, k: np.ndarray, log_g_prev, log_g: 
     return lpc.from_reflection(k_sub), np.exp(g_sub)
 
 
-LOOP_MAX_SUBFRAMES = 48  # up to this many sub-frames (a few calls' hops) one compiled filter call per sub-frame is cheapest
-
-
 class AllPoleSynthesizer:
     """``G / A(z)`` synthesis with per-sub-frame interpolated coefficients.
 
@@ -214,60 +212,82 @@ class AllPoleSynthesizer:
         a_sub, g_sub = interpolate_envelopes(self._k_prev, k, self._log_g_prev, log_g, n_sub=self.n_sub)
         self._k_prev = k[-1].copy()
         self._log_g_prev = float(log_g[-1])
-        sub = self.hop_length // self.n_sub
-        u = u.reshape(n * self.n_sub, sub)
-        a_sub = a_sub.reshape(n * self.n_sub, self.order + 1)
-        g_sub = g_sub.reshape(-1)
-        if sub < 2 * self.order or u.shape[0] <= LOOP_MAX_SUBFRAMES:
-            out = self._loop(u, a_sub, g_sub)
-        else:
-            out = self._block(u, a_sub, g_sub)
-        return out.reshape(-1)
-
-    def _loop(self, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
-        """One lfilter call per sub-frame (see :func:`loop_synthesis`)."""
-        y, past = loop_synthesis(u[None], a_sub[None], g_sub[None], self._past[None])
-        self._past = past[0]
-        return y[0]
-
-    def _block(self, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
-        """The same recursion, exactly, with the per-sub-frame work vectorised (see :func:`block_synthesis`)."""
-        y, past = block_synthesis(u[None], a_sub[None], g_sub[None], self._past[None])
-        self._past = past[0]
-        return y[0]
+        u = u.reshape(1, n * self.n_sub, self.hop_length // self.n_sub)
+        y, self._past = banded_synthesis(u, a_sub.reshape(1, n * self.n_sub, self.order + 1), g_sub.reshape(1, -1), self._past[None])
+        self._past = self._past[0]
+        return y.reshape(-1)
 
 
-def loop_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The same result as :func:`block_synthesis` with one ``scipy.signal.lfilter`` call per sub-frame and stream.
+BANDED_MAX_ROWS = 16384  # rows of one banded solve (17 values each at order 16: ~2 MiB, within a core's L2 cache)
 
-    The reference route, and the cheapest for a handful of sub-frames (a streaming call's hop):
-    each call starts from the state equivalent to the last ``order`` outputs.
+
+def banded_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """All-pole synthesis of consecutive sub-frames for B independent streams (calls), exactly.
+
+    The recursion ``y[n] + sum_i a_i(n) y[n-i] = g(n) u[n]`` over a stretch of samples is a
+    unit lower-triangular linear system with bandwidth ``order``, whose forward substitution
+    *is* the recursion; LAPACK's banded triangular solver (``dtbtrs``, through
+    ``scipy.linalg.lapack``) runs it in compiled code. Each stream's block starts with
+    ``order`` identity rows holding its memory (the last ``order`` outputs), so any number
+    of streams stack into one system without touching each other. The band is stored as
+    the transpose of an upper-triangular band (``uplo='U', trans='T'``), whose column for
+    sample ``n`` is ``[a_p(n), ..., a_1(n), 1]``: every sample's row is its sub-frame's
+    coefficients reversed, written by one broadcast, with no skewed copy. Long stretches
+    are cut into solves of at most ``BANDED_MAX_ROWS`` rows, the memory carried between them.
+
+    Parameters
+    ----------
+    u : np.ndarray [shape=(B, J, L)], excitation of J sub-frames of L samples per stream
+    a_sub : np.ndarray [shape=(B, J, order+1)]; g_sub : np.ndarray [shape=(B, J)]
+    past : np.ndarray [shape=(B, order)], y[n-1], ..., y[n-order] of each stream
+
+    Returns
+    -------
+    y : np.ndarray [shape=(B, J, L)]; past : np.ndarray [shape=(B, order)], updated
     """
-    B, J, _ = u.shape
+    B, J, length = u.shape
     p = a_sub.shape[-1] - 1
-    out = np.empty_like(u)
-    new_past = np.empty_like(past)
-    padded = np.zeros((1, 2 * p))
-    hankel = lpc.hop_frames(padded, frame_length=p, hop_length=1, n_frames=p)[0]  # hankel[m, i] = padded[m + i]
+    rows = J * length + p
+    if rows <= BANDED_MAX_ROWS:  # whole streams, as many per solve as fit
+        per = BANDED_MAX_ROWS // rows
+        if per >= B:
+            return _banded_solve(u, a_sub, g_sub, past)
+        y, new_past = np.empty_like(u), np.empty_like(past)
+        for b in range(0, B, per):
+            y[b : b + per], new_past[b : b + per] = _banded_solve(u[b : b + per], a_sub[b : b + per], g_sub[b : b + per], past[b : b + per])
+        return y, new_past
+    span = max(1, (BANDED_MAX_ROWS - p) // length)  # sub-frames per solve, memory carried across solves
+    y, new_past = np.empty_like(u), past.copy()
     for b in range(B):
-        mem = past[b]
-        for j in range(J):
-            aj = a_sub[b, j]
-            padded[0, :p] = aj[1:]
-            zi = -(hankel @ mem)  # zi[m] = -sum_i a[m+1+i] y[n-1-i], a = 0 beyond p
-            y = filters.iir(g_sub[b, j : j + 1], aj, u[b, j], zi)[0]
-            out[b, j] = y
-            mem = np.concatenate([y[::-1], mem])[:p]
-        new_past[b] = mem
-    return out, new_past
+        for j in range(0, J, span):
+            y[b : b + 1, j : j + span], new_past[b : b + 1] = _banded_solve(u[b : b + 1, j : j + span], a_sub[b : b + 1, j : j + span], g_sub[b : b + 1, j : j + span], new_past[b : b + 1])
+    return y, new_past
+
+
+def _banded_solve(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """One ``dtbtrs`` call for B streams stacked (see :func:`banded_synthesis`)."""
+    B, J, length = u.shape
+    p = a_sub.shape[-1] - 1
+    n = p + J * length
+    band = np.empty((B, n, p + 1))  # C-order (rows, p+1) = Fortran-order band (p+1, rows): no copy on the way in
+    band[:, :p] = 0.0  # memory rows: identity (the unit diagonal is implied)
+    band[:, p:].reshape(B, J, length, p + 1)[...] = a_sub[:, :, None, ::-1]
+    rhs = np.empty((B, n))
+    rhs[:, :p] = past[:, ::-1]
+    rhs[:, p:] = (g_sub[:, :, None] * u).reshape(B, -1)
+    x, info = lapack.dtbtrs(band.reshape(B * n, p + 1).T, rhs.reshape(B * n, 1), uplo="U", trans="T", diag="U", overwrite_b=1)
+    if info != 0:
+        raise RuntimeError(f"dtbtrs: argument {-info} rejected")
+    x = x.reshape(B, n)
+    return x[:, p:].reshape(B, J, length), x[:, : -p - 1 : -1].copy()
 
 
 def direct_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The same result as :func:`block_synthesis` by the plain recursion, one sample at a time for all streams.
+    """The same result as :func:`banded_synthesis` by the plain recursion, one sample at a time for all streams.
 
     ``y[n] = g u[n] - sum_i a_i y[n-i]``, each numpy operation serving all B streams: the
     cheaper route when many streams advance a few sub-frames (a gateway's hop), where
-    the block form's per-sub-frame matrices cost more than J * L vector steps. Time runs
+    one banded solve per stream-group costs more than J * L vector steps. Time runs
     along the first axis (streams along the second), so every step reads and writes
     contiguous memory.
     """
@@ -285,62 +305,3 @@ def direct_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: 
             np.einsum("ib,ib->b", aj, y[t : t + p], out=acc)
             np.add(gu[t], acc, out=y[p + t])
     return y[p:].T.reshape(B, J, length), y[: -p - 1 : -1].T.copy()
-
-
-def block_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """All-pole synthesis of consecutive sub-frames for B independent streams (calls), exactly.
-
-    Each sub-frame's output is ``h * (g u + v)``: ``h`` its filter's impulse response
-    (all sub-frames at once), ``v = -K s`` the equivalent input of the memory ``s`` (the
-    last ``order`` outputs). Only the memory update ``s' = Z + F s`` (Z: last outputs of
-    the zero-state response, F = -G K with G built from h) runs sub-frame by sub-frame,
-    as a small matrix-vector product per stream.
-
-    Parameters
-    ----------
-    u : np.ndarray [shape=(B, J, L)], excitation of J sub-frames of L samples (L >= 2 * order)
-    a_sub : np.ndarray [shape=(B, J, order+1)]; g_sub : np.ndarray [shape=(B, J)]
-    past : np.ndarray [shape=(B, order)], y[n-1], ..., y[n-order] of each stream
-
-    Returns
-    -------
-    y : np.ndarray [shape=(B, J, L)]; past : np.ndarray [shape=(B, order)], updated
-    """
-    B, J, length = u.shape
-    p = a_sub.shape[-1] - 1
-    a = a_sub.reshape(B * J, p + 1)
-    # impulse responses and zero-state responses of all sub-frames, side by side, time-major
-    # (every step of the recursion reads and writes contiguous rows)
-    both = np.zeros((length, 2, B * J))
-    both[0, 0] = 1.0
-    both[:, 1] = (g_sub.reshape(-1, 1) * u.reshape(B * J, length)).T
-    coef = np.ascontiguousarray(a[:, 1:].T)  # (p, B*J): a_1 .. a_p
-    for t in range(1, length):
-        k = min(t, p)
-        both[t] -= np.einsum("kj,kbj->bj", coef[:k], both[t - 1 :: -1][:k])
-    h, zs = both[:, 0].T.copy(), both[:, 1].T.copy()
-    # K[m, i] = a[m+1+i] (0 beyond p) and G[r, m] = h[L-1-r-m]: sliding windows, no copies
-    a_pad = np.concatenate([a[:, 1:], np.zeros((B * J, p))], axis=1)
-    K = np.lib.stride_tricks.sliding_window_view(a_pad, p, axis=1)[:, :p]
-    G = np.lib.stride_tricks.sliding_window_view(h[:, ::-1], p, axis=1)[:, :p]
-    F = -np.matmul(G, K).reshape(B, J, p, p)
-    r = np.arange(p)
-    Z = zs[:, length - 1 - r].reshape(B, J, p)
-    states = np.empty((B, J, p))
-    s = past.copy()
-    if B == 1:  # one stream: plain matrix-vector products are cheaper per step
-        F1, Z1, s1 = list(F[0]), list(Z[0]), s[0]
-        for j in range(J):
-            states[0, j] = s1
-            s1 = Z1[j] + F1[j].dot(s1)
-        s = s1[None]
-    else:
-        for j in range(J):
-            states[:, j] = s
-            s = Z[:, j] + np.matmul(F[:, j], s[:, :, None])[:, :, 0]
-    v = -np.matmul(K, states.reshape(B * J, p, 1))[:, :, 0]
-    # the memory's response: h convolved with v (v has p samples), by p shifted products
-    zi = np.zeros_like(zs)
-    for m in range(p):
-        zi[:, m:] += h[:, : length - m] * v[:, m : m + 1]
-    return (zs + zi).reshape(B, J, length), s

@@ -206,32 +206,63 @@ def test_scalar_paths_for_few_rows_match_the_vectorised_ones():
             np.testing.assert_allclose(cepstrum.to_cepstrum(a8, n_ceps=p), cepstrum.to_cepstrum(np.concatenate([a8, a8]), n_ceps=p)[: a8.shape[0]], rtol=1e-12, atol=1e-12)
 
 
-def test_direct_synthesis_equals_block_synthesis():
-    """The three exact all-pole synthesis routes (block form, sample by sample, lfilter per sub-frame) agree."""
-    from nenv.synthesis import block_synthesis, direct_synthesis, loop_synthesis
+def _recursion_reference(u, a, g, past):
+    """The all-pole recursion ``y[n] = g u[n] - sum_i a_i y[n-i]`` written out in Python, one stream."""
+    J, L = u.shape
+    p = a.shape[-1] - 1
+    mem, out = past[::-1].tolist(), []  # oldest first
+    for j in range(J):
+        for t in range(L):
+            y = g[j] * u[j, t] - sum(a[j, i] * mem[-i] for i in range(1, p + 1))
+            out.append(y)
+            mem = mem[1:] + [y]
+    return np.array(out).reshape(J, L), np.array(mem[::-1])
+
+
+def test_synthesis_routes_equal_the_recursion_and_scipy_lfilter(monkeypatch):
+    """The exact all-pole synthesis routes (LAPACK banded solve, sample by sample across streams) equal the
+    recursion written out, and scipy.signal.lfilter with its initial conditions from scipy.signal.lfiltic
+    (a general-purpose reference library) on each sub-frame, memory carried."""
+    from scipy import signal
+
+    from nenv import synthesis
 
     rng = np.random.default_rng(4)
     B, J, L, p = 9, 8, 40, 16
     a = lpc.from_reflection(rng.uniform(-0.95, 0.95, (B, J, p)))
     u, g, past = rng.standard_normal((B, J, L)), rng.uniform(0.1, 3.0, (B, J)), rng.standard_normal((B, p))
-    (y1, s1), (y2, s2), (y3, s3) = block_synthesis(u, a, g, past), direct_synthesis(u, a, g, past), loop_synthesis(u, a, g, past)
-    for y, state in ((y2, s2), (y3, s3)):
-        np.testing.assert_allclose(y1, y, rtol=1e-9, atol=1e-9)
-        np.testing.assert_allclose(s1, state, rtol=1e-9, atol=1e-9)
-    # and all equal scipy's lfilter run sub-frame by sub-frame with the memory carried (reference)
-    from scipy import signal
+    results = [synthesis.banded_synthesis(u, a, g, past), synthesis.direct_synthesis(u, a, g, past)]
+    # the banded solve split into several solves: streams in groups, and one stream's sub-frames in pieces
+    monkeypatch.setattr(synthesis, "BANDED_MAX_ROWS", 2 * (J * L + p))
+    results.append(synthesis.banded_synthesis(u, a, g, past))
+    monkeypatch.setattr(synthesis, "BANDED_MAX_ROWS", 3 * L + p)
+    results.append(synthesis.banded_synthesis(u, a, g, past))
+    for b in range(B):
+        y_ref, s_ref = _recursion_reference(u[b], a[b], g[b], past[b])
+        mem, y_lf = past[b], []
+        for j in range(J):
+            y, _ = signal.lfilter([g[b, j]], a[b, j], u[b, j], zi=signal.lfiltic([g[b, j]], a[b, j], mem))
+            y_lf.append(y)
+            mem = np.concatenate([y[::-1], mem])[:p]
+        np.testing.assert_allclose(np.array(y_lf), y_ref, rtol=1e-9, atol=1e-9)
+        for y, state in results:
+            np.testing.assert_allclose(y[b], y_ref, rtol=1e-9, atol=1e-9)
+            np.testing.assert_allclose(state[b], s_ref, rtol=1e-9, atol=1e-9)
 
-    y_ref, mem = [], past[0][::-1].tolist()  # oldest first
-    for j in range(J):
-        out = []
-        for t in range(L):
-            hist = (mem + out)[-p:][::-1]
-            out.append(g[0, j] * u[0, j, t] - float(np.dot(a[0, j, 1:], hist)))
-        mem = (mem + out)[-p:]
-        y_ref.append(out)
-    np.testing.assert_allclose(y1[0], np.array(y_ref), rtol=1e-9, atol=1e-9)
-    zi = signal.lfiltic([g[0, 0]], a[0, 0], past[0])
-    np.testing.assert_allclose(signal.lfilter([g[0, 0]], a[0, 0], u[0, 0], zi=zi)[0], y1[0, 0], rtol=1e-9, atol=1e-9)
+
+def test_banded_synthesis_with_fewer_samples_than_the_order_keeps_the_older_memory():
+    """A stretch shorter than the filter order: the new memory is the new samples, then the oldest of the old memory."""
+    from nenv import synthesis
+
+    rng = np.random.default_rng(5)
+    p = 16
+    a = lpc.from_reflection(rng.uniform(-0.9, 0.9, (1, 1, p)))
+    u, past = rng.standard_normal((1, 1, 5)), rng.standard_normal((1, p))
+    y, state = synthesis.banded_synthesis(u, a, np.ones((1, 1)), past)
+    y_ref, s_ref = _recursion_reference(u[0], a[0], np.ones(1), past[0])
+    np.testing.assert_allclose(y[0], y_ref, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(state[0], s_ref, rtol=1e-12, atol=1e-12)
+    np.testing.assert_array_equal(state[0, 5:], past[0, :-5])
 
 
 def test_frames_at_the_bottom_of_float64_count_as_silent():

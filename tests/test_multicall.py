@@ -86,10 +86,11 @@ def test_one_bad_call_does_not_disturb_another(model, calls):
     assert np.all(np.isfinite(y["bad"])) and engine.stats("bad")["bad_samples"] == 16000
 
 
-def test_many_calls_take_the_batched_synthesis_route_and_stay_exact(model, calls):
+def test_many_calls_take_the_batched_synthesis_route_and_stay_exact(model, calls, monkeypatch):
     """With DIRECT_MIN_CALLS or more calls the synthesis runs sample by sample across calls; still each call's own output."""
     from nenv import multicall
 
+    monkeypatch.setattr(multicall, "DIRECT_MIN_CALLS", 8)  # the route the gateway takes with ~150 calls, at test size
     n_calls = multicall.DIRECT_MIN_CALLS + 3
     xs = [calls[i % len(calls)][800 * i : 800 * i + 4000 + 37 * i] for i in range(n_calls)]
     engine = MultiCallEngine(model)
