@@ -26,6 +26,11 @@ from functools import lru_cache
 import numpy as np
 import scipy.fft
 
+try:  # the compiled Levinson recursion behind scipy.linalg.solve_toeplitz (internal to SciPy)
+    from scipy.linalg._solve_toeplitz import levinson as _toeplitz_levinson
+except ImportError:  # pragma: no cover - depends on the SciPy release
+    _toeplitz_levinson = None
+
 LAG_WINDOW_HZ = 60.0  # Hz, Gaussian lag-window bandwidth (ITU-T G.729 clause 3.2.1 uses 60 Hz)
 WHITE_NOISE_CORRECTION = 1.0001  # r[0] factor = -40 dB noise floor (ITU-T G.729 clause 3.2.1)
 
@@ -120,12 +125,14 @@ def autocorrelation(frames: np.ndarray, *, order: int) -> np.ndarray:
     frames : np.ndarray [shape=(..., L)] -> np.ndarray [shape=(..., order+1)]
     """
     length = frames.shape[-1]
-    if order <= DIRECT_MAX_ORDER and frames.size <= SCALAR_MAX_ROWS * length:  # one or two frames: one product
+    if 0 < frames.size <= SCALAR_MAX_ROWS * length:  # one or two frames: numpy's compiled correlation, any order
         x = np.asarray(frames, dtype=np.float64).reshape(-1, length)
-        padded = np.zeros((x.shape[0], length + order))
-        padded[:, :length] = x
-        lagged = hop_frames(padded, frame_length=length, hop_length=1, n_frames=order + 1)  # lagged[b, k] = x[b, k:] + zeros
-        return np.einsum("bn,bkn->bk", x, lagged).reshape(frames.shape[:-1] + (order + 1,))
+        r = np.empty((x.shape[0], order + 1))
+        padded = np.zeros(length + order)
+        for b in range(x.shape[0]):
+            padded[:length] = x[b]
+            r[b] = np.correlate(padded, x[b], "valid")  # sum_n padded[n + k] x[n], k = 0..order
+        return r.reshape(frames.shape[:-1] + (order + 1,))
     if order <= DIRECT_MAX_ORDER:  # a few lags: direct products beat an FFT of the whole frame
         x = np.asarray(frames, dtype=np.float64)
         r = np.empty(x.shape[:-1] + (order + 1,))
@@ -227,28 +234,77 @@ def _div(num: float, den: float) -> float:
 
 
 def _levinson_scalar(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`levinson` for a few rows, on Python floats (same recursion, same edge cases)."""
+    """:func:`levinson` for a few rows: SciPy's compiled recursion where it is present and agrees
+    (:func:`compiled_levinson`), else the same recursion on Python floats (same edge cases)."""
     n = r.shape[0]
     a_out, k_out, e_out = np.zeros((n, order + 1)), np.zeros((n, order)), np.zeros(n)
+    a_out[:, 0] = 1.0
+    fast = compiled_levinson()
     for row in range(n):
         rr = r[row].tolist()
-        a = [1.0] + [0.0] * order
         if not rr[0] > SILENT_ENERGY:  # digital silence
-            a_out[row] = a
             continue
-        err = rr[0]
-        ks = []
-        for i in range(1, order + 1):
-            acc = 0.0
-            for j in range(i):
-                acc += a[j] * rr[i - j]
-            ki = -_div(acc, err)
-            ks.append(ki)
-            a[1:i] = [a[j] + ki * a[i - j] for j in range(1, i)]  # the right side reads the old a
-            a[i] = ki
-            err = err * (1.0 - ki * ki)
-        a_out[row], k_out[row], e_out[row] = a, ks, err
+        if fast and math.isfinite(math.fsum(rr)):
+            try:
+                # symmetric Toeplitz system R a = -r[1:]; SciPy wants the first column reversed, then the first row
+                a, refl = _toeplitz_levinson(np.concatenate((r[row, order - 1 : 0 : -1], r[row, :order])), -r[row, 1 : order + 1])
+            except np.linalg.LinAlgError:  # a singular leading minor: the float recursion gives its inf/nan
+                pass
+            else:
+                err = rr[0]
+                for ki in refl[1:].tolist():
+                    err = err * (1.0 - ki * ki)
+                a_out[row, 1:], k_out[row], e_out[row] = a, refl[1:], err
+                continue
+        a_out[row], k_out[row], e_out[row] = _levinson_floats(rr, order)
     return a_out, k_out, e_out
+
+
+def _levinson_floats(rr: list, order: int) -> tuple[list, list, float]:
+    """One row of the Levinson-Durbin recursion on Python floats (``rr[0]`` above SILENT_ENERGY)."""
+    a = [1.0] + [0.0] * order
+    err = rr[0]
+    ks = []
+    for i in range(1, order + 1):
+        acc = 0.0
+        for j in range(i):
+            acc += a[j] * rr[i - j]
+        ki = -_div(acc, err)
+        ks.append(ki)
+        a[1:i] = [a[j] + ki * a[i - j] for j in range(1, i)]  # the right side reads the old a
+        a[i] = ki
+        err = err * (1.0 - ki * ki)
+    return a, ks, err
+
+
+_compiled: dict[str, bool] = {}
+
+
+def compiled_levinson() -> bool:
+    """True when SciPy's compiled Levinson recursion serves :func:`levinson` for a few rows: present,
+    and agreeing with the recursion on Python floats (checked once, on a conditioned speech-like
+    autocorrelation and on one that is not positive definite)."""
+    if "ok" not in _compiled:
+        _compiled["ok"] = _compiled_agrees()
+    return _compiled["ok"]
+
+
+def _compiled_agrees() -> bool:
+    if _toeplitz_levinson is None:
+        return False
+    order = 10
+    lags = np.arange(order + 1)
+    resonant = condition((0.95**lags * np.cos(0.4 * lags))[None], sr=8000)[0]  # a damped cosine times a decay: positive definite
+    rows = [resonant, np.r_[1.0, 2.0, np.zeros(order - 1)]]
+    try:
+        for r in rows:
+            a, refl = _toeplitz_levinson(np.concatenate((r[order - 1 : 0 : -1], r[:order])), -r[1 : order + 1])
+            want_a, want_k, _ = _levinson_floats(r.tolist(), order)
+            if not (np.allclose(a, want_a[1:], rtol=1e-10, atol=1e-12) and np.allclose(refl[1:], want_k, rtol=1e-10, atol=1e-12) and refl[0] == 1.0):
+                return False
+    except Exception:  # pragma: no cover - an internal signature changed
+        return False
+    return True
 
 
 def analyse(frames: np.ndarray, *, order: int, sr: int) -> tuple[np.ndarray, np.ndarray]:

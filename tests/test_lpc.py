@@ -39,10 +39,39 @@ def test_levinson_matches_scipy_solve_toeplitz(rng):
     np.testing.assert_allclose(err, r[:, 0] * np.prod(1 - k**2, axis=1), rtol=1e-9)
 
 
-def test_autocorrelation_matches_numpy_correlate(rng):
-    x = rng.standard_normal(240)
-    ref = np.correlate(x, x, mode="full")[239 : 239 + 11]
-    np.testing.assert_allclose(lpc.autocorrelation(x[None], order=10)[0], ref, atol=1e-10)
+def test_scipys_compiled_levinson_serves_few_rows_and_agrees_with_the_float_recursion(rng, monkeypatch):
+    """For one or two rows SciPy's compiled Levinson recursion (behind scipy.linalg.solve_toeplitz)
+    replaces the recursion on Python floats; both give the same a, k, err, including silent rows,
+    an autocorrelation that is not positive definite and a singular one (which SciPy refuses)."""
+    assert lpc.compiled_levinson()  # if a SciPy release moves it, nenv still works (Python floats) but this tells us
+    order = 10
+    speech = lpc.condition(lpc.autocorrelation(_ar_frames(rng) * lpc.asymmetric_window(240), order=order), sr=8000)
+    odd = [np.zeros(order + 1), np.r_[1.0, 2.0, np.zeros(order - 1)], np.ones(order + 1), np.r_[np.inf, np.ones(order)], np.r_[1.0, np.nan, np.zeros(order - 1)]]
+    for r in [row for row in speech] + odd:
+        fast = lpc.levinson(r[None], order=order)
+        monkeypatch.setitem(lpc._compiled, "ok", False)
+        slow = lpc.levinson(r[None], order=order)
+        monkeypatch.setitem(lpc._compiled, "ok", True)
+        for u, v in zip(fast, slow):
+            np.testing.assert_allclose(u, v, rtol=1e-10, atol=1e-12)
+    a, k, err = lpc.levinson(speech[:1], order=order)  # and the normal equations, solved by a general solver
+    np.testing.assert_allclose(a[0, 1:], scipy.linalg.solve(scipy.linalg.toeplitz(speech[0, :order]), -speech[0, 1:]), rtol=1e-9)
+
+
+def test_autocorrelation_routes_match_the_defining_sum_and_numpy_correlate(rng):
+    """One or two frames (np.correlate per frame), many frames with few lags (direct products) and
+    many lags (FFT) all give r[k] = sum_n x[n] x[n+k]: checked against that sum written out and
+    against numpy.correlate's full correlation."""
+    x = rng.standard_normal((5, 240))
+    for order in (10, 16, 147):
+        ref = np.array([[sum(row[n] * row[n + k] for n in range(240 - k)) for k in range(order + 1)] for row in x])
+        full = np.array([np.correlate(row, row, mode="full")[239 : 240 + order] for row in x])
+        np.testing.assert_allclose(full, ref, atol=1e-10)
+        for rows in (1, 2, 5):  # 5 rows take the array routes
+            np.testing.assert_allclose(lpc.autocorrelation(x[:rows], order=order), ref[:rows], atol=1e-9)
+    short = lpc.autocorrelation(x[:1, :8], order=10)[0]  # more lags than samples: the extra lags are 0
+    np.testing.assert_allclose(short[8:], 0.0, atol=0)
+    np.testing.assert_allclose(short[:8], [np.dot(x[0, : 8 - k], x[0, k:8]) for k in range(8)], atol=1e-12)
 
 
 def test_step_down_agrees_with_numpy_roots(rng):
