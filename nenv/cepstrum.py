@@ -105,7 +105,7 @@ def log_magnitude(c: np.ndarray, *, n_fft: int) -> np.ndarray:
     return np.asarray(c, dtype=np.float64) @ cos
 
 
-def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tuple[np.ndarray, np.ndarray]:
+def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512, with_reflection: bool = False) -> tuple[np.ndarray, ...]:
     """Always-stable route from cepstra to an all-pole model of ``order``.
 
     cepstrum -> log magnitude -> power spectrum -> autocorrelation (inverse FFT)
@@ -118,6 +118,8 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tupl
     a : np.ndarray [shape=(..., order+1)]
     gain : np.ndarray [shape=(...)], amplitude G with G**2 the model's error power;
         +inf (never NaN) when the cepstrum's level overflows float64
+    k : np.ndarray [shape=(..., order)], only with ``with_reflection``: the reflection
+        coefficients the Levinson-Durbin recursion produced on the way (those of ``a``)
     """
     logmag = log_magnitude(np.asarray(c, dtype=np.float64), n_fft=n_fft)
     top = np.max(logmag, axis=-1, keepdims=True)
@@ -127,10 +129,10 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512) -> tupl
     np.maximum(logmag, -STABLE_FLOOR_DB * np.log(10) / 20, out=logmag)
     logmag *= 2.0
     r = np.exp(logmag, out=logmag) @ _inverse_cosines(order + 1, n_fft)  # = irfft(...)[:order+1]
-    a, _, err = levinson(r, order=order)
+    a, k, err = levinson(r, order=order)
     with np.errstate(over="ignore"):  # an absurd c_0 gives gain = inf, which the guard rejects
         gain = np.sqrt(np.maximum(err, 0.0)) * np.exp(top[..., 0])
-    return a, gain
+    return (a, gain, k) if with_reflection else (a, gain)
 
 
 @lru_cache(maxsize=None)

@@ -182,21 +182,23 @@ def wideband_targets(wb_frames: np.ndarray, nb_energy_db: np.ndarray, *, setting
     return ceps, hb_db - nb_energy_db
 
 
-def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_db: np.ndarray, *, order: int = WB_ORDER) -> tuple[np.ndarray, np.ndarray]:
+def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_db: np.ndarray, *, order: int = WB_ORDER, with_reflection: bool = False) -> tuple[np.ndarray, ...]:
     """Stable all-pole envelopes whose high-band power matches the predicted level.
 
     The shape comes from the cepstrum by the always-stable route; the gain is then
     set so that a unit-power white excitation through ``G/A`` has power
     ``nb_power * 10**(level_db/10)`` in 3.4-8 kHz.
 
-    Returns a [shape=(n, order+1)], gain [shape=(n,)] (may be inf/NaN for non-finite input).
+    Returns a [shape=(n, order+1)], gain [shape=(n,)] (may be inf/NaN for non-finite input) and,
+    with ``with_reflection``, the reflection coefficients of ``a`` [shape=(n, order)] from the
+    Levinson-Durbin recursion that produced it.
     """
     c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
-    a, g0 = cepstrum.from_cepstrum_stable(np.where(np.isfinite(c), c, 0.0), order=order)
+    a, g0, k = cepstrum.from_cepstrum_stable(np.where(np.isfinite(c), c, 0.0), order=order, with_reflection=True)
     sel = np.flatnonzero(_band_bins(BAND_EDGE_HZ, WB_SR / 2))
     env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=(int(sel[0]), int(sel[-1])))
     model_hb = 2.0 * np.sum(env, axis=1) / LEVEL_N_FFT
     target = 10 ** ((nb_energy_db + level_db) / 10)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         gain = g0 * np.sqrt(target / model_hb)
-    return a, gain
+    return (a, gain, k) if with_reflection else (a, gain)

@@ -3,8 +3,9 @@
 Checks, each recorded per hop with its measured value:
 
 * ``nonfinite``: a predicted value or the derived gain is NaN or infinite;
-* ``unstable``: the envelope fails the step-down test with a margin
-  (some reflection coefficient has ``|k| >= 1 - stability_margin``);
+* ``unstable``: some reflection coefficient of the envelope has ``|k| >= 1 -
+  stability_margin`` (the coefficients of the Levinson-Durbin recursion that built
+  it when the caller has them, else the step-down of its predictor coefficients);
 * ``level``: the predicted high-band level lies outside the range seen in
   training (0.1st..99.9th percentile of the training targets, widened by
   ``level_margin_db``);
@@ -156,13 +157,20 @@ class Guard:
         a_nb: np.ndarray,
         novelty: np.ndarray,
         cell: np.ndarray,
+        k: np.ndarray | None = None,
     ) -> tuple[Decisions, np.ndarray]:
-        """:meth:`check`, and the reflection coefficients of ``a`` its stability test computed
-        [shape=(n, p)] (the synthesis reuses them for the hops it accepts)."""
+        """:meth:`check`, and the reflection coefficients of ``a`` its stability test used
+        [shape=(n, p)] (the synthesis reuses them for the hops it accepts). ``k``: those
+        coefficients if the caller has them (the recursion that built ``a``), else the
+        step-down of ``a`` computes them."""
         lim = self.limits
         finite = np.all(np.isfinite(ceps), axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & np.all(np.isfinite(a), axis=1)
         a_fin = np.where(np.isfinite(a), a, 0.0)
-        k, stable = lpc.reflection(a_fin)
+        if k is None:
+            k, stable = lpc.reflection(a_fin)
+        else:
+            k = np.where(np.isfinite(k), k, 0.0)
+            stable = np.ones(a.shape[0], dtype=bool)
         max_k = np.max(np.abs(k), axis=1)
         stable &= max_k < 1.0 - lim.stability_margin
         mismatch = np.where(finite, telephone_band_mismatch(a_fin, a_nb), np.inf)

@@ -47,3 +47,32 @@ def test_a_zero_of_the_envelope_on_the_unit_circle_gives_a_large_finite_mismatch
     a_wb = np.real(np.poly([z, np.conj(z)]))
     got = telephone_band_mismatch(a_wb[None, :], np.array([[1.0, 0.0]]))
     assert np.isfinite(got[0]) and got[0] > 20.0
+
+
+def test_stability_verdicts_from_the_recursions_coefficients_equal_the_step_down_and_numpy_roots(rng):
+    """The guard judges stability on the reflection coefficients of the Levinson-Durbin recursion
+    that built the envelope; the same verdicts and values come from the step-down of its predictor
+    coefficients, and an envelope is judged unstable exactly where numpy.roots puts a pole at or
+    beyond 1 - margin (the margin is on |k|, so only the direction is checked: a pole that close
+    to the circle means a |k| that close to 1)."""
+    from nenv.guard import Check, Guard, GuardLimits
+
+    n, order = 300, 16
+    m = np.arange(1, 21)
+    ceps = rng.normal(0.0, 0.3, (n, 20)) / m
+    sharp = rng.random(n) < 0.3  # resonances so sharp that some reflection coefficient nears 1
+    f = rng.uniform(500, 7500, n)[:, None]
+    ceps[sharp] = (2 * rng.uniform(0.995, 0.99999, (n, 1)) ** m * np.cos(2 * np.pi * f / 16000 * m) / m * rng.uniform(5, 60, (n, 1)))[sharp]
+    c = np.concatenate([np.zeros((n, 1)), ceps], axis=1)
+    a, gain, k_rec = cepstrum.from_cepstrum_stable(c, order=order, with_reflection=True)
+    guard = Guard(GuardLimits(level_min_db=-100, level_max_db=100, mismatch_max_db=1e9, novelty_max=1e9, stability_margin=1e-3))
+    common = dict(ceps=ceps, level_db=np.zeros(n), a=a, gain=gain, a_nb=np.tile(np.r_[1.0, np.zeros(10)], (n, 1)), novelty=np.zeros(n), cell=np.zeros(n, dtype=int))
+    with_k, k_used = guard.assess(**common, k=k_rec)
+    stepped, k_step = guard.assess(**common)
+    np.testing.assert_array_equal(with_k.reasons, stepped.reasons)
+    np.testing.assert_allclose(k_used, k_step, atol=1e-9)
+    unstable = (with_k.reasons & Check.UNSTABLE) > 0
+    assert 0 < unstable.sum() < n  # both verdicts occur
+    pole = np.array([np.max(np.abs(np.roots(row))) for row in a])
+    assert np.all(pole[~unstable] < 1.0)  # every accepted envelope is minimum phase
+    assert np.all(pole[unstable] > 0.99)  # rejected ones have a pole near the unit circle

@@ -19,16 +19,17 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
     feats : [shape=(n, N_INPUTS)] current-hop features; stacked : [shape=(n, input_dim)] network input;
     a_nb : [shape=(n, NB_ORDER+1)] narrowband LPC. Returns a, gain (0 for silent hops), the verdicts
     (hops of digital silence are never rejected: their gain is 0 whatever the envelope) and the
-    reflection coefficients of ``a`` (the guard's, recomputed only for the hops it replaced).
+    reflection coefficients of ``a`` (from the recursion that built it; recomputed only for the hops
+    the guard replaced).
     """
     energy = feats[:, ENERGY_COLUMN]
     ceps, level = checkpoint.predict(stacked)
-    a, gain = envelope_from_prediction(ceps, level, energy, order=checkpoint.features.wb_order)
+    a, gain, k = envelope_from_prediction(ceps, level, energy, order=checkpoint.features.wb_order, with_reflection=True)
     dec = None
     if guard is not None:
         book = checkpoint.codebook
         cell, novelty = book.nearest(feats)
-        dec, k = guard.assess(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell)
+        dec, k = guard.assess(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell, k=k)
         silent = energy <= ENERGY_FLOOR_DB  # digital silence: nothing is added, nothing to judge
         dec.rejected[silent] = False
         dec.reasons[silent] = 0
@@ -37,8 +38,6 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
             a[dec.rejected] = a_cb
             gain[dec.rejected] = g_cb
             k[dec.rejected] = lpc.reflection(a_cb)[0]
-    else:
-        k = lpc.reflection(a)[0]
     return a, np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain), dec, k
 
 
