@@ -22,6 +22,7 @@ from __future__ import annotations
 
 from dataclasses import asdict, dataclass, field, fields
 from enum import IntFlag
+from functools import lru_cache
 
 import numpy as np
 
@@ -124,17 +125,27 @@ def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
 
     a_wb : np.ndarray [shape=(n, p+1)] at 16 kHz; a_nb : np.ndarray [shape=(n, q+1)] at 8 kHz
     """
-    f = np.fft.rfftfreq(MISMATCH_N_FFT_WB, 1 / WB_SR)
-    sel = np.flatnonzero((f >= CHANNEL_LOW_HZ) & (f <= BAND_EDGE_HZ))  # the same bins exist on the 8 kHz grid
-    bins = (int(sel[0]), int(sel[-1]))
+    bins = _telephone_bins()
     # envelope power is 1/|A|^2, so wb_dB - nb_dB = 10 log10(|A_nb|^2 / |A_wb|^2): one logarithm, in
     # single precision (ample for a threshold in dB); the ratio is clipped to +-300 dB so that a zero
     # of either polynomial on the unit circle gives a huge, finite mismatch
     ratio = np.maximum(cepstrum.squared_magnitude(a_nb, n_fft=MISMATCH_N_FFT_NB, bins=bins), 1e-300)
     ratio /= np.maximum(cepstrum.squared_magnitude(a_wb, n_fft=MISMATCH_N_FFT_WB, bins=bins), 1e-300)
-    d = 10 * np.log10(np.clip(ratio, 1e-30, 1e30).astype(np.float32)).astype(np.float64)
-    d -= d.mean(axis=1, keepdims=True)
-    return np.sqrt(np.mean(d * d, axis=1))
+    np.minimum(np.maximum(ratio, 1e-30, out=ratio), 1e30, out=ratio)
+    d = np.log10(ratio.astype(np.float32)).astype(np.float64)
+    d *= 10
+    n = d.shape[1]
+    d -= d.sum(axis=1, keepdims=True) / n
+    d *= d
+    return np.sqrt(d.sum(axis=1) / n)
+
+
+@lru_cache(maxsize=None)
+def _telephone_bins() -> tuple[int, int]:
+    """First and last 31.25 Hz bin inside 300-3400 Hz (the same bins exist on the 8 and 16 kHz grids)."""
+    f = np.fft.rfftfreq(MISMATCH_N_FFT_WB, 1 / WB_SR)
+    sel = np.flatnonzero((f >= CHANNEL_LOW_HZ) & (f <= BAND_EDGE_HZ))
+    return int(sel[0]), int(sel[-1])
 
 
 class Guard:
@@ -164,20 +175,20 @@ class Guard:
         coefficients if the caller has them (the recursion that built ``a``), else the
         step-down of ``a`` computes them."""
         lim = self.limits
-        finite = np.all(np.isfinite(ceps), axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & np.all(np.isfinite(a), axis=1)
-        a_fin = np.where(np.isfinite(a), a, 0.0)
+        a_ok = np.isfinite(a)
+        finite = np.isfinite(ceps).all(axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & a_ok.all(axis=1)
+        a_fin = a if finite.all() else np.where(a_ok, a, 0.0)
         if k is None:
             k, stable = lpc.reflection(a_fin)
         else:
             k = np.where(np.isfinite(k), k, 0.0)
-            stable = np.ones(a.shape[0], dtype=bool)
-        max_k = np.max(np.abs(k), axis=1)
-        stable &= max_k < 1.0 - lim.stability_margin
+            stable = True
+        max_k = np.abs(k).max(axis=1)
+        stable = stable & (max_k < 1.0 - lim.stability_margin)
         mismatch = np.where(finite, telephone_band_mismatch(a_fin, a_nb), np.inf)
-        reasons = np.zeros(a.shape[0], dtype=int)
-        reasons |= np.where(~finite, int(Check.NONFINITE), 0)
-        reasons |= np.where(finite & ~stable, int(Check.UNSTABLE), 0)
         level_bad = ~((level_db >= lim.level_min_db) & (level_db <= lim.level_max_db))
+        reasons = np.where(finite, 0, int(Check.NONFINITE))
+        reasons |= np.where(finite & ~stable, int(Check.UNSTABLE), 0)
         reasons |= np.where(np.isfinite(level_db) & level_bad, int(Check.LEVEL), 0)
         reasons |= np.where(finite & (mismatch > lim.mismatch_max_db), int(Check.MISMATCH), 0)
         reasons |= np.where(novelty > lim.novelty_max, int(Check.NOVEL), 0)

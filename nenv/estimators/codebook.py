@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import os
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -46,12 +47,18 @@ class Codebook:
     def size(self) -> int:
         return self.centroids.shape[0]
 
+    @cached_property
+    def _centroid_norms(self) -> np.ndarray:
+        """Squared norm of each centroid [shape=(1, K)], computed once per codebook."""
+        return np.sum(self.centroids**2, axis=1)[None, :]
+
     def nearest(self, feats: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Nearest cell and its RMS distance per dimension, for raw features [shape=(n, d)]."""
         z = (feats - self.mean) / self.std
-        z = np.nan_to_num(z, nan=1e6, posinf=1e6, neginf=-1e6)
-        d2 = np.sum(z * z, axis=1)[:, None] - 2 * z @ self.centroids.T + np.sum(self.centroids**2, axis=1)[None, :]
-        cell = np.argmin(d2, axis=1)
+        if not np.isfinite(z).all():
+            z = np.nan_to_num(z, nan=1e6, posinf=1e6, neginf=-1e6)
+        d2 = (z * z).sum(axis=1)[:, None] - 2 * z @ self.centroids.T + self._centroid_norms
+        cell = d2.argmin(axis=1)
         dist = np.sqrt(np.maximum(d2[np.arange(z.shape[0]), cell], 0.0) / z.shape[1])
         return cell, dist
 
