@@ -122,7 +122,7 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512, with_re
         coefficients the Levinson-Durbin recursion produced on the way (those of ``a``)
     """
     logmag = log_magnitude(np.asarray(c, dtype=np.float64), n_fft=n_fft)
-    top = np.max(logmag, axis=-1, keepdims=True)
+    top = logmag.max(axis=-1, keepdims=True)
     # Spectrum relative to its peak, floored at -STABLE_FLOOR_DB: keeps Levinson well
     # conditioned in float64 however extreme the cepstrum.
     logmag -= top

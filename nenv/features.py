@@ -92,25 +92,28 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
         return np.zeros((0, N_INPUTS))
     w = lpc.asymmetric_window(frames.shape[1])
     xw = frames * w
-    power = np.sum(xw * xw, axis=1) / np.sum(w * w)
+    power = (xw * xw).sum(axis=1) / lpc.window_energy(frames.shape[1])
     energy_db = np.maximum(10 * np.log10(np.maximum(power, 1e-30)), ENERGY_FLOOR_DB)
     err_db = np.maximum(10 * np.log10(np.maximum(gain * gain, 1e-30)), ENERGY_FLOOR_DB)
-    pred_gain = np.clip(energy_db - err_db, 0.0, 60.0)
+    pred_gain = np.minimum(np.maximum(energy_db - err_db, 0.0), 60.0)
     ceps = cepstrum.to_cepstrum(a, n_ceps=10)[:, 1:]
     # normalised autocorrelation over the pitch range, divided by the window's own normalised
     # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17). Single
     # precision is ample for a value in [0, 1] and halves the FFTs' cost; each frame is scaled
     # to unit peak first (the ratio does not depend on scale), so nothing underflows.
-    peak = np.max(np.abs(xw), axis=1, keepdims=True)
+    peak = np.abs(xw).max(axis=1, keepdims=True)
     r = lpc.autocorrelation((xw / np.where(peak > 0, peak, 1.0)).astype(np.float32), order=PITCH_LAGS[1]).astype(np.float64)
     rw = _window_autocorrelation(frames.shape[1])
     r0 = r[:, 0]
     lags = slice(PITCH_LAGS[0], PITCH_LAGS[1] + 1)
     norm = r[:, lags] / np.where(r0 > 0, r0, 1.0)[:, None] / (rw[lags] / rw[0])[None, :]
-    voicing = np.where(r0 > 0, np.clip(np.max(norm, axis=1), 0.0, 1.0), 0.0)
+    voicing = np.where(r0 > 0, np.minimum(np.maximum(norm.max(axis=1), 0.0), 1.0), 0.0)
     hop = frames[:, -HOP_NB - 1 :]
-    zcr = np.mean(np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1]), axis=1)
-    return np.column_stack([ceps, energy_db, pred_gain, voicing, zcr])
+    zcr = (np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1])).sum(axis=1) / HOP_NB
+    out = np.empty((n, N_INPUTS))
+    out[:, : ceps.shape[1]] = ceps
+    out[:, ceps.shape[1] :] = np.stack([energy_db, pred_gain, voicing, zcr], axis=1)
+    return out
 
 
 @lru_cache(maxsize=None)
@@ -147,6 +150,13 @@ class ContextStacker:
             self._history = buf[-self.context :].copy()
         # row t of the result is buf[t : t + context + 1] flattened: frames of (context + 1) * d values every d
         return lpc.hop_frames(buf.reshape(1, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=n)[0]
+
+
+@lru_cache(maxsize=None)
+def _high_band_bins() -> tuple[int, int]:
+    """First and last bin of 3.4-8 kHz on the LEVEL_N_FFT grid at 16 kHz."""
+    sel = np.flatnonzero(_band_bins(BAND_EDGE_HZ, WB_SR / 2))
+    return int(sel[0]), int(sel[-1])
 
 
 def _band_bins(lo: float, hi: float, *, n_fft: int = LEVEL_N_FFT, sr: int = WB_SR) -> np.ndarray:
@@ -195,9 +205,8 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
     """
     c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
     a, g0, k = cepstrum.from_cepstrum_stable(np.where(np.isfinite(c), c, 0.0), order=order, with_reflection=True)
-    sel = np.flatnonzero(_band_bins(BAND_EDGE_HZ, WB_SR / 2))
-    env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=(int(sel[0]), int(sel[-1])))
-    model_hb = 2.0 * np.sum(env, axis=1) / LEVEL_N_FFT
+    env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=_high_band_bins())
+    model_hb = 2.0 * env.sum(axis=1) / LEVEL_N_FFT
     target = 10 ** ((nb_energy_db + level_db) / 10)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         gain = g0 * np.sqrt(target / model_hb)

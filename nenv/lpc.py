@@ -171,6 +171,13 @@ def _lag_window(n_lags: int, sr: int, lag_window_hz: float, white_noise: float) 
     return w
 
 
+@lru_cache(maxsize=None)
+def window_energy(length: int) -> float:
+    """Sum of the squared :func:`asymmetric_window` of ``length`` samples."""
+    w = asymmetric_window(length)
+    return float(np.sum(w * w))
+
+
 # Autocorrelation energy below which a frame counts as silent: samples of about 1e-140 full scale,
 # thousands of dB below any real signal, where r's values near the bottom of float64's range
 # keep too few bits for the recursion (the white-noise correction is lost in rounding).
@@ -324,7 +331,7 @@ def analyse(frames: np.ndarray, *, order: int, sr: int) -> tuple[np.ndarray, np.
     w = asymmetric_window(frames.shape[-1])
     r = condition(autocorrelation(frames * w, order=order), sr=sr)
     a, _, err = levinson(r, order=order)
-    gain = np.sqrt(np.maximum(err, 0.0) / np.sum(w * w))
+    gain = np.sqrt(np.maximum(err, 0.0) / window_energy(frames.shape[-1]))
     return a, gain
 
 

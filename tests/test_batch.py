@@ -122,10 +122,11 @@ def _reference_outputs(tree, tmp_path) -> dict[str, bytes]:
 def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
     """SIGKILL and Ctrl-C (SIGINT) at random moments; then a rerun finishes the job."""
     (tree / "long").mkdir()
-    for i in range(3):  # longer inputs, so kills land while files are being written
-        sf.write(tree / "long" / f"l{i}.wav", _telephone(i, 20.0), 8000)
+    n_long, long_s = 6, 40.0  # longer inputs, enough of them that every run still has some to write
+    for i in range(n_long):
+        sf.write(tree / "long" / f"l{i}.wav", _telephone(i, long_s), 8000)
     expected = _reference_outputs(tree, tmp_path)
-    long_ref = {f"long/l{i}.wav" for i in range(3)}
+    long_ref = {f"long/l{i}.wav" for i in range(n_long)}
     out = tmp_path / "out"
     cmd = [sys.executable, "-m", "nenv", "extend", str(tree), str(out), "--jobs", "2"]
     rng = random.Random(7)
@@ -141,7 +142,7 @@ def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
             before = parts()
             deadline = time.monotonic() + 30
             while not (parts() - before) and time.monotonic() < deadline and proc.poll() is None:
-                time.sleep(0.02)  # Ctrl-C while an output is being written
+                time.sleep(0.005)  # Ctrl-C while an output is being written
             assert parts() - before, "no output was being written when Ctrl-C came"
         os.killpg(proc.pid, sig)
         _, err = proc.communicate(timeout=60)
@@ -157,7 +158,7 @@ def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
             if rel in expected:
                 assert y.tobytes() == expected[rel], rel
             else:
-                assert rel in long_ref and sr == 16000 and y.size == 2 * 20 * 8000, rel
+                assert rel in long_ref and sr == 16000 and y.size == 2 * long_s * 8000, rel
     res = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True, timeout=300)
     assert res.returncode == 1 and "failed 2" in res.stdout, res.stdout + res.stderr  # broken + silent
     assert not list(out.rglob(".*.part.*"))  # the rerun removed what the kills left
