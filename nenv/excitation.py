@@ -59,10 +59,9 @@ def residual(frames: np.ndarray, a: np.ndarray, *, hop_length: int) -> np.ndarra
     start = length - hop_length
     if n <= 2:  # a streaming hop: one convolution per frame
         return np.concatenate([np.convolve(frames[i, start - p :], a[i], mode="valid") for i in range(n)])
-    e = np.zeros((n, hop_length))
-    for k in range(p + 1):
-        e += a[:, k, None] * frames[:, start - k : length - k]
-    return e.reshape(-1)
+    # window[t, j] = frames[t, start - p + j : start + j + 1], so e[t, j] = window[t, j] @ a[t, ::-1]
+    windows = lpc.hop_frames(frames[:, start - p :], frame_length=p + 1, hop_length=1, n_frames=hop_length)
+    return np.matmul(windows, a[:, ::-1, None]).reshape(-1)
 
 
 def mean_square(x: np.ndarray) -> np.ndarray:
