@@ -29,7 +29,7 @@ from nenv.guard import Guard
 from nenv.pipeline import tail_padding
 from nenv.runtime import OutputGate
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WIN_NB, WIN_WB
-from nenv.synthesis import MAX_REFLECTION, UPSAMPLER_HISTORY, banded_synthesis, direct_synthesis, interpolate_envelopes, isolation_sos, upsample_hops
+from nenv.synthesis import UPSAMPLER_HISTORY, banded_synthesis, clamp_reflection, direct_synthesis, interpolate_envelopes, isolation_sos, upsample_hops
 
 DIRECT_MIN_CALLS = 150  # from this many calls per hop the sample-by-sample recursion beats the banded solve (measured)
 MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
@@ -195,7 +195,7 @@ class MultiCallEngine:
         wb_frames = lpc.hop_frames(wbuf, frame_length=WIN_WB, hop_length=HOP_WB, n_frames=H).reshape(B * H, WIN_WB)
         u, rms = whiten_hops(wb_frames)
         # synthesis: envelopes interpolated in the reflection domain from the previous hop's, memory per call
-        k = np.clip(np.where(np.isnan(k), 0.0, k), -MAX_REFLECTION, MAX_REFLECTION).reshape(B, H, self.p)
+        k = clamp_reflection(k).reshape(B, H, self.p)
         log_g = np.log(np.maximum(gain / rms, 1e-12)).reshape(B, H)
         a_sub, g_sub = interpolate_envelopes(st["k_prev"][rows], k, st["g_prev"][rows], log_g, n_sub=N_SUBFRAMES)
         st["k_prev"][rows] = k[:, -1]

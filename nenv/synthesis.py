@@ -144,6 +144,11 @@ class Delay:
         return buf[: x.size]
 
 
+def clamp_reflection(k: np.ndarray) -> np.ndarray:
+    """Reflection coefficients ready for synthesis: NaN -> 0, then within +-MAX_REFLECTION."""
+    return np.minimum(np.maximum(np.where(np.isnan(k), 0.0, k), -MAX_REFLECTION), MAX_REFLECTION)
+
+
 def interpolate_envelopes(k_prev: np.ndarray, k: np.ndarray, log_g_prev, log_g: np.ndarray, *, n_sub: int) -> tuple[np.ndarray, np.ndarray]:
     """Per-sub-frame envelopes interpolated from the previous frame to each frame.
 
@@ -164,10 +169,19 @@ def interpolate_envelopes(k_prev: np.ndarray, k: np.ndarray, log_g_prev, log_g: 
     """
     k_before = np.concatenate([np.asarray(k_prev)[..., None, :], k[..., :-1, :]], axis=-2)
     g_before = np.concatenate([np.asarray(log_g_prev, dtype=np.float64)[..., None], log_g[..., :-1]], axis=-1)
-    w = (np.arange(n_sub) + 1.0) / n_sub
-    k_sub = k_before[..., :, None, :] * (1 - w)[:, None] + k[..., :, None, :] * w[:, None]
-    g_sub = g_before[..., :, None] * (1 - w) + log_g[..., :, None] * w
+    w, w_before = _sub_frame_weights(n_sub)
+    k_sub = k_before[..., :, None, :] * w_before[:, None] + k[..., :, None, :] * w[:, None]
+    g_sub = g_before[..., :, None] * w_before + log_g[..., :, None] * w
     return lpc.from_reflection(k_sub), np.exp(g_sub)
+
+
+@lru_cache(maxsize=None)
+def _sub_frame_weights(n_sub: int) -> tuple[np.ndarray, np.ndarray]:
+    """Weights of each sub-frame on the current frame, ``(j+1)/n_sub``, and on the previous one (read-only)."""
+    w = (np.arange(n_sub) + 1.0) / n_sub
+    w_before = 1 - w
+    w.flags.writeable = w_before.flags.writeable = False
+    return w, w_before
 
 
 class AllPoleSynthesizer:
@@ -207,7 +221,7 @@ class AllPoleSynthesizer:
             return np.zeros(0)
         if k is None:
             k, _ = lpc.reflection(a)
-        k = np.clip(np.where(np.isnan(k), 0.0, k), -MAX_REFLECTION, MAX_REFLECTION)
+        k = clamp_reflection(k)
         log_g = np.log(np.maximum(gain, 1e-12))
         a_sub, g_sub = interpolate_envelopes(self._k_prev, k, self._log_g_prev, log_g, n_sub=self.n_sub)
         self._k_prev = k[-1].copy()
