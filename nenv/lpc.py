@@ -251,7 +251,7 @@ def _levinson_scalar(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray,
         rr = r[row].tolist()
         if not rr[0] > SILENT_ENERGY:  # digital silence
             continue
-        if fast and math.isfinite(math.fsum(rr)):
+        if fast and math.isfinite(sum(rr)):  # inf or nan anywhere (or a sum that overflows): the float recursion
             try:
                 # symmetric Toeplitz system R a = -r[1:]; SciPy wants the first column reversed, then the first row
                 a, refl = _toeplitz_levinson(np.concatenate((r[row, order - 1 : 0 : -1], r[row, :order])), -r[row, 1 : order + 1])

@@ -47,6 +47,7 @@ def test_scipys_compiled_levinson_serves_few_rows_and_agrees_with_the_float_recu
     order = 10
     speech = lpc.condition(lpc.autocorrelation(_ar_frames(rng) * lpc.asymmetric_window(240), order=order), sr=8000)
     odd = [np.zeros(order + 1), np.r_[1.0, 2.0, np.zeros(order - 1)], np.ones(order + 1), np.r_[np.inf, np.ones(order)], np.r_[1.0, np.nan, np.zeros(order - 1)]]
+    odd += [np.r_[1e308, 1e308, np.zeros(order - 1)], np.r_[np.inf, -np.inf, np.zeros(order - 1)]]  # sums that overflow or are undefined
     for r in [row for row in speech] + odd:
         fast = lpc.levinson(r[None], order=order)
         monkeypatch.setitem(lpc._compiled, "ok", False)
