@@ -174,7 +174,7 @@ def band_power(frames: np.ndarray, *, lo: float, hi: float) -> np.ndarray:
     spec = np.fft.rfft(frames * w, n=n_fft, axis=1)
     p = spec.real**2 + spec.imag**2
     sel = _band_bins(lo, hi, n_fft=n_fft)
-    return 2.0 * np.sum(p[:, sel], axis=1) / n_fft / np.sum(w * w)
+    return 2.0 * np.sum(p[:, sel], axis=1) / n_fft / lpc.window_energy(frames.shape[1])
 
 
 def wideband_targets(wb_frames: np.ndarray, nb_energy_db: np.ndarray, *, settings: FeatureSettings) -> tuple[np.ndarray, np.ndarray]:

@@ -206,7 +206,7 @@ keeps only a few bits of them) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
     r = r.reshape(-1, r.shape[-1])[:, : order + 1]
     n = r.shape[0]
     if n <= SCALAR_MAX_ROWS:
-        a, k, err = _levinson_scalar(r, order)
+        a, k, err = _levinson_few_rows(r, order)
         return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
     silent = ~(r[:, 0] > SILENT_ENERGY)
     # coefficient-major (order+1, n) layout: every step reads and writes whole contiguous rows
@@ -228,7 +228,7 @@ keeps only a few bits of them) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
     return a.T.reshape(*lead, order + 1), k.T.reshape(*lead, order), err.reshape(lead)
 
 
-SCALAR_MAX_ROWS = 2  # up to this many rows the order recursions run on Python floats (fewer, cheaper steps)
+SCALAR_MAX_ROWS = 2  # up to this many rows: Levinson by SciPy's compiled recursion, step-down and step-up on Python floats
 
 
 def _div(num: float, den: float) -> float:
@@ -240,7 +240,7 @@ def _div(num: float, den: float) -> float:
     return math.copysign(math.inf, num) * math.copysign(1.0, den)
 
 
-def _levinson_scalar(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _levinson_few_rows(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """:func:`levinson` for a few rows: SciPy's compiled recursion where it is present and agrees
     (:func:`compiled_levinson`), else the same recursion on Python floats (same edge cases)."""
     n = r.shape[0]

@@ -227,8 +227,8 @@ class AllPoleSynthesizer:
         self._k_prev = k[-1].copy()
         self._log_g_prev = float(log_g[-1])
         u = u.reshape(1, n * self.n_sub, self.hop_length // self.n_sub)
-        y, self._past = banded_synthesis(u, a_sub.reshape(1, n * self.n_sub, self.order + 1), g_sub.reshape(1, -1), self._past[None])
-        self._past = self._past[0]
+        y, past = banded_synthesis(u, a_sub.reshape(1, n * self.n_sub, self.order + 1), g_sub.reshape(1, -1), self._past[None])
+        self._past = past[0]
         return y.reshape(-1)
 
 
