@@ -12,9 +12,10 @@ from functools import lru_cache
 
 import numpy as np
 
+from nenv import filters
 from nenv.lpc import levinson
 
-SCALAR_MAX_ROWS = 8  # up to this many rows the cepstrum recursion runs on Python floats (cheaper than ~60 array steps)
+SCALAR_MAX_ROWS = 4  # up to this many rows the cepstrum recursion runs on Python floats (cheaper than ~20 array steps)
 STABLE_FLOOR_DB = 80.0  # dB below the peak: floor of the spectrum in the always-stable route
 
 
@@ -34,7 +35,10 @@ def to_cepstrum(a: np.ndarray, *, n_ceps: int, gain: np.ndarray | None = None) -
 
     ``c_0 = ln G``; for n >= 1, ``c_n = -a_n - sum_{k=1}^{n-1} (k/n) c_k a_{n-k}``
     with ``a_n = 0`` for n > p (Markel & Gray, *Linear Prediction of Speech*, 1976;
-    Rabiner & Schafer, *Digital Processing of Speech Signals*, 1978).
+    Rabiner & Schafer, *Digital Processing of Speech Signals*, 1978). For many rows it
+    runs on ``d_n = n c_n``, where it reads ``d_n = -n a_n - sum_{j=1}^{min(p, n-1)} a_j d_{n-j}``
+    (the same sum with ``j = n - k``): the output of the all-pole filter ``1/A(z)`` driven
+    by ``-n a_n``, one dot product per coefficient for all rows at once.
 
     Parameters
     ----------
@@ -51,7 +55,7 @@ def to_cepstrum(a: np.ndarray, *, n_ceps: int, gain: np.ndarray | None = None) -
     c = np.zeros(a.shape[:-1] + (n_ceps + 1,))
     if gain is not None:
         c[..., 0] = np.log(np.maximum(gain, 1e-300))
-    if a.ndim == 2 and a.shape[0] <= SCALAR_MAX_ROWS:  # the same recursion on Python floats
+    if a.ndim == 2 and a.shape[0] <= SCALAR_MAX_ROWS:  # the recursion as written, on Python floats
         for row in range(a.shape[0]):
             ar, cr = a[row].tolist() + [0.0] * max(0, n_ceps - p), c[row].tolist()
             for n in range(1, n_ceps + 1):
@@ -61,11 +65,16 @@ def to_cepstrum(a: np.ndarray, *, n_ceps: int, gain: np.ndarray | None = None) -
                 cr[n] = acc
             c[row] = cr
         return c
-    for n in range(1, n_ceps + 1):
-        acc = -a[..., n] if n <= p else np.zeros(a.shape[:-1])
-        for k in range(max(1, n - p), n):
-            acc = acc - (k / n) * c[..., k] * a[..., n - k]
-        c[..., n] = acc
+    rows = a.reshape(-1, p + 1)
+    at = rows.T  # coefficient-major: each a_j a contiguous row over all frames
+    m = min(p, n_ceps)
+    scale = np.arange(1.0, n_ceps + 1)
+    d = np.zeros((n_ceps + 1, rows.shape[0]))  # d[n] = n c_n; d[0] stays 0
+    np.multiply(at[1 : m + 1], -scale[:m, None], out=d[1 : m + 1])
+    for n in range(2, n_ceps + 1):
+        j = min(p, n - 1)
+        d[n] -= filters.einsum("jt,jt->t", at[1 : j + 1], d[n - 1 : n - j - 1 : -1] if n > j + 1 else d[n - 1 :: -1][:j])
+    c.reshape(-1, n_ceps + 1)[:, 1:] = (d[1:] / scale[:, None]).T
     return c
 
 

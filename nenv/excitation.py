@@ -66,7 +66,7 @@ def residual(frames: np.ndarray, a: np.ndarray, *, hop_length: int) -> np.ndarra
 
 def mean_square(x: np.ndarray) -> np.ndarray:
     """Mean of squares along the last axis [shape=(..., n)] -> [shape=(...)] (one pass, no temporaries)."""
-    return np.einsum("...n,...n->...", x, x) / x.shape[-1]
+    return filters.einsum("...n,...n->...", x, x) / x.shape[-1]
 
 
 class ExcitationExtender:

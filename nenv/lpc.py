@@ -26,6 +26,8 @@ from functools import lru_cache
 import numpy as np
 import scipy.fft
 
+from nenv import filters
+
 try:  # the compiled Levinson recursion behind scipy.linalg.solve_toeplitz (internal to SciPy)
     from scipy.linalg._solve_toeplitz import levinson as _toeplitz_levinson
 except ImportError:  # pragma: no cover - depends on the SciPy release
@@ -137,7 +139,7 @@ def autocorrelation(frames: np.ndarray, *, order: int) -> np.ndarray:
         x = np.asarray(frames, dtype=np.float64)
         r = np.empty(x.shape[:-1] + (order + 1,))
         for k in range(order + 1):
-            r[..., k] = np.einsum("...n,...n->...", x[..., : length - k], x[..., k:])
+            r[..., k] = filters.einsum("...n,...n->...", x[..., : length - k], x[..., k:])
         return r
     # circular autocorrelation equals the linear one for lags <= order once n_fft >= length + order
     n_fft = scipy.fft.next_fast_len(length + order, real=True)
@@ -214,17 +216,14 @@ keeps only a few bits of them) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
     a = np.zeros((order + 1, n))
     a[0] = 1.0
     k = np.empty((order, n))
-    err = rt[0].copy()
+    neg_err = -rt[0]  # the error with its sign flipped: k_i = acc / -err in one division
     for i in range(1, order + 1):
         ki = k[i - 1]
-        np.einsum("jn,jn->n", a[:i], rt[i:0:-1], out=ki)
-        np.divide(ki, err, out=ki)
-        np.negative(ki, out=ki)
-        if i > 1:
-            a[1:i] += ki * a[i - 1 : 0 : -1]
-        a[i] = ki
-        err *= 1.0 - ki * ki
-    err = np.where(silent, 0.0, err)
+        filters.einsum("jn,jn->n", a[:i], rt[i:0:-1], out=ki)
+        np.divide(ki, neg_err, out=ki)
+        a[1 : i + 1] += ki * a[i - 1 :: -1]  # a_i is still 0 and a_0 = 1, so a_i becomes k_i exactly
+        neg_err *= 1.0 - ki * ki
+    err = np.where(silent, 0.0, -neg_err)
     return a.T.reshape(*lead, order + 1), k.T.reshape(*lead, order), err.reshape(lead)
 
 
@@ -423,8 +422,5 @@ def from_reflection(k: np.ndarray) -> np.ndarray:
     a = np.zeros((p + 1, kk.shape[0]))
     a[0] = 1.0
     for i in range(1, p + 1):
-        ki = kt[i - 1]
-        if i > 1:
-            a[1:i] += ki * a[i - 1 : 0 : -1]
-        a[i] = ki
+        a[1 : i + 1] += kt[i - 1] * a[i - 1 :: -1]  # a_i is still 0 and a_0 = 1, so a_i becomes k_i exactly
     return a.T.reshape(*lead, p + 1)

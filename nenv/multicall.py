@@ -31,7 +31,7 @@ from nenv.runtime import OutputGate
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WIN_NB, WIN_WB
 from nenv.synthesis import UPSAMPLER_HISTORY, banded_synthesis, clamp_reflection, direct_synthesis, interpolate_envelopes, isolation_sos, upsample_hops
 
-DIRECT_MIN_CALLS = 150  # from this many calls per hop the sample-by-sample recursion beats the banded solve (measured)
+DIRECT_MIN_CALLS = 100  # from this many calls per hop the sample-by-sample recursion beats the banded solve (measured: even at 80-90)
 MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
 
 
@@ -128,7 +128,9 @@ class MultiCallEngine:
         self._run()
         out = {}
         for cid, call in self._calls.items():
-            out[cid] = np.concatenate(call.out) if call.out else np.zeros(0)
+            parts = call.out
+            # a copy, never a view: a chunk the caller keeps must not pin the whole batch's array
+            out[cid] = parts[0].copy() if len(parts) == 1 else np.concatenate(parts) if parts else np.zeros(0)
             call.out = []
         return out
 
@@ -144,7 +146,7 @@ class MultiCallEngine:
             calls = [c for _, c in ready]
             n_hops = min(MAX_HOPS_PER_BATCH, min(c.pending.size for c in calls) // HOP_NB)
             n = n_hops * HOP_NB
-            x = np.stack([c.pending[:n] for c in calls])
+            x = np.concatenate([c.pending[:n] for c in calls]).reshape(len(calls), n)
             for c in calls:
                 c.pending = c.pending[n:]
             finite = np.isfinite(x)
@@ -155,33 +157,37 @@ class MultiCallEngine:
             y = self._hops(np.array(rows), x, n_hops)
             # the output gate, batched: limit every row at once, then each call's own bookkeeping
             over = np.abs(y) > CEILING
-            n_over = over.sum(axis=1) if over.any() else np.zeros(len(rows), dtype=int)
-            y_lim = np.clip(y, -CEILING, CEILING) if over.any() else y
-            for r, c in enumerate(calls):
+            if over.any():
+                n_over, y_lim = over.sum(axis=1).tolist(), np.clip(y, -CEILING, CEILING)
+            else:
+                n_over, y_lim = [0] * len(calls), y
+            for c, row, row_lim, n_lim in zip(calls, y, y_lim, n_over):
                 c.hops += n_hops
-                c.out.append(c.gate.emit(y[r]) if c.gate.skip else c.gate.emit_limited(y_lim[r], int(n_over[r])))
+                c.out.append(c.gate.emit(row) if c.gate.skip else c.gate.emit_limited(row_lim, n_lim))
 
     def _hops(self, rows: np.ndarray, x: np.ndarray, H: int) -> np.ndarray:
         """``H`` consecutive hops of B calls: x [shape=(B, H * HOP_NB)] -> 16 kHz [shape=(B, H * HOP_WB)]."""
         st = self._state
         B = rows.size
+        # rows are in call order, so a batch of every call is the whole state: views, not gathers
+        sel = slice(None) if B == len(self._ids) else rows
         # narrowband analysis and features, B x H frames at once
-        buf = np.concatenate([st["nb_hist"][rows], x], axis=1)
-        st["nb_hist"][rows] = buf[:, H * HOP_NB :]
+        buf = np.concatenate([st["nb_hist"][sel], x], axis=1)
+        st["nb_hist"][sel] = buf[:, H * HOP_NB :]
         frames = lpc.hop_frames(buf, frame_length=WIN_NB, hop_length=HOP_NB, n_frames=H).reshape(B * H, WIN_NB)
         a_nb, g_nb = lpc.analyse(frames, order=NB_ORDER, sr=NB_SR)
         feats = narrowband_features(NarrowbandAnalysis(frames, a_nb, g_nb))
         d = feats.shape[1]
         first = feats.reshape(B, H, d)[:, 0]
-        fresh = ~st["ctx_ready"][rows]
+        fresh = ~st["ctx_ready"][sel]
         if np.any(fresh):
             st["ctx"][rows[fresh]] = np.tile(first[fresh], (1, self.context))
             st["ctx_ready"][rows[fresh]] = True
-        hist = np.concatenate([st["ctx"][rows].reshape(B, self.context, d), feats.reshape(B, H, d)], axis=1)
+        hist = np.concatenate([st["ctx"][sel].reshape(B, self.context, d), feats.reshape(B, H, d)], axis=1)
         # row (b, h) = hist[b, h : h + context + 1] flattened: frames of (context + 1) * d values every d
         stacked = lpc.hop_frames(hist.reshape(B, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=H).reshape(B * H, -1)
         if self.context:
-            st["ctx"][rows] = hist[:, H:].reshape(B, self.context * d)
+            st["ctx"][sel] = hist[:, H:].reshape(B, self.context * d)
         # the network, once for all calls and hops, then the guard
         a_wb, gain, dec, k = guarded_envelopes(self.ck, self.guard, feats=feats, stacked=stacked, a_nb=a_nb)
         if dec is not None and dec.rejected.any():
@@ -189,31 +195,31 @@ class MultiCallEngine:
                 self._calls[self._ids[rows[r]]].rejected_hops += int(n_rej)
         # excitation: residual -> interpolate -> rectify -> DC removal -> power match -> whiten
         e = residual(frames, a_nb, hop_length=HOP_NB).reshape(B, H * HOP_NB)
-        u, st["dc"][rows] = rectify_hops(self._fir(e, "up_e", rows), st["dc"][rows])
-        wbuf = np.concatenate([st["wb_hist"][rows], u], axis=1)
-        st["wb_hist"][rows] = wbuf[:, H * HOP_WB :]
+        u, st["dc"][sel] = rectify_hops(self._fir(e, "up_e", sel), st["dc"][sel])
+        wbuf = np.concatenate([st["wb_hist"][sel], u], axis=1)
+        st["wb_hist"][sel] = wbuf[:, H * HOP_WB :]
         wb_frames = lpc.hop_frames(wbuf, frame_length=WIN_WB, hop_length=HOP_WB, n_frames=H).reshape(B * H, WIN_WB)
         u, rms = whiten_hops(wb_frames)
         # synthesis: envelopes interpolated in the reflection domain from the previous hop's, memory per call
         k = clamp_reflection(k).reshape(B, H, self.p)
         log_g = np.log(np.maximum(gain / rms, 1e-12)).reshape(B, H)
-        a_sub, g_sub = interpolate_envelopes(st["k_prev"][rows], k, st["g_prev"][rows], log_g, n_sub=N_SUBFRAMES)
-        st["k_prev"][rows] = k[:, -1]
-        st["g_prev"][rows] = log_g[:, -1]
+        a_sub, g_sub = interpolate_envelopes(st["k_prev"][sel], k, st["g_prev"][sel], log_g, n_sub=N_SUBFRAMES)
+        st["k_prev"][sel] = k[:, -1]
+        st["g_prev"][sel] = log_g[:, -1]
         J = H * N_SUBFRAMES
-        synth = self._synthesize(rows, u.reshape(B, J, -1), a_sub.reshape(B, J, self.p + 1), g_sub.reshape(B, J))
+        synth = self._synthesize(sel, u.reshape(B, J, -1), a_sub.reshape(B, J, self.p + 1), g_sub.reshape(B, J))
         # band isolation and mixing with the interpolated input
-        low = self._fir(x, "up_x", rows)
-        hb, st["iso"][rows] = filters.sos(self._iso, synth, st["iso"][rows])
+        low = self._fir(x, "up_x", sel)
+        hb, st["iso"][sel] = filters.sos(self._iso, synth, st["iso"][sel])
         return low + hb
 
-    def _fir(self, x: np.ndarray, key: str, rows: np.ndarray) -> np.ndarray:
+    def _fir(self, x: np.ndarray, key: str, rows: np.ndarray | slice) -> np.ndarray:
         """Interpolate B rows of whole 8 kHz hops by 2 (:func:`nenv.synthesis.upsample_hops`), state per row."""
         buf = np.concatenate([self._state[key][rows], x], axis=1)
         self._state[key][rows] = buf[:, x.shape[1] :]
         return upsample_hops(buf, x.shape[1] // HOP_NB)
 
-    def _synthesize(self, rows: np.ndarray, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
+    def _synthesize(self, rows: np.ndarray | slice, u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray) -> np.ndarray:
         """All-pole synthesis of one hop for B calls, each with its own filter memory."""
         synth = direct_synthesis if u.shape[0] >= DIRECT_MIN_CALLS else banded_synthesis
         y, self._state["past"][rows] = synth(u, a_sub, g_sub, self._state["past"][rows])

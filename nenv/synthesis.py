@@ -313,9 +313,10 @@ def direct_synthesis(u: np.ndarray, a_sub: np.ndarray, g_sub: np.ndarray, past: 
     gu = (g_sub[:, :, None] * u).reshape(B, n).T.copy()
     neg = np.ascontiguousarray((-a_sub[:, :, :0:-1]).transpose(1, 2, 0))  # (J, p, B): -a_p .. -a_1
     acc = np.empty(B)
+    dot, add = filters.einsum, np.add  # 2 x J x L calls: no attribute lookups, no einsum dispatch
     for j in range(J):
         aj = neg[j]
         for t in range(j * length, (j + 1) * length):
-            np.einsum("ib,ib->b", aj, y[t : t + p], out=acc)
-            np.add(gu[t], acc, out=y[p + t])
+            dot("ib,ib->b", aj, y[t : t + p], out=acc)
+            add(gu[t], acc, out=y[p + t])
     return y[p:].T.reshape(B, J, length), y[: -p - 1 : -1].T.copy()

@@ -51,3 +51,16 @@ def test_upsampler_in_any_pieces_equals_zero_insertion_and_the_fir(rng):
         bounds = np.cumsum([0] + pieces)
         got = np.concatenate([up.process(x[s:e]) for s, e in zip(bounds[:-1], bounds[1:])])
         np.testing.assert_allclose(got, want, rtol=0, atol=1e-13)
+
+
+def test_einsum_entry_is_numpys_compiled_loop_and_equals_numpy_einsum(rng):
+    # Reference: the public numpy.einsum, for the contractions nenv's per-hop loops use.
+    assert filters.einsum is not np.einsum  # with this numpy the compiled entry point is found and agrees
+    cases = [("ib,ib->b", (16, 7)), ("jn,jn->n", (10, 300)), ("jt,jt->t", (1, 5)), ("...n,...n->...", (3, 4, 50))]
+    for subscripts, shape in cases:
+        x, y = rng.standard_normal(shape), rng.standard_normal(shape)
+        np.testing.assert_array_equal(filters.einsum(subscripts, x, y), np.einsum(subscripts, x, y))
+    x, y = rng.standard_normal((16, 40)), rng.standard_normal((40, 9))
+    out = np.empty(9)
+    assert filters.einsum("ib,ib->b", x[:16, :9], y[3:19], out=out) is out
+    np.testing.assert_array_equal(out, np.einsum("ib,ib->b", x[:16, :9], y[3:19]))
