@@ -111,8 +111,9 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
     hop = frames[:, -HOP_NB - 1 :]
     zcr = (np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1])).sum(axis=1) / HOP_NB
     out = np.empty((n, N_INPUTS))
-    out[:, : ceps.shape[1]] = ceps
-    out[:, ceps.shape[1] :] = np.stack([energy_db, pred_gain, voicing, zcr], axis=1)
+    m = ceps.shape[1]
+    out[:, :m] = ceps
+    out[:, m], out[:, m + 1], out[:, m + 2], out[:, m + 3] = energy_db, pred_gain, voicing, zcr
     return out
 
 
