@@ -7,7 +7,8 @@ Prints, on one thread:
   2. streaming: processing time per 10 ms chunk for one call (p50, p99, max), beside the spread of a
      fixed reference workload timed as often right after (the machine's own jitter);
   3. capacity: MultiCallEngine with N calls, each fed one 10 ms (then 20 ms) packet per step;
-     time per step (p50, p99) and the largest N whose p99 step stays under the packet time;
+     time per step (mean, p50, p99), the largest N whose mean step stays under the packet time
+     (real time) and the largest whose p99 step does (at most 1% of packets late);
   4. memory per call: Python heap allocated by running CallEngines, and per call of a MultiCallEngine
      (tracemalloc).
 """
@@ -82,17 +83,20 @@ def main() -> None:
         f" {np.percentile(ref_ms, 99) / np.percentile(ref_ms, 50):.2f} (p50 {np.percentile(ref_ms, 50):.3f} ms): the machine's own spread"
     )
 
-    # 3. capacity with cross-call batching: every call sends one packet per step
+    # 3. capacity with cross-call batching: every call sends one packet per step. Two readings: the
+    # mean step under the packet time keeps real time (a jitter buffer absorbs the odd slow step);
+    # the p99 step under it means at most 1% of packets late without one. 105 timed steps per N, so
+    # the p99 is not simply the slowest step.
     for packet_ms in (10, 20):
         n = packet_ms * 8
         print(f"capacity, MultiCallEngine, one core: N calls x {packet_ms} ms packets per step")
-        best = 0
-        for n_calls in (1, 10, 20, 30, 40, 50, 60, 80, 100, 150, 200, 300, 400):
+        best_mean = best_p99 = 0
+        for n_calls in (1, 10, 50, 100, 150, 200, 250, 300, 400):
             multi = MultiCallEngine(model)
             for c in range(n_calls):
                 multi.open(str(c))
             steps = []
-            for k in range(60):
+            for k in range(110):
                 for c in range(n_calls):
                     s = ((k + 7 * c) * n) % (x.size - n)
                     multi.feed(str(c), x[s : s + n])
@@ -100,11 +104,11 @@ def main() -> None:
                 multi.step()
                 steps.append(time.perf_counter() - t0)
             ms = np.array(steps[5:]) * 1000
-            p99 = np.percentile(ms, 99)
-            if p99 < packet_ms:
-                best = n_calls
-            print(f"  {n_calls:4d} calls: step p50 {np.percentile(ms, 50):6.2f} ms, p99 {p99:6.2f} ms  ({n_calls * packet_ms / np.percentile(ms, 50):7.0f} call-seconds per second)")
-        print(f"  largest N tried with p99 step under {packet_ms} ms: {best}")
+            p50, p99, mean = np.percentile(ms, 50), np.percentile(ms, 99), ms.mean()
+            best_mean = n_calls if mean < packet_ms else best_mean
+            best_p99 = n_calls if p99 < packet_ms else best_p99
+            print(f"  {n_calls:4d} calls: step mean {mean:6.2f} ms, p50 {p50:6.2f} ms, p99 {p99:6.2f} ms  ({n_calls * packet_ms / mean:7.0f} call-seconds per second)")
+        print(f"  largest N tried in real time (mean step under {packet_ms} ms): {best_mean}; with p99 step under {packet_ms} ms: {best_p99}")
 
     # 4. memory per call
     tracemalloc.start()
