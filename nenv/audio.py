@@ -222,7 +222,8 @@ def to_int16(y: np.ndarray) -> np.ndarray:
     The one conversion nenv uses for every 16-bit output (files and streams), so
     a streamed call and the same call written by ``extend`` are bit-identical.
     """
-    return np.clip(np.round(np.asarray(y, dtype=np.float64) * 32768.0), -32768, 32767).astype(np.int16)
+    scaled = np.rint(np.asarray(y, dtype=np.float64) * 32768.0)  # rint: half to even, as np.round
+    return np.minimum(np.maximum(scaled, -32768.0, out=scaled), 32767.0, out=scaled).astype(np.int16)
 
 
 PEAK_CEILING = 0.99 * FULL_SCALE  # -0.09 dBFS: every output is limited here
