@@ -120,7 +120,7 @@ class _Stream:
     out_ssrc: int
     last_seen: float
     held: dict = field(default_factory=dict)  # seq -> packet
-    out_buf: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    out_pcm: bytes = b""  # output not yet sent (less than a packet), as big-endian 16-bit samples
     out_seq: int = 0
     out_ts: int = 0
     late_run: int = 0
@@ -231,9 +231,16 @@ class Relay:
         self._last_step = time.monotonic()
         if self.multi is None:
             return
-        for call_id, y in self.multi.step().items():
-            if y.size:
-                self._emit(self._by_call[call_id], y)
+        out = [(self._by_call[call_id], y) for call_id, y in self.multi.step().items() if y.size]
+        if not out:
+            return
+        # every stream's new samples to 16-bit PCM in one conversion (elementwise: the same bytes as one by one)
+        pcm = to_int16(np.concatenate([y for _, y in out])).astype(">i2").tobytes()
+        ready = [(st, y.size) for st, y in out]
+        pos = 0
+        for st, n in ready:
+            self._send(st, pcm[pos : pos + 2 * n])
+            pos += 2 * n
 
     def _shutdown(self) -> None:
         for ssrc in list(self.streams):
@@ -343,18 +350,21 @@ class Relay:
 
     # ---- packets out ---------------------------------------------------------------------
     def _emit(self, st: _Stream, y: np.ndarray, *, final: bool = False) -> None:
-        buf = np.concatenate([st.out_buf, y]) if st.out_buf.size else y
-        n_full = buf.size // OUT_SAMPLES * OUT_SAMPLES
-        if final:
-            n_full = buf.size
-        pcm = to_int16(buf[:n_full]).astype(">i2").tobytes() if n_full else b""  # all packets' samples, converted once
-        for s in range(0, n_full, OUT_SAMPLES):
-            e = min(s + OUT_SAMPLES, n_full)
-            self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=pcm[2 * s : 2 * e]), self.send_to)
+        self._send(st, to_int16(y).astype(">i2").tobytes() if y.size else b"", final=final)
+
+    def _send(self, st: _Stream, pcm: bytes, *, final: bool = False) -> None:
+        """Send whole packets of the stream's pending output plus ``pcm`` (big-endian int16);
+        keep the rest for the next call, or with ``final`` send it as a last, shorter packet."""
+        buf = st.out_pcm + pcm if st.out_pcm else pcm
+        packet = 2 * OUT_SAMPLES
+        n_full = len(buf) if final else len(buf) // packet * packet
+        for s in range(0, n_full, packet):
+            payload = buf[s : min(s + packet, n_full)]
+            self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload), self.send_to)
             st.out_seq = (st.out_seq + 1) & 0xFFFF
-            st.out_ts = (st.out_ts + e - s) & 0xFFFFFFFF
+            st.out_ts = (st.out_ts + len(payload) // 2) & 0xFFFFFFFF
             st.counters.packets_out += 1
-        st.out_buf = buf[n_full:].copy()
+        st.out_pcm = buf[n_full:]
 
     def _expire(self) -> None:
         now = self._last_expiry = time.monotonic()
