@@ -207,6 +207,9 @@ keeps only a few bits of them) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
     lead = r.shape[:-1]
     r = r.reshape(-1, r.shape[-1])[:, : order + 1]
     n = r.shape[0]
+    if n == 1 and (one := _levinson_compiled_row(r[0], order)) is not None:  # a streaming hop, the usual case
+        a, k, err = one
+        return a.reshape(*lead, order + 1), k.reshape(*lead, order), np.asarray(err).reshape(lead)
     if n <= SCALAR_MAX_ROWS:
         a, k, err = _levinson_few_rows(r, order)
         return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
@@ -245,25 +248,36 @@ def _levinson_few_rows(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarra
     n = r.shape[0]
     a_out, k_out, e_out = np.zeros((n, order + 1)), np.zeros((n, order)), np.zeros(n)
     a_out[:, 0] = 1.0
-    fast = compiled_levinson()
     for row in range(n):
-        rr = r[row].tolist()
-        if not rr[0] > SILENT_ENERGY:  # digital silence
+        if not r[row, 0] > SILENT_ENERGY:  # digital silence
             continue
-        if fast and math.isfinite(sum(rr)):  # inf or nan anywhere (or a sum that overflows): the float recursion
-            try:
-                # symmetric Toeplitz system R a = -r[1:]; SciPy wants the first column reversed, then the first row
-                a, refl = _toeplitz_levinson(np.concatenate((r[row, order - 1 : 0 : -1], r[row, :order])), -r[row, 1 : order + 1])
-            except np.linalg.LinAlgError:  # a singular leading minor: the float recursion gives its inf/nan
-                pass
-            else:
-                err = rr[0]
-                for ki in refl[1:].tolist():
-                    err = err * (1.0 - ki * ki)
-                a_out[row, 1:], k_out[row], e_out[row] = a, refl[1:], err
-                continue
-        a_out[row], k_out[row], e_out[row] = _levinson_floats(rr, order)
+        one = _levinson_compiled_row(r[row], order)
+        a_out[row], k_out[row], e_out[row] = one if one is not None else _levinson_floats(r[row].tolist(), order)
     return a_out, k_out, e_out
+
+
+def _levinson_compiled_row(row: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, float] | None:
+    """``(a, k, err)`` of one row by SciPy's compiled recursion; None where it does not serve (not
+    present or not agreeing, a silent row, inf or nan anywhere or a sum that overflows, a singular
+    leading minor): the caller's float recursion handles those, with their edge cases."""
+    if not compiled_levinson():
+        return None
+    rr = row.tolist()
+    if not rr[0] > SILENT_ENERGY or not math.isfinite(sum(rr)):
+        return None
+    try:
+        # symmetric Toeplitz system R a = -r[1:]; SciPy wants the first column reversed, then the first row
+        a, refl = _toeplitz_levinson(np.concatenate((row[order - 1 : 0 : -1], row[:order])), -row[1 : order + 1])
+    except np.linalg.LinAlgError:  # a singular leading minor: the float recursion gives its inf/nan
+        return None
+    k = refl[1:]
+    err = rr[0]
+    for ki in k.tolist():
+        err = err * (1.0 - ki * ki)
+    out = np.empty(order + 1)
+    out[0] = 1.0
+    out[1:] = a
+    return out, k, err
 
 
 def _levinson_floats(rr: list, order: int) -> tuple[list, list, float]:
