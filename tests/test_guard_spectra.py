@@ -76,3 +76,49 @@ def test_stability_verdicts_from_the_recursions_coefficients_equal_the_step_down
     pole = np.array([np.max(np.abs(np.roots(row))) for row in a])
     assert np.all(pole[~unstable] < 1.0)  # every accepted envelope is minimum phase
     assert np.all(pole[unstable] > 0.99)  # rejected ones have a pole near the unit circle
+
+
+def test_one_hop_verdicts_equal_the_array_code(rng):
+    """A streaming hop is judged on Python floats (Guard._assess_one); every verdict and value must
+    equal the array code's, which judges the same hop when it comes with a second one. Inputs mix
+    plain hops with every edge the checks have: NaN and inf anywhere, gains <= 0, |k| at and near 1,
+    levels and novelties on both sides of their limits."""
+    from nenv.guard import Decisions, Guard, GuardLimits
+
+    guard = Guard(GuardLimits(level_min_db=-40.0, level_max_db=10.0, mismatch_max_db=6.0, novelty_max=3.0, stability_margin=1e-3))
+    a_nb = _random_models(rng, 1, 10)
+    bad = [np.nan, np.inf, -np.inf]
+    for trial in range(400):
+        k = rng.uniform(-0.999, 0.999, (1, 16))
+        a = lpc.from_reflection(k)
+        ceps = rng.normal(0.0, 0.3, (1, 20))
+        level = rng.uniform(-60, 30, 1)
+        gain = rng.uniform(0.01, 2.0, 1)
+        novelty = rng.uniform(0.0, 6.0, 1)
+        edge = trial % 12
+        if edge == 1:
+            ceps[0, rng.integers(20)] = bad[trial % 3]
+        elif edge == 2:
+            level[0] = bad[trial % 3]
+        elif edge == 3:
+            gain[0] = [0.0, -1.0, np.nan, np.inf][trial % 4]
+        elif edge == 4:
+            a[0, rng.integers(1, 17)] = bad[trial % 3]
+        elif edge == 5:
+            k[0, rng.integers(16)] = bad[trial % 3]
+        elif edge == 6:
+            k[0, rng.integers(16)] = rng.choice([1.0, -1.0, 0.9995, -0.9985])
+        elif edge == 7:
+            novelty[0] = np.nan
+        elif edge == 8:
+            level[0] = rng.choice([-40.0, 10.0])  # on the limits: accepted
+        kw = dict(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=np.array([trial % 7]))
+        one, k_one = guard.assess(**kw, k=k)
+        two_kw = {name: np.concatenate([v, v]) for name, v in kw.items() if name != "a_nb"}
+        two, k_two = guard.assess(**two_kw, a_nb=np.concatenate([a_nb, a_nb]), k=np.concatenate([k, k]))
+        for field in Decisions.__dataclass_fields__:
+            got, want = getattr(one, field), getattr(two, field)[:1]
+            assert got.dtype == want.dtype, (trial, field)
+            np.testing.assert_array_equal(got, want, err_msg=f"trial {trial}, {field}")
+        np.testing.assert_array_equal(k_one, k_two[:1])
+    assert guard.assess(**kw, k=k)[0].rejected.dtype == bool
