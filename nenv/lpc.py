@@ -207,12 +207,10 @@ keeps only a few bits of them) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
     lead = r.shape[:-1]
     r = r.reshape(-1, r.shape[-1])[:, : order + 1]
     n = r.shape[0]
-    if n == 1 and (one := _levinson_compiled_row(r[0], order)) is not None:  # a streaming hop, the usual case
-        a, k, err = one
+    if n <= SCALAR_MAX_ROWS:  # a streaming hop (one row) or two: row by row, no array steps
+        rows = [_levinson_row(r[i], order) for i in range(n)]
+        a, k, err = rows[0] if n == 1 else (np.stack([x[0] for x in rows]), np.stack([x[1] for x in rows]), np.array([x[2] for x in rows]))
         return a.reshape(*lead, order + 1), k.reshape(*lead, order), np.asarray(err).reshape(lead)
-    if n <= SCALAR_MAX_ROWS:
-        a, k, err = _levinson_few_rows(r, order)
-        return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
     silent = ~(r[:, 0] > SILENT_ENERGY)
     # coefficient-major (order+1, n) layout: every step reads and writes whole contiguous rows
     rt = np.where(silent[None, :], np.eye(order + 1, 1), r.T)
@@ -242,42 +240,33 @@ def _div(num: float, den: float) -> float:
     return math.copysign(math.inf, num) * math.copysign(1.0, den)
 
 
-def _levinson_few_rows(r: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`levinson` for a few rows: SciPy's compiled recursion where it is present and agrees
-    (:func:`compiled_levinson`), else the same recursion on Python floats (same edge cases)."""
-    n = r.shape[0]
-    a_out, k_out, e_out = np.zeros((n, order + 1)), np.zeros((n, order)), np.zeros(n)
-    a_out[:, 0] = 1.0
-    for row in range(n):
-        if not r[row, 0] > SILENT_ENERGY:  # digital silence
-            continue
-        one = _levinson_compiled_row(r[row], order)
-        a_out[row], k_out[row], e_out[row] = one if one is not None else _levinson_floats(r[row].tolist(), order)
-    return a_out, k_out, e_out
-
-
-def _levinson_compiled_row(row: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, float] | None:
-    """``(a, k, err)`` of one row by SciPy's compiled recursion; None where it does not serve (not
-    present or not agreeing, a silent row, inf or nan anywhere or a sum that overflows, a singular
-    leading minor): the caller's float recursion handles those, with their edge cases."""
-    if not compiled_levinson():
-        return None
+def _levinson_row(row: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, float]:
+    """:func:`levinson` of one row: SciPy's compiled recursion where it is present and agrees
+    (:func:`compiled_levinson`); the same recursion on Python floats where it is not, and for rows
+    it does not serve (inf or nan anywhere or a sum that overflows, a singular leading minor), with
+    the same edge cases; a silent row gives ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``."""
     rr = row.tolist()
-    if not rr[0] > SILENT_ENERGY or not math.isfinite(sum(rr)):
-        return None
-    try:
-        # symmetric Toeplitz system R a = -r[1:]; SciPy wants the first column reversed, then the first row
-        a, refl = _toeplitz_levinson(np.concatenate((row[order - 1 : 0 : -1], row[:order])), -row[1 : order + 1])
-    except np.linalg.LinAlgError:  # a singular leading minor: the float recursion gives its inf/nan
-        return None
-    k = refl[1:]
-    err = rr[0]
-    for ki in k.tolist():
-        err = err * (1.0 - ki * ki)
-    out = np.empty(order + 1)
-    out[0] = 1.0
-    out[1:] = a
-    return out, k, err
+    if not rr[0] > SILENT_ENERGY:  # digital silence
+        a = np.zeros(order + 1)
+        a[0] = 1.0
+        return a, np.zeros(order), 0.0
+    if compiled_levinson() and math.isfinite(sum(rr)):
+        try:
+            # symmetric Toeplitz system R a = -r[1:]; SciPy wants the first column reversed, then the first row
+            a_tail, refl = _toeplitz_levinson(np.concatenate((row[order - 1 : 0 : -1], row[:order])), -row[1 : order + 1])
+        except np.linalg.LinAlgError:  # a singular leading minor: the float recursion gives its inf/nan
+            pass
+        else:
+            k = refl[1:]
+            err = rr[0]
+            for ki in k.tolist():
+                err = err * (1.0 - ki * ki)
+            a = np.empty(order + 1)
+            a[0] = 1.0
+            a[1:] = a_tail
+            return a, k, err
+    a, ks, err = _levinson_floats(rr, order)
+    return np.array(a), np.array(ks), err
 
 
 def _levinson_floats(rr: list, order: int) -> tuple[list, list, float]:
