@@ -20,6 +20,17 @@ STABLE_FLOOR_DB = 80.0  # dB below the peak: floor of the spectrum in the always
 
 
 @lru_cache(maxsize=None)
+def band_bins(lo_hz: float, hi_hz: float, *, n_fft: int, sr: int) -> tuple[int, int]:
+    """First and last bin of the rfft grid of ``n_fft`` points at ``sr`` inside ``lo_hz..hi_hz``
+    (both edges included): the ``bins`` argument of :func:`power_spectrum` and :func:`squared_magnitude`."""
+    f = np.fft.rfftfreq(n_fft, 1 / sr)
+    sel = np.flatnonzero((f >= lo_hz) & (f <= hi_hz))
+    if sel.size == 0:
+        raise ValueError(f"no bin of a {n_fft}-point grid at {sr} Hz lies in {lo_hz}-{hi_hz} Hz")
+    return int(sel[0]), int(sel[-1])
+
+
+@lru_cache(maxsize=None)
 def _cosines(n_terms: int, n_fft: int, first_bin: int = 0, last_bin: int | None = None) -> tuple[np.ndarray, np.ndarray]:
     """cos(i w_k) and sin(i w_k) for i < n_terms on rfft bins first_bin..last_bin of an n_fft grid."""
     last = n_fft // 2 if last_bin is None else last_bin

@@ -153,18 +153,6 @@ class ContextStacker:
         return lpc.hop_frames(buf.reshape(1, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=n)[0]
 
 
-@lru_cache(maxsize=None)
-def _high_band_bins() -> tuple[int, int]:
-    """First and last bin of 3.4-8 kHz on the LEVEL_N_FFT grid at 16 kHz."""
-    sel = np.flatnonzero(_band_bins(BAND_EDGE_HZ, WB_SR / 2))
-    return int(sel[0]), int(sel[-1])
-
-
-def _band_bins(lo: float, hi: float, *, n_fft: int = LEVEL_N_FFT, sr: int = WB_SR) -> np.ndarray:
-    f = np.fft.rfftfreq(n_fft, 1 / sr)
-    return (f >= lo) & (f <= hi)
-
-
 def band_power(frames: np.ndarray, *, lo: float, hi: float) -> np.ndarray:
     """Power per sample of windowed 16 kHz frames inside lo..hi Hz (Parseval, one-sided).
 
@@ -174,8 +162,8 @@ def band_power(frames: np.ndarray, *, lo: float, hi: float) -> np.ndarray:
     n_fft = max(LEVEL_N_FFT, 1 << int(np.ceil(np.log2(frames.shape[1]))))
     spec = np.fft.rfft(frames * w, n=n_fft, axis=1)
     p = spec.real**2 + spec.imag**2
-    sel = _band_bins(lo, hi, n_fft=n_fft)
-    return 2.0 * np.sum(p[:, sel], axis=1) / n_fft / lpc.window_energy(frames.shape[1])
+    first, last = cepstrum.band_bins(lo, hi, n_fft=n_fft, sr=WB_SR)
+    return 2.0 * p[:, first : last + 1].sum(axis=1) / n_fft / lpc.window_energy(frames.shape[1])
 
 
 def wideband_targets(wb_frames: np.ndarray, nb_energy_db: np.ndarray, *, settings: FeatureSettings) -> tuple[np.ndarray, np.ndarray]:
@@ -206,7 +194,7 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
     """
     c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
     a, g0, k = cepstrum.from_cepstrum_stable(np.where(np.isfinite(c), c, 0.0), order=order, with_reflection=True)
-    env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=_high_band_bins())
+    env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=cepstrum.band_bins(BAND_EDGE_HZ, WB_SR / 2, n_fft=LEVEL_N_FFT, sr=WB_SR))
     model_hb = 2.0 * env.sum(axis=1) / LEVEL_N_FFT
     target = 10 ** ((nb_energy_db + level_db) / 10)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):

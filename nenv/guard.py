@@ -23,7 +23,6 @@ from __future__ import annotations
 import math
 from dataclasses import asdict, dataclass, field, fields
 from enum import IntFlag
-from functools import lru_cache
 
 import numpy as np
 
@@ -126,7 +125,7 @@ def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
 
     a_wb : np.ndarray [shape=(n, p+1)] at 16 kHz; a_nb : np.ndarray [shape=(n, q+1)] at 8 kHz
     """
-    bins = _telephone_bins()
+    bins = cepstrum.band_bins(CHANNEL_LOW_HZ, BAND_EDGE_HZ, n_fft=MISMATCH_N_FFT_WB, sr=WB_SR)  # the same bins exist on the 8 kHz grid
     # envelope power is 1/|A|^2, so wb_dB - nb_dB = 10 log10(|A_nb|^2 / |A_wb|^2): one logarithm, in
     # single precision (ample for a threshold in dB); the ratio is clipped to +-300 dB so that a zero
     # of either polynomial on the unit circle gives a huge, finite mismatch
@@ -139,14 +138,6 @@ def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
     d -= d.sum(axis=1, keepdims=True) / n
     d *= d
     return np.sqrt(d.sum(axis=1) / n)
-
-
-@lru_cache(maxsize=None)
-def _telephone_bins() -> tuple[int, int]:
-    """First and last 31.25 Hz bin inside 300-3400 Hz (the same bins exist on the 8 and 16 kHz grids)."""
-    f = np.fft.rfftfreq(MISMATCH_N_FFT_WB, 1 / WB_SR)
-    sel = np.flatnonzero((f >= CHANNEL_LOW_HZ) & (f <= BAND_EDGE_HZ))
-    return int(sel[0]), int(sel[-1])
 
 
 class Guard:
