@@ -236,11 +236,10 @@ class Relay:
             return
         # every stream's new samples to 16-bit PCM in one conversion (elementwise: the same bytes as one by one)
         pcm = to_int16(np.concatenate([y for _, y in out])).astype(">i2").tobytes()
-        ready = [(st, y.size) for st, y in out]
         pos = 0
-        for st, n in ready:
-            self._send(st, pcm[pos : pos + 2 * n])
-            pos += 2 * n
+        for st, y in out:
+            self._send(st, pcm[pos : pos + 2 * y.size])
+            pos += 2 * y.size
 
     def _shutdown(self) -> None:
         for ssrc in list(self.streams):
@@ -350,7 +349,7 @@ class Relay:
 
     # ---- packets out ---------------------------------------------------------------------
     def _emit(self, st: _Stream, y: np.ndarray, *, final: bool = False) -> None:
-        self._send(st, to_int16(y).astype(">i2").tobytes() if y.size else b"", final=final)
+        self._send(st, to_int16(y).astype(">i2").tobytes(), final=final)
 
     def _send(self, st: _Stream, pcm: bytes, *, final: bool = False) -> None:
         """Send whole packets of the stream's pending output plus ``pcm`` (big-endian int16);
