@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Callable, Iterable, Optional
 
 from nenv.errors import InputError, NenvError
+from nenv.files import same_path
 from nenv.streamfile import OUTPUT_SUFFIXES, FileResult, Options, extend_file, load_checkpoint
 
 INPUT_SUFFIXES = (".wav", ".flac", ".ogg", ".oga", ".aif", ".aiff", ".au", ".caf", ".w64", ".rf64", ".mp3")
@@ -81,6 +82,8 @@ def plan(inputs: Iterable[str | os.PathLike], out: str | os.PathLike, *, suffix:
     out = Path(out)
     pairs: list[tuple[Path, Path]] = []
     for item in map(Path, inputs):
+        if item.is_dir() and same_path(item, out):
+            raise InputError(f"the output folder '{out}' is the input folder: choose another one (a folder inside it, such as '{out / 'wide'}', is skipped when searching for inputs)")
         if item.is_dir():
             files = _audio_files(item, out)
             if not files:
@@ -97,6 +100,8 @@ def plan(inputs: Iterable[str | os.PathLike], out: str | os.PathLike, *, suffix:
     jobs, seen = [], {}
     for i, (src, rel) in enumerate(pairs):
         dst = out / rel.with_suffix(suffix)
+        if same_path(dst, src):
+            raise InputError(f"'{src}' would be replaced by its own output: choose an output folder other than the one holding the inputs")
         if dst in seen:
             raise InputError(f"'{src}' and '{seen[dst]}' would both be written to '{dst}': rename one or extend them separately")
         seen[dst] = src
@@ -196,9 +201,7 @@ def run(
     """
     t0 = time.perf_counter()
     if record is not None:
-        from nenv.files import check_output
-
-        record = str(check_output(record, suffixes=(".jsonl",)))
+        record = check_record(record, jobs)
         for stale in Path(record).parent.glob(f".{Path(record).name}.*.part"):
             stale.unlink(missing_ok=True)
     results: list[FileResult] = []
@@ -232,6 +235,18 @@ def run(
     order = {str(j.src): j.index for j in jobs}
     results.sort(key=lambda r: order.get(r.source, 0))
     return Summary(results, time.perf_counter() - t0)
+
+
+def check_record(record: str | os.PathLike, jobs: list[Job]) -> str:
+    """The batch's record file, checked before any work: a .jsonl file that is new or a guard record
+    already (records are appended to), and none of the inputs."""
+    from nenv.files import check_distinct, check_output
+    from nenv.records import check_appendable
+
+    path = check_appendable(check_output(record, suffixes=(".jsonl",)))
+    for job in jobs:
+        check_distinct(path, what="the record", others={"an input": job.src})
+    return str(path)
 
 
 def check_options(opts: Options) -> None:

@@ -72,9 +72,10 @@ def degrade(
     """Simulate a telephone channel: 300-3400 Hz band-pass, 8 kHz, optional G.711 and noise."""
     from nenv import audio
     from nenv import channel as chan
-    from nenv.files import check_output
+    from nenv.files import check_distinct, check_output
 
     out = check_output(narrowband, suffixes=(".wav", ".flac"))
+    check_distinct(out, what="the output", others={"the input": wideband})
     a = audio.load(wideband, channel=channel, mix=mix)
     if audio.is_silent(a.y):
         raise InputError(f"'{wideband}' is digital silence (every sample is zero)")
@@ -129,11 +130,12 @@ FIGURE_MAX_S = 600.0  # a spectrogram of more than 10 minutes is unreadable (and
 def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, record=None) -> None:
     from nenv import audio, streamfile
     from nenv.figures import FIGURE_SUFFIXES, spectrogram_grid
-    from nenv.files import check_output
+    from nenv.files import check_distinct, check_output
 
     check_output(dst, suffixes=streamfile.OUTPUT_SUFFIXES)
     if figure is not None:
         check_output(figure, suffixes=FIGURE_SUFFIXES)
+        check_distinct(figure, what="the figure", others={"the input": src, "the reference": reference, "the output": dst, "the record": record})
     with _progress() as bar:
         task = bar.add_task(f"extending {src.name}", total=None)
         res = streamfile.extend_file(src, dst, opts, reference=reference, record=record, on_progress=lambda done, total: bar.update(task, completed=done, total=total))
@@ -168,6 +170,8 @@ def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: b
         raise InputError(f"'{out}' looks like a file: with folders, lists or several inputs the output must be a folder")
     work = batch.plan(inputs, out, suffix=suffix)
     batch.check_options(opts)
+    if record is not None:
+        batch.check_record(record, work)
     out.mkdir(parents=True, exist_ok=True)
     n_cpu = os.cpu_count() or 1
     where = f"scheduler {scheduler}" if scheduler else f"{min(jobs or n_cpu, len(work))} process(es)"

@@ -81,6 +81,8 @@ def stream(
     finally:
         for s, h in old.items():
             sig.signal(s, h)
+    if leftover:  # s16le input that ended inside a sample: say so rather than drop it silently
+        _say("note: the input ended with half a 16-bit sample (one odd byte); it was ignored")
     if tally is not None:
         tally.limit = -(-engine.samples_in // 80)  # the tail padding is not part of the call
     y = engine.flush()

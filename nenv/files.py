@@ -33,6 +33,25 @@ def check_output(path: str | os.PathLike, *, suffixes: tuple[str, ...]) -> Path:
     return p
 
 
+def same_path(a: str | os.PathLike, b: str | os.PathLike) -> bool:
+    """True when ``a`` and ``b`` name the same file: one existing file (also through symbolic or
+    hard links), or the same absolute path for a file not written yet."""
+    try:
+        if os.path.exists(a) and os.path.exists(b):
+            return os.path.samefile(a, b)
+        return Path(a).resolve() == Path(b).resolve()
+    except OSError:
+        return False
+
+
+def check_distinct(path: str | os.PathLike, *, what: str, others: dict) -> None:
+    """Raise OutputError when ``path`` (the file called ``what``) is one of ``others``
+    (label -> path, None entries skipped): nenv never writes over a file the same command reads or writes."""
+    for label, other in others.items():
+        if other is not None and same_path(path, other):
+            raise OutputError(f"{what} '{path}' is the same file as {label} '{other}': nenv never writes over a file the command reads or writes; choose another name")
+
+
 def _umask() -> int:
     mask = os.umask(0)
     os.umask(mask)

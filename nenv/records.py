@@ -42,13 +42,34 @@ VERSION = 1
 HOP_S = HOP_NB / NB_SR
 
 
+def check_appendable(path: str | os.PathLike) -> Path:
+    """Raise OutputError unless ``path`` can take more record lines: a new or empty file, or one
+    whose first line is a nenv record header (a record is appended to, so anything else would be damaged)."""
+    p = Path(path)
+    if not p.parent.is_dir():
+        raise OutputError(f"cannot write the record '{p}': folder '{p.parent}' does not exist")
+    if p.is_dir():
+        raise OutputError(f"cannot write the record '{p}': it is a folder")
+    try:
+        if not p.exists() or p.stat().st_size == 0:
+            return p
+        with open(p, "rb") as fh:
+            first = fh.readline(1 << 20)
+        head = json.loads(first)
+    except OSError as e:
+        raise OutputError(f"cannot write the record '{p}': {e.strerror or e}") from e
+    except ValueError:
+        head = None
+    if not (isinstance(head, dict) and head.get("type") == "header" and head.get("schema") == SCHEMA):
+        raise OutputError(f"the record '{p}' exists and is not a nenv guard record: records are appended to, so nenv will not touch it; choose another name")
+    return p
+
+
 class RecordWriter:
-    """Appends one session's decisions to a record file."""
+    """Appends one session's decisions to a record file (new, or a record already)."""
 
     def __init__(self, path: str | os.PathLike, *, checkpoint, context: int):
-        p = Path(path)
-        if not p.parent.is_dir():
-            raise OutputError(f"cannot write the record '{p}': folder '{p.parent}' does not exist")
+        p = check_appendable(path)
         try:
             self._fh = open(p, "a", encoding="utf-8")
         except OSError as e:

@@ -141,11 +141,14 @@ def extend_file(
     InputError, OutputError, ConfigError (all :class:`nenv.errors.NenvError`)
     """
     from nenv import audio
-    from nenv.files import check_output
+    from nenv.files import check_distinct, check_output
     from nenv.runtime import CallEngine
 
     t0 = time.perf_counter()
     src, dst = Path(src), check_output(dst, suffixes=OUTPUT_SUFFIXES)
+    check_distinct(dst, what="the output", others={"the input": src, "the reference": reference})
+    if record is not None:
+        check_distinct(record, what="the record", others={"the input": src, "the reference": reference, "the output": dst})
     notes: list[str] = []
     ref = None
     if opts.method == "oracle":

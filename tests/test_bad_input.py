@@ -24,7 +24,7 @@ from tests.conftest import ARCTIC
 
 runner = CliRunner()
 README = Path(__file__).resolve().parents[1] / "README.md"
-ROWS = [f"F{i}" for i in range(1, 14)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 8)]
+ROWS = [f"F{i}" for i in range(1, 16)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 9)]
 
 
 def _run(*args):
@@ -196,6 +196,47 @@ def test_f13_rates_outside_the_range(tmp_path, sr):
     sf.write(tmp_path / "in.wav", 0.1 * np.ones(4000), sr)
     _refused(_run("extend", tmp_path / "in.wav", tmp_path / "out.wav", "--resample"), "outside the supported range 4000..192000")
     _no_output(tmp_path)
+
+
+def test_f14_output_that_is_an_input(tmp_path, speech):
+    """No command writes over a file it reads: same name, a link to it, or a batch's own input."""
+    sf.write(tmp_path / "call.wav", speech, 8000)
+    sf.write(tmp_path / "wide.wav", np.repeat(speech, 2), 16000)
+    before = {p.name: p.read_bytes() for p in tmp_path.iterdir()}
+    _refused(_run("extend", tmp_path / "call.wav", tmp_path / "call.wav"), "same file as the input")
+    (tmp_path / "link.wav").symlink_to(tmp_path / "call.wav")
+    _refused(_run("extend", tmp_path / "call.wav", tmp_path / "link.wav"), "same file as the input")
+    _refused(_run("degrade", tmp_path / "wide.wav", tmp_path / "wide.wav"), "same file as the input")
+    _refused(_run("extend", tmp_path / "call.wav", tmp_path / "out.wav", "--record", tmp_path / "call.wav"), "same file as the input")
+    _refused(_run("extend", tmp_path / "call.wav", tmp_path / "out.wav", "--record", tmp_path / "out.wav"), "same file as the output")
+    shutil.copy(tmp_path / "call.wav", tmp_path / "call.png")  # inputs are read by content, so this is a call
+    _refused(_run("extend", tmp_path / "call.png", tmp_path / "out.wav", "--figure", tmp_path / "call.png"), "same file as the input")
+    (tmp_path / "link.wav").unlink()
+    (tmp_path / "call.png").unlink()
+    # batches: the output folder is the input folder, or a listed file's output would replace it
+    _refused(_run("extend", tmp_path, tmp_path), "is the input folder")
+    _refused(_run("extend", tmp_path / "call.wav", tmp_path / "wide.wav", tmp_path, "--overwrite"), "replaced by its own output")
+    assert {p.name: p.read_bytes() for p in tmp_path.iterdir() if p.name != "extend-report.csv"} == before
+    _no_output(tmp_path)
+
+
+def test_f15_record_file_that_is_not_a_record(tmp_path, speech):
+    """A guard record is appended to, so an existing file must be a record already."""
+    sf.write(tmp_path / "call.wav", speech, 8000)
+    notes = tmp_path / "notes.jsonl"
+    notes.write_text('{"type": "meeting", "text": "not a guard record"}\n')
+    _refused(_run("extend", tmp_path / "call.wav", tmp_path / "out.wav", "--record", notes), "is not a nenv guard record")
+    (tmp_path / "calls").mkdir()
+    sf.write(tmp_path / "calls" / "c1.wav", speech, 8000)
+    _refused(_run("extend", tmp_path / "calls", tmp_path / "wide", "--record", notes), "is not a nenv guard record")
+    assert not (tmp_path / "wide").exists() or not any((tmp_path / "wide").iterdir())
+    assert notes.read_text() == '{"type": "meeting", "text": "not a guard record"}\n'
+    _no_output(tmp_path)
+    rec = tmp_path / "guard.jsonl"  # a record takes a second session
+    for out in ("a.wav", "b.wav"):
+        assert _run("extend", tmp_path / "call.wav", tmp_path / out, "--record", rec).exit_code == 0
+    headers = [line for line in rec.read_text().splitlines() if '"type":"header"' in line]
+    assert len(headers) == 2
 
 
 # ---- content -------------------------------------------------------------------------------
@@ -380,3 +421,19 @@ def test_m7_model_files_of_the_wrong_kind(tmp_path, call):
     shutil.copy(call, m / "model.onnx")  # a WAV named model.onnx
     _refused(_run("extend", call, tmp_path / "out.wav", "--model", m), "cannot load")
     _no_output(tmp_path)
+
+
+def test_m8_train_replaces_only_a_model_folder(tmp_path, synthetic_corpus):
+    pytest.importorskip("torch")
+    keep = tmp_path / "project"
+    keep.mkdir()
+    (keep / "notes.txt").write_text("keep me")
+    _refused(_run("train", "--set", f"corpus={synthetic_corpus}", "--out", keep, "--force"), "not a nenv model folder")
+    assert (keep / "notes.txt").read_text() == "keep me"
+    m = _model_copy(tmp_path)
+    shutil.copytree(synthetic_corpus, m / "corpus")  # a corpus kept inside the model folder would be deleted with it
+    _refused(_run("train", "--set", f"corpus={m / 'corpus'}", "--out", m, "--force"), "is inside")
+    _refused(_run("train", "--set", f"corpus={synthetic_corpus}", "--out", m, "--force", "--cache", m / "cache"), "is inside")
+    assert (m / "corpus").is_dir() and (m / "nenv.json").is_file()
+    (tmp_path / "file").write_text("x")
+    _refused(_run("train", "--set", f"corpus={synthetic_corpus}", "--out", tmp_path / "file"), "is a file")

@@ -102,6 +102,14 @@ def test_stream_command_is_bit_exact_with_extend(tmp_path, call_audio, fmt):
     np.testing.assert_array_equal(y, ref)
 
 
+def test_stream_says_when_s16le_input_ends_inside_a_sample():
+    whole = _nenv("stream", "--method", "imaging", input=b"\x01\x02" * 80)
+    odd = _nenv("stream", "--method", "imaging", input=b"\x01\x02" * 80 + b"\x03")
+    assert whole.returncode == odd.returncode == 0
+    assert odd.stdout == whole.stdout and len(odd.stdout) == 2 * 2 * 80  # the whole samples, extended
+    assert b"odd byte" in odd.stderr and b"odd byte" not in whole.stderr
+
+
 def test_stream_flushes_its_tail_on_sigterm(call_audio):
     import signal
     import subprocess

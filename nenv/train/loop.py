@@ -106,8 +106,15 @@ def train(
     """
     rep = reporter or Reporter()
     out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise ConfigError(f"'{out}' is a file: a model is a folder; choose another name")
     if out.exists() and not force and any(out.iterdir()):
         raise ConfigError(f"'{out}' exists and is not empty: choose another folder or pass --force to replace it")
+    if out.is_dir() and any(out.iterdir()) and not (out / SETTINGS_FILE).is_file():
+        raise ConfigError(f"'{out}' is not a nenv model folder (it has no {SETTINGS_FILE}): --force replaces model folders only; choose another folder")
+    for label, inner in (("the corpus", recipe.corpus), ("the manifest", recipe.manifest), ("the cache folder", cache_dir)):
+        if inner and _within(Path(inner), out):
+            raise ConfigError(f"{label} '{inner}' is inside '{out}', which training replaces as a whole: choose another folder for the model")
     if not out.parent.is_dir():
         raise ConfigError(f"cannot create '{out}': folder '{out.parent}' does not exist")
     if not recipe.corpus:
@@ -311,6 +318,12 @@ def train(
 
 RESUME_FILE = "resume.pt"  # training state after the last finished epoch
 RECIPE_FILE = "run.json"  # the recipe and record id of the run a partial folder belongs to
+
+
+def _within(path: Path, folder: Path) -> bool:
+    """True when ``path`` is ``folder`` or lies below it (links resolved)."""
+    p, f = path.resolve(), folder.resolve()
+    return p == f or f in p.parents
 
 
 def partial_folder(out: str | os.PathLike) -> Path:
