@@ -240,12 +240,15 @@ def evaluate(
     table = rows + ev.means(rows)
     out.mkdir(parents=True, exist_ok=True)
     md = ev.to_markdown(table)
+    blanks = ev.blank_notes(rows)
     write_text(out / "table.csv", ev.to_csv(table))
-    write_text(out / "table.md", md + "\n" + ev.MEASURES_NOTE)
+    write_text(out / "table.md", md + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks))
     panels = [[("reference", c.reference)] + [(s, c.outputs[s]) for s in systems] for c in clips[:4]]
     spectrogram_grid(panels, out / "spectrograms.png", title="  |  ".join(f"{c.name} ({c.law})" for c in clips[:4]))
     typer.echo(md)
     typer.echo(ev.MEASURES_NOTE)
+    for b in blanks:
+        _say(f"nenv: note: {b}")
     _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}, {out / 'spectrograms.png'}")
 
 

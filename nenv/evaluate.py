@@ -115,6 +115,23 @@ def means(rows: Sequence[Row]) -> list[Row]:
     return out
 
 
+BLANK_REASONS = {
+    "pesq_wb": "the pesq package measures nothing shorter than a quarter of a second (beyond its alignment margins) or without speech it can find",
+}
+BLANK_DEFAULT = "the reference has no active frames (none within 40 dB of its loudest)"
+
+
+def blank_notes(rows: Sequence[Row]) -> list[str]:
+    """One line per measure and clip whose value is NaN (not measurable), saying why it is blank;
+    the mean rows leave such values out."""
+    notes = []
+    for m in MEASURE_NAMES:
+        where = list(dict.fromkeys(f"{r.clip} ({r.law})" for r in rows if r.clip != "mean" and not np.isfinite(getattr(r.scores, m))))
+        if where:
+            notes.append(f"{MEASURE_LABELS[m]} is blank (nan) for {', '.join(where)}: {BLANK_REASONS.get(m, BLANK_DEFAULT)}; the means leave it out")
+    return notes
+
+
 def to_csv(rows: Sequence[Row]) -> str:
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")

@@ -65,6 +65,20 @@ def test_evaluate_prints_every_system_and_measure(tmp_path):
     assert "estimated, not recorded" in (tmp_path / "ev" / "table.md").read_text()
 
 
+def test_evaluate_says_why_a_value_is_blank(tmp_path):
+    import soundfile as sf
+
+    # 0.2 s of a real sentence: too short for the pesq package (it needs 1/4 s beyond its margins)
+    y, sr = sf.read(ARCTIC[0])
+    sf.write(tmp_path / "short.wav", y[int(0.5 * sr) : int(0.7 * sr)], sr)
+    res = _run("evaluate", tmp_path / "short.wav", ARCTIC[0], "--out", tmp_path / "ev", "--method", "unextended", "--method", "imaging")
+    assert res.exit_code == 0, res.output
+    assert "WB-PESQ [MOS] is blank (nan) for short (none)" in res.stderr and "a0007" not in res.stderr.split("blank")[1].split("\n")[0]
+    assert "WB-PESQ [MOS] is blank" in (tmp_path / "ev" / "table.md").read_text()
+    full = _run("evaluate", ARCTIC[0], "--out", tmp_path / "ev2", "--method", "unextended")
+    assert full.exit_code == 0 and "blank" not in full.stderr
+
+
 def test_demo_runs(tmp_path):
     res = _run("demo", "--out", tmp_path / "d")
     assert res.exit_code == 0, res.output
