@@ -186,6 +186,10 @@ def survey_file(cf: CorpusFile, recipe: Recipe) -> FileReport:
 
         info = sf.info(cf.path)
         rep.sr, rep.channels = int(info.samplerate), int(info.channels)
+        if 0 < rep.sr < WB_SR:  # readable, but holds nothing above sr/2: not a wideband recording
+            rep.duration_s = info.frames / rep.sr
+            rep.excluded = f"narrowband: sampled at {rep.sr} Hz, below 16 kHz"
+            return rep
         y = load_wideband(cf.path)
     except Exception as e:  # any reader failure becomes a recorded exclusion
         rep.excluded = f"unreadable: {str(e).splitlines()[0] if str(e) else type(e).__name__}"
