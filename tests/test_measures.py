@@ -59,3 +59,24 @@ def test_mismatched_lengths_are_refused():
 
     with pytest.raises(InputError, match="equal length"):
         measures.lsd(np.zeros(100), np.zeros(101))
+
+
+def test_wb_pesq_prefers_a_quieter_added_band_even_when_it_is_the_true_one(arctic_refs):
+    """Why nenv reports WB-PESQ but does not tune for it (README, "Measured quality").
+
+    With the true envelope (oracle), trimming the added band by 10 dB moves its level away from the
+    original's (more than -5 dB) and its log-spectral distance up, yet WB-PESQ (ITU-T P.862.2, the
+    pesq package) rates it higher; removing the band altogether (unextended) rates lower than the trimmed band.
+    """
+    from nenv import channel, pipeline
+
+    _, ref = arctic_refs[0]
+    nb = channel.telephone(ref, sr=16000, law="mulaw", level_dbov=None)
+    base = pipeline.extend(nb, system=pipeline.make_system("unextended")).y
+    band = pipeline.extend(nb, system=pipeline.make_system("oracle", reference=ref)).y - base
+    true_band, trimmed = base + band, base + band * 10 ** (-10 / 20)
+    assert abs(measures.high_band_level_error(ref, true_band)) < 2.0
+    assert measures.high_band_level_error(ref, trimmed) < -5.0
+    assert measures.lsd(ref, trimmed, band=measures.HIGH_BAND) > measures.lsd(ref, true_band, band=measures.HIGH_BAND)
+    assert measures.pesq_wb(ref, trimmed) > measures.pesq_wb(ref, true_band) + 0.1
+    assert measures.pesq_wb(ref, trimmed) > measures.pesq_wb(ref, base) + 0.1

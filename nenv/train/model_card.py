@@ -165,10 +165,11 @@ error {m['val_median_level_error_db']['neural']:+.2f} dB, guard rejections {100 
 - Trained mostly on rendered (diphone) speech and on isolated letters and syllables; conversational,
   emotional or far-field speech, children (one rendered child voice only) and tonal languages are
   poorly covered. Expect larger errors there; the guard catches only gross failures.
-- WB-PESQ rates the extended output below the unextended input: the estimated band's shape errors
-  cost more in PESQ's model than the missing band does. LSD and the level error show the model is
-  closer to the truth than the baselines; whether listeners prefer it should be checked by listening
-  tests for your use.
+- WB-PESQ rates the extended output below the unextended input. On these clips WB-PESQ also rates
+  the oracle's correct band higher the more it is attenuated (by 0.4 at -20 dB; README, "Measured
+  quality"), so it measures how faint the added band is more than how right it is. LSD and the level
+  error show the model is closer to the truth than the baselines; whether listeners prefer it should
+  be checked by listening tests for your use.
 - Two evaluation sentences are a small sample: the numbers above carry an uncertainty of the order of
   0.5 dB.
 - Noise, reverberation and codecs other than G.711 were seen in training only as mild white noise.
