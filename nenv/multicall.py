@@ -27,7 +27,7 @@ from nenv.excitation import rectify_hops, residual, whiten_hops
 from nenv.features import narrowband_features
 from nenv.guard import Guard
 from nenv.pipeline import tail_padding
-from nenv.runtime import OutputGate
+from nenv.runtime import OutputGate, as_samples
 from nenv.settings import HOP_NB, HOP_WB, N_SUBFRAMES, NB_ORDER, NB_SR, WIN_NB, WIN_WB
 from nenv.synthesis import UPSAMPLER_HISTORY, banded_synthesis, clamp_reflection, direct_synthesis, interpolate_envelopes, isolation_sos, upsample_hops
 
@@ -119,7 +119,7 @@ class MultiCallEngine:
     def feed(self, call_id: str, x: np.ndarray) -> None:
         """Queue 8 kHz samples for a call (processed by the next :meth:`step`)."""
         call = self._calls[call_id]
-        x = np.asarray(x, dtype=np.float64).reshape(-1)  # non-finite samples are replaced per hop, in _run
+        x = as_samples(x)  # non-finite samples are replaced per hop, in _run
         call.samples_in += x.size
         call.pending = np.concatenate([call.pending, x]) if call.pending.size else x
 

@@ -17,18 +17,32 @@ from __future__ import annotations
 import numpy as np
 
 from nenv.audio import limit_peaks
+from nenv.errors import InputError
 from nenv.pipeline import LATENCY, Extender, System, tail_padding
 from nenv.settings import HOP_NB, NB_SR, WB_SR
 
 ALGORITHMIC_LATENCY_MS = 1000.0 * (HOP_NB / NB_SR + LATENCY / WB_SR)  # = 11.4375 ms
 
 
-def sanitize(x: np.ndarray) -> tuple[np.ndarray, int]:
-    """Samples as a flat float64 array with non-finite values replaced by 0, and how many were replaced.
+def as_samples(x) -> np.ndarray:
+    """Fed samples as a flat float64 array; InputError for anything but floating point (full scale 1.0).
 
-    One corrupt packet must not poison a call's filter state.
+    Integer PCM passed as is would be read as thousands of times full scale, so it is refused
+    with the conversion to use instead.
     """
-    x = np.asarray(x, dtype=np.float64).reshape(-1)
+    a = np.asarray(x)
+    if a.dtype.kind != "f" and a.size:
+        if a.dtype.kind in "iu":
+            raise InputError(f"samples must be floating point with full scale 1.0, got {a.dtype} integers: divide 16-bit PCM by 32768, or decode G.711 bytes with nenv.g711.decode")
+        raise InputError(f"samples must be floating point with full scale 1.0, got {a.dtype}")
+    return a.astype(np.float64, copy=False).reshape(-1)
+
+
+def sanitize(x: np.ndarray) -> tuple[np.ndarray, int]:
+    """Samples as a flat float64 array (:func:`as_samples`) with non-finite values replaced by 0,
+    and how many were replaced. One corrupt packet must not poison a call's filter state.
+    """
+    x = as_samples(x)
     finite = np.isfinite(x)
     if np.all(finite):
         return x, 0

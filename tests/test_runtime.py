@@ -71,6 +71,27 @@ def test_bad_samples_do_not_poison_the_call(call_audio):
     assert eng.bad_samples == 10
 
 
+def test_integer_pcm_is_refused_with_the_conversion_to_use(call_audio):
+    from nenv.errors import InputError
+    from nenv.multicall import MultiCallEngine
+    from nenv.checkpoint import default_path, load
+
+    _, x = call_audio
+    pcm = np.round(x[:800] * 32767).astype(np.int16)  # what a gateway holds before conversion
+    eng = CallEngine(pipeline.make_system("imaging"))
+    with pytest.raises(InputError, match="divide 16-bit PCM by 32768"):
+        eng.feed(pcm)
+    assert eng.samples_in == 0  # refused before anything changed
+    np.testing.assert_array_equal(eng.feed(pcm / 32768.0), CallEngine(pipeline.make_system("imaging")).feed(pcm.astype(np.float64) / 32768.0))
+    if default_path() is not None:
+        multi = MultiCallEngine(load(default_path()))
+        multi.open("a")
+        with pytest.raises(InputError, match="integers"):
+            multi.feed("a", pcm)
+        multi.feed("a", pcm / 32768.0)
+        assert multi.step()["a"].size > 0
+
+
 def _nenv(*args, **kw):
     import subprocess
     import sys
