@@ -164,7 +164,7 @@ def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, reco
 
 def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: bool, suffix: str, scheduler: Optional[str], record: Optional[Path]) -> None:
     from nenv import batch, streamfile
-    from nenv.files import write_text
+    from nenv.files import output_folder, write_text
 
     if (out.exists() and not out.is_dir()) or (not out.exists() and out.suffix.lower() in streamfile.OUTPUT_SUFFIXES):
         raise InputError(f"'{out}' looks like a file: with folders, lists or several inputs the output must be a folder")
@@ -172,7 +172,7 @@ def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: b
     batch.check_options(opts)
     if record is not None:
         batch.check_record(record, work)
-    out.mkdir(parents=True, exist_ok=True)
+    output_folder(out, what="the output folder")
     n_cpu = os.cpu_count() or 1
     where = f"scheduler {scheduler}" if scheduler else f"{min(jobs or n_cpu, len(work))} process(es)"
     _say(f"extending {len(work)} file(s) into {out} on {where}")
@@ -220,14 +220,13 @@ def evaluate(
     """Score every system against wideband references passed through the telephone channel."""
     from nenv import evaluate as ev
     from nenv.figures import spectrogram_grid
-    from nenv.files import write_text
+    from nenv.files import output_folder, write_text
     from nenv.g711 import LAWS
 
     for lw in law:
         if lw not in LAWS:
             raise InputError(f"--law {lw} is not known: choose from {', '.join(LAWS)}")
-    if out.exists() and not out.is_dir():
-        raise InputError(f"--out {out} exists and is not a folder")
+    output_folder(out, create=False)
     if method:
         systems = tuple(method)
     elif model is not None or _default_method(None) == "neural":
@@ -238,7 +237,7 @@ def evaluate(
         task = bar.add_task("evaluating", total=len(references) * len(law) * len(systems))
         rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task))
     table = rows + ev.means(rows)
-    out.mkdir(parents=True, exist_ok=True)
+    output_folder(out)
     md = ev.to_markdown(table)
     blanks = ev.blank_notes(rows)
     write_text(out / "table.csv", ev.to_csv(table))
@@ -259,8 +258,9 @@ def demo(
 ) -> None:
     """Extend the bundled demo call (an invented order confirmation) and draw input vs output."""
     from nenv import streamfile
+    from nenv.files import output_folder
 
-    out.mkdir(parents=True, exist_ok=True)
+    output_folder(out)
     with resources.as_file(resources.files("nenv") / "data" / "demo" / DEMO_CLIP) as clip:
         _say(f"demo input: {clip} (8 kHz, G.711 mu-law telephone speech; invented scenario)")
         _extend_one(clip, out / "order_confirmation_16k.wav", streamfile.Options(method=_default_method(None)), figure=out / "order_confirmation.png")
@@ -285,14 +285,13 @@ def audit(
     """Summarise where and why the guard rejected the network's envelope; write an HTML report."""
     from nenv import audit as au
     from nenv import checkpoint, records as rc
-    from nenv.files import write_text
+    from nenv.files import output_folder, write_text
 
-    if out.exists() and not out.is_dir():
-        raise InputError(f"--out {out} exists and is not a folder")
+    output_folder(out, create=False)
     rec = rc.read(records)
     rows = au.table(rec)
     reruns = au.rerun(rec, checkpoint.load(model)) if model is not None else None
-    out.mkdir(parents=True, exist_ok=True)
+    output_folder(out)
     write_text(out / "by_source.csv", au.to_csv(rows))
     write_text(out / "by_group.csv", au.to_csv(au.totals(rows, key=lambda r: r.group or "(none)")))
     write_text(out / "audit.html", au.html_page(rec, rows, au.figures(rec, rows), reruns))

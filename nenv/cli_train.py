@@ -25,13 +25,13 @@ def survey(
     scheduler: SchedulerOpt = None,
 ) -> None:
     """Check every file of a corpus and say which ones training would use, and why not."""
-    from nenv.files import write_text
+    from nenv.files import output_folder, write_text
     from nenv.train import corpus as corp
     from nenv.train import recipe as rcp
 
     recipe = rcp.load(config, overrides=list(set_))
     files = corp.scan(corpus, speaker_rule=recipe.speaker_rule, manifest=recipe.manifest)
-    out.mkdir(parents=True, exist_ok=True)
+    output_folder(out)
     with _progress() as bar:
         task = bar.add_task(f"surveying {len(files)} files", total=len(files))
         reports = corp.survey(files, recipe, workers=recipe.workers, scheduler=scheduler, on_done=lambda: bar.advance(task))

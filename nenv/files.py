@@ -33,6 +33,20 @@ def check_output(path: str | os.PathLike, *, suffixes: tuple[str, ...]) -> Path:
     return p
 
 
+def output_folder(path: str | os.PathLike, *, what: str = "--out", create: bool = True) -> Path:
+    """An output folder: OutputError if ``path`` exists and is not a folder; created (with its
+    parents) when ``create``, so a command can check early and create once it has something to write."""
+    p = Path(path)
+    if p.exists() and not p.is_dir():
+        raise OutputError(f"{what} '{p}' exists and is not a folder")
+    if create:
+        try:
+            p.mkdir(parents=True, exist_ok=True)
+        except OSError as e:
+            raise OutputError(f"cannot create {what} '{p}': {e.strerror or e}") from e
+    return p
+
+
 def same_path(a: str | os.PathLike, b: str | os.PathLike) -> bool:
     """True when ``a`` and ``b`` name the same file: one existing file (also through symbolic or
     hard links), or the same absolute path for a file not written yet."""

@@ -79,6 +79,13 @@ def test_evaluate_says_why_a_value_is_blank(tmp_path):
     assert full.exit_code == 0 and "blank" not in full.stderr
 
 
+@pytest.mark.parametrize("command", [["demo"], ["evaluate", str(ARCTIC[0])], ["audit", "guard.jsonl"], ["survey", str(ARCTIC[0].parent)]])
+def test_every_out_folder_option_refuses_a_file(tmp_path, command):
+    (tmp_path / "taken").write_text("not a folder")
+    _assert_user_error(_run(*command, "--out", tmp_path / "taken"), "exists and is not a folder")
+    assert (tmp_path / "taken").read_text() == "not a folder"
+
+
 def test_demo_runs(tmp_path):
     res = _run("demo", "--out", tmp_path / "d")
     assert res.exit_code == 0, res.output
