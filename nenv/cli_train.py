@@ -93,6 +93,8 @@ def train(
         f"{m['val_envelope_lsd_high_db']['codebook']:.2f} dB; median level error {m['val_median_level_error_db']['neural']:+.2f} dB; "
         f"guard rejects {100 * m['val_guard_rejection_rate']:.2f}% of hops"
     )
+    for w in res.record.get("warnings", []):
+        _say(f"nenv: warning: {w}")
 
 
 @app.command()

@@ -300,6 +300,7 @@ def train(
             "metrics": metrics,
             "onnx_parity_max_abs": parity,
             "wall_s": time.perf_counter() - t_start,
+            "warnings": quality_warnings(metrics, corp),
         }
         write_text(work / "record.json", json.dumps(record, indent=1))
         _curves(history, work / "curves.png")
@@ -314,6 +315,26 @@ def train(
         if work.exists() and not keep_work:
             shutil.rmtree(work, ignore_errors=True)
     return Result(out, record)
+
+
+MIN_ACTIVE_MINUTES = 5.0  # common practice, not a measured limit: less speech rarely generalises to new speakers
+MAX_LEVEL_OVER_DB = 3.0  # median over-estimate of the high-band level on held-out speakers that earns a warning
+
+
+def quality_warnings(metrics: dict, corpus_summary: dict) -> list[str]:
+    """What a finished run should not hide: a network no better than its own codebook on held-out
+    speakers, a systematically too-loud high band, or very little training speech."""
+    out = []
+    lsd = metrics["val_envelope_lsd_high_db"]
+    if not lsd["neural"] < lsd["codebook"]:
+        out.append(f"on held-out speakers the network is no closer to the true envelope than its own codebook ({lsd['neural']:.2f} vs {lsd['codebook']:.2f} dB): train on more speech or for more epochs before using it")
+    level = metrics["val_median_level_error_db"]["neural"]
+    if level > MAX_LEVEL_OVER_DB:
+        out.append(f"the network over-estimates the high band's level by {level:+.2f} dB (median, held-out speakers): a too-loud band is harsh and tiring to hear; retrain (a larger over_weight, more speech) before using it")
+    minutes = 60 * corpus_summary["kept_active_hours"]
+    if minutes < MIN_ACTIVE_MINUTES:
+        out.append(f"only {minutes:.1f} minutes of active speech were kept for training (a rule of thumb asks for {MIN_ACTIVE_MINUTES:g} or more): expect errors on new speakers")
+    return out
 
 
 RESUME_FILE = "resume.pt"  # training state after the last finished epoch
