@@ -190,3 +190,22 @@ def test_a_long_call_keeps_no_verdicts_unless_asked(call_audio):
     hops = x.size // 80
     assert quiet.system.estimator.record().rejected.size == 0
     assert kept.system.estimator.record().rejected.size == hops
+
+
+def test_the_readme_embedding_example_runs_as_written():
+    import re
+    from pathlib import Path
+
+    from nenv.checkpoint import default_path
+
+    if default_path() is None:
+        pytest.skip("no default model")
+    text = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    blocks = re.findall(r"```python\n(.*?)```", text, flags=re.S)
+    assert len(blocks) == 1
+    env: dict = {}
+    exec(compile(blocks[0], "README.md", "exec"), env)
+    assert len(env["pcm"]) == 2 * 2 * 160  # 160 samples in, 320 out, two bytes each
+    assert env["ready"]["call-1"].size + env["tail"].size == 320 and np.max(np.abs(env["wide"])) > 0.05
+    np.testing.assert_allclose(np.concatenate([env["ready"]["call-1"], env["tail"]]), env["wide"], atol=1e-9)
+
