@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Callable, Iterable, Optional
 
 from nenv.errors import InputError, NenvError
-from nenv.files import same_path
+from nenv.files import is_within, same_path
 from nenv.streamfile import OUTPUT_SUFFIXES, FileResult, Options, extend_file, load_checkpoint
 
 INPUT_SUFFIXES = (".wav", ".flac", ".ogg", ".oga", ".aif", ".aiff", ".au", ".caf", ".w64", ".rf64", ".mp3")
@@ -43,12 +43,11 @@ def is_batch(inputs: list[Path]) -> bool:
 
 
 def _audio_files(folder: Path, exclude: Path) -> list[Path]:
-    ex = exclude.resolve()
     found = []
     for p in sorted(folder.rglob("*")):
         if not p.is_file() or p.suffix.lower() not in INPUT_SUFFIXES or any(part.startswith(".") for part in p.relative_to(folder).parts):
             continue
-        if ex == p.resolve() or ex in p.resolve().parents:
+        if is_within(p, exclude):
             continue  # never treat earlier outputs as inputs
         found.append(p)
     return found

@@ -58,6 +58,12 @@ def same_path(a: str | os.PathLike, b: str | os.PathLike) -> bool:
         return False
 
 
+def is_within(path: str | os.PathLike, folder: str | os.PathLike) -> bool:
+    """True when ``path`` is ``folder`` or lies below it (links resolved)."""
+    p, f = Path(path).resolve(), Path(folder).resolve()
+    return p == f or f in p.parents
+
+
 def check_distinct(path: str | os.PathLike, *, what: str, others: dict) -> None:
     """Raise OutputError when ``path`` (the file called ``what``) is one of ``others``
     (label -> path, None entries skipped): nenv never writes over a file the same command reads or writes."""

@@ -32,7 +32,7 @@ from nenv.checkpoint import CODEBOOK_FILE, FORMAT, FORMAT_VERSION, MODEL_FILE, S
 from nenv.errors import ConfigError, NenvError
 from nenv.estimators.codebook import Codebook
 from nenv.features import FeatureSettings, envelope_from_prediction
-from nenv.files import write_text
+from nenv.files import is_within, write_text
 from nenv.guard import GuardLimits, telephone_band_mismatch
 from nenv.settings import BAND_EDGE_HZ, WB_SR
 from nenv.train import corpus, dataset
@@ -113,7 +113,7 @@ def train(
     if out.is_dir() and any(out.iterdir()) and not (out / SETTINGS_FILE).is_file():
         raise ConfigError(f"'{out}' is not a nenv model folder (it has no {SETTINGS_FILE}): --force replaces model folders only; choose another folder")
     for label, inner in (("the corpus", recipe.corpus), ("the manifest", recipe.manifest), ("the cache folder", cache_dir)):
-        if inner and _within(Path(inner), out):
+        if inner and is_within(inner, out):
             raise ConfigError(f"{label} '{inner}' is inside '{out}', which training replaces as a whole: choose another folder for the model")
     if not out.parent.is_dir():
         raise ConfigError(f"cannot create '{out}': folder '{out.parent}' does not exist")
@@ -339,12 +339,6 @@ def quality_warnings(metrics: dict, corpus_summary: dict) -> list[str]:
 
 RESUME_FILE = "resume.pt"  # training state after the last finished epoch
 RECIPE_FILE = "run.json"  # the recipe and record id of the run a partial folder belongs to
-
-
-def _within(path: Path, folder: Path) -> bool:
-    """True when ``path`` is ``folder`` or lies below it (links resolved)."""
-    p, f = path.resolve(), folder.resolve()
-    return p == f or f in p.parents
 
 
 def partial_folder(out: str | os.PathLike) -> Path:
