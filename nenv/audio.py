@@ -246,6 +246,7 @@ def limit_peaks(y: np.ndarray, *, ceiling: float = PEAK_CEILING) -> tuple[np.nda
 
 _SUBTYPES = {".wav": "PCM_16", ".flac": "PCM_16", ".ogg": "VORBIS"}
 AUDIO_SUFFIXES = tuple(_SUBTYPES)
+READ_SUFFIXES = (".wav", ".flac", ".ogg", ".oga", ".aif", ".aiff", ".au", ".caf", ".w64", ".rf64", ".mp3")  # audio files nenv looks for in folders
 
 
 def write(path: str | os.PathLike, y: np.ndarray, *, sr: int, subtype: str | None = None) -> None:

@@ -17,11 +17,12 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterable, Optional
 
+from nenv.audio import READ_SUFFIXES
 from nenv.errors import InputError, NenvError
 from nenv.files import is_within, same_path
 from nenv.streamfile import OUTPUT_SUFFIXES, FileResult, Options, extend_file, load_checkpoint
 
-INPUT_SUFFIXES = (".wav", ".flac", ".ogg", ".oga", ".aif", ".aiff", ".au", ".caf", ".w64", ".rf64", ".mp3")
+INPUT_SUFFIXES = READ_SUFFIXES
 LIST_SUFFIXES = (".txt", ".lst")
 REPORT_NAME = "extend-report.csv"
 

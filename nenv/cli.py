@@ -60,7 +60,7 @@ MixOpt = Annotated[bool, typer.Option("--mix", help="Average all channels of a m
 @app.command()
 @_guarded
 def degrade(
-    wideband: Annotated[Path, typer.Argument(help="Wideband speech (16 kHz or more; wav, flac, ogg).")],
+    wideband: Annotated[Path, typer.Argument(help="Wideband speech (16 kHz or more; wav, flac, ogg, mp3, ...).")],
     narrowband: Annotated[Path, typer.Argument(help="Where to write the 8 kHz telephone-band result (.wav, .flac).")],
     law: Annotated[str, typer.Option(help="G.711 companding: mulaw (PCMU), alaw (PCMA) or none.")] = "none",
     level_dbov: Annotated[float, typer.Option(help="Active speech level of the result in dBov (0 dBov = full-scale square wave).")] = -26.0,

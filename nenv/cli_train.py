@@ -18,7 +18,7 @@ SetOpt = Annotated[list[str], typer.Option("--set", help="Override a recipe key:
 @app.command()
 @_guarded
 def survey(
-    corpus: Annotated[Path, typer.Argument(help="Folder of wideband recordings (wav, flac, ogg; any rate; sub-folders = speakers).")],
+    corpus: Annotated[Path, typer.Argument(help="Folder of wideband recordings (wav, flac, ogg, mp3, aiff and other formats soundfile reads; 16 kHz or more; sub-folders = speakers).")],
     out: Annotated[Path, typer.Option(help="Folder for survey.csv and survey.png (created if missing).")],
     config: RecipeOpt = None,
     set_: SetOpt = [],

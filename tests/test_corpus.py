@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 import soundfile as sf
@@ -50,20 +52,22 @@ def survey_corpus(tmp_path_factory, speech):
 
 
 def test_scan_and_speaker_rules(tmp_path):
-    for rel in ["a/s1/x.wav", "a/s1/y.flac", "a/s2/z.ogg", "b/notes.txt"]:
+    for rel in ["a/s1/x.wav", "a/s1/y.flac", "a/s2/z.ogg", "a/s3/w.mp3", "a/s3/v.aiff", "b/notes.txt", "a/s1/._x.wav", "a/.trash/t.wav"]:
         p = tmp_path / rel
         p.parent.mkdir(parents=True, exist_ok=True)
-        if p.suffix == ".txt":
+        if p.suffix == ".txt" or p.name.startswith("._"):  # a macOS resource fork: hidden, skipped
             p.write_text("x")
         else:
-            sf.write(p, np.zeros(160), 16000, format=p.suffix[1:].upper() if p.suffix != ".ogg" else "OGG", subtype=None if p.suffix != ".ogg" else "VORBIS")
+            fmt, subtype = {".ogg": ("OGG", "VORBIS"), ".mp3": ("MP3", "MPEG_LAYER_III"), ".aiff": ("AIFF", None)}.get(p.suffix, (p.suffix[1:].upper(), None))
+            sf.write(p, np.zeros(1600), 16000, format=fmt, subtype=subtype)
     found = corpus.scan(tmp_path)
-    assert [f.speaker for f in found] == ["a/s1", "a/s1", "a/s2"]
-    assert [f.speaker for f in corpus.scan(tmp_path, speaker_rule="depth:0")] == ["a", "a", "a"]
+    assert [Path(f.path).name for f in found] == ["x.wav", "y.flac", "z.ogg", "v.aiff", "w.mp3"]
+    assert [f.speaker for f in found] == ["a/s1", "a/s1", "a/s2", "a/s3", "a/s3"]
+    assert [f.speaker for f in corpus.scan(tmp_path, speaker_rule="depth:0")] == ["a"] * 5
     man = tmp_path / "m.csv"
     man.write_text("path,speaker\na/s1/x.wav,alice\na/s2/z.ogg,bob\n")
     assert [(f.speaker) for f in corpus.scan(tmp_path, manifest=str(man))] == ["alice", "bob"]
-    with pytest.raises(InputError, match="no .wav"):
+    with pytest.raises(InputError, match="no audio files"):
         corpus.scan(tmp_path / "b")
     with pytest.raises(InputError, match="does not exist"):
         corpus.scan(tmp_path / "missing")

@@ -39,7 +39,7 @@ from nenv.errors import ConfigError, InputError
 from nenv.settings import BAND_EDGE_HZ, CHANNEL_LOW_HZ, WB_SR
 from nenv.train.recipe import Recipe
 
-AUDIO_SUFFIXES = {".wav", ".flac", ".ogg"}
+AUDIO_SUFFIXES = audio.READ_SUFFIXES
 CLIFF_DB = 25.0  # dB: a drop this large within 600 Hz marks a band-limit cliff
 CLIFF_SEARCH_TOP_HZ = 7300.0  # Hz: highest cliff frequency searched (see the module docstring)
 TOP_DROP_DB = 12.0  # dB: 6.4-7.0 kHz over 7.3-7.6 kHz beyond this = rolled off near 7.2 kHz
@@ -63,7 +63,7 @@ def _speaker(path: Path, root: Path, rule: str) -> str:
 
 
 def scan(root: str | os.PathLike, *, speaker_rule: str = "parent", manifest: str = "") -> list[CorpusFile]:
-    """Every wav/flac/ogg file below ``root`` (sorted), with a speaker id.
+    """Every audio file below ``root`` (sorted; ``AUDIO_SUFFIXES``, hidden files and folders skipped), with a speaker id.
 
     The id comes from the path (``parent``: the folder holding the file, relative to
     root; ``depth:N``: the N-th folder below root) or from a manifest CSV with the
@@ -85,9 +85,9 @@ def scan(root: str | os.PathLike, *, speaker_rule: str = "parent", manifest: str
             p = Path(row["path"])
             out.append(CorpusFile(str(p if p.is_absolute() else r / p), row["speaker"]))
         return out
-    files = sorted(p for p in r.rglob("*") if p.is_file() and p.suffix.lower() in AUDIO_SUFFIXES)
+    files = sorted(p for p in r.rglob("*") if p.is_file() and p.suffix.lower() in AUDIO_SUFFIXES and not any(part.startswith(".") for part in p.relative_to(r).parts))
     if not files:
-        raise InputError(f"corpus folder '{r}' holds no .wav, .flac or .ogg files")
+        raise InputError(f"corpus folder '{r}' holds no audio files ({', '.join(AUDIO_SUFFIXES)})")
     return [CorpusFile(str(p), _speaker(p, r, speaker_rule)) for p in files]
 
 
