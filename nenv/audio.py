@@ -79,6 +79,8 @@ class Reader:
 
         p = Path(path)
         self.path = p
+        if mix and channel is not None:
+            raise InputError(f"--channel {channel} and --mix contradict each other: choose one channel, or the average of all")
         if not p.exists():
             raise InputError(f"input file '{p}' does not exist")
         if p.is_dir():

@@ -175,6 +175,7 @@ def test_f11_stereo_and_multichannel(tmp_path, speech):
     _refused(_run("extend", tmp_path / "quad.wav", tmp_path / "out.wav", "--channel", "4"), "channel=4 does not exist")
     _extended(_run("extend", tmp_path / "quad.wav", tmp_path / "out.wav", "--channel", "1"), tmp_path / "out.wav", speech.size)
     _extended(_run("extend", tmp_path / "quad.wav", tmp_path / "out2.wav", "--mix"), tmp_path / "out2.wav", speech.size)
+    _refused(_run("extend", tmp_path / "quad.wav", tmp_path / "out3.wav", "--channel", "1", "--mix"), "contradict")
 
 
 @pytest.mark.parametrize("sr", [4000, 11025, 16000, 22050, 44100, 48000, 96000, 192000])
