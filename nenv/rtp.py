@@ -42,6 +42,7 @@ import numpy as np
 
 from nenv import g711
 from nenv.audio import to_int16
+from nenv.errors import InputError
 from nenv.runtime import CallEngine
 
 PT_PCMU = 0
@@ -137,6 +138,17 @@ class RelayCounters:
     over_stream_limit: int = 0
     streams_opened: int = 0
     streams_closed: int = 0
+    send_errors: int = 0  # output packets the system refused to send (they are counted as sent for numbering)
+
+
+def _resolve(address: tuple[str, int]) -> tuple[str, int]:
+    """``(host, port)`` with the host resolved to an IPv4 address; InputError if it does not resolve."""
+    host, port = address
+    try:
+        info = socket.getaddrinfo(host, port, socket.AF_INET, socket.SOCK_DGRAM)
+    except (socket.gaierror, UnicodeError) as e:
+        raise InputError(f"cannot resolve the destination '{host}': {e.strerror if isinstance(e, socket.gaierror) else e}") from e
+    return info[0][4][0], info[0][4][1]
 
 
 class Relay:
@@ -164,7 +176,7 @@ class Relay:
         if not 96 <= payload_type_out <= 127:
             raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
         self.make_system = make_system
-        self.send_to = send_to
+        self.send_to = _resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
         self.pt_out = payload_type_out
         self.allowed = set(allowed_sources) if allowed_sources else None
         self.max_streams = max_streams
@@ -359,7 +371,10 @@ class Relay:
         n_full = len(buf) if final else len(buf) // packet * packet
         for s in range(0, n_full, packet):
             payload = buf[s : min(s + packet, n_full)]
-            self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload), self.send_to)
+            try:
+                self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload), self.send_to)
+            except OSError:  # no route, buffers full, ...: the packet is lost like one on the wire, the relay goes on
+                self.counters.send_errors += 1
             st.out_seq = (st.out_seq + 1) & 0xFFFF
             st.out_ts = (st.out_ts + len(payload) // 2) & 0xFFFFFFFF
             st.counters.packets_out += 1

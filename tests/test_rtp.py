@@ -110,6 +110,33 @@ def test_relay_drops_what_it_must(arctic_refs):
     relay.stop()
 
 
+def test_relay_resolves_its_destination_once_and_outlives_refused_sends():
+    import errno
+
+    from nenv.errors import InputError
+
+    with pytest.raises(InputError, match="cannot resolve"):
+        rtp.Relay(lambda: None, send_to=("nonexistent.invalid", 5000))  # RFC 2606 reserves .invalid
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("localhost", 9))
+    assert relay.send_to == ("127.0.0.1", 9)
+
+    class Refusing:  # a system that refuses every datagram (no route, buffers full)
+        def sendto(self, data, address):
+            raise OSError(errno.ENETUNREACH, "Network is unreachable")
+
+        def close(self):
+            pass
+
+    relay.out.close()
+    relay.out = Refusing()
+    for seq in range(10):
+        relay.handle(rtp.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=5, payload=b"\x7f" * 160), ("127.0.0.1", 9))
+    c = relay.streams[5].counters
+    assert c.packets == 10 and c.packets_out >= 8 and relay.counters.send_errors == c.packets_out
+    relay.stop()
+    assert relay.counters.send_errors == relay.closed[5].packets_out  # the tail too: refused, counted, no exception
+
+
 def test_dynamic_payload_type_is_required():
     with pytest.raises(ValueError, match="96-127"):
         rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=8)
