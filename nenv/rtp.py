@@ -147,7 +147,7 @@ def _resolve(address: tuple[str, int]) -> tuple[str, int]:
     try:
         info = socket.getaddrinfo(host, port, socket.AF_INET, socket.SOCK_DGRAM)
     except (socket.gaierror, UnicodeError) as e:
-        raise InputError(f"cannot resolve the destination '{host}': {e.strerror if isinstance(e, socket.gaierror) else e}") from e
+        raise InputError(f"cannot resolve '{host}': {e.strerror if isinstance(e, socket.gaierror) else e}") from e
     return info[0][4][0], info[0][4][1]
 
 
@@ -178,7 +178,7 @@ class Relay:
         self.make_system = make_system
         self.send_to = _resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
         self.pt_out = payload_type_out
-        self.allowed = set(allowed_sources) if allowed_sources else None
+        self.allowed = {_resolve((a, 0))[0] for a in allowed_sources} if allowed_sources else None  # names -> addresses, once
         self.max_streams = max_streams
         self.window = reorder_window
         self.idle = idle_timeout_s

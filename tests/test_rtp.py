@@ -117,8 +117,10 @@ def test_relay_resolves_its_destination_once_and_outlives_refused_sends():
 
     with pytest.raises(InputError, match="cannot resolve"):
         rtp.Relay(lambda: None, send_to=("nonexistent.invalid", 5000))  # RFC 2606 reserves .invalid
-    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("localhost", 9))
-    assert relay.send_to == ("127.0.0.1", 9)
+    with pytest.raises(InputError, match="cannot resolve"):
+        rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), allowed_sources=["nonexistent.invalid"])
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("localhost", 9), allowed_sources=["localhost"])
+    assert relay.send_to == ("127.0.0.1", 9) and relay.allowed == {"127.0.0.1"}  # names become the addresses packets carry
 
     class Refusing:  # a system that refuses every datagram (no route, buffers full)
         def sendto(self, data, address):
