@@ -147,5 +147,5 @@ def relay(
         for s_, h in old.items():
             sig.signal(s_, h)
     for ssrc, c in r.closed.items():
-        _say(f"stream {ssrc:08x}: {c.packets} packets in, {c.packets_out} out, {c.lost_packets} lost ({c.filled_samples} samples filled), {c.late_or_duplicate} late or duplicate, {c.silence_filled} samples of suppressed silence filled, {c.timing_restarts} timing restarts, {c.resyncs} sender restarts, {c.guard_fallbacks} guard fallbacks")
-    _say(f"relay: {r.counters.streams_opened} streams, {r.counters.malformed} malformed, {r.counters.oversized} oversized, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit, {r.counters.send_errors} packets the system would not send")
+        _say(f"stream {ssrc:08x}: {c.packets} packets in, {c.packets_out} out, {c.lost_packets} lost ({c.filled_samples} samples filled), {c.late_or_duplicate} late or duplicate, {c.silence_filled} samples of suppressed silence filled, {c.timing_restarts} timing restarts, {c.resyncs} sender restarts, {c.source_changes} source address changes, {c.guard_fallbacks} guard fallbacks")
+    _say(f"relay: {r.counters.streams_opened} streams, {r.counters.malformed} malformed, {r.counters.oversized} oversized, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit, {r.counters.ssrc_conflicts} from a second sender of an SSRC in use, {r.counters.send_errors} packets the system would not send")

@@ -22,7 +22,12 @@ is dropped (``oversized``); a timestamp jump between consecutive packets
 a longer one restarts the timing (``timing_restarts``); a sender that
 restarts with the same SSRC but far-away sequence numbers is followed after
 ``RESYNC_AFTER`` consecutive out-of-place packets (``resyncs``); a new SSRC
-(a restarted sender) opens a new stream. Memory per stream is bounded (the
+(a restarted sender) opens a new stream. An SSRC already in use by a stream
+arriving from another address is a collision or a loop (RFC 3550 section 8.2):
+those packets are dropped (``ssrc_conflicts``), so two senders with the same
+SSRC never mix, unless the stream's own sender has been quiet for
+``REBIND_AFTER_S`` (its address or port changed): then the stream follows the
+new address (``source_changes``). Memory per stream is bounded (the
 reorder window holds at most ``reorder_window + 1`` packets); the counters of
 closed streams are kept for the last ``MAX_CLOSED`` streams only.
 """
@@ -53,6 +58,7 @@ MAX_FILL = 8000  # samples: longest gap filled with silence (1 s); longer gaps r
 HEADER = struct.Struct("!BBHII")
 MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
 RESYNC_AFTER = 16  # consecutive late-looking packets after which a stream follows the new numbering
+REBIND_AFTER_S = 0.5  # quiet time of a stream's sender after which its SSRC may come from a new address
 MAX_CLOSED = 1024  # closed streams whose counters are kept
 RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
 EXPIRY_CHECK_S = 0.1  # how often idle streams are looked for
@@ -110,6 +116,7 @@ class StreamCounters:
     timing_restarts: int = 0  # timestamp jumps too long to fill
     resyncs: int = 0  # sender restarts with the same SSRC
     guard_fallbacks: int = 0  # hops where the guard replaced the network's envelope by the codebook's
+    source_changes: int = 0  # the sender's address or port changed after a quiet spell (followed)
 
 
 @dataclass
@@ -126,6 +133,7 @@ class _Stream:
     out_ts: int = 0
     late_run: int = 0
     call_id: str = ""
+    source: tuple = ()  # the transport address (host, port) the stream's packets come from
     counters: StreamCounters = field(default_factory=StreamCounters)
 
 
@@ -138,6 +146,7 @@ class RelayCounters:
     over_stream_limit: int = 0
     streams_opened: int = 0
     streams_closed: int = 0
+    ssrc_conflicts: int = 0  # packets dropped: an SSRC in use by another sender (collision or loop)
     send_errors: int = 0  # output packets the system refused to send (they are counted as sent for numbering)
 
 
@@ -275,6 +284,14 @@ class Relay:
             self.counters.oversized += 1
             return
         st = self.streams.get(pkt.ssrc)
+        if st is not None and st.source != addr:
+            # the same SSRC from another transport address: a collision or a loop (RFC 3550 section 8.2),
+            # unless the first source has gone quiet (its NAT binding or port changed): then follow it
+            if time.monotonic() - st.last_seen < REBIND_AFTER_S:
+                self.counters.ssrc_conflicts += 1
+                return
+            st.source = addr
+            st.counters.source_changes += 1
         if st is None:
             if len(self.streams) >= self.max_streams:
                 self.counters.over_stream_limit += 1
@@ -286,6 +303,7 @@ class Relay:
                 st = _Stream(None, LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic(), call_id=f"{pkt.ssrc:08x}-{self.counters.streams_opened}")
                 self.multi.open(st.call_id)
                 self._by_call[st.call_id] = st
+            st.source = addr
             st.out_seq = int.from_bytes(os.urandom(2), "big")
             st.out_ts = int.from_bytes(os.urandom(4), "big")
             self.streams[pkt.ssrc] = st

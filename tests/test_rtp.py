@@ -139,6 +139,29 @@ def test_relay_resolves_its_destination_once_and_outlives_refused_sends():
     assert relay.counters.send_errors == relay.closed[5].packets_out  # the tail too: refused, counted, no exception
 
 
+def test_two_senders_with_one_ssrc_never_mix_and_a_moved_sender_is_followed(monkeypatch):
+    """RFC 3550 section 8.2: one SSRC from a second transport address is a collision or a loop."""
+    monkeypatch.setattr(rtp, "REBIND_AFTER_S", 0.2)
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
+    relay.out.close()
+    relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+    first, second = ("10.0.0.1", 4000), ("10.0.0.2", 4000)
+    loud, other = b"\x10" * 160, b"\x90" * 160  # two different payloads (G.711 mu-law codes)
+    for seq in range(5):  # both send SSRC 1 at once (fixed SSRCs are common in simple devices)
+        relay.handle(rtp.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=1, payload=loud), first)
+        relay.handle(rtp.build(payload_type=0, seq=100 + seq, timestamp=999 + 160 * seq, ssrc=1, payload=other), second)
+    st = relay.streams[1]
+    assert relay.counters.ssrc_conflicts == 5 and st.counters.packets == 5 and st.counters.late_or_duplicate == 0
+    assert st.source == first and st.counters.samples_in == 5 * 160
+    time.sleep(0.25)  # the first sender goes quiet, then its packets come from a new port (NAT rebinding)
+    moved = ("10.0.0.1", 4002)
+    relay.handle(rtp.build(payload_type=0, seq=5, timestamp=800, ssrc=1, payload=loud), moved)
+    assert st.source == moved and st.counters.source_changes == 1 and st.counters.packets == 6
+    relay.handle(rtp.build(payload_type=0, seq=6, timestamp=960, ssrc=1, payload=loud), first)  # the old port, right away: refused
+    assert relay.counters.ssrc_conflicts == 6
+    relay.stop()
+
+
 def test_dynamic_payload_type_is_required():
     with pytest.raises(ValueError, match="96-127"):
         rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=8)
