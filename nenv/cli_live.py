@@ -11,7 +11,7 @@ import typer
 
 from nenv.streamfile import watch
 from nenv.cli import _default_method, _guarded, _say, app
-from nenv.errors import InputError
+from nenv.errors import InputError, OutputError
 
 class _Terminate(Exception):
     pass
@@ -57,6 +57,7 @@ def stream(
 
     old = {s: sig.signal(s, stop) for s in (sig.SIGTERM, sig.SIGINT)}
     leftover = b""
+    reader_gone = False  # stdout's reader closed the pipe: nothing more can be delivered
     try:
         while True:
             try:
@@ -78,6 +79,9 @@ def stream(
                 out.flush()
     except _Terminate:
         pass
+    except BrokenPipeError:
+        reader_gone = True
+        os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())  # so that exiting does not fail on the dead pipe again
     finally:
         for s, h in old.items():
             sig.signal(s, h)
@@ -86,13 +90,19 @@ def stream(
     if tally is not None:
         tally.limit = -(-engine.samples_in // 80)  # the tail padding is not part of the call
     y = engine.flush()
-    if y.size:
-        out.write(to_int16(y).astype("<i2").tobytes())
-    out.flush()
-    if writer is not None:
+    if y.size and not reader_gone:
+        try:
+            out.write(to_int16(y).astype("<i2").tobytes())
+            out.flush()
+        except BrokenPipeError:
+            reader_gone = True
+            os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())
+    if writer is not None:  # the guard's record of the call is completed even when its output was cut short
         writer.summary(source=call_id, group=group, tally=tally, seconds=engine.samples_in / 8000)
         writer.close()
     _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
+    if reader_gone:
+        raise OutputError("standard output was closed by its reader before the call ended: the rest of the extended audio was not delivered")
 
 
 def _hostport(text: str, what: str) -> tuple[str, int]:

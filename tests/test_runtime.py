@@ -131,6 +131,29 @@ def test_stream_says_when_s16le_input_ends_inside_a_sample():
     assert b"odd byte" in odd.stderr and b"odd byte" not in whole.stderr
 
 
+def test_stream_whose_reader_goes_away_says_so_and_completes_its_record(tmp_path, call_audio):
+    import json
+    import subprocess
+    import sys
+
+    from nenv.audio import to_int16
+    from nenv.checkpoint import default_path
+
+    if default_path() is None:
+        pytest.skip("no default model")
+    _, x = call_audio
+    (tmp_path / "in.raw").write_bytes(to_int16(np.tile(x, 4)).astype("<i2").tobytes())
+    with open(tmp_path / "in.raw", "rb") as stdin:
+        p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--record", tmp_path / "r.jsonl"], stdin=stdin, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        assert len(p.stdout.read(3200)) == 3200  # the reader takes 0.1 s of output, then hangs up
+        p.stdout.close()
+        err = p.stderr.read().decode()
+        assert p.wait(timeout=120) == 2
+    assert "closed by its reader" in err and "Traceback" not in err and "Exception ignored" not in err
+    kinds = [json.loads(line)["type"] for line in (tmp_path / "r.jsonl").read_text().splitlines()]
+    assert kinds[0] == "header" and kinds[-1] == "summary"
+
+
 def test_stream_flushes_its_tail_on_sigterm(call_audio):
     import signal
     import subprocess
