@@ -150,6 +150,9 @@ def _png(fig) -> str:
     return base64.b64encode(buf.getvalue()).decode()
 
 
+MAX_COLUMNS = 2000  # time columns of a spectrogram in the report
+
+
 def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> dict[str, str]:
     """Base64 PNGs: rejection timeline per source, and each check's values against its threshold."""
     import matplotlib
@@ -159,12 +162,17 @@ def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> di
 
     out = {}
     sources = [r.source for r in rows if r.rejected][:max_sources]
+    by_source: dict[str, list[dict]] = {}
+    for r in rec.rejects:
+        by_source.setdefault(r["source"], []).append(r)
     fig, ax = plt.subplots(figsize=(10, 0.35 * max(len(sources), 3) + 1.2), layout="constrained")
     colours = dict(zip(CHECKS, plt.cm.tab10.colors))
-    for i, src in enumerate(sources):
-        for r in rec.rejects:
-            if r["source"] == src:
-                ax.scatter(r["t"], i, s=12, color=colours[r["reasons"][0]] if r["reasons"] else "k", marker="|")
+    for i, src in enumerate(sources):  # one scatter per source and first reason: a long call may have many thousand rejected hops
+        first: dict[str | None, list[float]] = {}
+        for r in by_source.get(src, []):
+            first.setdefault(r["reasons"][0] if r["reasons"] else None, []).append(r["t"])
+        for reason, ts in first.items():
+            ax.scatter(ts, [i] * len(ts), s=12, color=colours.get(reason, "k"), marker="|")
     ax.set_yticks(range(len(sources)), [s[-35:] for s in sources], fontsize=7)
     ax.set_xlabel("time in file or call [s]")
     ax.set_title("rejected hops (colour: first reason)", fontsize=9)
@@ -173,6 +181,7 @@ def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> di
     ax.legend(fontsize=7, ncol=len(CHECKS), loc="upper right")
     out["timeline"] = _png(fig)
     lim = rec.headers[0]["limits"] if rec.headers else {}
+    hop_s = rec.headers[0].get("hop_s", 0.01) if rec.headers else 0.01
     fig, axes = plt.subplots(1, 4, figsize=(13, 3), layout="constrained")
     for ax, (check, key) in zip(axes, VALUE_OF.items()):
         vals = [r["values"][key] for r in rec.rejects if r["values"].get(key) is not None]
@@ -208,12 +217,16 @@ def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> di
                 ax.axis("off")
                 continue
             y, sr = sf.read(path, always_2d=True)
-            spec = 10 * np.log10(np.maximum(measures.power_spectra(y[:, 0]), 1e-12)).T
-            t = np.arange(spec.shape[1]) * measures.HOP / sr
-            ax.pcolormesh(t, np.fft.rfftfreq(measures.N_FFT, 1 / sr) / 1000, spec, vmin=spec.max() - 80, vmax=spec.max(), cmap="magma", shading="auto", rasterized=True)
-            for x in rec.rejects:
-                if x["source"] == r.source:
-                    ax.axvspan(x["t"], x["t"] + 0.01, ymin=0.96, ymax=1.0, color="cyan")
+            p = measures.power_spectra(y[:, 0])
+            k = -(-p.shape[0] // MAX_COLUMNS)  # frames per image column: the figure is ~900 px wide, so a long call is pooled
+            if k > 1:
+                p = np.pad(p, ((0, (-p.shape[0]) % k), (0, 0))).reshape(-1, k, p.shape[1]).max(axis=1)  # the loudest frame of each column
+            spec = 10 * np.log10(np.maximum(p, 1e-12)).T
+            top = sr / 2000
+            ax.imshow(spec, origin="lower", aspect="auto", extent=(0, p.shape[0] * k * measures.HOP / sr, 0, top), vmin=spec.max() - 80, vmax=spec.max(), cmap="magma", interpolation="nearest")
+            # runs of consecutive rejected hops as one bar each, along the top 4% of the frequency axis
+            runs = segments([x["t"] for x in by_source.get(r.source, [])], hop_s=hop_s, join_s=hop_s / 2, pad_s=0.0)
+            ax.broken_barh([(a, b - a) for a, b in runs], (0.96 * top, 0.04 * top), color="cyan")
             ax.set_title(f"{r.source[-70:]}: output, rejected hops marked in cyan ({r.rejected} of {r.hops})", fontsize=8)
             ax.set_ylabel("kHz")
         axes[-1, 0].set_xlabel("s")

@@ -77,6 +77,35 @@ def test_audit_command_writes_report(record_file, tmp_path):
     assert len(rows) == 3
 
 
+def test_report_figures_draw_runs_not_hops(record_file, monkeypatch):
+    """A long call with thousands of rejected hops is drawn with a few artists, not one per hop
+    (12,000 rejected hops took 65 s and 800 MB before; the structure, not the time, is checked here)."""
+    import matplotlib.axes
+
+    from nenv import audit
+
+    rec = records.read([record_file])
+    tone = [r for r in rec.rejects if r["source"].endswith("tone.wav")]
+    assert len(tone) > 50
+    # the tone's rejected hops again at later times: 40 copies = one long run, as a long call would give
+    rec.rejects.extend({**r, "t": r["t"] + 2.0 * k} for k in range(1, 40) for r in tone)
+    calls = {"scatter": 0, "broken_barh": 0, "axvspan": 0}
+    for name in calls:
+        original = getattr(matplotlib.axes.Axes, name)
+
+        def counted(self, *a, _name=name, _original=original, **kw):
+            calls[_name] += 1
+            return _original(self, *a, **kw)
+
+        monkeypatch.setattr(matplotlib.axes.Axes, name, counted)
+    figs = audit.figures(rec, table(rec))
+    assert set(figs) == {"timeline", "values", "worst"}
+    n_reasons = len(audit.CHECKS) + 1
+    assert calls["scatter"] <= 2 * n_reasons + len(audit.CHECKS)  # per source and first reason, plus the legend's
+    assert calls["broken_barh"] <= 2 and calls["axvspan"] == 0  # one bar set per drawn source
+    assert audit.segments([r["t"] for r in rec.rejects if r["source"] == tone[0]["source"]], hop_s=0.01, join_s=0.005, pad_s=0.0)[0][1] > 40
+
+
 def test_not_a_record_is_refused(tmp_path):
     p = tmp_path / "x.jsonl"
     p.write_text('{"type": "header", "schema": "something-else", "version": 1}\n')
