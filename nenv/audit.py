@@ -150,9 +150,6 @@ def _png(fig) -> str:
     return base64.b64encode(buf.getvalue()).decode()
 
 
-MAX_COLUMNS = 2000  # time columns of a spectrogram in the report
-
-
 def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> dict[str, str]:
     """Base64 PNGs: rejection timeline per source, and each check's values against its threshold."""
     import matplotlib
@@ -207,7 +204,7 @@ def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> di
 
         import soundfile as sf
 
-        from nenv import measures
+        from nenv.figures import spectrogram_db
 
         fig, axes = plt.subplots(len(worst), 1, figsize=(10, 2.4 * len(worst)), layout="constrained", squeeze=False)
         for ax, r in zip(axes[:, 0], worst):
@@ -217,13 +214,9 @@ def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> di
                 ax.axis("off")
                 continue
             y, sr = sf.read(path, always_2d=True)
-            p = measures.power_spectra(y[:, 0])
-            k = -(-p.shape[0] // MAX_COLUMNS)  # frames per image column: the figure is ~900 px wide, so a long call is pooled
-            if k > 1:
-                p = np.pad(p, ((0, (-p.shape[0]) % k), (0, 0))).reshape(-1, k, p.shape[1]).max(axis=1)  # the loudest frame of each column
-            spec = 10 * np.log10(np.maximum(p, 1e-12)).T
+            spec, col_s = spectrogram_db(y[:, 0])  # a long call is pooled to the figure's width
             top = sr / 2000
-            ax.imshow(spec, origin="lower", aspect="auto", extent=(0, p.shape[0] * k * measures.HOP / sr, 0, top), vmin=spec.max() - 80, vmax=spec.max(), cmap="magma", interpolation="nearest")
+            ax.imshow(spec, origin="lower", aspect="auto", extent=(0, spec.shape[1] * col_s, 0, top), vmin=spec.max() - 80, vmax=spec.max(), cmap="magma", interpolation="nearest")
             # runs of consecutive rejected hops as one bar each, along the top 4% of the frequency axis
             runs = segments([x["t"] for x in by_source.get(r.source, [])], hop_s=hop_s, join_s=hop_s / 2, pad_s=0.0)
             ax.broken_barh([(a, b - a) for a, b in runs], (0.96 * top, 0.04 * top), color="cyan")

@@ -7,7 +7,7 @@ from typing import Sequence
 
 import numpy as np
 
-from nenv import measures
+from nenv import lpc, measures
 from nenv.files import atomic_output, check_output
 from nenv.settings import BAND_EDGE_HZ, WB_SR
 
@@ -15,8 +15,34 @@ FIGURE_SUFFIXES = (".png", ".svg", ".pdf")
 DYNAMIC_RANGE_DB = 80.0  # dB shown below each figure's loudest bin
 
 
-def _db(y: np.ndarray) -> np.ndarray:
-    return 10 * np.log10(np.maximum(measures.power_spectra(y), 1e-20)).T
+MAX_COLUMNS = 2000  # time columns drawn per spectrogram: more than any figure's pixels, so a long signal is pooled
+BLOCK_FRAMES = 4096  # frames analysed at a time (bounded memory for long signals)
+
+
+def spectrogram_db(y: np.ndarray, *, max_columns: int = MAX_COLUMNS) -> tuple[np.ndarray, float]:
+    """Power spectrogram of a 16 kHz signal in dB, on :func:`nenv.measures.power_spectra`'s grid,
+    ready to draw: [shape=(N_FFT//2+1, columns)] and the seconds each column spans.
+
+    A signal longer than ``max_columns`` frames is pooled: each column holds, per bin, the loudest
+    of ``k`` consecutive frames (so short events stay visible). Frames are analysed in blocks, so
+    memory stays bounded whatever the length.
+    """
+    n_fft, hop = measures.N_FFT, measures.HOP
+    n_frames = 1 + y.size // hop  # frames of the signal padded by n_fft/2 on both sides
+    k = max(1, -(-n_frames // max_columns))
+    step = k * max(1, BLOCK_FRAMES // k)
+    padded = np.pad(np.asarray(y, dtype=np.float64), (n_fft // 2, n_fft // 2))
+    w = 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n_fft) / n_fft)
+    out = np.empty((-(-n_frames // k), n_fft // 2 + 1))
+    for f0 in range(0, n_frames, step):
+        n = min(step, n_frames - f0)
+        frames = lpc.hop_frames(padded[None, f0 * hop :], frame_length=n_fft, hop_length=hop, n_frames=n)[0]
+        spec = np.fft.rfft(frames * w, axis=-1)
+        p = (spec.real**2 + spec.imag**2) / np.sum(w * w)
+        if n % k:
+            p = np.concatenate([p, np.zeros((k - n % k, p.shape[1]))])
+        out[f0 // k : f0 // k + p.shape[0] // k] = p.reshape(-1, k, p.shape[1]).max(axis=1)
+    return 10 * np.log10(np.maximum(out, 1e-20)).T, k * hop / WB_SR
 
 
 def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: str | os.PathLike, *, title: str = "", dpi: int = 110) -> None:
@@ -33,8 +59,8 @@ def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: s
     p = check_output(path, suffixes=FIGURE_SUFFIXES)
     n_cols = len(panels)
     n_rows = max(len(c) for c in panels)
-    specs = [[_db(y) for _, y in col] for col in panels]
-    top = max(s.max() for col in specs for s in col)
+    specs = [[spectrogram_db(y) for _, y in col] for col in panels]
+    top = max(s.max() for col in specs for s, _ in col)
     fig, axes = plt.subplots(n_rows, n_cols, figsize=(4.2 * n_cols if n_cols > 1 else 9.0, 1.9 * n_rows + 0.6), squeeze=False, sharey=True, layout="constrained")
     image = None
     for c, col in enumerate(panels):
@@ -44,10 +70,8 @@ def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: s
                 ax.axis("off")
                 continue
             label, y = col[r]
-            s = specs[c][r]
-            t = np.arange(s.shape[1]) * measures.HOP / WB_SR
-            f = np.fft.rfftfreq(measures.N_FFT, 1 / WB_SR) / 1000
-            image = ax.pcolormesh(t, f, s, vmin=top - DYNAMIC_RANGE_DB, vmax=top, cmap="magma", shading="auto", rasterized=True)
+            s, col_s = specs[c][r]
+            image = ax.imshow(s, origin="lower", aspect="auto", extent=(0, s.shape[1] * col_s, 0, WB_SR / 2000), vmin=top - DYNAMIC_RANGE_DB, vmax=top, cmap="magma", interpolation="nearest")
             ax.axhline(BAND_EDGE_HZ / 1000, color="white", lw=0.6, ls="--", alpha=0.7)
             ax.set_title(label, fontsize=9, loc="left")
             if c == 0:

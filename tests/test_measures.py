@@ -80,3 +80,19 @@ def test_wb_pesq_prefers_a_quieter_added_band_even_when_it_is_the_true_one(arcti
     assert measures.lsd(ref, trimmed, band=measures.HIGH_BAND) > measures.lsd(ref, true_band, band=measures.HIGH_BAND)
     assert measures.pesq_wb(ref, trimmed) > measures.pesq_wb(ref, true_band) + 0.1
     assert measures.pesq_wb(ref, trimmed) > measures.pesq_wb(ref, base) + 0.1
+
+
+def test_drawn_spectrograms_are_the_measures_grid_pooled_by_the_loudest_frame(rng):
+    """Figures draw measures.power_spectra exactly; a long signal is pooled (max per bin), in blocks."""
+    from nenv import figures
+
+    y = rng.standard_normal(160 * 5000 + 37)  # 50 s: more frames than one analysis block
+    p = measures.power_spectra(y)
+    full, col_s = figures.spectrogram_db(y, max_columns=10**9)
+    np.testing.assert_array_equal(full, 10 * np.log10(np.maximum(p, 1e-20)).T)
+    assert col_s == pytest.approx(0.01)
+    pooled, col_s = figures.spectrogram_db(y, max_columns=7)
+    k = -(-p.shape[0] // 7)
+    want = np.pad(p, ((0, (-p.shape[0]) % k), (0, 0))).reshape(-1, k, p.shape[1]).max(axis=1)
+    np.testing.assert_array_equal(pooled, 10 * np.log10(np.maximum(want, 1e-20)).T)
+    assert pooled.shape == (257, 7) and col_s == pytest.approx(k * 0.01)
