@@ -70,9 +70,12 @@ def degrade(
     mix: MixOpt = False,
 ) -> None:
     """Simulate a telephone channel: 300-3400 Hz band-pass, 8 kHz, optional G.711 and noise."""
-    from nenv import audio
+    import numpy as np
+
+    from nenv import audio, g711
     from nenv import channel as chan
     from nenv.files import check_distinct, check_output
+    from nenv.g711 import LAWS
 
     out = check_output(narrowband, suffixes=(".wav", ".flac"))
     check_distinct(out, what="the output", others={"the input": wideband})
@@ -81,9 +84,17 @@ def degrade(
         raise InputError(f"'{wideband}' is digital silence (every sample is zero)")
     if a.sr < 16000:
         raise InputError(f"'{wideband}' is sampled at {a.sr} Hz: degrade needs wideband input (16 kHz or more)")
-    nb = chan.telephone(a.y, sr=a.sr, law=law, level_dbov=level_dbov, snr_db=snr_db, seed=seed)
+    if law not in LAWS:
+        raise InputError(f"--law {law} is not known: choose one of {', '.join(LAWS)}")
+    nb = chan.telephone(a.y, sr=a.sr, level_dbov=level_dbov, snr_db=snr_db, seed=seed)  # linear: clipping is counted before coding
+    ceiling = 32767 / 32768 if law == "none" else float(np.abs(g711.decode(np.arange(256, dtype=np.uint8), law=law)).max())
+    clipped = int(np.count_nonzero(np.abs(nb) > ceiling))
+    if law != "none":
+        nb = g711.compand(nb, law=law)  # the channel's last step, as chan.telephone(..., law=law) does it
     audio.write(out, nb, sr=8000)
     _say(f"wrote {out} (8 kHz, {nb.size / 8000:.2f} s, law={law}, {level_dbov:g} dBov{'' if snr_db is None else f', SNR {snr_db:g} dB'})")
+    if clipped:
+        _say(f"nenv: warning: {clipped} sample(s) ({100 * clipped / nb.size:.2f}%) reached full scale and were clipped: lower --level-dbov (speech on telephone lines sits near -26 dBov)")
 
 
 @app.command()

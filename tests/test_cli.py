@@ -127,6 +127,20 @@ def test_bad_inputs_get_one_clear_line_and_no_output(tmp_path):
     assert leftovers == []
 
 
+@pytest.mark.parametrize("law", ["none", "mulaw"])
+def test_degrade_warns_when_the_level_clips(tmp_path, law):
+    from nenv import channel
+    from nenv.audio import to_int16
+
+    res = _run("degrade", ARCTIC[0], tmp_path / "loud.wav", "--law", law, "--level-dbov", "6")
+    assert res.exit_code == 0 and "were clipped" in res.stderr
+    y, _ = sf.read(tmp_path / "loud.wav", dtype="int16")
+    ref, sr = sf.read(ARCTIC[0])
+    np.testing.assert_array_equal(y, to_int16(channel.telephone(ref, sr=sr, law=law, level_dbov=6.0)))  # the channel, unchanged
+    quiet = _run("degrade", ARCTIC[0], tmp_path / "nominal.wav", "--law", law)
+    assert quiet.exit_code == 0 and "clipped" not in quiet.stderr
+
+
 def test_degrade_refuses_narrowband(tmp_path):
     p = _write(tmp_path / "nb.wav", 0.1 * np.ones(800), 8000)
     _assert_user_error(_run("degrade", p, tmp_path / "o.wav"), "wideband")
