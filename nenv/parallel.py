@@ -16,6 +16,7 @@ Its workers need nenv installed and must see the same paths as this machine
 from __future__ import annotations
 
 import os
+import re
 from typing import Callable, Iterator, Optional, Sequence
 
 from nenv.errors import InputError
@@ -110,8 +111,14 @@ def in_order(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, sch
     return out
 
 
+SCHEDULER_ADDRESS = re.compile(r"(?:[a-z][a-z0-9+]*://)?(?:\[[^\]]+\]|[^:/\[\]\s]+):\d{1,5}")  # [tcp://]HOST:PORT
+
+
 def dask_client(scheduler: str):
-    """A dask.distributed client for the scheduler at ``scheduler``; InputError if unreachable."""
+    """A dask.distributed client for the scheduler at ``scheduler``; InputError if malformed or unreachable."""
+    if not SCHEDULER_ADDRESS.fullmatch(scheduler):
+        # checked before dask sees it: a client that fails inside its constructor hangs the exit for 20 s
+        raise InputError(f"--scheduler {scheduler!r} must look like tcp://HOST:PORT, e.g. tcp://10.0.0.5:8786")
     try:
         from distributed import Client
     except ImportError as e:

@@ -180,6 +180,18 @@ def test_dask_cluster_gives_the_same_outputs(tree, tmp_path):
     assert res.exit_code == 2 and "cannot reach the dask scheduler" in res.stderr
 
 
+@pytest.mark.parametrize("address", ["nonsense", "tcp://host-without-port", "10.0.0.5:port"])
+def test_a_malformed_scheduler_address_is_refused_before_dask_sees_it(tmp_path, address):
+    import subprocess
+    import sys
+
+    (tmp_path / "calls").mkdir()
+    sf.write(tmp_path / "calls" / "a.wav", 0.1 * np.sin(np.arange(8000) * 0.3), 8000)
+    # a real process: the hang this prevents came at interpreter exit (a half-made client closing for 20 s)
+    res = subprocess.run([sys.executable, "-m", "nenv", "extend", tmp_path / "calls", tmp_path / "out", "--method", "imaging", "--scheduler", address], capture_output=True, text=True, timeout=120)
+    assert res.returncode == 2 and "must look like tcp://HOST:PORT" in res.stderr and "Traceback" not in res.stderr
+
+
 def test_streamed_file_equals_offline_pipeline(tmp_path):
     """extend_file (blocks through the streaming engine) == pipeline.extend on the whole signal, in int16."""
     from nenv import pipeline
