@@ -31,14 +31,11 @@ def spectrogram_db(y: np.ndarray, *, max_columns: int = MAX_COLUMNS) -> tuple[np
     n_frames = 1 + y.size // hop  # frames of the signal padded by n_fft/2 on both sides
     k = max(1, -(-n_frames // max_columns))
     step = k * max(1, BLOCK_FRAMES // k)
-    padded = np.pad(np.asarray(y, dtype=np.float64), (n_fft // 2, n_fft // 2))
-    w = 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n_fft) / n_fft)
+    padded = np.pad(np.asarray(y, dtype=np.float64), (n_fft // 2, n_fft // 2))  # as measures.power_spectra frames it
     out = np.empty((-(-n_frames // k), n_fft // 2 + 1))
     for f0 in range(0, n_frames, step):
         n = min(step, n_frames - f0)
-        frames = lpc.hop_frames(padded[None, f0 * hop :], frame_length=n_fft, hop_length=hop, n_frames=n)[0]
-        spec = np.fft.rfft(frames * w, axis=-1)
-        p = (spec.real**2 + spec.imag**2) / np.sum(w * w)
+        p = measures.frame_power(lpc.hop_frames(padded[None, f0 * hop :], frame_length=n_fft, hop_length=hop, n_frames=n)[0])
         if n % k:
             p = np.concatenate([p, np.zeros((k - n % k, p.shape[1]))])
         out[f0 // k : f0 // k + p.shape[0] // k] = p.reshape(-1, k, p.shape[1]).max(axis=1)

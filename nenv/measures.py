@@ -42,8 +42,13 @@ def _window() -> np.ndarray:
 
 def power_spectra(y: np.ndarray) -> np.ndarray:
     """Short-time power spectra [shape=(n_frames, N_FFT//2+1)] on the grid above."""
+    return frame_power(_frames(y))
+
+
+def frame_power(frames: np.ndarray) -> np.ndarray:
+    """Power spectra of raw frames [shape=(n, N_FFT)]: Hann window, ``|X|**2 / sum(w**2)``."""
     w = _window()
-    spec = np.fft.rfft(_frames(y) * w, axis=-1)
+    spec = np.fft.rfft(frames * w, axis=-1)
     return (spec.real**2 + spec.imag**2) / np.sum(w * w)
 
 
