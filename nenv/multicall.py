@@ -91,7 +91,7 @@ class MultiCallEngine:
 
         ``stats``: a dict to fill with the call's final :meth:`stats` (tail included).
         """
-        call = self._calls[call_id]
+        call = self._call(call_id)
         call.pending = np.concatenate([call.pending, np.zeros(tail_padding(call.pending.size))])
         self._run(only=call_id)
         y = np.concatenate(call.out) if call.out else np.zeros(0)
@@ -112,13 +112,19 @@ class MultiCallEngine:
         return list(self._ids)
 
     def stats(self, call_id: str) -> dict:
-        c = self._calls[call_id]
+        c = self._call(call_id)
         return {"samples_in": c.samples_in, "samples_out": c.gate.samples_out, "limited": c.gate.limited, "bad_samples": c.bad_samples, "hops": c.hops, "rejected_hops": c.rejected_hops}
 
     # ---- audio in and out ------------------------------------------------------------
+    def _call(self, call_id: str) -> "_Call":
+        try:
+            return self._calls[call_id]
+        except KeyError:
+            raise KeyError(f"call {call_id!r} is not open (open it first; a closed call cannot be fed)") from None
+
     def feed(self, call_id: str, x: np.ndarray) -> None:
         """Queue 8 kHz samples for a call (processed by the next :meth:`step`)."""
-        call = self._calls[call_id]
+        call = self._call(call_id)
         x = as_samples(x)  # non-finite samples are replaced per hop, in _run
         call.samples_in += x.size
         call.pending = np.concatenate([call.pending, x]) if call.pending.size else x

@@ -84,6 +84,14 @@ def test_one_bad_call_does_not_disturb_another(model, calls):
     tail = engine.close("good")
     np.testing.assert_allclose(np.concatenate([y["good"], tail]), ref, atol=1e-6)
     assert np.all(np.isfinite(y["bad"])) and engine.stats("bad")["bad_samples"] == 16000
+    # a caller's mistakes are named, and leave the open calls alone
+    for misuse in (lambda: engine.feed("good", np.zeros(80)), lambda: engine.close("nobody"), lambda: engine.stats("nobody")):
+        with pytest.raises(KeyError, match="is not open"):
+            misuse()
+    with pytest.raises(ValueError, match="already open"):
+        engine.open("bad")
+    engine.feed("bad", good)
+    assert engine.step()["bad"].size == 2 * good.size
 
 
 def test_many_calls_take_the_batched_synthesis_route_and_stay_exact(model, calls, monkeypatch):
