@@ -116,7 +116,7 @@ def means(rows: Sequence[Row]) -> list[Row]:
 
 
 BLANK_REASONS = {
-    "pesq_wb": "the pesq package measures nothing shorter than a quarter of a second (beyond its alignment margins) or without speech it can find",
+    "pesq_wb": "the pesq package scores nothing shorter than a quarter of a second (beyond its alignment margins), without speech it can find, or with more than 50 utterances (its reference code's limit: split long recordings into clips of a minute or two)",
 }
 BLANK_DEFAULT = "the reference has no active frames (none within 40 dB of its loudest)"
 

@@ -124,13 +124,44 @@ def high_band_level_error(ref: np.ndarray, est: np.ndarray) -> float:
 
 
 def pesq_wb(ref: np.ndarray, est: np.ndarray) -> float:
-    """Wideband PESQ (ITU-T P.862.2) MOS-LQO via the ``pesq`` package; NaN if it finds no speech."""
+    """Wideband PESQ (ITU-T P.862.2) MOS-LQO via the ``pesq`` package; NaN where it cannot score.
+
+    The package's C code raises for clips under a quarter second or without speech it finds, and
+    crashes the process (a segmentation fault) on a clip with more than 50 utterances, the fixed
+    limit of its reference code (measured: about three minutes of read sentences). So it runs in
+    a worker process (:func:`isolated`); a crash there costs that value only.
+    """
     _check(ref, est)
+    return isolated(_pesq_wb, ref.astype(np.float64), est.astype(np.float64))
+
+
+def _pesq_wb(ref: np.ndarray, est: np.ndarray) -> float:
     from pesq import pesq
 
     try:
-        return float(pesq(WB_SR, ref.astype(np.float64), est.astype(np.float64), "wb"))
+        return float(pesq(WB_SR, ref, est, "wb"))
     except Exception:  # pesq raises its own NoUtterancesError / BufferTooShortError
+        return float("nan")
+
+
+_worker: list = []  # the one worker process of isolated(), started on first use
+
+
+def isolated(fn, *args) -> float:
+    """``fn(*args)`` in a separate worker process (spawned once, reused); NaN if the worker dies.
+
+    For C code that can crash the interpreter instead of raising. A dead worker is replaced on the
+    next call.
+    """
+    import concurrent.futures
+    import multiprocessing
+
+    if not _worker:
+        _worker.append(concurrent.futures.ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn")))
+    try:
+        return _worker[0].submit(fn, *args).result()
+    except concurrent.futures.process.BrokenProcessPool:
+        _worker.pop().shutdown(wait=False)
         return float("nan")
 
 

@@ -96,3 +96,13 @@ def test_drawn_spectrograms_are_the_measures_grid_pooled_by_the_loudest_frame(rn
     want = np.pad(p, ((0, (-p.shape[0]) % k), (0, 0))).reshape(-1, k, p.shape[1]).max(axis=1)
     np.testing.assert_array_equal(pooled, 10 * np.log10(np.maximum(want, 1e-20)).T)
     assert pooled.shape == (257, 7) and col_s == pytest.approx(k * 0.01)
+
+
+def test_a_crash_in_the_isolated_worker_costs_one_value_not_the_process():
+    """The pesq package's C code crashes the interpreter past 50 utterances (its reference code's fixed
+    limit); scoring runs in a worker process, so a crash there yields NaN and the next call works."""
+    import math
+    import os
+
+    assert np.isnan(measures.isolated(os.abort))  # SIGABRT in the worker, as a segmentation fault would end it
+    assert measures.isolated(math.sqrt, 16.0) == 4.0  # a fresh worker took its place
