@@ -157,7 +157,11 @@ def isolated(fn, *args) -> float:
     import multiprocessing
 
     if not _worker:
-        _worker.append(concurrent.futures.ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn")))
+        import atexit
+
+        pool = concurrent.futures.ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"))
+        atexit.register(pool.shutdown)  # stopped while the interpreter is whole, not from a finaliser at teardown
+        _worker.append(pool)
     try:
         return _worker[0].submit(fn, *args).result()
     except concurrent.futures.process.BrokenProcessPool:
