@@ -107,3 +107,30 @@ def test_split_is_speaker_disjoint_and_reproducible():
     assert {r.speaker for r in va3} != {r.speaker for r in va} or True  # another seed may pick others
     with pytest.raises(ConfigError, match="at least 2 speakers"):
         corpus.split_speakers(reps[:3], val_fraction=0.2, seed=0)
+
+
+def test_the_same_recording_gives_the_same_training_pairs_wherever_it_lies(tmp_path):
+    """Augmentation is seeded by the recording, not by its folder or file time: a corpus copied
+    elsewhere trains the same model (seeding from the cache key, which holds both, did not)."""
+    import os
+    import shutil
+
+    from nenv.features import FeatureSettings
+    from nenv.train import dataset
+
+    rng = np.random.default_rng(3)
+    y = signal.lfilter([1.0], [1.0, -0.9], rng.standard_normal(16000)) * 0.05
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b" / "deeper").mkdir(parents=True)
+    sf.write(tmp_path / "a" / "x.wav", y, 16000, subtype="PCM_16")
+    shutil.copy(tmp_path / "a" / "x.wav", tmp_path / "b" / "deeper" / "y.wav")
+    os.utime(tmp_path / "b" / "deeper" / "y.wav", ns=(1, 1))  # another modification time too
+    r = recipe.load(None, overrides=["copies=2", "warp_max=1.15", "noise_probability=0.5"])
+    s = FeatureSettings(context=r.context)
+    one = dataset._file_pairs(str(tmp_path / "a" / "x.wav"), 0, r, s, None)
+    two = dataset._file_pairs(str(tmp_path / "b" / "deeper" / "y.wav"), 5, r, s, None)
+    assert one.x.shape[0] > 0
+    np.testing.assert_array_equal(one.x, two.x)
+    np.testing.assert_array_equal(one.level, two.level)
+    other = dataset._file_pairs(str(tmp_path / "a" / "x.wav"), 0, recipe.load(None, overrides=["copies=2", "warp_max=1.15", "noise_probability=0.5", "seed=7"]), s, None)
+    assert not np.array_equal(one.level, other.level)  # the recipe's seed still decides the draws

@@ -134,8 +134,10 @@ def _file_pairs(path: str, index: int, recipe: Recipe, settings: FeatureSettings
     if cached is not None and cached.is_file():
         with np.load(cached, allow_pickle=False) as z:
             return Pairs(z["x"], z["current"], z["ceps"], z["level"], z["a_nb"], z["group"], float(z["seconds"]))
-    rng = np.random.default_rng([recipe.seed, int(key[:8], 16)])
     y, sr = load_native(path)
+    # augmentation draws depend on the recording itself, not on where it lies or when it was copied there
+    # (the cache key must, and seeding from it made the same corpus give another model in another folder)
+    rng = np.random.default_rng([recipe.seed, int(hashlib.sha1(np.ascontiguousarray(y).tobytes() + str(sr).encode()).hexdigest()[:8], 16)])
     pairs = pairs_from_signal(y, sr=sr, recipe=recipe, settings=settings, rng=rng)
     if cached is not None:
         from nenv.files import atomic_output
