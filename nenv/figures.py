@@ -7,7 +7,7 @@ from typing import Sequence
 
 import numpy as np
 
-from nenv import lpc, measures
+from nenv import measures
 from nenv.files import atomic_output, check_output
 from nenv.settings import BAND_EDGE_HZ, WB_SR
 
@@ -27,19 +27,18 @@ def spectrogram_db(y: np.ndarray, *, max_columns: int = MAX_COLUMNS) -> tuple[np
     of ``k`` consecutive frames (so short events stay visible). Frames are analysed in blocks, so
     memory stays bounded whatever the length.
     """
-    n_fft, hop = measures.N_FFT, measures.HOP
-    n_frames = 1 + y.size // hop  # frames of the signal padded by n_fft/2 on both sides
+    frames = measures.frames(y)  # a view: only each block's windowed copy is made
+    n_frames = frames.shape[0]
     k = max(1, -(-n_frames // max_columns))
     step = k * max(1, BLOCK_FRAMES // k)
-    padded = np.pad(np.asarray(y, dtype=np.float64), (n_fft // 2, n_fft // 2))  # as measures.power_spectra frames it
-    out = np.empty((-(-n_frames // k), n_fft // 2 + 1))
+    out = np.empty((-(-n_frames // k), measures.N_FFT // 2 + 1))
     for f0 in range(0, n_frames, step):
         n = min(step, n_frames - f0)
-        p = measures.frame_power(lpc.hop_frames(padded[None, f0 * hop :], frame_length=n_fft, hop_length=hop, n_frames=n)[0])
+        p = measures.frame_power(frames[f0 : f0 + n])
         if n % k:
             p = np.concatenate([p, np.zeros((k - n % k, p.shape[1]))])
         out[f0 // k : f0 // k + p.shape[0] // k] = p.reshape(-1, k, p.shape[1]).max(axis=1)
-    return 10 * np.log10(np.maximum(out, 1e-20)).T, k * hop / WB_SR
+    return 10 * np.log10(np.maximum(out, 1e-20)).T, k * measures.HOP / WB_SR
 
 
 def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: str | os.PathLike, *, title: str = "", dpi: int = 110) -> None:

@@ -29,11 +29,11 @@ HIGH_BAND = (BAND_EDGE_HZ, WB_SR / 2)  # Hz
 FULL_BAND = (0.0, WB_SR / 2)  # Hz
 
 
-def _frames(y: np.ndarray) -> np.ndarray:
-    pad = np.pad(y, (N_FFT // 2, N_FFT // 2))
-    n = 1 + (pad.size - N_FFT) // HOP
-    idx = np.arange(N_FFT)[None, :] + HOP * np.arange(n)[:, None]
-    return pad[idx]
+def frames(y: np.ndarray) -> np.ndarray:
+    """The analysis frames of ``y`` [shape=(1 + n // HOP, N_FFT)]: padded by N_FFT/2 on both sides,
+    one every HOP samples; a read-only view (no copy of the overlapping samples)."""
+    pad = np.pad(np.asarray(y, dtype=np.float64), (N_FFT // 2, N_FFT // 2))
+    return lpc.hop_frames(pad[None, :], frame_length=N_FFT, hop_length=HOP, n_frames=1 + (pad.size - N_FFT) // HOP)[0]
 
 
 def _window() -> np.ndarray:
@@ -42,7 +42,7 @@ def _window() -> np.ndarray:
 
 def power_spectra(y: np.ndarray) -> np.ndarray:
     """Short-time power spectra [shape=(n_frames, N_FFT//2+1)] on the grid above."""
-    return frame_power(_frames(y))
+    return frame_power(frames(y))
 
 
 def frame_power(frames: np.ndarray) -> np.ndarray:
@@ -55,7 +55,7 @@ def frame_power(frames: np.ndarray) -> np.ndarray:
 def envelope_spectra(y: np.ndarray) -> np.ndarray:
     """LPC envelopes (order 16, with gain) of the same frames [shape=(n_frames, N_FFT//2+1)]."""
     w = _window()
-    fr = _frames(y) * w
+    fr = frames(y) * w
     r = lpc.autocorrelation(fr, order=ENVELOPE_ORDER)
     r[:, 0] *= 1.0 + 1e-9  # keeps digital-silence frames well defined
     a, _, err = lpc.levinson(r, order=ENVELOPE_ORDER)
