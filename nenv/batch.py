@@ -251,12 +251,12 @@ def check_record(record: str | os.PathLike, jobs: list[Job]) -> str:
 
 def check_options(opts: Options) -> None:
     """Load the model once up front, so a missing or corrupt model stops the batch before it starts."""
-    from nenv.pipeline import MODEL_SYSTEMS, SYSTEMS
+    from nenv.pipeline import MODEL_SYSTEMS, REFERENCE_SYSTEMS, SYSTEMS
 
     if opts.method not in SYSTEMS:
         raise InputError(f"--method {opts.method} is not known: choose one of {', '.join(SYSTEMS)}")
-    if opts.method == "oracle":
-        raise InputError("--method oracle needs a reference per file: extend those files one at a time")
+    if opts.method in REFERENCE_SYSTEMS:
+        raise InputError(f"--method {opts.method} needs a reference per file: extend those files one at a time")
     if opts.method in MODEL_SYSTEMS:
         load_checkpoint(opts.model)
 

@@ -102,10 +102,10 @@ def degrade(
 def extend(
     inputs: Annotated[list[Path], typer.Argument(help="8 kHz telephone speech: one file, or folders (searched recursively), files and lists (.txt, one path per line).", show_default=False, readable=False)],
     output: Annotated[Path, typer.Argument(help="The 16 kHz result (.wav, .flac) for one input file; a folder (mirroring the input layout) otherwise.", show_default=False)],
-    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended, or oracle (needs --reference).")] = None,
+    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended, or oracle and true-band (evaluation only: need --reference).")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder made by 'nenv train' (default: $NENV_MODEL, else the shipped model).")] = None,
     excitation: Annotated[str, typer.Option(help="Excitation extension for source-filter systems: rectify, fold or modulate.")] = "rectify",
-    reference: Annotated[Optional[Path], typer.Option(help="Wideband original, for --method oracle only (one file).")] = None,
+    reference: Annotated[Optional[Path], typer.Option(help="Wideband original, for --method oracle or true-band only (one file).")] = None,
     figure: Annotated[Optional[Path], typer.Option(help="Also write a spectrogram figure (.png, .svg, .pdf): input vs output (one file).")] = None,
     resample: Annotated[bool, typer.Option("--resample", help="Accept input at another rate (4-192 kHz) and resample it to 8 kHz.")] = False,
     channel: ChannelOpt = None,

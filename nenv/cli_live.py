@@ -43,7 +43,7 @@ def stream(
     if input_format not in ("s16le", "mulaw", "alaw"):
         raise InputError(f"--input-format {input_format} is not known: choose s16le, mulaw or alaw")
     method = method or _default_method(model)
-    if method not in pipeline.SYSTEMS or method == "oracle":
+    if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
     if method in pipeline.MODEL_SYSTEMS:
         model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
@@ -131,7 +131,7 @@ def relay(
     from nenv import pipeline, rtp
 
     method = method or _default_method(model)
-    if method not in pipeline.SYSTEMS or method == "oracle":
+    if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
     if not 96 <= payload_type <= 127:
         raise InputError(f"--payload-type {payload_type}: dynamic payload types are 96-127 (RFC 3551)")

@@ -23,8 +23,8 @@ from nenv.errors import InputError
 from nenv.measures import Scores
 from nenv.settings import WB_SR
 
-DEFAULT_SYSTEMS = ("unextended", "imaging", "oracle")  # when no model is available
-ALL_SYSTEMS = ("unextended", "imaging", "codebook", "neural", "oracle")
+DEFAULT_SYSTEMS = ("unextended", "imaging", "oracle", "true-band")  # when no model is available
+ALL_SYSTEMS = ("unextended", "imaging", "codebook", "neural", "oracle", "true-band")
 EVAL_LEVEL_DBOV = channel.NOMINAL_LEVEL_DBOV
 MEASURE_NAMES = [f.name for f in fields(Scores)]
 MEASURE_LABELS = {
@@ -34,6 +34,7 @@ MEASURE_LABELS = {
     "lsd_env_full": "env LSD 0-8k [dB]",
     "level_error_high": "HB level err [dB]",
     "pesq_wb": "WB-PESQ [MOS]",
+    "visqol": "ViSQOL [MOS]",
 }
 
 
@@ -59,13 +60,14 @@ class Clip:
 
 
 def prepare_reference(path: str | os.PathLike, *, channel_index: int | None = None, mix: bool = False) -> np.ndarray:
-    """Load a wideband reference at 16 kHz and nominal level; refuse narrowband or silent files."""
+    """Load a wideband reference at 16 kHz (an odd last sample dropped) and nominal level; refuse narrowband or silent files."""
     a = audio.load(path, channel=channel_index, mix=mix)
     if a.sr < WB_SR:
         raise InputError(f"'{path}' is sampled at {a.sr} Hz: a reference must be wideband (16 kHz or more)")
     if audio.is_silent(a.y):
         raise InputError(f"'{path}' is digital silence: nothing to compare against")
     y = audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR)
+    y = y[: y.size // 2 * 2]  # an even length: every output is twice its 8 kHz input's
     return channel.set_level(y, sr=WB_SR, level_dbov=EVAL_LEVEL_DBOV)
 
 
@@ -116,6 +118,7 @@ def means(rows: Sequence[Row]) -> list[Row]:
 
 
 BLANK_REASONS = {
+    "visqol": "the visqol package found nothing to align (a clip shorter than about half a second, or without speech)",
     "pesq_wb": "the pesq package scores nothing shorter than a quarter of a second (beyond its alignment margins), without speech it can find, or with more than 50 utterances (its reference code's limit: split long recordings into clips of a minute or two)",
 }
 BLANK_DEFAULT = "the reference has no active frames (none within 40 dB of its loudest)"
@@ -156,5 +159,7 @@ Measures (nenv.measures): LSD = log-spectral distance, 512-point Hann frames eve
 floored 80 dB below the reference's loudest bin, mean over frames within 40 dB of the loudest;
 "env" = the same on order-16 LPC envelopes; HB level err = median over active frames of the
 3.4-8 kHz energy ratio, output / reference (positive = too loud); WB-PESQ = ITU-T P.862.2 via the
-`pesq` package. Lower is better except WB-PESQ. The added band is estimated, not recorded.
+`pesq` package; ViSQOL = ViSQOL v3 speech mode with its lattice model (Chinen et al. 2020) via
+the `visqol-python` package. Lower is better except WB-PESQ and ViSQOL. "true-band" adds the
+reference's own band above 3.4 kHz to the unextended signal: the ceiling of any extension. The added band is estimated, not recorded.
 """

@@ -169,6 +169,35 @@ def isolated(fn, *args) -> float:
         return float("nan")
 
 
+_visqol_api: list = []  # the one ViSQOL instance of this process, made on first use
+
+
+def visqol_speech(ref: np.ndarray, est: np.ndarray) -> float:
+    """ViSQOL v3 in speech mode (MOS-LQO, 1..5) via the ``visqol-python`` package; NaN where it cannot score.
+
+    Speech mode at 16 kHz with the package's bundled lattice mapping model, the default of the
+    reference implementation (Chinen et al. 2020, "ViSQOL v3: an open source production ready
+    objective speech and audio metric", QoMEX). Its similarity is computed on gammatone
+    spectrograms up to 8 kHz, so unlike LSD it sees whether an added band matches the
+    original patch by patch. The first call in a process compiles the package's kernels
+    (about 10 s).
+    """
+    _check(ref, est)
+    if not _visqol_api:
+        import logging
+
+        from visqol.api import VisqolApi
+
+        logging.getLogger("visqol").setLevel(logging.ERROR)
+        api = VisqolApi()
+        api.create(mode="speech", use_lattice_model=True)
+        _visqol_api.append(api)
+    try:
+        return float(_visqol_api[0].measure_from_arrays(ref.astype(np.float64), est.astype(np.float64), WB_SR).moslqo)
+    except (ValueError, RuntimeError, IndexError):  # too short, or no patch of speech to align (silence)
+        return float("nan")
+
+
 @dataclass(frozen=True)
 class Scores:
     """Every measure for one system on one clip (dB unless noted)."""
@@ -179,6 +208,7 @@ class Scores:
     lsd_env_full: float
     level_error_high: float
     pesq_wb: float  # MOS-LQO, 1.04..4.64
+    visqol: float  # MOS-LQO, 1..5 (speech mode)
 
     @classmethod
     def compute(cls, ref: np.ndarray, est: np.ndarray) -> "Scores":
@@ -192,4 +222,5 @@ class Scores:
             lsd_env_full=_lsd(e_ref, e_est, FULL_BAND, p_ref),
             level_error_high=high_band_level_error(ref, est),
             pesq_wb=pesq_wb(ref, est),
+            visqol=visqol_speech(ref, est),
         )

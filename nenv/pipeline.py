@@ -64,6 +64,32 @@ class Unextended:
         pass
 
 
+class TrueBand:
+    """The reference's own band above 3.4 kHz added to the unextended signal: the ceiling of any extension.
+
+    Evaluation only (it needs the time-aligned 16 kHz original). The candidate is the reference
+    itself, delayed by :data:`LATENCY` like the interpolated narrowband signal, so after the same
+    band isolation the true band lines up with the telephone band.
+    """
+
+    name = "true-band"
+
+    def __init__(self, reference: np.ndarray):
+        reference = np.asarray(reference, dtype=np.float64)
+        if reference.ndim != 1 or reference.size == 0:
+            raise InputError("the true-band system needs a non-empty mono 16 kHz reference signal")
+        self.reference = np.concatenate([np.zeros(LATENCY), reference])
+        self.reset()
+
+    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis) -> np.ndarray:
+        seg = self.reference[self._pos : self._pos + 2 * x.size]
+        self._pos += 2 * x.size
+        return np.pad(seg, (0, 2 * x.size - seg.size))
+
+    def reset(self) -> None:
+        self._pos = 0
+
+
 class SourceFilterSystem:
     """Residual -> extended excitation -> wideband all-pole envelope from ``estimator``."""
 
@@ -174,6 +200,12 @@ def _oracle(reference: np.ndarray | None, excitation: Method, model) -> System:
     return SourceFilterSystem(OracleEstimator(reference), excitation=excitation)
 
 
+def _true_band(reference: np.ndarray | None, excitation: Method, model) -> System:
+    if reference is None:
+        raise InputError("the true-band system needs the wideband reference (it adds the reference's own band)")
+    return TrueBand(reference)
+
+
 def load_model(model=None, *, flush_denormals: bool = False):
     """A loaded checkpoint: ``model`` as given (Checkpoint), loaded from a folder, or the default model."""
     from nenv import checkpoint
@@ -206,7 +238,9 @@ SYSTEMS: dict[str, Callable[[np.ndarray | None, Method, object], System]] = {
     "codebook": _codebook,
     "neural": _neural,
     "oracle": _oracle,
+    "true-band": _true_band,
 }
+REFERENCE_SYSTEMS = ("oracle", "true-band")  # evaluation only: they read the wideband original
 MODEL_SYSTEMS = ("codebook", "neural")
 
 
@@ -215,7 +249,7 @@ def make_system(name: str, *, reference: np.ndarray | None = None, excitation: M
 
     'unextended', 'imaging'; 'codebook' and 'neural' (need ``model``: a checkpoint
     folder or :class:`nenv.checkpoint.Checkpoint`, default the shipped model);
-    'oracle' (needs ``reference``, the time-aligned 16 kHz original).
+    'oracle' and 'true-band' (need ``reference``, the time-aligned 16 kHz original).
     """
     if name not in SYSTEMS:
         raise InputError(f"method={name!r} is not known: choose one of {', '.join(SYSTEMS)}")

@@ -132,7 +132,7 @@ def extend_file(
     src : narrowband input (8 kHz; other rates with ``opts.resample``)
     dst : .wav or .flac output (16-bit); replaced atomically
     opts : :class:`Options`
-    reference : wideband original, for the oracle method only (held in memory)
+    reference : wideband original, for the oracle and true-band methods only (held in memory)
     record : append the guard's record (JSON Lines) here (neural only)
     on_progress : called as (input samples done, total) after each block
 
@@ -142,6 +142,7 @@ def extend_file(
     """
     from nenv import audio
     from nenv.files import check_distinct, check_output
+    from nenv.pipeline import REFERENCE_SYSTEMS
     from nenv.runtime import CallEngine
 
     t0 = time.perf_counter()
@@ -151,16 +152,16 @@ def extend_file(
         check_distinct(record, what="the record", others={"the input": src, "the reference": reference, "the output": dst})
     notes: list[str] = []
     ref = None
-    if opts.method == "oracle":
+    if opts.method in REFERENCE_SYSTEMS:
         if reference is None:
-            raise InputError("--method oracle needs --reference WIDEBAND.wav (the original the narrowband input was made from)")
+            raise InputError(f"--method {opts.method} needs --reference WIDEBAND.wav (the original the narrowband input was made from)")
     elif reference is not None:
-        raise InputError("--reference is used by --method oracle only")
+        raise InputError("--reference is used by --method oracle and true-band only")
     with audio.Reader(src, channel=opts.channel, mix=opts.mix) as reader:
         if reader.truncated:
             notes.append(reader.truncated)
         blocks, n = _narrowband_blocks(reader, resample=opts.resample, notes=notes)
-        if opts.method == "oracle":
+        if opts.method in REFERENCE_SYSTEMS:
             x = np.concatenate(list(blocks))
             ref = _oracle_reference(reference, x)
             blocks = (x[i : i + int(BLOCK_S * NB_SR)] for i in range(0, x.size, int(BLOCK_S * NB_SR)))

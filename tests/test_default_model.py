@@ -40,7 +40,7 @@ def _rows(table):
 
 def test_numbers_match_the_card(recomputed, card):
     now, then = _rows(recomputed["table"]), _rows(card["table"])
-    assert now.keys() == then.keys()
+    assert then.keys() <= now.keys()  # a card may predate a system added to the comparison since
     for key, r in then.items():
         for m in ("lsd_high", "lsd_full", "lsd_env_high", "lsd_env_full"):
             assert now[key][m] == pytest.approx(r[m], abs=LSD_TOL), (key, m)

@@ -2,7 +2,7 @@
 
 Usage (on Debian/Ubuntu; ~10 minutes on 2 cores)::
 
-    apt-get install klettres-data festival wamerican witalian festvox-kallpc16k festvox-kdlpc16k \\
+    apt-get install klettres-data fillets-ng-data-cs fillets-ng-data-nl ktuberling-data megaglest-data festival wamerican witalian festvox-kallpc16k festvox-kdlpc16k \\
         festvox-czech-dita festvox-czech-krb festvox-czech-machac festvox-czech-ph festival-czech \\
         festvox-italp16k festvox-itapc16k festlex-ifd festvox-suopuhe-lj festvox-suopuhe-mv
     python -m nenv.train.open_corpus --out corpora/default
@@ -12,6 +12,15 @@ Sources:
 * klettres-data: real recordings of letters and syllables by native speakers of
   ~20 languages (one speaker or group per language folder), 44.1 kHz Ogg, GPL-2+.
   Used in place (the manifest points at /usr/share/klettres).
+* fillets-ng-data-cs, fillets-ng-data-nl: game dialogue recorded by actors (Czech and Dutch),
+  44.1 kHz Ogg, GPL-2+. Two main voices per language (the small and the big fish, ~650 files
+  each) and ~20 minor characters; the speaker id is the language and the character code of the
+  file name (``LEVEL-CODE-phrase.ogg``), per level for the minor characters (their codes are
+  reused by other characters in other levels). Used in place.
+* ktuberling-data: single spoken words, one speaker per language folder, GPL-2+; the folders
+  sampled at 8 kHz are excluded by the survey as narrowband. Used in place.
+* megaglest-data: acted unit replies ("ack" and "select" files only: the others are weapon
+  and creature sounds), one speaker id per unit, CC-BY-SA-3.0. Used in place.
 * Festival diphone voices, rendered here from text of our own: random word
   sequences drawn from Debian's word lists (English, Italian) or from
   syllable inventories (Czech, Finnish), in the encoding each voice expects
@@ -38,6 +47,10 @@ from pathlib import Path
 import numpy as np
 
 KLETTRES = Path("/usr/share/klettres")
+FILLETS = Path("/usr/share/games/fillets-ng/sound")
+KTUBERLING = Path("/usr/share/ktuberling/sounds")
+MEGAGLEST = Path("/usr/share/games/megaglest/techs/megapack/factions")
+MAIN_FISH = ("m", "v")  # fillets character codes of the two main voices (small fish, big fish)
 # voice, language, text encoding, Debian package, who speaks, licence (from the package's copyright file)
 VOICES = [
     ("kal_diphone", "en", "UTF-8", "festvox-kallpc16k", "adult male", "free (CMU/Edinburgh, attribution)"),
@@ -108,6 +121,29 @@ def render(voice: str, encoding: str, texts: list[str], folder: Path) -> list[Pa
     return done
 
 
+def real_speech() -> list[tuple[str, str]]:
+    """(path, speaker) of the real recordings in the installed game and toy packages (used in place)."""
+    rows = []
+    if FILLETS.is_dir():
+        for p in sorted(FILLETS.glob("*/*/*.ogg")):
+            lang, parts = p.parent.name, p.stem.split("-")
+            if lang == "en" or len(parts) < 3:  # English lines come with the base game data, not the two language packages
+                continue
+            who = parts[1] if parts[1] in MAIN_FISH else f"{p.parent.parent.name}-{parts[1]}"
+            rows.append((str(p), f"fillets/{lang}/{who}"))
+    if KTUBERLING.is_dir():
+        for p in sorted(KTUBERLING.glob("*/*.ogg")) + sorted(KTUBERLING.glob("*/*.wav")):
+            rows.append((str(p), f"ktuberling/{p.parent.name}"))
+    if MEGAGLEST.is_dir():
+        for p in sorted(MEGAGLEST.glob("*/units/*/sounds/*.wav")):
+            if "_ack" in p.stem or "_select" in p.stem:
+                rows.append((str(p), f"megaglest/{p.parents[3].name}/{p.parents[1].name}"))
+    missing = [f.name for f in (FILLETS, KTUBERLING, MEGAGLEST) if not f.is_dir()]
+    if missing:
+        print(f"note: not installed, skipped: {' '.join(missing)}", file=sys.stderr)
+    return rows
+
+
 def prepare(out: Path, *, utterances_per_voice: int = 120, seed: int = 0, workers: int = 2) -> Path:
     """Render the voices, write manifest.csv (path,speaker) and SOURCES.md; return the manifest path."""
     if shutil.which("festival") is None:
@@ -119,6 +155,7 @@ def prepare(out: Path, *, utterances_per_voice: int = 120, seed: int = 0, worker
             rows.append((str(p), "klettres/" + p.relative_to(KLETTRES).parts[0]))
     else:
         print("note: klettres-data is not installed; continuing with rendered voices only", file=sys.stderr)
+    rows += real_speech()
     available = [v for v in VOICES if any(Path(d).is_dir() for d in Path("/usr/share/festival/voices").glob(f"*/{v[0]}"))]
     missing = [v[3] for v in VOICES if v not in available]
     if missing:
@@ -143,6 +180,13 @@ def prepare(out: Path, *, utterances_per_voice: int = 120, seed: int = 0, worker
     src = ["# Sources of this corpus", "", "| source | speakers | what | licence |", "|---|---|---|---|"]
     if KLETTRES.is_dir():
         src.append("| klettres-data (Debian) | one per language folder | letters and syllables read by native speakers, 44.1 kHz Ogg | GPL-2+ |")
+    for folder, line in (
+        (FILLETS, "| fillets-ng-data-cs, fillets-ng-data-nl (Debian) | two main voices per language and ~20 minor characters | acted game dialogue, Czech and Dutch, 44.1 kHz Ogg | GPL-2+ |"),
+        (KTUBERLING, "| ktuberling-data (Debian) | one per language folder | single spoken words | GPL-2+ |"),
+        (MEGAGLEST, "| megaglest-data (Debian) | one per unit | acted unit replies (ack, select) | CC-BY-SA-3.0 |"),
+    ):
+        if folder.is_dir():
+            src.append(line)
     for voice, lang, _enc, pkg, who, lic in available:
         src.append(f"| {pkg} (Debian), voice {voice} | {who} | Festival diphone voice ({lang}) rendered from nenv's own random text | {lic} |")
     (out / "SOURCES.md").write_text("\n".join(src) + "\n", encoding="utf-8")
