@@ -103,10 +103,23 @@ def test_split_is_speaker_disjoint_and_reproducible():
     assert len({r.speaker for r in va}) == 2 and len(tr) + len(va) == 30
     tr2, va2 = corpus.split_speakers(reps, val_fraction=0.2, seed=1)
     assert [r.path for r in va2] == [r.path for r in va]
-    _, va3 = corpus.split_speakers(reps, val_fraction=0.2, seed=2)
-    assert {r.speaker for r in va3} != {r.speaker for r in va} or True  # another seed may pick others
+    picks = {frozenset(r.speaker for r in corpus.split_speakers(reps, val_fraction=0.2, seed=s)[1]) for s in range(6)}
+    assert len(picks) > 1  # the seed decides the draw
     with pytest.raises(ConfigError, match="at least 2 speakers"):
         corpus.split_speakers(reps[:3], val_fraction=0.2, seed=0)
+
+
+def test_named_speakers_go_where_the_recipe_says():
+    reps = [corpus.FileReport(path=f"{s}/{i}.wav", speaker=s) for s in "abcdefghij" for i in range(3)]
+    for seed in range(5):
+        tr, va = corpus.split_speakers(reps, val_fraction=0.25, seed=seed, val_speakers=["a", "b"], train_speakers=["c", "d"])
+        val = {r.speaker for r in va}
+        assert {"a", "b"} <= val and not {"c", "d"} & val and {"c", "d"} <= {r.speaker for r in tr}
+        assert len(val) == 2 + 2  # a quarter of the other six, rounded
+    with pytest.raises(ConfigError, match="no kept file: zz"):
+        corpus.split_speakers(reps, val_fraction=0.2, seed=0, val_speakers=["zz"])
+    with pytest.raises(ConfigError, match="both"):
+        corpus.split_speakers(reps, val_fraction=0.2, seed=0, val_speakers=["a"], train_speakers=["a"])
 
 
 def test_the_same_recording_gives_the_same_training_pairs_wherever_it_lies(tmp_path):

@@ -238,3 +238,36 @@ def test_quality_warnings_say_what_a_finished_run_should_not_hide(trained):
     edge = {"val_envelope_lsd_high_db": {"neural": 5.0, "codebook": 5.0}, "val_median_level_error_db": {"neural": 3.0}}
     assert len(loop.quality_warnings(edge, {"kept_active_hours": 5 / 60})) == 1  # equal LSD warns; +3.0 dB and 5 min do not
     assert trained.record["warnings"] == loop.quality_warnings(trained.record["metrics"], trained.record["corpus"])
+
+
+def test_validation_scoring_uses_the_runs_own_validation_speakers(trained):
+    """nenv.train.validate builds its clips from the validation speakers the run recorded (never a
+    training speaker), at -26 dBov, and scores the references and the model on each."""
+    from nenv.train import validate
+
+    rec = json.loads((trained.out / "record.json").read_text())
+    val, train = set(rec["corpus"]["val_speakers"]), set(rec["corpus"]["train_speakers"])
+    clips = validate.validation_clips(trained.out, clips_per_voice=2)
+    assert clips and {name.split("#")[0] for name, _, _ in clips} <= val
+    assert not {name.split("#")[0] for name, _, _ in clips} & train
+    for _, group, y in clips:
+        assert group in ("female", "male") and y.size % 160 == 0
+        assert channel.active_level_dbov(y, sr=16000) == pytest.approx(-26.0, abs=0.5)
+    rows = validate.score([trained.out], clips[:1])
+    assert [r["system"] for r in rows] == ["unextended", "oracle", "true-band", f"neural:{trained.out.name}"]
+    assert rows[2]["lsd_high"] < rows[0]["lsd_high"] - 5  # the true band is the reference's own
+
+
+def test_validation_table_counts_wins_against_the_unextended_clip():
+    from nenv.train.validate import to_markdown
+
+    rows = [
+        {"clip": "a", "group": "female", "system": "unextended", "visqol": 3.0, "pesq_wb": 3.0, "lsd_high": 15.0, "level_error_high": -10.0},
+        {"clip": "b", "group": "male", "system": "unextended", "visqol": 3.5, "pesq_wb": 3.0, "lsd_high": 15.0, "level_error_high": -10.0},
+        {"clip": "a", "group": "female", "system": "neural:m", "visqol": 3.2, "pesq_wb": 2.0, "lsd_high": 9.0, "level_error_high": -2.0},
+        {"clip": "b", "group": "male", "system": "neural:m", "visqol": 3.1, "pesq_wb": 2.0, "lsd_high": 11.0, "level_error_high": -4.0},
+    ]
+    md = to_markdown(rows)
+    assert "| neural:m | female | 1 | 3.20 | 2.00 | 9.00 | -2.00 | 100% |" in md
+    assert "| neural:m | male | 1 | 3.10 | 2.00 | 11.00 | -4.00 | 0% |" in md
+    assert "| neural:m | all | 2 | 3.15 | 2.00 | 10.00 | -3.00 | 50% |" in md

@@ -275,13 +275,28 @@ def survey_figure(reports: Sequence[FileReport], path: str | os.PathLike) -> Non
     plt.close(fig)
 
 
-def split_speakers(reports: Sequence[FileReport], *, val_fraction: float, seed: int) -> tuple[list[FileReport], list[FileReport]]:
-    """Speaker-disjoint train/validation split of the kept files, reproducible from ``seed``."""
+def split_speakers(reports: Sequence[FileReport], *, val_fraction: float, seed: int, val_speakers: Sequence[str] = (), train_speakers: Sequence[str] = ()) -> tuple[list[FileReport], list[FileReport]]:
+    """Speaker-disjoint train/validation split of the kept files, reproducible from ``seed``.
+
+    ``val_speakers`` always go to validation and ``train_speakers`` to training (for example the
+    few speakers with long sentences, split by group so both sides hear both); of the others,
+    ``val_fraction`` are drawn for validation.
+    """
     kept = [r for r in reports if not r.excluded]
     speakers = sorted({r.speaker for r in kept})
     if len(speakers) < 2:
         raise ConfigError(f"a speaker-disjoint split needs at least 2 speakers among the kept files, found {len(speakers)}")
-    order = np.random.default_rng(seed).permutation(len(speakers))
-    n_val = min(len(speakers) - 1, max(1, int(round(val_fraction * len(speakers)))))
-    val = {speakers[i] for i in order[:n_val]}
+    for label, named in (("val_speakers", val_speakers), ("train_speakers", train_speakers)):
+        unknown = sorted(set(named) - set(speakers))
+        if unknown:
+            raise ConfigError(f"recipe key '{label}' names speakers with no kept file: {', '.join(unknown[:5])}{' ...' if len(unknown) > 5 else ''}")
+    both = sorted(set(val_speakers) & set(train_speakers))
+    if both:
+        raise ConfigError(f"speakers named in both val_speakers and train_speakers: {', '.join(both)}")
+    rest = [s for s in speakers if s not in set(val_speakers) | set(train_speakers)]
+    order = np.random.default_rng(seed).permutation(len(rest))
+    n_val = min(len(rest) - (0 if train_speakers else 1), max(0 if val_speakers else 1, int(round(val_fraction * len(rest)))))
+    val = set(val_speakers) | {rest[i] for i in order[:n_val]}
+    if not val or val == set(speakers):
+        raise ConfigError("the split leaves no speaker for training or none for validation: check val_speakers, train_speakers and val_fraction")
     return [r for r in kept if r.speaker not in val], [r for r in kept if r.speaker in val]

@@ -140,7 +140,7 @@ def train(
         corpus.survey_figure(reports, work / "survey.png")
         corp = corpus.summary(reports)
         rep.log(f"corpus: {corp['kept_files']} of {corp['files']} files kept ({corp['kept_active_hours'] * 60:.1f} min active speech, {corp['speakers']} speakers); excluded: {corp['exclusion_reasons'] or 'none'}")
-        tr_files, va_files = corpus.split_speakers(reports, val_fraction=recipe.val_fraction, seed=recipe.split_seed)
+        tr_files, va_files = corpus.split_speakers(reports, val_fraction=recipe.val_fraction, seed=recipe.split_seed, val_speakers=recipe.val_speakers, train_speakers=recipe.train_speakers)
         # 2. paired features
         tick = rep.stage("paired features", len(tr_files) + len(va_files))
         tr, thr_tr = dataset.build([r.path for r in tr_files], recipe=recipe, settings=settings, cache_dir=cache_dir, workers=recipe.workers, scheduler=scheduler, on_done=tick)

@@ -30,6 +30,8 @@ class Recipe:
     min_cutoff_hz: float = 7300.0
     val_fraction: float = 0.2
     split_seed: int = 0
+    val_speakers: list[str] = field(default_factory=list)
+    train_speakers: list[str] = field(default_factory=list)
     max_files: int = 0
     # paired features and augmentation
     copies: int = 2
