@@ -103,7 +103,7 @@ def load(path: str | os.PathLike, *, flush_denormals: bool = False) -> Checkpoin
     """
     p = Path(path)
     if not p.is_dir():
-        raise ConfigError(f"model folder '{p}' does not exist (train one with 'nenv train', or pass --model)")
+        raise ConfigError(f"model folder '{p}' does not exist: check the path given by --model or $NENV_MODEL, or train one with 'nenv train'")
     for name in (MODEL_FILE, CODEBOOK_FILE, SETTINGS_FILE):
         if not (p / name).is_file():
             raise ConfigError(f"model folder '{p}' has no {name}: it is incomplete")

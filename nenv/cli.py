@@ -24,6 +24,23 @@ app = typer.Typer(
 )
 
 DEMO_CLIP = "order_confirmation_8k.wav"
+SNR_RANGE_DB = (-10.0, 100.0)  # dB: degrade --snr-db accepts this range (below -10 dB the noise is all there is)
+
+
+def _version(value: bool) -> None:
+    if value:
+        typer.echo(f"nenv {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _top(
+    version: Annotated[bool, typer.Option("--version", is_eager=True, callback=_version, help="Print nenv's version and exit.")] = False,
+) -> None:
+    """nenv: extend telephone speech (8 kHz, 300-3400 Hz) to wideband (16 kHz), on CPU.
+
+    The added 3.4-8 kHz band is estimated, not recorded: never treat it as evidence of what was said or who said it.
+    """
 
 
 def _say(msg: str) -> None:
@@ -62,7 +79,7 @@ MixOpt = Annotated[bool, typer.Option("--mix", help="Average all channels of a m
 def degrade(
     wideband: Annotated[Path, typer.Argument(help="Wideband speech (16 kHz or more; wav, flac, ogg, mp3, ...).")],
     narrowband: Annotated[Path, typer.Argument(help="Where to write the 8 kHz telephone-band result (.wav, .flac).")],
-    law: Annotated[str, typer.Option(help="G.711 companding: mulaw (PCMU), alaw (PCMA) or none.")] = "none",
+    law: Annotated[str, typer.Option(help="G.711 companding: mulaw (PCMU), alaw (PCMA) or none.")] = "mulaw",
     level_dbov: Annotated[float, typer.Option(help="Active speech level of the result in dBov (0 dBov = full-scale square wave).")] = -26.0,
     snr_db: Annotated[Optional[float], typer.Option(help="Add white noise at this SNR in dB before the channel.")] = None,
     seed: Annotated[int, typer.Option(help="Seed of the noise generator.")] = 0,
@@ -86,6 +103,8 @@ def degrade(
         raise InputError(f"'{wideband}' is sampled at {a.sr} Hz: degrade needs wideband input (16 kHz or more)")
     if law not in LAWS:
         raise InputError(f"--law {law} is not known: choose one of {', '.join(LAWS)}")
+    if snr_db is not None and not SNR_RANGE_DB[0] <= snr_db <= SNR_RANGE_DB[1]:
+        raise InputError(f"--snr-db {snr_db:g} is out of range: choose {SNR_RANGE_DB[0]:g} to {SNR_RANGE_DB[1]:g} dB (telephone lines: 20-50 dB)")
     nb = chan.telephone(a.y, sr=a.sr, level_dbov=level_dbov, snr_db=snr_db, seed=seed)  # linear: clipping is counted before coding
     ceiling = 32767 / 32768 if law == "none" else float(np.abs(g711.decode(np.arange(256, dtype=np.uint8), law=law)).max())
     clipped = int(np.count_nonzero(np.abs(nb) > ceiling))

@@ -12,6 +12,9 @@ signals, so empty bands compare at the floor instead of at -infinity.
 
 from __future__ import annotations
 
+import os
+import sys
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import numpy as np
@@ -172,6 +175,20 @@ def isolated(fn, *args) -> float:
 _visqol_api: list = []  # the one ViSQOL instance of this process, made on first use
 
 
+@contextmanager
+def _native_stderr_silenced():
+    """Send the process's file descriptor 2 to /dev/null for the duration (native libraries' chatter)."""
+    sys.stderr.flush()
+    saved = os.dup(2)
+    try:
+        with open(os.devnull, "wb") as null:
+            os.dup2(null.fileno(), 2)
+            yield
+    finally:
+        os.dup2(saved, 2)
+        os.close(saved)
+
+
 def visqol_speech(ref: np.ndarray, est: np.ndarray) -> float:
     """ViSQOL v3 in speech mode (MOS-LQO, 1..5) via the ``visqol-python`` package; NaN where it cannot score.
 
@@ -190,7 +207,8 @@ def visqol_speech(ref: np.ndarray, est: np.ndarray) -> float:
 
         logging.getLogger("visqol").setLevel(logging.ERROR)
         api = VisqolApi()
-        api.create(mode="speech", use_lattice_model=True)
+        with _native_stderr_silenced():  # the LiteRT runtime announces its CPU delegate on fd 2
+            api.create(mode="speech", use_lattice_model=True)
         _visqol_api.append(api)
     try:
         return float(_visqol_api[0].measure_from_arrays(ref.astype(np.float64), est.astype(np.float64), WB_SR).moslqo)

@@ -243,10 +243,22 @@ def test_f15_record_file_that_is_not_a_record(tmp_path, speech):
 # ---- content -------------------------------------------------------------------------------
 
 
-def test_c1_digital_silence(tmp_path):
-    sf.write(tmp_path / "s.wav", np.zeros(8000), 8000)
-    _refused(_run("extend", tmp_path / "s.wav", tmp_path / "out.wav"), "digital silence")
-    _no_output(tmp_path)
+@pytest.mark.parametrize("method", ["neural", "codebook", "imaging", "unextended"])
+def test_c1_digital_silence_gives_silence_of_twice_the_length(tmp_path, method):
+    """A silent leg is common in a call archive: it is extended like any file (exit 0), to exact zeros
+    of twice the length, with a one-line note; in a batch it counts as done."""
+    sf.write(tmp_path / "s.wav", np.zeros(8001), 8000)
+    res = _run("extend", tmp_path / "s.wav", tmp_path / "out.wav", "--method", method)
+    assert res.exit_code == 0, res.output
+    assert "digital silence" in res.stderr and "Traceback" not in res.output
+    y, sr = sf.read(tmp_path / "out.wav")
+    assert sr == 16000 and y.size == 2 * 8001 and not np.any(y)
+    (tmp_path / "in").mkdir()
+    sf.write(tmp_path / "in" / "leg.wav", np.zeros(4000), 8000)
+    sf.write(tmp_path / "in" / "call.wav", 0.1 * np.sin(np.arange(4000) * 0.3), 8000)
+    res = _run("extend", tmp_path / "in", tmp_path / "out", "--method", method, "--jobs", "1")
+    assert res.exit_code == 0, res.output
+    assert (tmp_path / "out" / "leg.wav").is_file() and (tmp_path / "out" / "call.wav").is_file()
 
 
 def _highband_db(y: np.ndarray) -> float:

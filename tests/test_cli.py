@@ -107,7 +107,6 @@ def test_bad_inputs_get_one_clear_line_and_no_output(tmp_path):
         (tmp_path, "must be a folder"),
         (tmp_path / "text.wav", "cannot read"),
         (_write(tmp_path / "empty.wav", np.zeros(0), 8000), "no samples"),
-        (_write(tmp_path / "zeros.wav", np.zeros(8000), 8000), "silence"),
         (_write(tmp_path / "nan.wav", np.where(t < 0.5, speech, np.nan), 8000, "FLOAT"), "NaN"),
         (_write(tmp_path / "stereo.wav", np.stack([speech, speech], 1), 8000), "--channel"),
         (_write(tmp_path / "odd.wav", speech, 11025), "11025 Hz"),
@@ -157,15 +156,18 @@ def test_model_commands(trained, synthetic_corpus, tmp_path):
     res = _run("survey", synthetic_corpus, "--out", tmp_path / "sv", "--set", "min_snr_db=0")
     assert res.exit_code == 0, res.output
     assert "kept:" in res.stdout and (tmp_path / "sv" / "survey.csv").is_file()
-    # a short training run through the command line
+    # a short training run through the command line, into folders that do not exist yet (as the README's example)
+    m = tmp_path / "models" / "quick" / "m"
     res = _run("train", "--config", "configs/small.toml", "--set", f"corpus={synthetic_corpus}", "--set", "epochs=2",
-               "--set", "codebook_size=8", "--set", "min_snr_db=0", "--out", tmp_path / "m")
+               "--set", "codebook_size=8", "--set", "min_snr_db=0", "--out", m)
     assert res.exit_code == 0, res.output
-    assert "held-out speakers" in res.stdout and (tmp_path / "m" / "model.onnx").is_file()
+    assert "held-out speakers" in res.stdout and (m / "model.onnx").is_file()
     _assert_user_error(_run("train", "--set", "epochz=2", "--out", tmp_path / "m2"), "epochz")
-    _assert_user_error(_run("train", "--set", f"corpus={synthetic_corpus}", "--out", tmp_path / "m"), "--force")
+    _assert_user_error(_run("train", "--set", f"corpus={synthetic_corpus}", "--out", m), "--force")
+    (tmp_path / "a-file").write_text("x")
+    _assert_user_error(_run("train", "--set", f"corpus={synthetic_corpus}", "--out", tmp_path / "a-file" / "m"), "is a file")
     # export
-    res = _run("export", tmp_path / "m")
+    res = _run("export", m)
     assert res.exit_code == 0 and "onnx.checker passed" in res.stdout
     # extend with the model, the guard reporting on stderr
     nb = tmp_path / "nb.wav"
@@ -173,9 +175,34 @@ def test_model_commands(trained, synthetic_corpus, tmp_path):
     res = _run("extend", nb, tmp_path / "wb.wav", "--model", trained.out)
     assert res.exit_code == 0, res.output
     assert "method=neural" in res.stderr and "guard:" in res.stderr
-    _assert_user_error(_run("extend", nb, tmp_path / "wb2.wav", "--model", tmp_path / "nomodel"), "does not exist")
+    _assert_user_error(_run("extend", nb, tmp_path / "wb2.wav", "--model", tmp_path / "nomodel"), "does not exist: check the path given by --model")
     # evaluate with every system
     res = _run("evaluate", ARCTIC[1], "--out", tmp_path / "ev", "--model", trained.out)
     assert res.exit_code == 0, res.output
     for s in ("unextended", "imaging", "codebook", "neural", "oracle"):
         assert f"| {s} |" in res.stdout
+
+
+def test_version_flag():
+    from nenv import __version__
+
+    res = _run("--version")
+    assert res.exit_code == 0 and res.stdout.strip() == f"nenv {__version__}"
+
+
+def test_degrade_codes_g711_mu_law_by_default_and_refuses_absurd_noise(tmp_path):
+    """The default telephone version is a PCMU call: every sample lies on the mu-law grid (ITU-T G.711
+    decoding table, checked against the stdlib's audioop in tests/test_g711.py)."""
+    from nenv import g711
+
+    out = tmp_path / "nb.wav"
+    res = _run("degrade", ARCTIC[0], out)
+    assert res.exit_code == 0 and "law=mulaw" in res.stderr
+    y, sr = sf.read(out, dtype="int16")
+    grid = np.round(g711.decode(np.arange(256, dtype=np.uint8), law="mulaw") * 32768).astype(int)
+    assert sr == 8000 and np.isin(y.astype(int), grid).all()
+    assert _run("degrade", ARCTIC[0], tmp_path / "lin.wav", "--law", "none").exit_code == 0
+    lin, _ = sf.read(tmp_path / "lin.wav", dtype="int16")
+    assert not np.isin(lin.astype(int), grid).all()  # a linear channel does not: the check can fail
+    for bad in ("-200", "1000"):
+        _assert_user_error(_run("degrade", ARCTIC[0], tmp_path / "x.wav", "--snr-db", bad), "--snr-db")

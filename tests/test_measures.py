@@ -132,3 +132,14 @@ def test_both_perceptual_measures_rank_the_true_band_above_no_band(arctic_refs, 
 def test_visqol_of_silence_is_blank_not_an_error():
     z = np.zeros(16000)
     assert np.isnan(measures.visqol_speech(z, z))
+
+
+def test_visqol_start_up_prints_nothing(capfd):
+    """The lattice model's runtime writes an INFO line to stderr when ViSQOL starts; nenv keeps its
+    own output clean (one line per message, as the README promises)."""
+    measures._visqol_api.clear()
+    rng = np.random.default_rng(0)
+    y = 0.1 * rng.standard_normal(32000)
+    assert np.isfinite(measures.visqol_speech(y, y))
+    out, err = capfd.readouterr()
+    assert "XNNPACK" not in err and "INFO" not in err

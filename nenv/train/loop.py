@@ -115,11 +115,15 @@ def train(
     for label, inner in (("the corpus", recipe.corpus), ("the manifest", recipe.manifest), ("the cache folder", cache_dir)):
         if inner and is_within(inner, out):
             raise ConfigError(f"{label} '{inner}' is inside '{out}', which training replaces as a whole: choose another folder for the model")
-    if not out.parent.is_dir():
-        raise ConfigError(f"cannot create '{out}': folder '{out.parent}' does not exist")
+    if out.parent.exists() and not out.parent.is_dir():
+        raise ConfigError(f"cannot create '{out}': '{out.parent}' is a file")
     if not recipe.corpus:
         raise ConfigError("the recipe names no corpus: set corpus = \"FOLDER\" or pass --set corpus=FOLDER")
     t_start = time.perf_counter()
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)  # like every other --out: missing folders are made
+    except OSError as e:
+        raise ConfigError(f"cannot create '{out.parent}': {e.strerror}") from e
     settings = FeatureSettings(context=recipe.context)
     work = partial_folder(out)
     state = _open_work(work, recipe, resume=resume, force=force)
