@@ -177,11 +177,9 @@ def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, reco
     if res.limited:
         _say(f"nenv: warning: {res.limited} sample(s) exceeded -0.1 dBFS and were limited; lower the input level")
     if res.hops:
-        if res.rejected:
-            detail = ", ".join(f"{k} {v}" for k, v in res.by_reason.items())
-            _say(f"guard: {res.rejected} of {res.hops} hops ({100 * res.rejected / res.hops:.1f}%) fell back to the codebook ({detail})")
-        else:
-            _say(f"guard: all {res.hops} hops passed; none fell back to the codebook")
+        from nenv.guard import summary_line
+
+        _say(summary_line(res.hops, res.rejected, res.by_reason))
     if figure is not None:
         if res.seconds > FIGURE_MAX_S:
             _say(f"nenv: note: no figure: the input is longer than {FIGURE_MAX_S / 60:.0f} min")

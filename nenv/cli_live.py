@@ -101,6 +101,8 @@ def stream(
         writer.summary(source=call_id, group=group, tally=tally, seconds=engine.samples_in / 8000)
         writer.close()
     _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
+    if tally is not None and tally.hops:
+        _say(tally.line())
     if reader_gone:
         raise OutputError("standard output was closed by its reader before the call ended: the rest of the extended audio was not delivered")
 

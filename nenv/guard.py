@@ -119,6 +119,18 @@ class Tally:
                 self.by_reason[name] = self.by_reason.get(name, 0) + 1
         return dec
 
+    def line(self) -> str:
+        """The one-line summary that extend and stream print."""
+        return summary_line(self.hops, self.rejected, self.by_reason)
+
+
+def summary_line(hops: int, rejected: int, by_reason: dict) -> str:
+    """``guard: N of M hops (x%) fell back to the codebook (reason n, ...)`` or ``guard: all M hops passed; ...``."""
+    if not rejected:
+        return f"guard: all {hops} hops passed; none fell back to the codebook"
+    detail = ", ".join(f"{k} {v}" for k, v in by_reason.items())
+    return f"guard: {rejected} of {hops} hops ({100 * rejected / max(hops, 1):.1f}%) fell back to the codebook ({detail})"
+
 
 def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
     """RMS difference (dB) of the mean-removed log envelopes over 300-3400 Hz.

@@ -232,3 +232,21 @@ def test_the_readme_embedding_example_runs_as_written():
     assert env["ready"]["call-1"].size + env["tail"].size == 320 and np.max(np.abs(env["wide"])) > 0.05
     np.testing.assert_allclose(np.concatenate([env["ready"]["call-1"], env["tail"]]), env["wide"], atol=1e-9)
 
+
+
+def test_stream_prints_the_same_guard_summary_as_extend(tmp_path, call_audio):
+    """The guard's one-line summary (hops that fell back, by reason) ends a neural stream as it ends extend."""
+    import soundfile as sf
+
+    from nenv.audio import to_int16
+
+    _, x = call_audio
+    x = x[:16000]
+    sf.write(tmp_path / "nb.wav", to_int16(x), 8000, subtype="PCM_16")
+    res = _nenv("stream", "--method", "neural", input=to_int16(x).astype("<i2").tobytes())
+    assert res.returncode == 0, res.stderr
+    line = [ln for ln in res.stderr.decode().splitlines() if ln.startswith("guard:")]
+    ext = _nenv("extend", tmp_path / "nb.wav", tmp_path / "wb.wav", "--method", "neural")
+    assert ext.returncode == 0
+    assert line == [ln for ln in ext.stderr.decode().splitlines() if ln.startswith("guard:")]
+    assert line and "200 hops" in line[0]

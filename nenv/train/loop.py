@@ -322,7 +322,7 @@ def train(
 
 
 MIN_ACTIVE_MINUTES = 5.0  # common practice, not a measured limit: less speech rarely generalises to new speakers
-MAX_LEVEL_OVER_DB = 3.0  # median over-estimate of the high-band level on held-out speakers that earns a warning
+MAX_LEVEL_OVER_DB = 0.5  # median over-estimate of the high-band level on held-out speakers that earns a warning: any systematic one
 
 
 def quality_warnings(metrics: dict, corpus_summary: dict) -> list[str]:
