@@ -344,15 +344,34 @@ def audit(
 from nenv import cli_live, cli_train  # noqa: E402,F401
 
 
+def _is_usage_error(e: Exception) -> bool:
+    """The command line library's usage errors (its UsageError family: exit status 2 and a message),
+    recognised by what they carry rather than by a class the library keeps private in some versions."""
+    return getattr(e, "exit_code", None) == 2 and callable(getattr(e, "format_message", None))
+
+
 def main() -> None:
-    """Console entry point."""
+    """Console entry point: every usage error is one line on stderr with exit status 2."""
     if os.environ.get("NENV_DEBUG"):
         app()
         return
     try:
-        app()
+        status = app(standalone_mode=False)  # the command line library's errors come back here
+    except typer.Abort:
+        _say("nenv: interrupted; no partial output was left behind")
+        sys.exit(130)
     except SystemExit:
         raise
-    except Exception as e:  # a defect in nenv, not a user error: one line, not a traceback
+    except Exception as e:
+        if _is_usage_error(e):  # a bad value, a missing argument or option, an unknown option or command
+            ctx = getattr(e, "ctx", None)
+            if type(e).__name__ == "NoArgsIsHelpError" and ctx is not None:  # 'nenv' alone: the help, as before
+                typer.echo(ctx.get_help())
+                sys.exit(2)
+            where = ctx.command_path if ctx is not None else "nenv"
+            _say(f"nenv: error: {e.format_message()} (see '{where} --help')")
+            sys.exit(2)
+        # a defect in nenv, not a user error: one line, not a traceback
         _say(f"nenv: internal error ({type(e).__name__}: {e}); rerun with NENV_DEBUG=1 for details and please report it")
         sys.exit(70)
+    sys.exit(status if isinstance(status, int) else 0)

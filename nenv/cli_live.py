@@ -42,6 +42,8 @@ def stream(
 
     if input_format not in ("s16le", "mulaw", "alaw"):
         raise InputError(f"--input-format {input_format} is not known: choose s16le, mulaw or alaw")
+    if sys.stdout.isatty():
+        raise InputError("standard output is a terminal: stream writes raw 16-bit audio; redirect it to a file or a pipe (nenv stream < call.raw > call-wb.raw)")
     method = method or _default_method(model)
     if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
@@ -66,6 +68,8 @@ def stream(
                 break
             if not data:
                 break
+            if engine.samples_in == 0 and not leftover and data[:4] == b"RIFF" and data[8:12] == b"WAVE":
+                raise InputError("standard input is a WAV file, header and all: extend a file with 'nenv extend CALL.wav CALL-WB.wav', or stream its raw samples (for example: sox CALL.wav -t raw - | nenv stream)")
             if input_format == "s16le":
                 data = leftover + data
                 n = len(data) // 2 * 2

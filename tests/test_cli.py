@@ -206,3 +206,26 @@ def test_degrade_codes_g711_mu_law_by_default_and_refuses_absurd_noise(tmp_path)
     assert not np.isin(lin.astype(int), grid).all()  # a linear channel does not: the check can fail
     for bad in ("-200", "1000"):
         _assert_user_error(_run("degrade", ARCTIC[0], tmp_path / "x.wav", "--snr-db", bad), "--snr-db")
+
+
+@pytest.mark.parametrize(
+    "args, needle",
+    [
+        (["degrade", "a.wav", "b.wav", "--level-dbov", "abc"], "'--level-dbov'"),
+        (["extend", "--jobs", "-1", "a.wav", "b"], "'--jobs'"),
+        (["relay", "--to", "127.0.0.1:9", "--step-ms", "1"], "'--step-ms'"),
+        (["audit", "x.jsonl"], "Missing option '--out'"),
+        (["no-such-command"], "No such command"),
+    ],
+)
+def test_usage_errors_are_one_line_with_status_2(args, needle):
+    """As the README promises: the command line library's own usage errors (bad type, out of range,
+    missing option, unknown command) are one line on stderr, like nenv's own, not a boxed panel."""
+    import subprocess
+    import sys
+
+    res = subprocess.run([sys.executable, "-m", "nenv", *args], capture_output=True, text=True, timeout=120)
+    assert res.returncode == 2 and res.stdout == ""
+    err = res.stderr.strip()
+    assert err.startswith("nenv: error:") and len(err.splitlines()) == 1 and needle in err, err
+    assert "╭" not in err and "Traceback" not in err

@@ -250,3 +250,30 @@ def test_stream_prints_the_same_guard_summary_as_extend(tmp_path, call_audio):
     assert ext.returncode == 0
     assert line == [ln for ln in ext.stderr.decode().splitlines() if ln.startswith("guard:")]
     assert line and "200 hops" in line[0]
+
+
+def test_stream_refuses_a_wav_header_and_a_terminal(tmp_path, call_audio):
+    """A WAV file piped in whole would be played header and all (a click at -0.9 dBFS); binary audio
+    written to a terminal is garbage on the screen. Both are refused in one line with what to do."""
+    import os
+    import subprocess
+    import sys
+
+    import soundfile as sf
+
+    from nenv.audio import to_int16
+
+    _, x = call_audio
+    sf.write(tmp_path / "nb.wav", to_int16(x[:8000]), 8000, subtype="PCM_16")
+    res = _nenv("stream", "--method", "imaging", input=(tmp_path / "nb.wav").read_bytes())
+    assert res.returncode == 2 and res.stdout == b""
+    assert b"is a WAV file" in res.stderr and b"nenv extend" in res.stderr
+    raw = _nenv("stream", "--method", "imaging", input=to_int16(x[:8000]).astype("<i2").tobytes())
+    assert raw.returncode == 0 and len(raw.stdout) == 2 * 2 * 8000  # the same samples without a header pass
+    master, slave = os.openpty()
+    try:
+        tty = subprocess.run([sys.executable, "-m", "nenv", "stream", "--method", "imaging"], input=b"", stdout=slave, stderr=subprocess.PIPE, timeout=120)
+    finally:
+        os.close(slave)
+        os.close(master)
+    assert tty.returncode == 2 and b"standard output is a terminal" in tty.stderr
