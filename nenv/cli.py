@@ -175,7 +175,7 @@ def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, reco
         _say(f"appended the guard record to {record}")
     _say(f"wrote {dst} (16 kHz, {res.seconds:.2f} s, method={opts.method}, {res.seconds / max(res.wall_s, 1e-9):.0f}x real time)")
     if res.limited:
-        _say(f"nenv: warning: {res.limited} sample(s) exceeded -0.1 dBFS and were limited; lower the input level")
+        _say(f"nenv: warning: {res.limited} sample(s) of the output (telephone band plus added band) exceeded -0.1 dBFS and were limited: lower the input level; if the input peaks well below full scale, the added band caused it (try --method unextended, or another model)")
     if res.hops:
         from nenv.guard import summary_line
 
@@ -369,7 +369,10 @@ def main() -> None:
                 typer.echo(ctx.get_help())
                 sys.exit(2)
             where = ctx.command_path if ctx is not None else "nenv"
-            _say(f"nenv: error: {e.format_message()} (see '{where} --help')")
+            message = e.format_message()
+            if getattr(getattr(e, "param", None), "name", None) == "inputs":  # one path given: it was taken as the output
+                message = "an input and an output are needed (extend CALL.wav CALL-WB.wav, or extend FOLDER... OUTDIR)"
+            _say(f"nenv: error: {message} (see '{where} --help')")
             sys.exit(2)
         # a defect in nenv, not a user error: one line, not a traceback
         _say(f"nenv: internal error ({type(e).__name__}: {e}); rerun with NENV_DEBUG=1 for details and please report it")

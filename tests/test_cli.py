@@ -216,6 +216,7 @@ def test_degrade_codes_g711_mu_law_by_default_and_refuses_absurd_noise(tmp_path)
         (["relay", "--to", "127.0.0.1:9", "--step-ms", "1"], "'--step-ms'"),
         (["audit", "x.jsonl"], "Missing option '--out'"),
         (["no-such-command"], "No such command"),
+        (["extend", "call.wav"], "an input and an output are needed"),
     ],
 )
 def test_usage_errors_are_one_line_with_status_2(args, needle):
@@ -229,3 +230,14 @@ def test_usage_errors_are_one_line_with_status_2(args, needle):
     err = res.stderr.strip()
     assert err.startswith("nenv: error:") and len(err.splitlines()) == 1 and needle in err, err
     assert "╭" not in err and "Traceback" not in err
+
+
+def test_limited_samples_are_explained(tmp_path):
+    """The limiter acts on the sum of the telephone band and the added band; the warning says so."""
+    t = np.arange(8000) / 8000
+    loud = _write(tmp_path / "loud.wav", 0.995 * np.sin(2 * np.pi * 1500 * t) * np.sign(np.sin(2 * np.pi * 3 * t)), 8000)
+    res = _run("extend", loud, tmp_path / "out.wav", "--method", "imaging")
+    assert res.exit_code == 0, res.output
+    assert "were limited" in res.stderr and "telephone band plus added band" in res.stderr
+    y, _ = sf.read(tmp_path / "out.wav")
+    assert np.abs(y).max() <= 0.99 + 1 / 32768  # the limiter's ceiling (about -0.1 dBFS), one 16-bit step of rounding
