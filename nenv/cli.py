@@ -154,6 +154,7 @@ def _default_method(model: Optional[Path]) -> str:
     return "neural" if model is not None or default_path() is not None else "imaging"
 
 
+RATE_MIN_S = 30.0  # seconds: a batch shorter than this reports no hourly rates (extrapolated, they mislead)
 FIGURE_MAX_S = 600.0  # a spectrogram of more than 10 minutes is unreadable (and costly)
 
 
@@ -226,9 +227,10 @@ def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: b
             raise
     write_text(out / batch.REPORT_NAME, summ.to_csv())
     files_h, audio_h = summ.throughput()
+    rate = f" = {files_h:.0f} files/h, {audio_h:.1f} h of audio per hour" if summ.wall_s >= RATE_MIN_S else ""  # a few seconds say little about an hour
     typer.echo(
         f"done {summ.count('done')}, skipped {summ.count('skipped')} (output exists), failed {summ.count('failed')}; "
-        f"{summ.audio_s / 3600:.3f} h of audio in {summ.wall_s:.1f} s = {files_h:.0f} files/h, {audio_h:.1f} h of audio per hour"
+        f"{summ.audio_s / 3600:.3f} h of audio in {summ.wall_s:.1f} s{rate}"
     )
     _say(f"wrote {out / batch.REPORT_NAME}")
     if summ.count("failed"):

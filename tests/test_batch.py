@@ -55,6 +55,7 @@ def test_folder_mirrors_layout_reports_failures_and_skips_finished(tree, tmp_pat
     assert res.exit_code == 1, res.output  # one file failed: reported, the others done
     assert "done 4, skipped 0 (output exists), failed 1" in res.stdout
     assert "broken.wav" in res.stderr  # the silent file is no failure: extended to silence
+    assert "files/h" not in res.stdout  # a batch of seconds reports no extrapolated hourly rate
     silent, sr = sf.read(out / "south" / "silent.wav")
     assert sr == 16000 and silent.size == 8000 and not np.any(silent)
     for src, dst in GOOD.items():
