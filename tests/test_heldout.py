@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from nenv.train.corpus import measure
+from nenv.train.corpus import exclusions, measure
 from nenv.train.recipe import Recipe
 
 HELDOUT = Path(__file__).parent / "data" / "heldout"
@@ -36,6 +36,7 @@ def test_every_clip_is_clean_wideband_speech_by_the_survey(row):
     r = Recipe()
     assert m["cutoff_hz"] >= r.min_cutoff_hz and m["snr_db"] >= r.min_snr_db and m["clipped_fraction"] <= r.max_clipped_fraction
     assert m["active_s"] >= 0.75
+    assert exclusions(m, r, min_active_s=0.75) == []
 
 
 def test_no_clip_comes_from_a_training_source():

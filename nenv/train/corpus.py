@@ -195,19 +195,27 @@ def survey_file(cf: CorpusFile, recipe: Recipe) -> FileReport:
         rep.excluded = f"unreadable: {str(e).splitlines()[0] if str(e) else type(e).__name__}"
         return rep
     rep.duration_s = y.size / WB_SR
-    for k, v in measure(y).items():
+    m = measure(y)
+    for k, v in m.items():
         setattr(rep, k, v)
-    reasons = []
-    if rep.active_s < recipe.min_active_s:
-        reasons.append(f"too little active speech ({rep.active_s:.2f} s < {recipe.min_active_s} s)")
-    if rep.clipped_fraction > recipe.max_clipped_fraction:
-        reasons.append(f"clipped ({100 * rep.clipped_fraction:.2f}% of samples)")
-    if np.isfinite(rep.snr_db) and rep.snr_db < recipe.min_snr_db:
-        reasons.append(f"noisy (SNR about {rep.snr_db:.0f} dB < {recipe.min_snr_db:g})")
-    if recipe.exclude_bandlimited and np.isfinite(rep.cutoff_hz) and rep.cutoff_hz < recipe.min_cutoff_hz:
-        reasons.append(f"band-limited (cliff at {rep.cutoff_hz:.0f} Hz)")
-    rep.excluded = "; ".join(reasons)
+    rep.excluded = "; ".join(exclusions(m, recipe))
     return rep
+
+
+def exclusions(m: dict, recipe: Recipe, *, min_active_s: float | None = None) -> list[str]:
+    """Why a recording with survey measures ``m`` (:func:`measure`) may not be used, by ``recipe``'s
+    thresholds (``min_active_s`` overrides the recipe's); empty when it may."""
+    least = recipe.min_active_s if min_active_s is None else min_active_s
+    reasons = []
+    if m["active_s"] < least:
+        reasons.append(f"too little active speech ({m['active_s']:.2f} s < {least} s)")
+    if m["clipped_fraction"] > recipe.max_clipped_fraction:
+        reasons.append(f"clipped ({100 * m['clipped_fraction']:.2f}% of samples)")
+    if np.isfinite(m["snr_db"]) and m["snr_db"] < recipe.min_snr_db:
+        reasons.append(f"noisy (SNR about {m['snr_db']:.0f} dB < {recipe.min_snr_db:g})")
+    if recipe.exclude_bandlimited and np.isfinite(m["cutoff_hz"]) and m["cutoff_hz"] < recipe.min_cutoff_hz:
+        reasons.append(f"band-limited (cliff at {m['cutoff_hz']:.0f} Hz)")
+    return reasons
 
 
 def survey(files: Sequence[CorpusFile], recipe: Recipe, *, workers: int = 1, scheduler: str | None = None, on_done: Callable[[], None] | None = None) -> list[FileReport]:

@@ -32,7 +32,7 @@ import numpy as np
 
 from nenv import audio
 from nenv.settings import WB_SR
-from nenv.train.corpus import measure
+from nenv.train.corpus import exclusions, measure
 from nenv.train.recipe import Recipe
 
 MAX_CLIP_S = 8.0  # seconds per clip at most
@@ -140,17 +140,7 @@ def build(sources: Path, out: Path) -> list[dict]:
         i1 = int(round(cand.stop_s * WB_SR)) if cand.stop_s else y.size
         y = y[i0 : min(i1, i0 + int(MAX_CLIP_S * WB_SR))]
         m = measure(y)
-        why = []
-        if a.sr < WB_SR:
-            why.append(f"sampled at {a.sr} Hz")
-        if m["active_s"] < MIN_ACTIVE_S:
-            why.append(f"too little active speech ({m['active_s']:.2f} s)")
-        if m["clipped_fraction"] > recipe.max_clipped_fraction:
-            why.append(f"clipped ({100 * m['clipped_fraction']:.2f}%)")
-        if np.isfinite(m["snr_db"]) and m["snr_db"] < recipe.min_snr_db:
-            why.append(f"noisy (SNR about {m['snr_db']:.0f} dB)")
-        if np.isfinite(m["cutoff_hz"]) and m["cutoff_hz"] < recipe.min_cutoff_hz:
-            why.append(f"band-limited (cliff at {m['cutoff_hz']:.0f} Hz)")
+        why = ([f"sampled at {a.sr} Hz"] if a.sr < WB_SR else []) + exclusions(m, recipe, min_active_s=MIN_ACTIVE_S)
         f0 = median_f0(y)
         row = {
             "clip": cand.name,
