@@ -12,10 +12,9 @@ from functools import lru_cache
 
 import numpy as np
 
-from nenv import filters
+from nenv import kernels
 from nenv.lpc import levinson
 
-SCALAR_MAX_ROWS = 4  # up to this many rows the cepstrum recursion runs on Python floats (cheaper than ~20 array steps)
 STABLE_FLOOR_DB = 80.0  # dB below the peak: floor of the spectrum in the always-stable route
 
 
@@ -28,6 +27,12 @@ def band_bins(lo_hz: float, hi_hz: float, *, n_fft: int, sr: int) -> tuple[int, 
     if sel.size == 0:
         raise ValueError(f"no bin of a {n_fft}-point grid at {sr} Hz lies in {lo_hz}-{hi_hz} Hz")
     return int(sel[0]), int(sel[-1])
+
+
+def cosine_table(n_terms: int, n_fft: int, first_bin: int = 0, last_bin: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """cos(i w_k) and sin(i w_k) [shape=(n_terms, bins)] for i < n_terms on rfft bins first_bin..last_bin
+    of an n_fft grid (read-only, computed once): the tables of a short polynomial's spectrum."""
+    return _cosines(n_terms, n_fft, first_bin, last_bin)
 
 
 @lru_cache(maxsize=None)
@@ -46,10 +51,8 @@ def to_cepstrum(a: np.ndarray, *, n_ceps: int, gain: np.ndarray | None = None) -
 
     ``c_0 = ln G``; for n >= 1, ``c_n = -a_n - sum_{k=1}^{n-1} (k/n) c_k a_{n-k}``
     with ``a_n = 0`` for n > p (Markel & Gray, *Linear Prediction of Speech*, 1976;
-    Rabiner & Schafer, *Digital Processing of Speech Signals*, 1978). For many rows it
-    runs on ``d_n = n c_n``, where it reads ``d_n = -n a_n - sum_{j=1}^{min(p, n-1)} a_j d_{n-j}``
-    (the same sum with ``j = n - k``): the output of the all-pole filter ``1/A(z)`` driven
-    by ``-n a_n``, one dot product per coefficient for all rows at once.
+    Rabiner & Schafer, *Digital Processing of Speech Signals*, 1978), compiled
+    (:func:`nenv.kernels.to_cepstrum`) on ``d_n = n c_n``.
 
     Parameters
     ----------
@@ -63,29 +66,9 @@ def to_cepstrum(a: np.ndarray, *, n_ceps: int, gain: np.ndarray | None = None) -
     """
     a = np.asarray(a, dtype=np.float64)
     p = a.shape[-1] - 1
-    c = np.zeros(a.shape[:-1] + (n_ceps + 1,))
+    c = kernels.to_cepstrum(np.ascontiguousarray(a.reshape(-1, p + 1)), n_ceps).reshape(a.shape[:-1] + (n_ceps + 1,))
     if gain is not None:
         c[..., 0] = np.log(np.maximum(gain, 1e-300))
-    if a.ndim == 2 and a.shape[0] <= SCALAR_MAX_ROWS:  # the recursion as written, on Python floats
-        for row in range(a.shape[0]):
-            ar, cr = a[row].tolist() + [0.0] * max(0, n_ceps - p), c[row].tolist()
-            for n in range(1, n_ceps + 1):
-                acc = -ar[n]
-                for k in range(max(1, n - p), n):
-                    acc = acc - (k / n) * cr[k] * ar[n - k]
-                cr[n] = acc
-            c[row] = cr
-        return c
-    rows = a.reshape(-1, p + 1)
-    at = rows.T  # coefficient-major: each a_j a contiguous row over all frames
-    m = min(p, n_ceps)
-    scale = np.arange(1.0, n_ceps + 1)
-    d = np.zeros((n_ceps + 1, rows.shape[0]))  # d[n] = n c_n; d[0] stays 0
-    np.multiply(at[1 : m + 1], -scale[:m, None], out=d[1 : m + 1])
-    for n in range(2, n_ceps + 1):
-        j = min(p, n - 1)
-        d[n] -= filters.einsum("jt,jt->t", at[1 : j + 1], d[n - 1 : n - j - 1 : -1] if n > j + 1 else d[n - 1 :: -1][:j])
-    c.reshape(-1, n_ceps + 1)[:, 1:] = (d[1:] / scale[:, None]).T
     return c
 
 

@@ -12,7 +12,7 @@ from typing import Annotated, Callable, Optional
 
 import typer
 
-from nenv import __version__
+from nenv import __version__, kernels
 from nenv.errors import InputError, NenvError
 
 app = typer.Typer(
@@ -137,6 +137,7 @@ def extend(
     scheduler: Annotated[Optional[str], typer.Option(help="Folders and lists: run on this dask.distributed scheduler (e.g. tcp://10.0.0.5:8786) instead of local processes.")] = None,
 ) -> None:
     """Extend 8 kHz telephone speech to 16 kHz wideband speech: one file, or whole folders in parallel."""
+    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
     from nenv import batch, streamfile
 
     opts = streamfile.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, resample=resample, channel=channel, mix=mix, group=group)
@@ -248,6 +249,7 @@ def evaluate(
     model: Annotated[Optional[Path], typer.Option(help="Model folder for the neural and codebook systems (default: the shipped model, if any).")] = None,
 ) -> None:
     """Score every system against wideband references passed through the telephone channel."""
+    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
     from nenv import evaluate as ev
     from nenv.figures import spectrogram_grid
     from nenv.files import output_folder, write_text
@@ -287,6 +289,7 @@ def demo(
     out: Annotated[Path, typer.Option(help="Folder for the demo output (created if missing).")] = Path("nenv-demo"),
 ) -> None:
     """Extend the bundled demo call (an invented order confirmation) and draw input vs output."""
+    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
     from nenv import streamfile
     from nenv.files import output_folder
 

@@ -9,6 +9,7 @@ from typing import Annotated, Optional
 
 import typer
 
+from nenv import kernels
 from nenv.streamfile import watch
 from nenv.cli import _default_method, _guarded, _say, app
 from nenv.errors import InputError, OutputError
@@ -32,6 +33,7 @@ def stream(
 
     Ends cleanly at end of input or on SIGTERM/SIGINT, writing the last samples first.
     """
+    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
     import signal as sig
 
     import numpy as np
@@ -132,6 +134,7 @@ def relay(
     step_ms: Annotated[float, typer.Option(min=5.0, max=100.0, help="Neural method: all streams are extended together every this many ms (a packet waits at most one step; 10 halves the wait for more CPU per call).")] = 20.0,
 ) -> None:
     """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one call per SSRC. Stops on SIGTERM/Ctrl-C."""
+    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
     import signal as sig
 
     from nenv import pipeline, rtp

@@ -22,16 +22,16 @@ from typing import Literal
 
 import numpy as np
 
-from nenv import filters, lpc
+from nenv import kernels, lpc
 from nenv.errors import InputError
 from nenv.settings import HOP_WB, WB_SR, WIN_WB
-from nenv.synthesis import UPSAMPLER_DELAY, Delay, Upsampler
+from nenv.rows import ALL, RowState
+from nenv.synthesis import UPSAMPLER_DELAY, UPSAMPLER_HISTORY, upsample_rows
 
 Method = Literal["fold", "modulate", "rectify"]
 METHODS = ("fold", "modulate", "rectify")
 WHITEN_ORDER = 8  # LPC order of the whitening filter at 16 kHz
 DC_POLE = 0.99  # pole of the DC-removal filter (-3 dB near 26 Hz at 16 kHz)
-DC_B, DC_A = np.array([1.0, -1.0]), np.array([1.0, -DC_POLE])  # the DC-removal filter (1 - z^-1) / (1 - DC_POLE z^-1)
 DEFAULT_SHIFT_HZ = 3400.0  # Hz, modulation shift: the band edge of the telephone channel
 
 
@@ -56,23 +56,18 @@ def residual(frames: np.ndarray, a: np.ndarray, *, hop_length: int) -> np.ndarra
     p = a.shape[1] - 1
     if length < hop_length + p:
         raise ValueError(f"frames of {length} samples are too short for hop {hop_length} and order {p}")
-    start = length - hop_length
-    if n <= 2:  # a streaming hop: one convolution per frame
-        return np.concatenate([np.convolve(frames[i, start - p :], a[i], mode="valid") for i in range(n)])
-    # window[t, j] = frames[t, start - p + j : start + j + 1], so e[t, j] = window[t, j] @ a[t, ::-1]
-    windows = lpc.hop_frames(frames[:, start - p :], frame_length=p + 1, hop_length=1, n_frames=hop_length)
-    return np.matmul(windows, a[:, ::-1, None]).reshape(-1)
+    return kernels.residual(np.ascontiguousarray(frames, dtype=np.float64), np.ascontiguousarray(a, dtype=np.float64), hop_length).reshape(-1)
 
 
 def mean_square(x: np.ndarray) -> np.ndarray:
     """Mean of squares along the last axis [shape=(..., n)] -> [shape=(...)] (one pass, no temporaries)."""
-    return filters.einsum("...n,...n->...", x, x) / x.shape[-1]
+    return np.einsum("...n,...n->...", x, x) / x.shape[-1]
 
 
 class ExcitationExtender:
-    """Extend a narrowband residual to a whitened 16 kHz excitation, hop by hop, with state."""
+    """Extend a narrowband residual to a whitened 16 kHz excitation, hop by hop, one row of state per call."""
 
-    def __init__(self, method: Method = "rectify", *, shift_hz: float = DEFAULT_SHIFT_HZ, whiten: bool = True):
+    def __init__(self, method: Method = "rectify", *, shift_hz: float = DEFAULT_SHIFT_HZ, whiten: bool = True, rows: int = 1):
         if method not in METHODS:
             raise InputError(f"excitation={method!r} is not known: choose one of {', '.join(METHODS)}")
         if not 0 < shift_hz < WB_SR / 2:
@@ -80,57 +75,69 @@ class ExcitationExtender:
         self.method = method
         self.shift_hz = shift_hz
         self.whiten = whiten
-        self._up = Upsampler()
-        self._delay = Delay(UPSAMPLER_DELAY)
-        self._n = 0  # samples produced so far: the modulator's phase reference
-        self._dc_zi = np.zeros(1)
-        self._frames = lpc.FrameBuffer(frame_length=WIN_WB, hop_length=HOP_WB)
+        # up: the interpolator's last inputs; delay: fold's alignment delay; n: samples produced so far
+        # (the modulator's phase reference); dc: the DC filter's state; wb: the whitening frames' history
+        self._state = RowState(up=np.zeros(UPSAMPLER_HISTORY), delay=np.zeros(UPSAMPLER_DELAY), n=np.zeros(()), dc=np.zeros(()), wb=np.zeros(WIN_WB - HOP_WB))
+        self.add_rows(rows)
+
+    def add_rows(self, n: int) -> None:
+        self._state.add(n)
+
+    def keep_rows(self, mask: np.ndarray) -> None:
+        self._state.keep(mask)
 
     def process(self, e: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Extend whole hops of narrowband residual.
+        """Extend whole hops of one call's narrowband residual (an extender of one row).
 
-        Parameters
-        ----------
         e : np.ndarray [shape=(n * 80,)], residual at 8 kHz
-
-        Returns
-        -------
-        u : np.ndarray [shape=(n * 160,)], extended excitation at 16 kHz, aligned
-            with :class:`nenv.synthesis.Upsampler` output (delay UPSAMPLER_DELAY)
-        rms : np.ndarray [shape=(n,)], RMS of ``u`` over each hop (> 0)
+        Returns u [shape=(n * 160,)], the extended excitation at 16 kHz, aligned with the
+        interpolated narrowband signal (delay UPSAMPLER_DELAY), and each hop's RMS of u [shape=(n,)] (> 0).
         """
+        u, rms = self.rows(np.asarray(e, dtype=np.float64)[None, :])
+        return u[0], rms
+
+    def rows(self, e: np.ndarray, sel=ALL) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`process` for the rows ``sel``: e [shape=(B, H * 80)] -> u [shape=(B, H * 160)], rms [shape=(B * H,)]."""
+        st = self._state
+        B, H = e.shape[0], e.shape[1] // (HOP_WB // 2)
         if self.method == "fold":
-            z = np.zeros(2 * e.size)
-            z[::2] = np.sqrt(2.0) * e
-            u = self._delay.process(z)
+            z = np.zeros((B, 2 * e.shape[1]))
+            z[:, ::2] = np.sqrt(2.0) * e
+            buf = np.concatenate([st.get("delay", sel), z], axis=1)
+            st.put("delay", sel, buf[:, z.shape[1] :])
+            u = buf[:, : z.shape[1]]
         else:
-            up = self._up.process(e)
+            hist = st.get("up", sel)
+            up = upsample_rows(e, hist)
+            st.put("up", sel, hist)
             if self.method == "modulate":
-                t = self._n + np.arange(up.size, dtype=np.float64)  # global sample index: phase continues across calls
+                n0 = st.get("n", sel)
+                t = n0[:, None] + np.arange(up.shape[1], dtype=np.float64)  # each call's sample index: phase continues across hops
                 u = up * 2.0 * np.cos(2 * np.pi * self.shift_hz * t / WB_SR)
             else:
-                u, dc_zi = rectify_hops(up[None, :], self._dc_zi[None, :])
-                u, self._dc_zi = u[0], dc_zi[0]
-        self._n += u.size
-        frames = self._frames.push(u)
-        if self.whiten:
-            return whiten_hops(frames)
-        return u, hop_rms(u)
+                u, dc = rectify_hops(up, st.get("dc", sel))
+                st.put("dc", sel, dc)
+        st.put("n", sel, st.get("n", sel) + u.shape[1])
+        if not self.whiten:
+            return u, hop_rms(u.reshape(-1))
+        wbuf = np.concatenate([st.get("wb", sel), u], axis=1)
+        st.put("wb", sel, wbuf[:, H * HOP_WB :])
+        frames = np.ascontiguousarray(lpc.hop_frames(wbuf, frame_length=WIN_WB, hop_length=HOP_WB, n_frames=H)).reshape(B * H, WIN_WB)
+        w, rms = whiten_hops(frames)
+        return w.reshape(B, H * HOP_WB), rms
 
 
-def rectify_hops(up: np.ndarray, dc_zi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def rectify_hops(up: np.ndarray, dc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The ``rectify`` extension for B rows of whole 16 kHz hops (one call, or many calls batched).
 
-    Full-wave rectification, DC removal with state, then each hop scaled back to the power
-    of the interpolated residual it came from.
+    Full-wave rectification, DC removal ``(1 - z^-1) / (1 - DC_POLE z^-1)`` with state, then each
+    hop scaled back to the power of the interpolated residual it came from (:func:`nenv.kernels.rectify`).
 
-    up : np.ndarray [shape=(B, n * HOP_WB)], interpolated residual; dc_zi : [shape=(B, 1)]
-    Returns u [shape=(B, n * HOP_WB)] and the DC filter's new state [shape=(B, 1)].
+    up : np.ndarray [shape=(B, n * HOP_WB)], interpolated residual; dc : [shape=(B,)], the DC filter's state
+    Returns u [shape=(B, n * HOP_WB)] and the DC filter's new state [shape=(B,)].
     """
-    z, dc_zi = filters.iir(DC_B, DC_A, np.abs(up), dc_zi)
-    up_h, z_h = up.reshape(up.shape[0], -1, HOP_WB), z.reshape(z.shape[0], -1, HOP_WB)
-    scale = np.sqrt(mean_square(up_h) / np.maximum(mean_square(z_h), 1e-30))
-    return (z_h * scale[..., None]).reshape(up.shape), dc_zi
+    dc = np.array(dc, dtype=np.float64)  # a copy: the kernel updates it in place
+    return kernels.rectify(np.ascontiguousarray(up, dtype=np.float64), dc, DC_POLE, HOP_WB), dc
 
 
 def whiten_hops(frames: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

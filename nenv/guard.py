@@ -20,13 +20,12 @@ A rejected hop gets the codebook envelope of its nearest cell instead.
 
 from __future__ import annotations
 
-import math
 from dataclasses import asdict, dataclass, field, fields
 from enum import IntFlag
 
 import numpy as np
 
-from nenv import cepstrum, lpc
+from nenv import cepstrum, kernels, lpc
 from nenv.errors import ConfigError
 from nenv.settings import BAND_EDGE_HZ, CHANNEL_LOW_HZ, WB_SR
 
@@ -133,17 +132,17 @@ def summary_line(hops: int, rejected: int, by_reason: dict) -> str:
 
 
 def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
-    """RMS difference (dB) of the mean-removed log envelopes over 300-3400 Hz.
+    """RMS difference (dB) of the mean-removed log envelopes over 300-3400 Hz (spectra by :func:`nenv.kernels.band_ratio`).
 
     a_wb : np.ndarray [shape=(n, p+1)] at 16 kHz; a_nb : np.ndarray [shape=(n, q+1)] at 8 kHz
     """
-    bins = cepstrum.band_bins(CHANNEL_LOW_HZ, BAND_EDGE_HZ, n_fft=MISMATCH_N_FFT_WB, sr=WB_SR)  # the same bins exist on the 8 kHz grid
-    # envelope power is 1/|A|^2, so wb_dB - nb_dB = 10 log10(|A_nb|^2 / |A_wb|^2): one logarithm, in
-    # single precision (ample for a threshold in dB); the ratio is clipped to +-300 dB so that a zero
-    # of either polynomial on the unit circle gives a huge, finite mismatch
-    ratio = np.maximum(cepstrum.squared_magnitude(a_nb, n_fft=MISMATCH_N_FFT_NB, bins=bins), 1e-300)
-    ratio /= np.maximum(cepstrum.squared_magnitude(a_wb, n_fft=MISMATCH_N_FFT_WB, bins=bins), 1e-300)
-    np.minimum(np.maximum(ratio, 1e-30, out=ratio), 1e30, out=ratio)
+    # envelope power is 1/|A|^2, so wb_dB - nb_dB = 10 log10(|A_nb|^2 / |A_wb|^2) on the same
+    # frequencies: the bins of a 512-point grid at 16 kHz are those of a 256-point grid at 8 kHz
+    bins = cepstrum.band_bins(CHANNEL_LOW_HZ, BAND_EDGE_HZ, n_fft=MISMATCH_N_FFT_WB, sr=WB_SR)
+    cos_wb, sin_wb = cepstrum.cosine_table(a_wb.shape[-1], MISMATCH_N_FFT_WB, *bins)
+    cos_nb, sin_nb = cepstrum.cosine_table(a_nb.shape[-1], MISMATCH_N_FFT_NB, *bins)
+    ratio = kernels.band_ratio(np.ascontiguousarray(a_wb, dtype=np.float64), np.ascontiguousarray(a_nb, dtype=np.float64), cos_wb, sin_wb, cos_nb, sin_nb)
+    # one logarithm per bin, in single precision (ample for a threshold in dB)
     d = np.log10(ratio.astype(np.float32)).astype(np.float64)
     d *= 10
     n = d.shape[1]
@@ -178,8 +177,6 @@ class Guard:
         [shape=(n, p)] (the synthesis reuses them for the hops it accepts). ``k``: those
         coefficients if the caller has them (the recursion that built ``a``), else the
         step-down of ``a`` computes them."""
-        if k is not None and a.shape[0] == 1:  # a streaming hop
-            return self._assess_one(ceps=ceps, level_db=level_db, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell, k=k)
         lim = self.limits
         a_ok = np.isfinite(a)
         finite = np.isfinite(ceps).all(axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & a_ok.all(axis=1)
@@ -208,35 +205,3 @@ class Guard:
             cell=np.asarray(cell, dtype=int),
         )
         return dec, k
-
-    def _assess_one(self, *, ceps, level_db, a, gain, a_nb, novelty, cell, k) -> tuple[Decisions, np.ndarray]:
-        """:meth:`assess` of one hop whose reflection coefficients are given: the same checks in the
-        same order on Python floats (a few dozen numpy calls fewer per streaming hop), the same
-        verdicts and values (tested against the array code)."""
-        lim = self.limits
-        level, g, nov = float(level_db[0]), float(gain[0]), float(novelty[0])
-        a_finite = all(map(math.isfinite, a[0].tolist()))
-        finite = all(map(math.isfinite, ceps[0].tolist())) and math.isfinite(level) and math.isfinite(g) and g > 0 and a_finite
-        a_fin = a if a_finite else np.where(np.isfinite(a), a, 0.0)
-        ks = [v if math.isfinite(v) else 0.0 for v in k[0].tolist()]
-        max_k = max(abs(v) for v in ks)
-        mismatch = float(telephone_band_mismatch(a_fin, a_nb)[0]) if finite else math.inf
-        reasons = 0 if finite else int(Check.NONFINITE)
-        if finite and not max_k < 1.0 - lim.stability_margin:
-            reasons |= int(Check.UNSTABLE)
-        if math.isfinite(level) and not (lim.level_min_db <= level <= lim.level_max_db):
-            reasons |= int(Check.LEVEL)
-        if finite and mismatch > lim.mismatch_max_db:
-            reasons |= int(Check.MISMATCH)
-        if nov > lim.novelty_max:
-            reasons |= int(Check.NOVEL)
-        dec = Decisions(
-            rejected=np.array([reasons != 0]),
-            reasons=np.array([reasons]),
-            max_k=np.array([max_k]),
-            level_db=np.asarray(level_db, dtype=float),
-            mismatch_db=np.array([mismatch]),
-            novelty=np.asarray(novelty, dtype=float),
-            cell=np.asarray(cell, dtype=int),
-        )
-        return dec, np.array([ks])

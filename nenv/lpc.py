@@ -20,18 +20,12 @@ axis is samples, lags or coefficients.
 
 from __future__ import annotations
 
-import math
 from functools import lru_cache
 
 import numpy as np
 import scipy.fft
 
-from nenv import filters
-
-try:  # the compiled Levinson recursion behind scipy.linalg.solve_toeplitz (internal to SciPy)
-    from scipy.linalg._solve_toeplitz import levinson as _toeplitz_levinson
-except ImportError:  # pragma: no cover - depends on the SciPy release
-    _toeplitz_levinson = None
+from nenv import kernels
 
 LAG_WINDOW_HZ = 60.0  # Hz, Gaussian lag-window bandwidth (ITU-T G.729 clause 3.2.1 uses 60 Hz)
 WHITE_NOISE_CORRECTION = 1.0001  # r[0] factor = -40 dB noise floor (ITU-T G.729 clause 3.2.1)
@@ -127,20 +121,9 @@ def autocorrelation(frames: np.ndarray, *, order: int) -> np.ndarray:
     frames : np.ndarray [shape=(..., L)] -> np.ndarray [shape=(..., order+1)]
     """
     length = frames.shape[-1]
-    if 0 < frames.size <= SCALAR_MAX_ROWS * length:  # one or two frames: numpy's compiled correlation, any order
-        x = np.asarray(frames, dtype=np.float64).reshape(-1, length)
-        r = np.empty((x.shape[0], order + 1))
-        padded = np.zeros(length + order)
-        for b in range(x.shape[0]):
-            padded[:length] = x[b]
-            r[b] = np.correlate(padded, x[b], "valid")  # sum_n padded[n + k] x[n], k = 0..order
+    if order <= DIRECT_MAX_ORDER and frames.dtype == np.float64:  # a few lags: the compiled direct sums
+        r = kernels.autocorrelation(np.ascontiguousarray(frames.reshape(-1, length)), order)
         return r.reshape(frames.shape[:-1] + (order + 1,))
-    if order <= DIRECT_MAX_ORDER:  # a few lags: direct products beat an FFT of the whole frame
-        x = np.asarray(frames, dtype=np.float64)
-        r = np.empty(x.shape[:-1] + (order + 1,))
-        for k in range(order + 1):
-            r[..., k] = filters.einsum("...n,...n->...", x[..., : length - k], x[..., k:])
-        return r
     # circular autocorrelation equals the linear one for lags <= order once n_fft >= length + order
     n_fft = scipy.fft.next_fast_len(length + order, real=True)
     spec = scipy.fft.rfft(frames, n=n_fft, axis=-1)
@@ -205,115 +188,9 @@ keeps only a few bits of them) get ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``.
     """
     r = np.asarray(r, dtype=np.float64)
     lead = r.shape[:-1]
-    r = r.reshape(-1, r.shape[-1])[:, : order + 1]
-    n = r.shape[0]
-    if n <= SCALAR_MAX_ROWS:  # a streaming hop (one row) or two: row by row, no array steps
-        rows = [_levinson_row(r[i], order) for i in range(n)]
-        a, k, err = rows[0] if n == 1 else (np.stack([x[0] for x in rows]), np.stack([x[1] for x in rows]), np.array([x[2] for x in rows]))
-        return a.reshape(*lead, order + 1), k.reshape(*lead, order), np.asarray(err).reshape(lead)
-    silent = ~(r[:, 0] > SILENT_ENERGY)
-    # coefficient-major (order+1, n) layout: every step reads and writes whole contiguous rows
-    rt = np.where(silent[None, :], np.eye(order + 1, 1), r.T)
-    a = np.zeros((order + 1, n))
-    a[0] = 1.0
-    k = np.empty((order, n))
-    neg_err = -rt[0]  # the error with its sign flipped: k_i = acc / -err in one division
-    for i in range(1, order + 1):
-        ki = k[i - 1]
-        filters.einsum("jn,jn->n", a[:i], rt[i:0:-1], out=ki)
-        np.divide(ki, neg_err, out=ki)
-        a[1 : i + 1] += ki * a[i - 1 :: -1]  # a_i is still 0 and a_0 = 1, so a_i becomes k_i exactly
-        neg_err *= 1.0 - ki * ki
-    err = np.where(silent, 0.0, -neg_err)
-    return a.T.reshape(*lead, order + 1), k.T.reshape(*lead, order), err.reshape(lead)
-
-
-SCALAR_MAX_ROWS = 2  # up to this many rows: Levinson by SciPy's compiled recursion, step-down and step-up on Python floats
-
-
-def _div(num: float, den: float) -> float:
-    """num / den with IEEE results for den == 0 (as numpy gives), not an exception."""
-    if den != 0.0:
-        return num / den
-    if num == 0.0 or math.isnan(num):
-        return math.nan
-    return math.copysign(math.inf, num) * math.copysign(1.0, den)
-
-
-def _levinson_row(row: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray, float]:
-    """:func:`levinson` of one row: SciPy's compiled recursion where it is present and agrees
-    (:func:`compiled_levinson`); the same recursion on Python floats where it is not, and for rows
-    it does not serve (inf or nan anywhere or a sum that overflows, a singular leading minor), with
-    the same edge cases; a silent row gives ``a = [1, 0, ...]``, ``k = 0``, ``err = 0``."""
-    rr = row.tolist()
-    if not rr[0] > SILENT_ENERGY:  # digital silence
-        a = np.zeros(order + 1)
-        a[0] = 1.0
-        return a, np.zeros(order), 0.0
-    if compiled_levinson() and math.isfinite(sum(rr)):
-        try:
-            # symmetric Toeplitz system R a = -r[1:]; SciPy wants the first column reversed, then the first row
-            a_tail, refl = _toeplitz_levinson(np.concatenate((row[order - 1 : 0 : -1], row[:order])), -row[1 : order + 1])
-        except np.linalg.LinAlgError:  # a singular leading minor: the float recursion gives its inf/nan
-            pass
-        else:
-            k = refl[1:]
-            err = rr[0]
-            for ki in k.tolist():
-                err = err * (1.0 - ki * ki)
-            a = np.empty(order + 1)
-            a[0] = 1.0
-            a[1:] = a_tail
-            return a, k, err
-    a, ks, err = _levinson_floats(rr, order)
-    return np.array(a), np.array(ks), err
-
-
-def _levinson_floats(rr: list, order: int) -> tuple[list, list, float]:
-    """One row of the Levinson-Durbin recursion on Python floats (``rr[0]`` above SILENT_ENERGY)."""
-    a = [1.0] + [0.0] * order
-    err = rr[0]
-    ks = []
-    for i in range(1, order + 1):
-        acc = 0.0
-        for j in range(i):
-            acc += a[j] * rr[i - j]
-        ki = -_div(acc, err)
-        ks.append(ki)
-        a[1:i] = [a[j] + ki * a[i - j] for j in range(1, i)]  # the right side reads the old a
-        a[i] = ki
-        err = err * (1.0 - ki * ki)
-    return a, ks, err
-
-
-_compiled: dict[str, bool] = {}
-
-
-def compiled_levinson() -> bool:
-    """True when SciPy's compiled Levinson recursion serves :func:`levinson` for a few rows: present,
-    and agreeing with the recursion on Python floats (checked once, on a conditioned speech-like
-    autocorrelation and on one that is not positive definite)."""
-    if "ok" not in _compiled:
-        _compiled["ok"] = _compiled_agrees()
-    return _compiled["ok"]
-
-
-def _compiled_agrees() -> bool:
-    if _toeplitz_levinson is None:
-        return False
-    order = 10
-    lags = np.arange(order + 1)
-    resonant = condition((0.95**lags * np.cos(0.4 * lags))[None], sr=8000)[0]  # a damped cosine times a decay: positive definite
-    rows = [resonant, np.r_[1.0, 2.0, np.zeros(order - 1)]]
-    try:
-        for r in rows:
-            a, refl = _toeplitz_levinson(np.concatenate((r[order - 1 : 0 : -1], r[:order])), -r[1 : order + 1])
-            want_a, want_k, _ = _levinson_floats(r.tolist(), order)
-            if not (np.allclose(a, want_a[1:], rtol=1e-10, atol=1e-12) and np.allclose(refl[1:], want_k, rtol=1e-10, atol=1e-12) and refl[0] == 1.0):
-                return False
-    except Exception:  # pragma: no cover - an internal signature changed
-        return False
-    return True
+    rows = np.ascontiguousarray(r.reshape(-1, r.shape[-1])[:, : order + 1])
+    a, k, err = kernels.levinson(rows, order, SILENT_ENERGY)
+    return a.reshape(*lead, order + 1), k.reshape(*lead, order), err.reshape(lead)
 
 
 def analyse(frames: np.ndarray, *, order: int, sr: int) -> tuple[np.ndarray, np.ndarray]:
@@ -330,11 +207,10 @@ def analyse(frames: np.ndarray, *, order: int, sr: int) -> tuple[np.ndarray, np.
     a : np.ndarray [shape=(n, order+1)]
     gain : np.ndarray [shape=(n,)], amplitude G, G**2 = error power per sample
     """
-    w = asymmetric_window(frames.shape[-1])
-    r = condition(autocorrelation(frames * w, order=order), sr=sr)
-    a, _, err = levinson(r, order=order)
-    gain = np.sqrt(np.maximum(err, 0.0) / window_energy(frames.shape[-1]))
-    return a, gain
+    length = frames.shape[-1]
+    rows = np.ascontiguousarray(np.asarray(frames, dtype=np.float64).reshape(-1, length))  # frames may be views of a signal
+    a, _, gain = kernels.lpc_analyse(rows, asymmetric_window(length), _lag_window(order + 1, sr, LAG_WINDOW_HZ, WHITE_NOISE_CORRECTION), order, SILENT_ENERGY, window_energy(length))
+    return a.reshape(frames.shape[:-1] + (order + 1,)), gain.reshape(frames.shape[:-1])
 
 
 def reflection(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -352,44 +228,8 @@ def reflection(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     a = np.asarray(a, dtype=np.float64)
     lead = a.shape[:-1]
     p = a.shape[-1] - 1
-    if a.size <= SCALAR_MAX_ROWS * (p + 1):
-        k, stable = _reflection_scalar(a.reshape(-1, p + 1))
-        return k.reshape(*lead, p), stable.reshape(lead)
-    cur = a.reshape(-1, p + 1)[:, 1:].T.copy()  # coefficient-major (p, n): contiguous rows per step
-    k = np.empty_like(cur)
-    stable = np.ones(cur.shape[1], dtype=bool)
-    for i in range(p, 0, -1):
-        ki = cur[i - 1]
-        k[i - 1] = ki
-        stable &= np.abs(ki) < 1.0
-        if i > 1:
-            denom = 1.0 - ki * ki
-            denom = np.where(np.abs(denom) < 1e-300, 1.0, denom)
-            prev = cur[: i - 1]
-            cur[: i - 1] = (prev - ki * prev[::-1]) / denom
-    return k.T.reshape(*lead, p), stable.reshape(lead)
-
-
-def _reflection_scalar(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`reflection` for a few rows, on Python floats (same recursion, same edge cases)."""
-    n, p = a.shape[0], a.shape[1] - 1
-    k_out, st_out = np.zeros((n, p)), np.ones(n, dtype=bool)
-    for row in range(n):
-        cur = a[row, 1:].tolist()
-        ks = [0.0] * p
-        stable = True
-        for i in range(p, 0, -1):
-            ki = cur[i - 1]
-            ks[i - 1] = ki
-            stable = stable and abs(ki) < 1.0
-            if i > 1:
-                denom = 1.0 - ki * ki
-                if abs(denom) < 1e-300:
-                    denom = 1.0
-                prev = cur[: i - 1]
-                cur[: i - 1] = [(prev[j] - ki * prev[i - 2 - j]) / denom for j in range(i - 1)]  # |denom| >= 1e-300
-        k_out[row], st_out[row] = ks, stable
-    return k_out, st_out
+    k, stable = kernels.reflection(np.ascontiguousarray(a.reshape(-1, p + 1)))
+    return k.reshape(*lead, p), stable.reshape(lead)
 
 
 def is_stable(a: np.ndarray, *, margin: float = 0.0) -> np.ndarray:
@@ -409,21 +249,4 @@ def from_reflection(k: np.ndarray) -> np.ndarray:
     k = np.asarray(k, dtype=np.float64)
     lead = k.shape[:-1]
     p = k.shape[-1]
-    kk = k.reshape(-1, p)
-    if kk.shape[0] <= SCALAR_MAX_ROWS:
-        out = np.zeros((kk.shape[0], p + 1))
-        for row in range(kk.shape[0]):
-            a = [1.0] + [0.0] * p
-            for i, ki in enumerate(kk[row].tolist(), start=1):
-                prev = a[:]
-                for j in range(1, i):
-                    a[j] = prev[j] + ki * prev[i - j]
-                a[i] = ki
-            out[row] = a
-        return out.reshape(*lead, p + 1)
-    kt = kk.T  # coefficient-major (p+1, n) work array: contiguous rows per step
-    a = np.zeros((p + 1, kk.shape[0]))
-    a[0] = 1.0
-    for i in range(1, p + 1):
-        a[1 : i + 1] += kt[i - 1] * a[i - 1 :: -1]  # a_i is still 0 and a_0 = 1, so a_i becomes k_i exactly
-    return a.T.reshape(*lead, p + 1)
+    return kernels.from_reflection(np.ascontiguousarray(k.reshape(-1, p))).reshape(*lead, p + 1)

@@ -1,142 +1,107 @@
-"""The source-filter extension pipeline and the systems that plug into it.
+"""The chain: one per-hop source-filter extension for any number of calls at once (rows).
 
-For every hop of 8 kHz input the :class:`Extender`
+For every hop of 8 kHz input the :class:`Chain`
 
-1. frames and analyses the narrowband signal (LPC, order NB_ORDER);
+1. frames and analyses the narrowband signal (LPC, order NB_ORDER), for systems that use it;
 2. asks its *system* for a 16 kHz high-band candidate for the hop;
 3. keeps only the band above 3.4 kHz of that candidate (elliptic high-pass);
 4. adds it to the interpolated narrowband signal, which is never altered.
 
-Source-filter systems (:class:`SourceFilterSystem`) build the candidate from
-the inverse-filtered residual, extended to 16 kHz (:mod:`nenv.excitation`)
-and shaped by an all-pole wideband envelope from an estimator
-(:mod:`nenv.estimators`). The imaging baseline and the unextended reference
-share steps 1, 3 and 4.
+Every stage keeps its state as rows (:class:`nenv.rows.RowState`): row ``i`` is call ``i``.
+One call offline (:func:`extend`, in blocks), one call streaming
+(:class:`nenv.runtime.CallEngine`) and many calls stepped together
+(:class:`nenv.multicall.MultiCallEngine`) all run this one chain, so they cannot drift
+apart; any whole number of hops at a time gives the same result. The output lags the
+input by :data:`LATENCY` samples at 16 kHz (the interpolator's delay), which the callers
+remove; :func:`tail_padding` is the one end-of-signal rule.
 
-Every stage keeps its state, so :meth:`Extender.process` can be fed any whole
-number of hops at a time with the same result. The output lags the input by
-:data:`LATENCY` samples at 16 kHz (the interpolator's delay), which
-:func:`extend` removes.
+Systems (:mod:`nenv.systems`): source-filter systems build the candidate from the
+inverse-filtered residual, extended to 16 kHz (:mod:`nenv.excitation`) and shaped by an
+all-pole wideband envelope from an estimator (:mod:`nenv.estimators`); the imaging
+baseline, the unextended reference and the true-band ceiling share steps 1, 3 and 4.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable, Protocol
+from typing import Callable
 
 import numpy as np
 
-from nenv import heap, lpc
+from nenv import kernels, lpc
 from nenv.audio import limit_peaks
 from nenv.errors import InputError
-from nenv.estimators.base import EnvelopeEstimator, NarrowbandAnalysis
-from nenv.estimators.imaging import ImagingSystem
-from nenv.estimators.oracle import OracleEstimator
-from nenv.excitation import ExcitationExtender, Method, residual
+from nenv.estimators.base import NarrowbandAnalysis
+from nenv.rows import ALL, RowState
 from nenv.settings import HOP_NB, NB_ORDER, NB_SR, WIN_NB
-from nenv.synthesis import UPSAMPLER_DELAY, AllPoleSynthesizer, SosStage, Upsampler, isolation_sos
+from nenv.synthesis import UPSAMPLER_DELAY, UPSAMPLER_HISTORY, isolation_sos, upsample_rows
+from nenv.systems import DEFAULT_EXCITATION, MODEL_SYSTEMS, REFERENCE_SYSTEMS, SYSTEMS, System, load_model, make_system
 
-LATENCY = UPSAMPLER_DELAY  # samples at 16 kHz of processing delay inside Extender.process
-DEFAULT_EXCITATION: Method = "rectify"
+__all__ = ["Chain", "DEFAULT_EXCITATION", "Extended", "LATENCY", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "System", "extend", "load_model", "make_system", "tail_padding"]
 
-
-class System(Protocol):
-    """Anything that turns narrowband hops into a 16 kHz high-band candidate."""
-
-    name: str
-
-    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis) -> np.ndarray:
-        """Candidate for the hops in ``x`` [shape=(2 * len(x),)], before band isolation."""
-        ...
-
-    def reset(self) -> None: ...
+LATENCY = UPSAMPLER_DELAY  # samples at 16 kHz of processing delay inside Chain.process
 
 
-class Unextended:
-    """No added band: the interpolated narrowband signal alone (the reference point)."""
+class Chain:
+    """Stateful narrowband -> wideband processor around one :class:`System`, one row per call."""
 
-    name = "unextended"
-
-    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis) -> np.ndarray:
-        return np.zeros(2 * x.size)
-
-    def reset(self) -> None:
-        pass
-
-
-class TrueBand:
-    """The reference's own band above 3.4 kHz added to the unextended signal: the ceiling of any extension.
-
-    Evaluation only (it needs the time-aligned 16 kHz original). The candidate is the reference
-    itself, delayed by :data:`LATENCY` like the interpolated narrowband signal, so after the same
-    band isolation the true band lines up with the telephone band.
-    """
-
-    name = "true-band"
-
-    def __init__(self, reference: np.ndarray):
-        reference = np.asarray(reference, dtype=np.float64)
-        if reference.ndim != 1 or reference.size == 0:
-            raise InputError("the true-band system needs a non-empty mono 16 kHz reference signal")
-        self.reference = np.concatenate([np.zeros(LATENCY), reference])
-        self.reset()
-
-    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis) -> np.ndarray:
-        seg = self.reference[self._pos : self._pos + 2 * x.size]
-        self._pos += 2 * x.size
-        return np.pad(seg, (0, 2 * x.size - seg.size))
-
-    def reset(self) -> None:
-        self._pos = 0
-
-
-class SourceFilterSystem:
-    """Residual -> extended excitation -> wideband all-pole envelope from ``estimator``."""
-
-    def __init__(self, estimator: EnvelopeEstimator, *, excitation: Method = DEFAULT_EXCITATION):
-        self.estimator = estimator
-        self.name = estimator.name
-        self.excitation = excitation
-        self.reset()
-
-    def reset(self) -> None:
-        self.estimator.reset()
-        self._extender = ExcitationExtender(self.excitation)
-        self._synth = AllPoleSynthesizer(order=self.estimator.order)
-
-    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis) -> np.ndarray:
-        env = self.estimator.estimate(analysis)
-        e = residual(analysis.frames, analysis.a, hop_length=HOP_NB)
-        u, rms = self._extender.process(e)
-        return self._synth.process(u, a=env.a, gain=env.gain / rms, k=env.k)
-
-
-class Extender:
-    """Stateful narrowband -> wideband processor around one :class:`System`."""
-
-    def __init__(self, system: System):
-        heap.settle()  # per-hop temporaries reuse heap memory instead of faulting in fresh pages
+    def __init__(self, system: System, *, rows: int = 1):
+        kernels.warm()  # compiled (or loaded from cache) before the first hop, not during it
         self.system = system
-        self.reset()
+        system.reset()  # a system starts with no calls: this chain's rows are its rows
+        self._iso = np.ascontiguousarray(isolation_sos())
+        self._state = RowState(nb=np.zeros(WIN_NB - HOP_NB), up=np.zeros(UPSAMPLER_HISTORY), iso=np.zeros((self._iso.shape[0], 2)))
+        self.add_rows(rows)
 
-    def reset(self) -> None:
-        self.system.reset()
-        self._frames = lpc.FrameBuffer(frame_length=WIN_NB, hop_length=HOP_NB)
-        self._up = Upsampler()
-        self._isolate = SosStage(isolation_sos())
+    @property
+    def rows(self) -> int:
+        return len(self._state)
 
-    def process(self, x: np.ndarray) -> np.ndarray:
-        """Extend whole hops of 8 kHz input.
+    def add_rows(self, n: int = 1) -> None:
+        """Start ``n`` new calls (rows at the end), each from silence."""
+        self._state.add(n)
+        self.system.add_rows(n)
 
-        x : np.ndarray [shape=(n * HOP_NB,)] -> np.ndarray [shape=(2 * n * HOP_NB,)] at 16 kHz,
-        delayed by LATENCY samples.
+    def keep_rows(self, mask: np.ndarray) -> None:
+        """Forget the rows where ``mask`` is False (calls that ended)."""
+        self._state.keep(mask)
+        self.system.keep_rows(mask)
+
+    def process(self, x: np.ndarray, sel=ALL) -> np.ndarray:
+        """Extend whole hops of 8 kHz input of the rows ``sel``.
+
+        x : np.ndarray [shape=(B, H * HOP_NB)] -> np.ndarray [shape=(B, 2 * H * HOP_NB)] at 16 kHz,
+        delayed by LATENCY samples. ``sel``: all rows (B = rows), or an index array of B rows.
+        A one-dimensional ``x`` is the one row of a one-row chain and gives a one-dimensional result.
         """
-        if x.size % HOP_NB:
-            raise ValueError(f"Extender.process takes whole hops of {HOP_NB} samples, got {x.size}")
-        frames = self._frames.push(x)
+        if x.ndim == 1:
+            if self.rows != 1:
+                raise ValueError(f"a signal without rows needs a chain of one row, this one has {self.rows}")
+            return self.process(x[None, :])[0]
+        n = x.shape[1]
+        if n % HOP_NB:
+            raise ValueError(f"Chain.process takes whole hops of {HOP_NB} samples, got {n}")
+        H = n // HOP_NB
+        B = x.shape[0]
+        x = np.ascontiguousarray(x, dtype=np.float64)
+        if H == 0:
+            return np.zeros((B, 0))
+        analysis = self._analyse(x, sel, H) if self.system.needs_analysis else NarrowbandAnalysis(np.zeros((0, WIN_NB)), np.zeros((0, NB_ORDER + 1)), np.zeros(0), rows=B)
+        candidate = self.system.highband(x, analysis, sel)
+        up = self._state.get("up", sel)
+        low = upsample_rows(x, up)
+        self._state.put("up", sel, up)
+        iso = self._state.get("iso", sel)
+        high = kernels.sosfilt(self._iso, np.ascontiguousarray(candidate), iso)
+        self._state.put("iso", sel, iso)
+        return low + high
+
+    def _analyse(self, x: np.ndarray, sel, H: int) -> NarrowbandAnalysis:
+        buf = np.concatenate([self._state.get("nb", sel), x], axis=1)
+        self._state.put("nb", sel, buf[:, H * HOP_NB :])
+        frames = np.ascontiguousarray(lpc.hop_frames(buf, frame_length=WIN_NB, hop_length=HOP_NB, n_frames=H)).reshape(x.shape[0] * H, WIN_NB)
         a, gain = lpc.analyse(frames, order=NB_ORDER, sr=NB_SR)
-        candidate = self.system.highband(x, NarrowbandAnalysis(frames=frames, a=a, gain=gain))
-        return self._up.process(x) + self._isolate.process(candidate)
+        return NarrowbandAnalysis(frames=frames, a=a, gain=gain, rows=x.shape[0])
 
 
 @dataclass(frozen=True)
@@ -169,9 +134,9 @@ def tail_padding(pending: int) -> int:
 def extend(x: np.ndarray, *, system: System, on_progress: Callable[[int, int], None] | None = None) -> Extended:
     """Extend a whole 8 kHz signal offline; output is time-aligned and exactly twice as long.
 
-    The signal is processed in steps of CHUNK_HOPS hops through one
-    :class:`Extender` (identical to processing it at once), which bounds the
-    working memory and lets ``on_progress(done, total)`` report input samples done.
+    The signal runs through a one-row :class:`Chain` in steps of CHUNK_HOPS hops (identical
+    to processing it at once), which bounds the working memory and lets
+    ``on_progress(done, total)`` report input samples done.
 
     Parameters
     ----------
@@ -182,75 +147,13 @@ def extend(x: np.ndarray, *, system: System, on_progress: Callable[[int, int], N
     if x.ndim != 1 or x.size == 0:
         raise InputError("extend needs a non-empty mono 8 kHz signal")
     xp = np.concatenate([x, np.zeros(tail_padding(x.size))])
-    ext = Extender(system)
+    chain = Chain(system)
     step = CHUNK_HOPS * HOP_NB
     parts = []
     for start in range(0, xp.size, step):
-        parts.append(ext.process(xp[start : start + step]))
+        parts.append(chain.process(xp[start : start + step]))
         if on_progress:
             on_progress(min(start + step, x.size), x.size)
     y = np.concatenate(parts)[LATENCY : LATENCY + 2 * x.size]
     y, n_limited = limit_peaks(y)
     return Extended(y=y, sr=2 * NB_SR, n_limited=n_limited)
-
-
-def _oracle(reference: np.ndarray | None, excitation: Method, model) -> System:
-    if reference is None:
-        raise InputError("the oracle system needs the wideband reference (it measures the true envelope)")
-    return SourceFilterSystem(OracleEstimator(reference), excitation=excitation)
-
-
-def _true_band(reference: np.ndarray | None, excitation: Method, model) -> System:
-    if reference is None:
-        raise InputError("the true-band system needs the wideband reference (it adds the reference's own band)")
-    return TrueBand(reference)
-
-
-def load_model(model=None, *, flush_denormals: bool = False):
-    """A loaded checkpoint: ``model`` as given (Checkpoint), loaded from a folder, or the default model."""
-    from nenv import checkpoint
-
-    if isinstance(model, checkpoint.Checkpoint):
-        return model
-    if model is None:
-        model = checkpoint.default_path()
-        if model is None:
-            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
-    return checkpoint.load(model, flush_denormals=flush_denormals)
-
-
-def _neural(reference, excitation: Method, model) -> System:
-    from nenv.estimators.neural import NeuralEstimator
-
-    return SourceFilterSystem(NeuralEstimator(load_model(model)), excitation=excitation)
-
-
-def _codebook(reference, excitation: Method, model) -> System:
-    from nenv.estimators.codebook import CodebookEstimator
-
-    return SourceFilterSystem(CodebookEstimator(load_model(model).codebook), excitation=excitation)
-
-
-# name -> factory(reference, excitation, model). Model-based systems take a checkpoint folder or object.
-SYSTEMS: dict[str, Callable[[np.ndarray | None, Method, object], System]] = {
-    "unextended": lambda ref, exc, model: Unextended(),
-    "imaging": lambda ref, exc, model: ImagingSystem(),
-    "codebook": _codebook,
-    "neural": _neural,
-    "oracle": _oracle,
-    "true-band": _true_band,
-}
-REFERENCE_SYSTEMS = ("oracle", "true-band")  # evaluation only: they read the wideband original
-MODEL_SYSTEMS = ("codebook", "neural")
-
-
-def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION, model=None) -> System:
-    """Build a system by name.
-
-    'unextended', 'imaging'; 'codebook' and 'neural' (need ``model``: a checkpoint
-    folder or :class:`nenv.checkpoint.Checkpoint`, default the shipped model);
-    'oracle' and 'true-band' (need ``reference``, the time-aligned 16 kHz original).
-    """
-    if name not in SYSTEMS:
-        raise InputError(f"method={name!r} is not known: choose one of {', '.join(SYSTEMS)}")
-    return SYSTEMS[name](reference, excitation, model)

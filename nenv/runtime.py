@@ -18,7 +18,7 @@ import numpy as np
 
 from nenv.audio import limit_peaks
 from nenv.errors import InputError
-from nenv.pipeline import LATENCY, Extender, System, tail_padding
+from nenv.pipeline import LATENCY, Chain, System, tail_padding
 from nenv.settings import HOP_NB, NB_SR, WB_SR
 
 ALGORITHMIC_LATENCY_MS = 1000.0 * (HOP_NB / NB_SR + LATENCY / WB_SR)  # = 11.4375 ms
@@ -86,7 +86,7 @@ class CallEngine:
         estimator = getattr(system, "estimator", None)
         if hasattr(estimator, "keep_decisions"):
             estimator.keep_decisions = keep_decisions
-        self._ext = Extender(system)
+        self._ext = Chain(system)
         self._pending = np.zeros(0)
         self._out = OutputGate()
         self.samples_in = 0

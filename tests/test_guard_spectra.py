@@ -78,12 +78,12 @@ def test_stability_verdicts_from_the_recursions_coefficients_equal_the_step_down
     assert np.all(pole[unstable] > 0.99)  # rejected ones have a pole near the unit circle
 
 
-def test_one_hop_verdicts_equal_the_array_code(rng):
-    """A streaming hop is judged on Python floats (Guard._assess_one); every verdict and value must
-    equal the array code's, which judges the same hop when it comes with a second one. Inputs mix
-    plain hops with every edge the checks have: NaN and inf anywhere, gains <= 0, |k| at and near 1,
-    levels and novelties on both sides of their limits."""
-    from nenv.guard import Decisions, Guard, GuardLimits
+def test_verdicts_follow_the_documented_rules_alone_or_in_a_batch(rng):
+    """Each hop's verdict equals the rules of the guard's documentation applied by hand, with the
+    telephone-band mismatch from scipy.signal.freqz; a hop judged alone equals the same hop judged
+    in a batch. Inputs mix plain hops with every edge the checks have: NaN and inf anywhere,
+    gains <= 0, |k| at and near 1, levels and novelties on both sides of their limits."""
+    from nenv.guard import Check, Decisions, Guard, GuardLimits
 
     guard = Guard(GuardLimits(level_min_db=-40.0, level_max_db=10.0, mismatch_max_db=6.0, novelty_max=3.0, stability_margin=1e-3))
     a_nb = _random_models(rng, 1, 10)
@@ -121,4 +121,20 @@ def test_one_hop_verdicts_equal_the_array_code(rng):
             assert got.dtype == want.dtype, (trial, field)
             np.testing.assert_array_equal(got, want, err_msg=f"trial {trial}, {field}")
         np.testing.assert_array_equal(k_one, k_two[:1])
+        # the rules by hand
+        lim = guard.limits
+        finite = bool(np.isfinite(ceps).all() and np.isfinite(level[0]) and np.isfinite(gain[0]) and gain[0] > 0 and np.isfinite(a).all())
+        max_k = np.max(np.abs(np.where(np.isfinite(k), k, 0.0)))
+        mismatch = np.inf
+        if finite:
+            f = np.arange(10, 109) * 31.25  # the 31.25 Hz bins from 300 to 3400 Hz
+            d = 20 * np.log10(np.abs(signal.freqz([1.0], a[0], worN=f, fs=16000)[1])) - 20 * np.log10(np.abs(signal.freqz([1.0], a_nb[0], worN=f, fs=8000)[1]))
+            mismatch = np.sqrt(np.mean((d - d.mean()) ** 2))
+        want = (0 if finite else Check.NONFINITE) | (Check.UNSTABLE if finite and not max_k < 1 - lim.stability_margin else 0)
+        want |= Check.LEVEL if np.isfinite(level[0]) and not lim.level_min_db <= level[0] <= lim.level_max_db else 0
+        want |= Check.MISMATCH if finite and mismatch > lim.mismatch_max_db else 0
+        want |= Check.NOVEL if novelty[0] > lim.novelty_max else 0
+        assert one.reasons[0] == want, (trial, one.reasons[0], want)
+        assert one.max_k[0] == max_k
+        np.testing.assert_allclose(one.mismatch_db[0], mismatch, rtol=1e-5, atol=1e-5)  # logarithms in single precision
     assert guard.assess(**kw, k=k)[0].rejected.dtype == bool

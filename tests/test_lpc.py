@@ -39,36 +39,16 @@ def test_levinson_matches_scipy_solve_toeplitz(rng):
     np.testing.assert_allclose(err, r[:, 0] * np.prod(1 - k**2, axis=1), rtol=1e-9)
 
 
-def test_scipys_compiled_levinson_serves_few_rows_and_agrees_with_the_float_recursion(rng, monkeypatch):
-    """For one or two rows SciPy's compiled Levinson recursion (behind scipy.linalg.solve_toeplitz)
-    replaces the recursion on Python floats; both give the same a, k, err, including silent rows,
-    an autocorrelation that is not positive definite and a singular one (which SciPy refuses)."""
-    assert lpc.compiled_levinson()  # if a SciPy release moves it, nenv still works (Python floats) but this tells us
-    order = 10
-    speech = lpc.condition(lpc.autocorrelation(_ar_frames(rng) * lpc.asymmetric_window(240), order=order), sr=8000)
-    odd = [np.zeros(order + 1), np.r_[1.0, 2.0, np.zeros(order - 1)], np.ones(order + 1), np.r_[np.inf, np.ones(order)], np.r_[1.0, np.nan, np.zeros(order - 1)]]
-    odd += [np.r_[1e308, 1e308, np.zeros(order - 1)], np.r_[np.inf, -np.inf, np.zeros(order - 1)]]  # sums that overflow or are undefined
-    for r in [row for row in speech] + odd:
-        fast = lpc.levinson(r[None], order=order)
-        monkeypatch.setitem(lpc._compiled, "ok", False)
-        slow = lpc.levinson(r[None], order=order)
-        monkeypatch.setitem(lpc._compiled, "ok", True)
-        for u, v in zip(fast, slow):
-            np.testing.assert_allclose(u, v, rtol=1e-10, atol=1e-12)
-    a, k, err = lpc.levinson(speech[:1], order=order)  # and the normal equations, solved by a general solver
-    np.testing.assert_allclose(a[0, 1:], scipy.linalg.solve(scipy.linalg.toeplitz(speech[0, :order]), -speech[0, 1:]), rtol=1e-9)
-
-
 def test_autocorrelation_routes_match_the_defining_sum_and_numpy_correlate(rng):
-    """One or two frames (np.correlate per frame), many frames with few lags (direct products) and
-    many lags (FFT) all give r[k] = sum_n x[n] x[n+k]: checked against that sum written out and
-    against numpy.correlate's full correlation."""
+    """Few lags (compiled direct sums) and many lags (FFT), one frame or many, all give
+    r[k] = sum_n x[n] x[n+k]: checked against that sum written out and against numpy.correlate's
+    full correlation."""
     x = rng.standard_normal((5, 240))
     for order in (10, 16, 147):
         ref = np.array([[sum(row[n] * row[n + k] for n in range(240 - k)) for k in range(order + 1)] for row in x])
         full = np.array([np.correlate(row, row, mode="full")[239 : 240 + order] for row in x])
         np.testing.assert_allclose(full, ref, atol=1e-10)
-        for rows in (1, 2, 5):  # 5 rows take the array routes
+        for rows in (1, 2, 5):
             np.testing.assert_allclose(lpc.autocorrelation(x[:rows], order=order), ref[:rows], atol=1e-9)
     short = lpc.autocorrelation(x[:1, :8], order=10)[0]  # more lags than samples: the extra lags are 0
     np.testing.assert_allclose(short[8:], 0.0, atol=0)
@@ -208,91 +188,6 @@ def test_stable_route_property(c):
     a, gain = cepstrum.from_cepstrum_stable(c, order=16)
     assert np.all(np.isfinite(a)) and np.all(lpc.is_stable(a))
     assert not np.any(np.isnan(gain)) and np.all(gain > 0)  # +inf allowed for absurd levels
-
-
-def test_scalar_paths_for_few_rows_match_the_vectorised_ones():
-    """Levinson, step-down, step-up (1-2 rows) and the cepstrum recursion (up to 8 rows) run on Python floats; same results as the array code."""
-    rng = np.random.default_rng(1)
-    for p in (8, 10, 16):
-        for trial in range(200):
-            n = 1 + trial % lpc.SCALAR_MAX_ROWS
-            r = lpc.autocorrelation(rng.standard_normal((n, 240)), order=p)
-            if trial % 7 == 0:
-                r[0] = 0.0  # a silent frame
-            few, many = lpc.levinson(r, order=p), lpc.levinson(np.concatenate([r] * 3), order=p)
-            for u, v in zip(few, many):
-                np.testing.assert_allclose(u, v[:n], rtol=1e-10, atol=1e-12)
-            a = lpc.from_reflection(rng.uniform(-0.99, 0.99, (n, p))) if trial % 2 else np.concatenate([np.ones((n, 1)), rng.standard_normal((n, p))], axis=1)
-            (k1, s1), (k2, s2) = lpc.reflection(a), lpc.reflection(np.concatenate([a] * 3))
-            assert np.array_equal(s1, s2[:n])
-            np.testing.assert_allclose(k1[s1], k2[:n][s1], rtol=1e-8, atol=1e-10)  # k is meaningful only for stable rows
-            kk = rng.uniform(-1, 1, (n, p))
-            np.testing.assert_allclose(lpc.from_reflection(kk), lpc.from_reflection(np.concatenate([kk] * 3))[:n], rtol=1e-12, atol=1e-14)
-            g = rng.uniform(0.1, 2.0, n)
-            for n_ceps in (p - 2, p + 4):
-                reps = cepstrum.SCALAR_MAX_ROWS + 1  # enough rows for the array code
-                np.testing.assert_allclose(cepstrum.to_cepstrum(a, n_ceps=n_ceps, gain=g), cepstrum.to_cepstrum(np.concatenate([a] * reps), n_ceps=n_ceps, gain=np.tile(g, reps))[:n], rtol=1e-12, atol=1e-12)
-            a8 = np.concatenate([np.ones((cepstrum.SCALAR_MAX_ROWS, 1)), rng.standard_normal((cepstrum.SCALAR_MAX_ROWS, p))], axis=1)
-            np.testing.assert_allclose(cepstrum.to_cepstrum(a8, n_ceps=p), cepstrum.to_cepstrum(np.concatenate([a8, a8]), n_ceps=p)[: a8.shape[0]], rtol=1e-12, atol=1e-12)
-
-
-def _recursion_reference(u, a, g, past):
-    """The all-pole recursion ``y[n] = g u[n] - sum_i a_i y[n-i]`` written out in Python, one stream."""
-    J, L = u.shape
-    p = a.shape[-1] - 1
-    mem, out = past[::-1].tolist(), []  # oldest first
-    for j in range(J):
-        for t in range(L):
-            y = g[j] * u[j, t] - sum(a[j, i] * mem[-i] for i in range(1, p + 1))
-            out.append(y)
-            mem = mem[1:] + [y]
-    return np.array(out).reshape(J, L), np.array(mem[::-1])
-
-
-def test_synthesis_routes_equal_the_recursion_and_scipy_lfilter(monkeypatch):
-    """The exact all-pole synthesis routes (LAPACK banded solve, sample by sample across streams) equal the
-    recursion written out, and scipy.signal.lfilter with its initial conditions from scipy.signal.lfiltic
-    (a general-purpose reference library) on each sub-frame, memory carried."""
-    from scipy import signal
-
-    from nenv import synthesis
-
-    rng = np.random.default_rng(4)
-    B, J, L, p = 9, 8, 40, 16
-    a = lpc.from_reflection(rng.uniform(-0.95, 0.95, (B, J, p)))
-    u, g, past = rng.standard_normal((B, J, L)), rng.uniform(0.1, 3.0, (B, J)), rng.standard_normal((B, p))
-    results = [synthesis.banded_synthesis(u, a, g, past), synthesis.direct_synthesis(u, a, g, past)]
-    # the banded solve split into several solves: streams in groups, and one stream's sub-frames in pieces
-    monkeypatch.setattr(synthesis, "BANDED_MAX_ROWS", 2 * (J * L + p))
-    results.append(synthesis.banded_synthesis(u, a, g, past))
-    monkeypatch.setattr(synthesis, "BANDED_MAX_ROWS", 3 * L + p)
-    results.append(synthesis.banded_synthesis(u, a, g, past))
-    for b in range(B):
-        y_ref, s_ref = _recursion_reference(u[b], a[b], g[b], past[b])
-        mem, y_lf = past[b], []
-        for j in range(J):
-            y, _ = signal.lfilter([g[b, j]], a[b, j], u[b, j], zi=signal.lfiltic([g[b, j]], a[b, j], mem))
-            y_lf.append(y)
-            mem = np.concatenate([y[::-1], mem])[:p]
-        np.testing.assert_allclose(np.array(y_lf), y_ref, rtol=1e-9, atol=1e-9)
-        for y, state in results:
-            np.testing.assert_allclose(y[b], y_ref, rtol=1e-9, atol=1e-9)
-            np.testing.assert_allclose(state[b], s_ref, rtol=1e-9, atol=1e-9)
-
-
-def test_banded_synthesis_with_fewer_samples_than_the_order_keeps_the_older_memory():
-    """A stretch shorter than the filter order: the new memory is the new samples, then the oldest of the old memory."""
-    from nenv import synthesis
-
-    rng = np.random.default_rng(5)
-    p = 16
-    a = lpc.from_reflection(rng.uniform(-0.9, 0.9, (1, 1, p)))
-    u, past = rng.standard_normal((1, 1, 5)), rng.standard_normal((1, p))
-    y, state = synthesis.banded_synthesis(u, a, np.ones((1, 1)), past)
-    y_ref, s_ref = _recursion_reference(u[0], a[0], np.ones(1), past[0])
-    np.testing.assert_allclose(y[0], y_ref, rtol=1e-12, atol=1e-12)
-    np.testing.assert_allclose(state[0], s_ref, rtol=1e-12, atol=1e-12)
-    np.testing.assert_array_equal(state[0, 5:], past[0, :-5])
 
 
 def test_frames_at_the_bottom_of_float64_count_as_silent():

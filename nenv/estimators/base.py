@@ -14,11 +14,13 @@ class NarrowbandAnalysis:
     frames : np.ndarray [shape=(n, WIN_NB)], raw 8 kHz samples, each ending at its hop's end
     a : np.ndarray [shape=(n, NB_ORDER+1)], predictor coefficients
     gain : np.ndarray [shape=(n,)], all-pole gain (RMS prediction error per sample)
+    rows : int, the calls these hops belong to: n = rows x H, row-major (each call's H hops in order)
     """
 
     frames: np.ndarray
     a: np.ndarray
     gain: np.ndarray
+    rows: int = 1
 
     def __len__(self) -> int:
         return self.a.shape[0]
@@ -41,13 +43,23 @@ class Envelope:
 
 
 class EnvelopeEstimator:
-    """Base class: maps narrowband hops to wideband envelopes, in order, hop by hop."""
+    """Base class: maps narrowband hops to wideband envelopes, in order, hop by hop, one row per call.
+
+    Estimators without state between hops keep the default :meth:`add_rows` / :meth:`keep_rows`.
+    """
 
     name: str = "estimator"
     order: int = 16
 
-    def estimate(self, analysis: NarrowbandAnalysis) -> Envelope:
+    def estimate(self, analysis: NarrowbandAnalysis, sel=slice(None)) -> Envelope:
+        """Envelopes of the hops of ``analysis`` (rows ``sel`` of the estimator's state, H hops each)."""
         raise NotImplementedError
 
+    def add_rows(self, n: int) -> None:
+        """Start ``n`` new calls."""
+
+    def keep_rows(self, mask) -> None:
+        """Forget the calls where ``mask`` is False."""
+
     def reset(self) -> None:
-        """Forget any state kept between calls (start of a new signal)."""
+        """Forget every call (rows and anything recorded about them)."""

@@ -115,7 +115,7 @@ class CodebookEstimator(EnvelopeEstimator):
     def __init__(self, codebook: Codebook):
         self.codebook = codebook
 
-    def estimate(self, analysis: NarrowbandAnalysis) -> Envelope:
+    def estimate(self, analysis: NarrowbandAnalysis, sel=slice(None)) -> Envelope:
         feats = narrowband_features(analysis)
         cell, _ = self.codebook.nearest(feats)
         a, gain = self.codebook.envelopes(cell, feats[:, ENERGY_COLUMN])

@@ -14,9 +14,11 @@ from functools import lru_cache
 import numpy as np
 from scipy import signal
 
+from nenv import kernels
 from nenv.estimators.base import NarrowbandAnalysis
-from nenv.synthesis import UPSAMPLER_DELAY, Delay, FirStage
+from nenv.rows import ALL, RowState
 from nenv.settings import WB_SR
+from nenv.synthesis import UPSAMPLER_DELAY
 
 # Shaping gain, linear in dB from 4 kHz to 8 kHz. Chosen from a coarse grid (4 kHz: -8..-20 dB,
 # 8 kHz: -24..-40 dB) as the pair whose median high-band level error on the two CMU ARCTIC
@@ -38,19 +40,32 @@ def shaping_taps(db_at_4k: float = SHAPING_DB_AT_4K, db_at_8k: float = SHAPING_D
 
 
 class ImagingSystem:
-    """Zero insertion + falling shaping gain, aligned with the interpolated narrowband path."""
+    """Zero insertion + falling shaping gain, aligned with the interpolated narrowband path, per row.
+
+    The alignment delay (UPSAMPLER_DELAY samples) is folded into the shaping FIR as leading zero
+    taps, so one FIR with state per call does both.
+    """
 
     name = "imaging"
+    needs_analysis = False
 
     def __init__(self, *, db_at_4k: float = SHAPING_DB_AT_4K, db_at_8k: float = SHAPING_DB_AT_8K):
-        self._taps = shaping_taps(db_at_4k, db_at_8k)
-        self.reset()
+        self._taps = np.ascontiguousarray(np.concatenate([np.zeros(UPSAMPLER_DELAY), shaping_taps(db_at_4k, db_at_8k)]))
+        self._state = RowState(fir=np.zeros(self._taps.size - 1))
+
+    def add_rows(self, n: int) -> None:
+        self._state.add(n)
+
+    def keep_rows(self, mask: np.ndarray) -> None:
+        self._state.keep(mask)
 
     def reset(self) -> None:
-        self._delay = Delay(UPSAMPLER_DELAY)
-        self._shape = FirStage(self._taps)
+        self._state.clear()
 
-    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis) -> np.ndarray:
-        z = np.zeros(2 * x.size)
-        z[::2] = 2.0 * x  # zero insertion with the interpolator's gain: the image has the band's level
-        return self._shape.process(self._delay.process(z))
+    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis, sel=ALL) -> np.ndarray:
+        z = np.zeros((x.shape[0], 2 * x.shape[1]))
+        z[:, ::2] = 2.0 * x  # zero insertion with the interpolator's gain: the image has the band's level
+        hist = self._state.get("fir", sel)
+        y = kernels.fir(self._taps, z, hist)
+        self._state.put("fir", sel, hist)
+        return y

@@ -8,8 +8,9 @@ from nenv import lpc
 from nenv.checkpoint import Checkpoint
 from nenv.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAnalysis
 from nenv.estimators.codebook import ENERGY_COLUMN
-from nenv.features import ENERGY_FLOOR_DB, ContextStacker, envelope_from_prediction, narrowband_features
+from nenv.features import ENERGY_FLOOR_DB, envelope_from_prediction, narrowband_features
 from nenv.guard import Decisions, Guard
+from nenv.rows import RowState
 from nenv.settings import HOP_NB, NB_SR
 
 
@@ -44,9 +45,11 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
 class NeuralEstimator(EnvelopeEstimator):
     """Stacked narrowband features -> network -> envelope; the guard swaps in the codebook when needed.
 
-    Every hop's verdict is kept for :meth:`record` unless ``keep_decisions`` is
-    False (long files and calls: a ``listener`` sees each batch of verdicts as it
-    happens, and nothing grows with the call's length).
+    Each call (row) stacks its hop's features with its own ``context`` previous hops (before its
+    first hop: the first hop repeated). With one call, every hop's verdict is kept for
+    :meth:`record` unless ``keep_decisions`` is False (long files and calls: a ``listener`` sees
+    each batch of verdicts as it happens, and nothing grows with the call's length). With
+    several calls, :attr:`last` holds the verdicts of the latest batch (rows x hops, row-major).
     """
 
     name = "neural"
@@ -56,28 +59,58 @@ class NeuralEstimator(EnvelopeEstimator):
         self.keep_decisions = keep_decisions
         self.order = checkpoint.features.wb_order
         self.guard = Guard(checkpoint.limits) if guard else None
-        self.listener = None  # called as listener(first_hop, decisions, stacked_inputs, a_nb) after each batch
-        self.reset()
-
-    def reset(self) -> None:
-        self._stack = ContextStacker(self.checkpoint.features.context)
+        self.listener = None  # called as listener(first_hop, decisions, stacked_inputs, a_nb) after each batch (one call)
+        self.context = checkpoint.features.context
+        n_in = checkpoint.features.n_inputs
+        self._state = RowState(ctx=np.zeros(self.context * n_in), ready=np.zeros((), dtype=bool))
         self._parts: list[Decisions] = []
         self._hops = 0
+        self.last: Decisions | None = None
 
-    def estimate(self, analysis: NarrowbandAnalysis) -> Envelope:
+    def add_rows(self, n: int) -> None:
+        self._state.add(n)
+
+    def keep_rows(self, mask) -> None:
+        self._state.keep(mask)
+
+    def reset(self) -> None:
+        self._state.clear()
+        self._parts = []
+        self._hops = 0
+        self.last = None
+
+    def _stack(self, feats: np.ndarray, sel, B: int, H: int) -> np.ndarray:
+        """Each hop's features with its call's ``context`` previous hops, oldest first [shape=(B * H, (context + 1) * d)]."""
+        d = feats.shape[1]
+        ctx, ready = self._state.get("ctx", sel), self._state.get("ready", sel)
+        if not ready.all():
+            fresh = ~ready
+            ctx[fresh] = np.tile(feats.reshape(B, H, d)[fresh, 0], (1, self.context))
+            ready = np.ones_like(ready)
+        hist = np.concatenate([ctx.reshape(B, self.context, d), feats.reshape(B, H, d)], axis=1)
+        # row (b, h) = hist[b, h : h + context + 1] flattened: frames of (context + 1) * d values every d
+        stacked = lpc.hop_frames(hist.reshape(B, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=H).reshape(B * H, -1)
+        self._state.put("ctx", sel, hist[:, H:].reshape(B, self.context * d))
+        self._state.put("ready", sel, ready)
+        return stacked
+
+    def estimate(self, analysis: NarrowbandAnalysis, sel=slice(None)) -> Envelope:
+        B = analysis.rows
+        H = len(analysis) // B
         feats = narrowband_features(analysis)
-        stacked = self._stack.push(feats)
+        stacked = self._stack(feats, sel, B, H)
         a, gain, dec, k = guarded_envelopes(self.checkpoint, self.guard, feats=feats, stacked=stacked, a_nb=analysis.a)
-        if dec is not None:
+        self.last = dec
+        if dec is not None and len(self._state) == 1:
             if self.listener is not None:
                 self.listener(self._hops, dec, stacked, analysis.a)
             if self.keep_decisions:
                 self._parts.append(dec)
-        self._hops += len(analysis)
+        self._hops += H
         return Envelope(a=a, gain=gain, k=k)
 
     def record(self) -> Decisions:
-        """All verdicts since the last reset, one per hop in order (hop t starts at t * 10 ms)."""
+        """All verdicts of the one call so far, one per hop in order (hop t starts at t * 10 ms)."""
         return Decisions.concat(self._parts)
 
     @staticmethod
