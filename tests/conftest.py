@@ -31,7 +31,7 @@ def rng() -> np.random.Generator:
 @pytest.fixture(scope="session")
 def arctic_refs():
     """Both ARCTIC sentences at 16 kHz and the nominal -26 dBov level, with their names."""
-    from nenv.evaluate import prepare_reference
+    from nenv.report.evaluate import prepare_reference
 
     return [(p.stem, prepare_reference(p)) for p in ARCTIC]
 
@@ -67,7 +67,7 @@ def perturb_predictions(ck, blocks: dict, monkeypatch) -> None:
     UNSTABLE a resonance so sharp its reflection coefficient reaches 1, MISMATCH a telephone band
     unlike the input's. Hops are counted across calls in order.
     """
-    from nenv.guard import Check
+    from nenv.chain.guard import Check
 
     original = ck.predict
     pos = {"n": 0}

@@ -9,7 +9,7 @@ import pytest
 import soundfile as sf
 from scipy import signal
 
-from nenv import audio
+from nenv.media import audio
 from nenv.errors import InputError, OutputError
 
 

@@ -9,8 +9,9 @@ import pytest
 import soundfile as sf
 from typer.testing import CliRunner
 
-from nenv import checkpoint, records
-from nenv.audit import rerun, table
+from nenv.chain import checkpoint
+from nenv.report import records
+from nenv.report.audit import rerun, table
 from nenv.cli import app
 from nenv.errors import InputError
 from tests.conftest import ARCTIC, perturb_predictions
@@ -82,7 +83,7 @@ def test_report_figures_draw_runs_not_hops(record_file, monkeypatch):
     (12,000 rejected hops took 65 s and 800 MB before; the structure, not the time, is checked here)."""
     import matplotlib.axes
 
-    from nenv import audit
+    from nenv.report import audit
 
     rec = records.read([record_file])
     tone = [r for r in rec.rejects if r["source"].endswith("tone.wav")]
@@ -121,7 +122,7 @@ def test_not_a_record_is_refused(tmp_path):
 
 
 def test_segments_merge_and_pad():
-    from nenv.audit import segments
+    from nenv.report.audit import segments
 
     spans = segments([1.00, 1.01, 1.02, 1.50, 3.00], pad_s=0.1)
     assert [(round(a, 2), round(b, 2)) for a, b in spans] == [(0.9, 1.13), (1.4, 1.61), (2.9, 3.11)]
@@ -165,15 +166,16 @@ def test_report_renders_in_a_headless_browser(record_file, tmp_path):
 
 def test_each_check_tripped_lands_in_the_record_with_its_reason(tmp_path, monkeypatch, arctic_refs):
     # A model made to fail on chosen hops (as in test_train, but with the default model and on disk).
-    from nenv import channel, pipeline
-    from nenv.guard import Check
+    from nenv.dsp import channel
+    from nenv.chain import pipeline
+    from nenv.chain.guard import Check
 
     ck = checkpoint.load(checkpoint.default_path())
     _, ref = arctic_refs[0]
     x = channel.telephone(ref, sr=16000)
     blocks = {Check.NONFINITE: range(40, 45), Check.LEVEL: range(80, 85), Check.UNSTABLE: range(120, 125), Check.MISMATCH: range(160, 165)}
     perturb_predictions(ck, blocks, monkeypatch)
-    from nenv.streamfile import watch
+    from nenv.serve.streamfile import watch
 
     system = pipeline.make_system("neural", model=ck)
     n_hops = -(-x.size // 80)
@@ -197,7 +199,7 @@ def test_a_killed_stream_leaves_a_readable_record(tmp_path):
     import sys
     import time
 
-    from nenv.audio import to_int16
+    from nenv.media.audio import to_int16
 
     t = np.arange(8000 * 20) / 8000
     tone = to_int16(0.2 * np.sin(2 * np.pi * 1000 * t)).astype("<i2").tobytes()  # every hop is rejected

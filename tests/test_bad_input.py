@@ -18,7 +18,7 @@ import pytest
 import soundfile as sf
 from typer.testing import CliRunner
 
-from nenv import channel
+from nenv.dsp import channel
 from nenv.cli import app
 from tests.conftest import ARCTIC
 
@@ -140,7 +140,7 @@ def test_f9_huge_file_streams_in_bounded_memory(tmp_path, speech, method):
     """Peak traced memory for 20 s and 200 s of input is the same: blocks in, blocks out (an hour streams alike)."""
     import tracemalloc
 
-    from nenv import streamfile
+    from nenv.serve import streamfile
 
     peaks = []
     for seconds in (20, 200):
@@ -180,7 +180,7 @@ def test_f11_stereo_and_multichannel(tmp_path, speech):
 
 @pytest.mark.parametrize("sr", [4000, 11025, 16000, 22050, 44100, 48000, 96000, 192000])
 def test_f12_every_rate_from_4_to_192_khz(tmp_path, speech, sr):
-    from nenv.audio import resample
+    from nenv.media.audio import resample
 
     x = resample(speech, orig_sr=8000, target_sr=sr)
     sf.write(tmp_path / "in.wav", x, sr)
@@ -319,7 +319,7 @@ def test_c8_already_wideband(tmp_path, speech):
     sf.write(tmp_path / "wide16.wav", y16, sr)
     _refused(_run("extend", tmp_path / "wide16.wav", tmp_path / "out.wav"), "nenv degrade")
     # 8 kHz audio that was never band-limited to 3.4 kHz: its own 3.4-4 kHz content is kept untouched
-    from nenv.audio import resample
+    from nenv.media.audio import resample
 
     full = resample(y16, orig_sr=sr, target_sr=8000)[:24000]
     sf.write(tmp_path / "full8.wav", full, 8000)
@@ -349,7 +349,7 @@ def test_c10_very_short_input(tmp_path):
 
 
 def _model_copy(tmp_path) -> Path:
-    from nenv.checkpoint import default_path
+    from nenv.chain.checkpoint import default_path
 
     dst = tmp_path / "model"
     shutil.copytree(default_path(), dst, ignore=shutil.ignore_patterns("*.png", "*.csv", "model.pt"))

@@ -15,7 +15,10 @@ import pytest
 import soundfile as sf
 from typer.testing import CliRunner
 
-from nenv import audio, batch, channel, records, streamfile
+from nenv.media import audio
+from nenv.serve import batch, streamfile
+from nenv.dsp import channel
+from nenv.report import records
 from nenv.cli import app
 from tests.conftest import ARCTIC
 
@@ -152,7 +155,7 @@ def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
         if sig == signal.SIGINT:
             assert proc.returncode == 130 and b"interrupted" in err, err.decode()[-2000:]
             assert b"rerun the same command" in err and (out / batch.REPORT_NAME).is_file()  # what is finished is said
-            assert parts() <= before, "Ctrl-C left a temporary file"
+            assert parts() <= before, "Ctrl-C left a temporary file: " + err.decode()[-3000:]
         for p in out.rglob("*.wav"):
             if p.name.startswith("."):
                 continue  # a temporary file a SIGKILL left; never an output name
@@ -197,7 +200,7 @@ def test_a_malformed_scheduler_address_is_refused_before_dask_sees_it(tmp_path, 
 
 def test_streamed_file_equals_offline_pipeline(tmp_path):
     """extend_file (blocks through the streaming engine) == pipeline.extend on the whole signal, in int16."""
-    from nenv import pipeline
+    from nenv.chain import pipeline
 
     x = _telephone(1, 23.37)
     src = tmp_path / "x.wav"

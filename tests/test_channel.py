@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from nenv import channel, g711
+from nenv.dsp import channel, g711
 from nenv.errors import InputError
 
 SR = 16000
@@ -24,7 +24,7 @@ def _gain_db(f):
 
 
 def test_bandpass_response_mask():
-    # Our design targets (nenv.channel): flat within +-0.05 dB over 300-3400 Hz, never above 0.05 dB,
+    # Our design targets (nenv.dsp.channel): flat within +-0.05 dB over 300-3400 Hz, never above 0.05 dB,
     # >= 55 dB rejection below 100 Hz and from 3.6 kHz up. For scale, ITU-T G.712's mask for PCM
     # channels asks much less (from memory: >= 14 dB at 4 kHz, >= 32 dB from 4.6 kHz up).
     w, h = signal.freqz(channel.bandpass_taps(), worN=32768, fs=SR)

@@ -128,8 +128,8 @@ def test_bad_inputs_get_one_clear_line_and_no_output(tmp_path):
 
 @pytest.mark.parametrize("law", ["none", "mulaw"])
 def test_degrade_warns_when_the_level_clips(tmp_path, law):
-    from nenv import channel
-    from nenv.audio import to_int16
+    from nenv.dsp import channel
+    from nenv.media.audio import to_int16
 
     res = _run("degrade", ARCTIC[0], tmp_path / "loud.wav", "--law", law, "--level-dbov", "6")
     assert res.exit_code == 0 and "were clipped" in res.stderr
@@ -193,7 +193,7 @@ def test_version_flag():
 def test_degrade_codes_g711_mu_law_by_default_and_refuses_absurd_noise(tmp_path):
     """The default telephone version is a PCMU call: every sample lies on the mu-law grid (ITU-T G.711
     decoding table, checked against the stdlib's audioop in tests/test_g711.py)."""
-    from nenv import g711
+    from nenv.dsp import g711
 
     out = tmp_path / "nb.wav"
     res = _run("degrade", ARCTIC[0], out)

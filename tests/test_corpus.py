@@ -128,7 +128,7 @@ def test_the_same_recording_gives_the_same_training_pairs_wherever_it_lies(tmp_p
     import os
     import shutil
 
-    from nenv.features import FeatureSettings
+    from nenv.chain.features import FeatureSettings
     from nenv.train import dataset
 
     rng = np.random.default_rng(3)

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from nenv import checkpoint
+from nenv.chain import checkpoint
 
 DEFAULT = Path(__file__).resolve().parents[1] / "checkpoints" / "default"
 pytestmark = pytest.mark.skipif(not (DEFAULT / "model.onnx").is_file(), reason="no shipped default model in this checkout")

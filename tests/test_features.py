@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from nenv import cepstrum, lpc
-from nenv.estimators.base import NarrowbandAnalysis
-from nenv.features import INPUT_NAMES, ContextStacker, FeatureSettings, band_power, envelope_from_prediction, narrowband_features
+from nenv.dsp import cepstrum, lpc
+from nenv.chain.estimators.base import NarrowbandAnalysis
+from nenv.chain.features import INPUT_NAMES, ContextStacker, FeatureSettings, band_power, envelope_from_prediction, narrowband_features
 from nenv.errors import ConfigError
 
 

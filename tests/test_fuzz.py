@@ -16,9 +16,10 @@ import soundfile as sf
 from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
-from nenv import pipeline, streamfile
+from nenv.chain import pipeline
+from nenv.serve import streamfile
 from nenv.errors import NenvError
-from nenv.runtime import CallEngine
+from nenv.serve.runtime import CallEngine
 
 HERE = Path(__file__).resolve().parent
 
@@ -47,7 +48,7 @@ SYSTEMS = _systems()
 @example(x=np.full(234, 3.0524418986189513e-161), chunks=[1], name="codebook")  # found by this test: NaN from denormal LPC
 def test_any_signal_in_any_chunks_gives_sane_output(x, chunks, name):
     system = SYSTEMS[name]
-    eng = CallEngine(system)
+    eng = CallEngine(system=system)
     out, pos, i = [], 0, 0
     while pos < x.size:
         n = chunks[i % len(chunks)]

@@ -7,7 +7,7 @@ import warnings
 import numpy as np
 import pytest
 
-from nenv import g711
+from nenv.dsp import g711
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore", DeprecationWarning)
@@ -30,7 +30,7 @@ def test_mulaw_encoder_matches_audioop_for_non_negative_inputs():
 
 
 def test_mulaw_sign_convention_for_negative_inputs():
-    # Documented in nenv.g711: sign-magnitude, code(-x) = code(x) with the sign bit cleared.
+    # Documented in nenv.dsp.g711: sign-magnitude, code(-x) = code(x) with the sign bit cleared.
     x = np.arange(1, 32768)
     np.testing.assert_array_equal(g711.mulaw_encode(-x), g711.mulaw_encode(x) & 0x7F)
     assert g711.mulaw_encode(np.array([-32768]))[0] == g711.mulaw_encode(np.array([-32767]))[0]

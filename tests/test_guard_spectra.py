@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import signal
 
-from nenv import cepstrum, lpc
-from nenv.guard import telephone_band_mismatch
+from nenv.dsp import cepstrum, lpc
+from nenv.chain.guard import telephone_band_mismatch
 
 
 def _random_models(rng, n, order):
@@ -26,7 +26,7 @@ def test_power_spectrum_matches_freqz_on_the_whole_grid_and_on_a_band(rng):
 
 
 def test_mismatch_is_the_rms_of_mean_removed_log_envelopes_over_the_telephone_band(rng):
-    # The definition in nenv.guard, evaluated independently with freqz at the same frequencies.
+    # The definition in nenv.chain.guard, evaluated independently with freqz at the same frequencies.
     a_wb, a_nb = _random_models(rng, 5, 16), _random_models(rng, 5, 10)
     f = np.arange(0, 8000.0 + 1, 31.25)
     f = f[(f >= 300) & (f <= 3400)]
@@ -55,7 +55,7 @@ def test_stability_verdicts_from_the_recursions_coefficients_equal_the_step_down
     coefficients, and an envelope is judged unstable exactly where numpy.roots puts a pole at or
     beyond 1 - margin (the margin is on |k|, so only the direction is checked: a pole that close
     to the circle means a |k| that close to 1)."""
-    from nenv.guard import Check, Guard, GuardLimits
+    from nenv.chain.guard import Check, Guard, GuardLimits
 
     n, order = 300, 16
     m = np.arange(1, 21)
@@ -83,7 +83,7 @@ def test_verdicts_follow_the_documented_rules_alone_or_in_a_batch(rng):
     telephone-band mismatch from scipy.signal.freqz; a hop judged alone equals the same hop judged
     in a batch. Inputs mix plain hops with every edge the checks have: NaN and inf anywhere,
     gains <= 0, |k| at and near 1, levels and novelties on both sides of their limits."""
-    from nenv.guard import Check, Decisions, Guard, GuardLimits
+    from nenv.chain.guard import Check, Decisions, Guard, GuardLimits
 
     guard = Guard(GuardLimits(level_min_db=-40.0, level_max_db=10.0, mismatch_max_db=6.0, novelty_max=3.0, stability_margin=1e-3))
     a_nb = _random_models(rng, 1, 10)

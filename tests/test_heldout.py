@@ -52,8 +52,10 @@ def test_no_clip_comes_from_a_training_source():
 def test_the_true_band_beats_no_band_on_the_set_by_both_perceptual_measures():
     """The ceiling is visible on this set: the reference's own band (true-band) scores above the
     unextended signal on ViSQOL (speech mode) and WB-PESQ for most clips and on average."""
-    from nenv import channel, measures, pipeline
-    from nenv.evaluate import prepare_reference
+    from nenv.dsp import channel
+    from nenv.report import measures
+    from nenv.chain import pipeline
+    from nenv.report.evaluate import prepare_reference
 
     gain_v, gain_p = [], []
     for r in _clips():

@@ -1,4 +1,4 @@
-"""Every compiled kernel (nenv.kernels) against a plain numpy/scipy reference, on random batches and edge rows.
+"""Every compiled kernel (nenv.dsp.kernels) against a plain numpy/scipy reference, on random batches and edge rows.
 
 References are general-purpose libraries and defining formulas, not nenv code:
 scipy.linalg.solve_toeplitz (normal equations), numpy.correlate, numpy.roots and numpy.poly
@@ -13,7 +13,7 @@ import pytest
 import scipy.linalg
 from scipy import signal
 
-from nenv import kernels
+from nenv.dsp import kernels
 
 SILENT = 1e-280
 
@@ -219,7 +219,7 @@ def test_synthesize_equals_lfilter_per_sub_frame_with_interpolated_envelopes(rng
 
 
 def test_band_ratio_equals_freqz_on_the_band(rng):
-    from nenv import cepstrum
+    from nenv.dsp import cepstrum
 
     a_wb, a_nb = _stable_a(rng, 6, 16), _stable_a(rng, 6, 10)
     bins = cepstrum.band_bins(300.0, 3400.0, n_fft=512, sr=16000)
@@ -239,7 +239,7 @@ def test_first_process_compiles_and_says_so_later_ones_load_the_cache(tmp_path):
     import subprocess
     import sys
 
-    code = "from nenv import kernels; import sys; kernels.warm(notice=lambda t: print(t)); print(kernels.warm(notice=print))"
+    code = "from nenv.dsp import kernels; import sys; kernels.warm(notice=lambda t: print(t)); print(kernels.warm(notice=print))"
     env = dict(os.environ, NUMBA_CACHE_DIR=str(tmp_path))
     runs = [subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=300) for _ in range(2)]
     assert all(r.returncode == 0 for r in runs), [r.stderr for r in runs]

@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from nenv import cepstrum, lpc
+from nenv.dsp import cepstrum, lpc
 
 
 def _ar_frames(rng, n_frames=20, length=240, order=10):

@@ -5,9 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from nenv import channel, checkpoint, pipeline
-from nenv.multicall import MultiCallEngine
-from nenv.runtime import CallEngine
+from nenv.dsp import channel
+from nenv.chain import checkpoint, pipeline
+from nenv.serve.multicall import MultiCallEngine
+from nenv.serve.runtime import CallEngine
 
 
 @pytest.fixture(scope="module")
@@ -30,7 +31,7 @@ def calls(arctic_refs):
 
 
 def _alone(model, x, chunks):
-    eng = CallEngine(pipeline.make_system("neural", model=model), keep_decisions=True)
+    eng = CallEngine(system=pipeline.make_system("neural", model=model), keep_decisions=True)
     pos, out = 0, []
     for c in chunks:
         out.append(eng.feed(x[pos : pos + c]))

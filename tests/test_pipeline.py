@@ -8,10 +8,13 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import signal
 
-from nenv import audio, channel, lpc, measures, pipeline
-from nenv.excitation import ExcitationExtender, residual
+from nenv.media import audio
+from nenv.dsp import channel, lpc
+from nenv.report import measures
+from nenv.chain import pipeline
+from nenv.dsp.excitation import ExcitationExtender, residual
 from nenv.settings import HOP_NB, HOP_WB, WIN_NB
-from nenv.synthesis import AllPoleSynthesizer, isolation_sos, upsampler_taps
+from nenv.dsp.synthesis import AllPoleSynthesizer, isolation_sos, upsampler_taps
 
 SYSTEM_NAMES = ["unextended", "imaging", "oracle"]
 

@@ -8,7 +8,9 @@ import time
 import numpy as np
 import pytest
 
-from nenv import channel, g711, pipeline, rtp
+from nenv.dsp import channel, g711
+from nenv.chain import pipeline
+from nenv.serve import rtp
 
 
 def test_parse_and_build_round_trip_with_csrc_extension_and_padding():
@@ -78,7 +80,7 @@ def test_relay_extends_a_clip_with_reordering_and_loss(arctic_refs):
     # reference: the same G.711 audio with the lost packet as silence, extended offline
     played = g711.decode(codes, law="mulaw")
     played[lost * 160 : (lost + 1) * 160] = 0.0
-    from nenv.audio import to_int16
+    from nenv.media.audio import to_int16
 
     expected = to_int16(pipeline.extend(played, system=pipeline.make_system("imaging")).y).astype(np.int64)
     assert y.size == expected.size == 2 * x.size
@@ -249,8 +251,8 @@ def test_relay_survives_junk_bursts_silence_and_sender_restarts(arctic_refs):
 
 def test_relay_counts_guard_fallbacks_without_keeping_per_hop_records(arctic_refs, monkeypatch):
     """A long call must not grow memory: the relay counts fallbacks per stream instead of keeping every verdict."""
-    from nenv import checkpoint
-    from nenv.guard import Check
+    from nenv.chain import checkpoint
+    from nenv.chain.guard import Check
     from tests.conftest import perturb_predictions
 
     ck = checkpoint.load(checkpoint.default_path())
@@ -302,8 +304,8 @@ def test_relay_memory_per_stream_is_bounded(monkeypatch):
 
 def test_batched_relay_extends_many_streams_like_offline(arctic_refs):
     """Neural relay, all streams in one MultiCallEngine: each stream's audio equals its own offline extension."""
-    from nenv import checkpoint
-    from nenv.audio import to_int16
+    from nenv.chain import checkpoint
+    from nenv.media.audio import to_int16
 
     ck = checkpoint.load(checkpoint.default_path())
     clips = []

@@ -7,8 +7,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from nenv import channel, pipeline
-from nenv.runtime import ALGORITHMIC_LATENCY_MS, CallEngine
+from nenv.dsp import channel
+from nenv.chain import pipeline
+from nenv.serve.runtime import ALGORITHMIC_LATENCY_MS, CallEngine
 
 
 @pytest.fixture(scope="module")
@@ -18,7 +19,7 @@ def call_audio(arctic_refs):
 
 
 def _stream(x, chunks, system):
-    eng = CallEngine(system)
+    eng = CallEngine(system=system)
     out, pos = [], 0
     for c in chunks:
         out.append(eng.feed(x[pos : pos + c]))
@@ -46,7 +47,7 @@ def test_single_samples_and_empty_input(call_audio):
     offline = pipeline.extend(x, system=pipeline.make_system("imaging")).y
     streamed, _ = _stream(x, [1] * x.size, pipeline.make_system("imaging"))
     np.testing.assert_allclose(streamed, offline, atol=1e-9)
-    eng = CallEngine(pipeline.make_system("imaging"))
+    eng = CallEngine(system=pipeline.make_system("imaging"))
     assert eng.feed(np.zeros(0)).size == 0 and eng.flush().size == 0
 
 
@@ -54,14 +55,14 @@ def test_latency_is_a_hop_plus_the_interpolator():
     # 10 ms hop + 23 samples at 16 kHz; no look-ahead
     assert ALGORITHMIC_LATENCY_MS == pytest.approx(10.0 + 23 / 16)
     assert ALGORITHMIC_LATENCY_MS <= 20.0
-    eng = CallEngine(pipeline.make_system("imaging"))
+    eng = CallEngine(system=pipeline.make_system("imaging"))
     assert eng.feed(np.zeros(79)).size == 0  # nothing before the first hop is whole
     assert eng.feed(np.zeros(1)).size == 160 - 23
 
 
 def test_bad_samples_do_not_poison_the_call(call_audio):
     _, x = call_audio
-    eng = CallEngine(pipeline.make_system("imaging"))
+    eng = CallEngine(system=pipeline.make_system("imaging"))
     y1 = eng.feed(x[:800])
     bad = x[800:1600].copy()
     bad[100:110] = np.nan
@@ -73,16 +74,16 @@ def test_bad_samples_do_not_poison_the_call(call_audio):
 
 def test_integer_pcm_is_refused_with_the_conversion_to_use(call_audio):
     from nenv.errors import InputError
-    from nenv.multicall import MultiCallEngine
-    from nenv.checkpoint import default_path, load
+    from nenv.serve.multicall import MultiCallEngine
+    from nenv.chain.checkpoint import default_path, load
 
     _, x = call_audio
     pcm = np.round(x[:800] * 32767).astype(np.int16)  # what a gateway holds before conversion
-    eng = CallEngine(pipeline.make_system("imaging"))
+    eng = CallEngine(system=pipeline.make_system("imaging"))
     with pytest.raises(InputError, match="divide 16-bit PCM by 32768"):
         eng.feed(pcm)
     assert eng.samples_in == 0  # refused before anything changed
-    np.testing.assert_array_equal(eng.feed(pcm / 32768.0), CallEngine(pipeline.make_system("imaging")).feed(pcm.astype(np.float64) / 32768.0))
+    np.testing.assert_array_equal(eng.feed(pcm / 32768.0), CallEngine(system=pipeline.make_system("imaging")).feed(pcm.astype(np.float64) / 32768.0))
     if default_path() is not None:
         multi = MultiCallEngine(load(default_path()))
         multi.open("a")
@@ -103,8 +104,8 @@ def _nenv(*args, **kw):
 def test_stream_command_is_bit_exact_with_extend(tmp_path, call_audio, fmt):
     import soundfile as sf
 
-    from nenv import g711
-    from nenv.audio import to_int16
+    from nenv.dsp import g711
+    from nenv.media.audio import to_int16
 
     _, x = call_audio
     x = x[:8000]
@@ -136,8 +137,8 @@ def test_stream_whose_reader_goes_away_says_so_and_completes_its_record(tmp_path
     import subprocess
     import sys
 
-    from nenv.audio import to_int16
-    from nenv.checkpoint import default_path
+    from nenv.media.audio import to_int16
+    from nenv.chain.checkpoint import default_path
 
     if default_path() is None:
         pytest.skip("no default model")
@@ -160,7 +161,7 @@ def test_stream_flushes_its_tail_on_sigterm(call_audio):
     import sys
     import time
 
-    from nenv.audio import to_int16
+    from nenv.media.audio import to_int16
 
     _, x = call_audio
     p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--method", "imaging"], stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
@@ -185,7 +186,7 @@ def test_stream_flushes_its_tail_on_sigterm(call_audio):
 def test_loading_a_model_leaves_the_floating_point_mode_alone():
     # Subnormal numbers must still exist after a model has run (the library does not flush
     # denormals unless asked): 2**-1074 is the smallest positive float64 (IEEE 754).
-    from nenv import checkpoint
+    from nenv.chain import checkpoint
 
     path = checkpoint.default_path()
     if path is None:
@@ -198,15 +199,15 @@ def test_loading_a_model_leaves_the_floating_point_mode_alone():
 
 def test_a_long_call_keeps_no_verdicts_unless_asked(call_audio):
     """Memory must not grow with a call's length: the streaming engine keeps no per-hop verdicts by default."""
-    from nenv import checkpoint
+    from nenv.chain import checkpoint
 
     path = checkpoint.default_path()
     if path is None:
         pytest.skip("no default model")
     model = checkpoint.load(path)
     x = np.tile(call_audio[1], 3)
-    quiet = CallEngine(pipeline.make_system("neural", model=model))
-    kept = CallEngine(pipeline.make_system("neural", model=model), keep_decisions=True)
+    quiet = CallEngine(system=pipeline.make_system("neural", model=model))
+    kept = CallEngine(system=pipeline.make_system("neural", model=model), keep_decisions=True)
     for eng in (quiet, kept):
         for s in range(0, x.size, 160):
             eng.feed(x[s : s + 160])
@@ -219,7 +220,7 @@ def test_the_readme_embedding_example_runs_as_written():
     import re
     from pathlib import Path
 
-    from nenv.checkpoint import default_path
+    from nenv.chain.checkpoint import default_path
 
     if default_path() is None:
         pytest.skip("no default model")
@@ -228,7 +229,7 @@ def test_the_readme_embedding_example_runs_as_written():
     assert len(blocks) == 1
     env: dict = {}
     exec(compile(blocks[0], "README.md", "exec"), env)
-    assert len(env["pcm"]) == 2 * 2 * 160  # 160 samples in, 320 out, two bytes each
+    assert env["wide"].size == 320  # 160 samples in, 320 out
     assert env["ready"]["call-1"].size + env["tail"].size == 320 and np.max(np.abs(env["wide"])) > 0.05
     np.testing.assert_allclose(np.concatenate([env["ready"]["call-1"], env["tail"]]), env["wide"], atol=1e-9)
 
@@ -238,7 +239,7 @@ def test_stream_prints_the_same_guard_summary_as_extend(tmp_path, call_audio):
     """The guard's one-line summary (hops that fell back, by reason) ends a neural stream as it ends extend."""
     import soundfile as sf
 
-    from nenv.audio import to_int16
+    from nenv.media.audio import to_int16
 
     _, x = call_audio
     x = x[:16000]
@@ -261,7 +262,7 @@ def test_stream_refuses_a_wav_header_and_a_terminal(tmp_path, call_audio):
 
     import soundfile as sf
 
-    from nenv.audio import to_int16
+    from nenv.media.audio import to_int16
 
     _, x = call_audio
     sf.write(tmp_path / "nb.wav", to_int16(x[:8000]), 8000, subtype="PCM_16")

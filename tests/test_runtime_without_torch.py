@@ -15,8 +15,8 @@ class NoTorch:
             raise ImportError("torch is blocked in this test")
 sys.meta_path.insert(0, NoTorch())
 import numpy as np
-import nenv.cli, nenv.pipeline, nenv.evaluate
-from nenv import pipeline
+import nenv.cli, nenv.chain.pipeline, nenv.report.evaluate
+from nenv.chain import pipeline
 y = pipeline.extend(np.random.default_rng(0).standard_normal(8000) * 0.05, system=pipeline.make_system("imaging")).y
 assert y.shape == (16000,)
 assert "torch" not in sys.modules

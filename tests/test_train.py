@@ -10,9 +10,11 @@ import pytest
 
 torch = pytest.importorskip("torch")
 
-from nenv import channel, checkpoint, measures, pipeline  # noqa: E402
+from nenv.dsp import channel
+from nenv.chain import checkpoint, pipeline
+from nenv.report import measures  # noqa: E402
 from nenv.errors import ConfigError  # noqa: E402
-from nenv.guard import Check  # noqa: E402
+from nenv.chain.guard import Check  # noqa: E402
 from nenv.train import loop, recipe  # noqa: E402
 from tests import synthetic  # noqa: E402
 from tests.conftest import perturb_predictions  # noqa: E402
@@ -218,7 +220,7 @@ class NoTorch:
             raise ImportError("blocked")
 sys.meta_path.insert(0, NoTorch())
 import numpy as np
-from nenv import pipeline
+from nenv.chain import pipeline
 y = pipeline.extend(np.random.default_rng(0).standard_normal(8000) * 0.05, system=pipeline.make_system("neural", model={str(trained.out)!r})).y
 assert y.shape == (16000,) and "torch" not in sys.modules
 print("ok")

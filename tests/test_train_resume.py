@@ -77,7 +77,7 @@ def test_feature_extraction_on_a_dask_cluster_matches_local(synthetic_corpus, tm
     distributed = pytest.importorskip("distributed")
     import numpy as np
 
-    from nenv.features import FeatureSettings
+    from nenv.chain.features import FeatureSettings
     from nenv.train import corpus, dataset
 
     r = recipe.load(None, overrides=[f'corpus="{synthetic_corpus}"', *QUICK])

@@ -34,7 +34,7 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from nenv import audio
+from nenv.media import audio
 from nenv.errors import ConfigError, InputError
 from nenv.settings import BAND_EDGE_HZ, CHANNEL_LOW_HZ, WB_SR
 from nenv.train.recipe import Recipe
@@ -220,7 +220,7 @@ def exclusions(m: dict, recipe: Recipe, *, min_active_s: float | None = None) ->
 
 def survey(files: Sequence[CorpusFile], recipe: Recipe, *, workers: int = 1, scheduler: str | None = None, on_done: Callable[[], None] | None = None) -> list[FileReport]:
     """Survey every file, in parallel over ``workers`` processes (or a dask ``scheduler``); order is kept."""
-    from nenv.parallel import in_order
+    from nenv.serve.parallel import in_order
 
     return in_order(survey_file, [(cf, recipe) for cf in files], workers=workers, scheduler=scheduler, on_done=on_done)
 
@@ -262,7 +262,7 @@ def survey_figure(reports: Sequence[FileReport], path: str | os.PathLike) -> Non
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from nenv.files import atomic_output
+    from nenv.media.files import atomic_output
 
     kept = [r for r in reports if not r.excluded and np.isfinite(r.snr_db)]
     excl = [r for r in reports if r.excluded and np.isfinite(r.snr_db)]

@@ -3,7 +3,7 @@
 For each file and augmentation copy: the 16 kHz signal is set to a random
 active level, passed through the telephone channel with a random G.711 law
 and, sometimes, noise; the narrowband result is analysed exactly as the
-runtime does it (:func:`nenv.features.narrowband_features`, context stacked
+runtime does it (:func:`nenv.chain.features.narrowband_features`, context stacked
 per file), and each hop is paired with the targets of the clean, time-aligned
 16 kHz frame. Hops more than ``active_range_db`` below the file's loudest hop
 are dropped. Results are cached per file (keyed by the file's path, size and
@@ -22,11 +22,11 @@ from typing import Callable, Sequence
 
 import numpy as np
 
-from nenv import channel, lpc
-from nenv.estimators.base import NarrowbandAnalysis
-from nenv.features import ContextStacker, FeatureSettings, narrowband_features, wideband_targets
+from nenv.dsp import channel, lpc
+from nenv.chain.estimators.base import NarrowbandAnalysis
+from nenv.chain.features import ContextStacker, FeatureSettings, narrowband_features, wideband_targets
 from nenv.settings import HOP_NB, HOP_WB, NB_SR, WB_SR
-from nenv import audio
+from nenv.media import audio
 from nenv.train.corpus import load_native
 from nenv.train.recipe import Recipe
 
@@ -140,7 +140,7 @@ def _file_pairs(path: str, index: int, recipe: Recipe, settings: FeatureSettings
     rng = np.random.default_rng([recipe.seed, int(hashlib.sha1(np.ascontiguousarray(y).tobytes() + str(sr).encode()).hexdigest()[:8], 16)])
     pairs = pairs_from_signal(y, sr=sr, recipe=recipe, settings=settings, rng=rng)
     if cached is not None:
-        from nenv.files import atomic_output
+        from nenv.media.files import atomic_output
 
         with atomic_output(cached) as tmp:
             with open(tmp, "wb") as fh:
@@ -165,7 +165,7 @@ def build(
     """
     if cache_dir:
         Path(cache_dir).mkdir(parents=True, exist_ok=True)
-    from nenv.parallel import in_order
+    from nenv.serve.parallel import in_order
 
     t0 = time.perf_counter()
     results = in_order(_file_pairs, [(p, i, recipe, settings, cache_dir) for i, p in enumerate(paths)], workers=workers, scheduler=scheduler, on_done=on_done)

@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 
 from nenv import __version__
-from nenv.checkpoint import META_FEATURES
+from nenv.chain.checkpoint import META_FEATURES
 from nenv.errors import ConfigError
 
 PARITY_TOL = 1e-5  # max |onnxruntime - torch| on a test batch, in units of each output's training std
@@ -49,7 +49,7 @@ def export(pt_path: str | os.PathLike, onnx_path: str | os.PathLike, *, metadata
     import onnxruntime as ort
     import torch
 
-    from nenv.files import atomic_output
+    from nenv.media.files import atomic_output
 
     model, blob = load_torch(pt_path)
     dim = int(blob["config"]["input_dim"])

@@ -30,7 +30,7 @@ from pathlib import Path
 
 import numpy as np
 
-from nenv import audio
+from nenv.media import audio
 from nenv.settings import WB_SR
 from nenv.train.corpus import exclusions, measure
 from nenv.train.recipe import Recipe

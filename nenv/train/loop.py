@@ -27,13 +27,14 @@ from typing import Callable
 
 import numpy as np
 
-from nenv import __version__, cepstrum
-from nenv.checkpoint import CODEBOOK_FILE, FORMAT, FORMAT_VERSION, MODEL_FILE, SETTINGS_FILE
+from nenv import __version__
+from nenv.dsp import cepstrum
+from nenv.chain.checkpoint import CODEBOOK_FILE, FORMAT, FORMAT_VERSION, MODEL_FILE, SETTINGS_FILE
 from nenv.errors import ConfigError, NenvError
-from nenv.estimators.codebook import Codebook
-from nenv.features import FeatureSettings, envelope_from_prediction
-from nenv.files import is_within, write_text
-from nenv.guard import GuardLimits, telephone_band_mismatch
+from nenv.chain.estimators.codebook import Codebook
+from nenv.chain.features import FeatureSettings, envelope_from_prediction
+from nenv.media.files import is_within, write_text
+from nenv.chain.guard import GuardLimits, telephone_band_mismatch
 from nenv.settings import BAND_EDGE_HZ, WB_SR
 from nenv.train import corpus, dataset
 from nenv.train.recipe import Recipe
@@ -102,7 +103,7 @@ def train(
     saved epoch with the same recipe and gives the same model as an uninterrupted run.
     Without ``cache_dir`` the features are cached in the partial folder, so a resumed run
     does not recompute them. ``scheduler``: a dask.distributed address for the survey and
-    the features (see :mod:`nenv.parallel`).
+    the features (see :mod:`nenv.serve.parallel`).
     """
     rep = reporter or Reporter()
     out = Path(out)
@@ -262,7 +263,7 @@ def train(
         cell, _ = book.nearest(va.current)
         lsd_nn = envelope_lsd(va.ceps, va.level, c_va, l_va)
         lsd_cb = envelope_lsd(va.ceps, va.level, book.ceps[cell], book.level_db[cell])
-        from nenv.guard import Guard
+        from nenv.chain.guard import Guard
 
         a_va, g_va = envelope_from_prediction(c_va, l_va, np.zeros(len(l_va)))
         _, nov = book.nearest(va.current)
@@ -385,7 +386,7 @@ def _load_state(work: Path) -> dict | None:
 def _save_state(work: Path, *, record_id, epoch, finished, model, opt, sched, gen, history, best, wall_s) -> None:
     import torch
 
-    from nenv.files import atomic_output
+    from nenv.media.files import atomic_output
 
     state = {
         "record_id": record_id,
@@ -424,7 +425,7 @@ def _curves(history: list[dict], path: Path) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from nenv.files import atomic_output
+    from nenv.media.files import atomic_output
 
     ep = [h["epoch"] for h in history]
     fig, ax = plt.subplots(1, 2, figsize=(9, 3.2), layout="constrained")

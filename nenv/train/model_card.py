@@ -19,9 +19,10 @@ from pathlib import Path
 
 import numpy as np
 
-from nenv import checkpoint, evaluate
-from nenv.figures import spectrogram_grid
-from nenv.files import write_text
+from nenv.chain import checkpoint
+from nenv.report import evaluate
+from nenv.report.figures import spectrogram_grid
+from nenv.media.files import write_text
 
 HELDOUT = Path(__file__).resolve().parents[2] / "tests" / "data" / "heldout"
 LAWS = ("mulaw",)
@@ -41,7 +42,8 @@ def measure(folder: Path) -> dict:
     ck = checkpoint.load(folder)
     meta = {c["clip"]: c for c in clips()}
     rows, signals = evaluate.run([HELDOUT / f"{c}.flac" for c in meta], systems=evaluate.ALL_SYSTEMS, laws=LAWS, model=ck)
-    from nenv import channel, pipeline
+    from nenv.dsp import channel
+    from nenv.chain import pipeline
 
     rejected, active = 0, 0
     for c in meta:

@@ -142,7 +142,7 @@ def load(path: str | os.PathLike | None, *, overrides: typing.Sequence[str] = ()
 
 
 def _validate(r: Recipe) -> None:
-    from nenv.g711 import LAWS
+    from nenv.dsp.g711 import LAWS
 
     bad = [law for law in r.laws if law not in LAWS]
     if bad or not r.laws:

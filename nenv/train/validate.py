@@ -24,7 +24,9 @@ from pathlib import Path
 
 import numpy as np
 
-from nenv import channel, measures, pipeline
+from nenv.dsp import channel
+from nenv.report import measures
+from nenv.chain import pipeline
 from nenv.settings import HOP_WB, WB_SR
 from nenv.train.corpus import load_wideband
 from nenv.train.heldout import F0_SPLIT_HZ, median_f0
@@ -97,7 +99,7 @@ def to_markdown(rows: list[dict]) -> str:
 
 
 def main() -> None:
-    from nenv.files import write_text
+    from nenv.media.files import write_text
 
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("models", nargs="+", type=Path)

@@ -22,8 +22,9 @@ from pathlib import Path
 
 import numpy as np
 
-from nenv import channel, pipeline
-from nenv.evaluate import prepare_reference
+from nenv.dsp import channel
+from nenv.chain import pipeline
+from nenv.report.evaluate import prepare_reference
 
 DATA = Path(__file__).resolve().parents[1] / "data"
 

@@ -32,8 +32,9 @@ from pathlib import Path
 
 import numpy as np
 
-from nenv import channel, g711, rtp
-from nenv.evaluate import prepare_reference
+from nenv.dsp import channel, g711
+from nenv.serve import rtp
+from nenv.report.evaluate import prepare_reference
 
 DATA = Path(__file__).resolve().parents[1] / "data"
 PACKET = 160  # samples of 8 kHz per 20 ms packet

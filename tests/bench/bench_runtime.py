@@ -28,10 +28,11 @@ from pathlib import Path
 
 import numpy as np
 
-from nenv import channel, checkpoint, pipeline
-from nenv.evaluate import prepare_reference
-from nenv.multicall import MultiCallEngine
-from nenv.runtime import CallEngine
+from nenv.dsp import channel
+from nenv.chain import checkpoint, pipeline
+from nenv.report.evaluate import prepare_reference
+from nenv.serve.multicall import MultiCallEngine
+from nenv.serve.runtime import CallEngine
 
 DATA = Path(__file__).resolve().parents[1] / "data"
 
@@ -65,7 +66,7 @@ def main() -> None:
     # 2. streaming, one call, 10 ms chunks; then as many runs of a fixed reference workload, to show
     # how much of the spread is the machine's own (a shared machine's p99 is well above its p50).
     # Not interleaved with the chunks: the reference work would evict the engine's data from cache.
-    eng = CallEngine(pipeline.make_system("neural", model=model))
+    eng = CallEngine(system=pipeline.make_system("neural", model=model))
     per, ref = [], []
     for s in range(0, x.size - 80, 80):
         t0 = time.perf_counter()
@@ -113,7 +114,7 @@ def main() -> None:
     # 4. memory per call
     tracemalloc.start()
     before = tracemalloc.take_snapshot()
-    engines = [CallEngine(pipeline.make_system("neural", model=model)) for _ in range(20)]
+    engines = [CallEngine(system=pipeline.make_system("neural", model=model)) for _ in range(20)]
     for e in engines:
         e.feed(x[:8000])
     after = tracemalloc.take_snapshot()

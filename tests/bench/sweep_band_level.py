@@ -16,8 +16,10 @@ from pathlib import Path
 
 import numpy as np
 
-from nenv import channel, measures, pipeline
-from nenv.evaluate import prepare_reference
+from nenv.dsp import channel
+from nenv.report import measures
+from nenv.chain import pipeline
+from nenv.report.evaluate import prepare_reference
 
 DATA = Path(__file__).resolve().parents[1] / "data"
 TRIMS_DB = (0, -3, -6, -10, -20, -40)

@@ -15,7 +15,7 @@ import tempfile
 import atheris
 
 with atheris.instrument_imports(include=["nenv"]):
-    from nenv import streamfile
+    from nenv.serve import streamfile
     from nenv.errors import NenvError
 
 import numpy as np

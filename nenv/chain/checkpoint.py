@@ -1,0 +1,140 @@
+"""Read a trained model folder for inference (numpy + onnxruntime, no torch).
+
+A checkpoint folder holds:
+
+* ``model.onnx``: raw features in, wideband shape cepstra and high-band level
+  out (normalisation folded in); its metadata repeats the feature settings;
+* ``codebook.npz``: the paired codebook (fallback and baseline);
+* ``nenv.json``: format version, feature settings, guard limits, model
+  arguments, normalisation statistics, the resolved training recipe and the
+  training record id;
+* optionally ``model.pt`` (torch weights, for re-export), ``record.json`` and
+  ``curves.png`` from training.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from nenv.errors import ConfigError
+from nenv.chain.estimators.codebook import Codebook
+from nenv.chain.features import FeatureSettings
+from nenv.chain.guard import GuardLimits
+
+FORMAT = "nenv-checkpoint"
+FORMAT_VERSION = 1
+META_FEATURES = "nenv_features"  # ONNX metadata key holding the feature settings (JSON)
+MODEL_FILE = "model.onnx"
+CODEBOOK_FILE = "codebook.npz"
+SETTINGS_FILE = "nenv.json"
+
+
+def session_options(*, flush_denormals: bool = False):
+    """onnxruntime settings for a gateway: one thread, no spin-waiting, optionally denormals flushed.
+
+    One intra-op thread per session keeps one call on one core (a gateway runs
+    many calls side by side); spin-waiting would burn a core between hops.
+    ``flush_denormals`` makes onnxruntime switch the calling thread's floating-point
+    unit to flush-to-zero / denormals-are-zero, which avoids slow paths on tiny
+    values but changes that thread's arithmetic for everything else in the process
+    too (numpy included). ``nenv stream`` turns it on; a library caller decides.
+    """
+    import onnxruntime as ort
+
+    so = ort.SessionOptions()
+    so.intra_op_num_threads = 1
+    so.inter_op_num_threads = 1
+    so.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    so.add_session_config_entry("session.intra_op.allow_spinning", "0")
+    so.add_session_config_entry("session.inter_op.allow_spinning", "0")
+    if flush_denormals:
+        so.add_session_config_entry("session.set_denormal_as_zero", "1")
+    so.log_severity_level = 3
+    return so
+
+
+@dataclass
+class Checkpoint:
+    """A loaded model folder."""
+
+    path: Path
+    features: FeatureSettings
+    limits: GuardLimits
+    codebook: Codebook
+    info: dict
+    flush_denormals: bool = False
+    _session: object = field(default=None, repr=False)
+
+    def session(self):
+        """The onnxruntime session (created on first use)."""
+        if self._session is None:
+            import onnxruntime as ort
+
+            try:
+                self._session = ort.InferenceSession(str(self.path / MODEL_FILE), sess_options=session_options(flush_denormals=self.flush_denormals), providers=["CPUExecutionProvider"])
+            except Exception as e:  # onnxruntime raises its own Fail / InvalidProtobuf types
+                raise ConfigError(f"cannot load '{self.path / MODEL_FILE}': {str(e).splitlines()[0]}") from e
+            meta = self._session.get_modelmeta().custom_metadata_map
+            if META_FEATURES not in meta:
+                raise ConfigError(f"'{self.path / MODEL_FILE}' has no nenv feature settings in its metadata: not a nenv model")
+            embedded = FeatureSettings.from_dict(json.loads(meta[META_FEATURES]))
+            FeatureSettings().check_compatible(embedded, what=f"the model '{self.path / MODEL_FILE}'")
+            if embedded != self.features:
+                raise ConfigError(f"'{self.path / MODEL_FILE}' and '{self.path / SETTINGS_FILE}' disagree on the feature settings")
+        return self._session
+
+    def predict(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Run the network on stacked raw features [shape=(n, input_dim)] -> (ceps (n, 20), level_db (n,))."""
+        if x.shape[0] == 0:
+            return np.zeros((0, self.features.n_wb_ceps)), np.zeros(0)
+        ceps, level = self.session().run(None, {"features": x.astype(np.float32)})
+        return ceps.astype(np.float64), level[:, 0].astype(np.float64)
+
+
+def load(path: str | os.PathLike, *, flush_denormals: bool = False) -> Checkpoint:
+    """Load and validate a checkpoint folder; ConfigError with the reason if anything is off.
+
+    ``flush_denormals``: see :func:`session_options`.
+    """
+    p = Path(path)
+    if not p.is_dir():
+        raise ConfigError(f"model folder '{p}' does not exist: check the path given by --model or $NENV_MODEL, or train one with 'nenv train'")
+    for name in (MODEL_FILE, CODEBOOK_FILE, SETTINGS_FILE):
+        if not (p / name).is_file():
+            raise ConfigError(f"model folder '{p}' has no {name}: it is incomplete")
+    try:
+        info = json.loads((p / SETTINGS_FILE).read_text(encoding="utf-8"))
+    except (OSError, ValueError) as e:
+        raise ConfigError(f"cannot read '{p / SETTINGS_FILE}': {e}") from e
+    if info.get("format") != FORMAT:
+        raise ConfigError(f"'{p / SETTINGS_FILE}' is not a nenv checkpoint description")
+    if info.get("format_version") != FORMAT_VERSION:
+        raise ConfigError(f"'{p}' has checkpoint format {info.get('format_version')}, this nenv reads format {FORMAT_VERSION}")
+    try:
+        feats = FeatureSettings.from_dict(info["features"])
+        limits = GuardLimits.from_dict(info["guard"])
+    except (KeyError, TypeError) as e:
+        raise ConfigError(f"'{p / SETTINGS_FILE}' lacks a valid 'features' or 'guard' section: {e}") from e
+    FeatureSettings().check_compatible(feats, what=f"the model in '{p}'")
+    return Checkpoint(p, feats, limits, Codebook.load(p / CODEBOOK_FILE), info, flush_denormals)
+
+
+def default_path() -> Path | None:
+    """Where the default model is: $NENV_MODEL, else the shipped one, else None.
+
+    The shipped model is checkpoints/default of a source checkout, installed as
+    nenv/_checkpoints/default.
+    """
+    env = os.environ.get("NENV_MODEL")
+    if env:
+        return Path(env)
+    package = Path(__file__).resolve().parents[1]  # nenv/
+    for cand in (package.parent / "checkpoints" / "default", package / "_checkpoints" / "default"):
+        if (cand / MODEL_FILE).is_file():
+            return cand
+    return None

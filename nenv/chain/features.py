@@ -1,0 +1,202 @@
+"""Per-hop features: the network's inputs (narrowband) and its training targets (wideband).
+
+Both training and the runtime compute inputs with these functions from the
+same :class:`nenv.chain.estimators.base.NarrowbandAnalysis`, so a model sees at run
+time exactly what it saw in training. :class:`FeatureSettings` records every
+choice; a model carries it and the runtime refuses a model whose settings
+differ from its own.
+
+Inputs, per hop (``N_INPUTS`` values), from the narrowband analysis frame:
+  * ``c_1 .. c_10``: cepstrum of the order-10 LPC envelope (shape only, no gain)
+  * ``energy_db``: windowed frame power in dB re full scale (floored at -100 dB)
+  * ``prediction_gain_db``: frame power over LPC prediction-error power, in dB (a
+    spectral-flatness measure: 0 dB for white noise, high for peaky spectra)
+  * ``voicing``: largest normalised autocorrelation at lags 20-147 (54-400 Hz
+    pitch), corrected for the window; 0 for noise, near 1 for steady voiced speech
+  * ``zcr``: zero-crossing rate of the hop, crossings per sample
+The network sees the current hop and ``context`` past hops (no look-ahead).
+
+Targets, per hop, from the time-aligned 16 kHz frame:
+  * ``c_1 .. c_20``: cepstrum of the order-16 LPC envelope (shape only)
+  * ``level_db``: high-band (3.4-8 kHz) power of the wideband frame relative to
+    the narrowband frame power, in dB
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, fields
+from functools import lru_cache
+
+import numpy as np
+
+from nenv.dsp import cepstrum, lpc
+from nenv.errors import ConfigError
+from nenv.chain.estimators.base import NarrowbandAnalysis
+from nenv.settings import BAND_EDGE_HZ, HOP_NB, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
+
+FEATURE_VERSION = 1
+ENERGY_FLOOR_DB = -100.0  # dB re full scale
+PITCH_LAGS = (20, 147)  # samples at 8 kHz: 400 Hz down to 54 Hz
+LEVEL_N_FFT = 512  # FFT size for band powers at 16 kHz
+INPUT_NAMES = [f"c{i}" for i in range(1, 11)] + ["energy_db", "prediction_gain_db", "voicing", "zcr"]
+N_INPUTS = len(INPUT_NAMES)
+
+
+@dataclass(frozen=True)
+class FeatureSettings:
+    """Everything that defines the features; stored in every model and compared at load time."""
+
+    version: int = FEATURE_VERSION
+    nb_sr: int = NB_SR
+    wb_sr: int = WB_SR
+    hop_nb: int = HOP_NB
+    win_nb: int = WIN_NB
+    win_wb: int = WIN_WB
+    nb_order: int = NB_ORDER
+    wb_order: int = WB_ORDER
+    n_inputs: int = N_INPUTS
+    n_wb_ceps: int = 20
+    context: int = 4
+    band_edge_hz: float = BAND_EDGE_HZ
+
+    @property
+    def input_dim(self) -> int:
+        """Width of one stacked network input (current hop + context)."""
+        return self.n_inputs * (self.context + 1)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "FeatureSettings":
+        known = {f.name for f in fields(cls)}
+        unknown = set(d) - known
+        if unknown:
+            raise ConfigError(f"feature settings have unknown keys {sorted(unknown)}: made by a newer nenv?")
+        return cls(**d)
+
+    def check_compatible(self, other: "FeatureSettings", *, what: str) -> None:
+        """Raise ConfigError unless ``other`` computes the same features as ``self`` (context may differ)."""
+        mine, theirs = self.to_dict(), other.to_dict()
+        diff = [k for k in mine if k != "context" and mine[k] != theirs[k]]
+        if diff:
+            pairs = ", ".join(f"{k}={theirs[k]!r} (this nenv: {mine[k]!r})" for k in diff)
+            raise ConfigError(f"{what} was made with other feature settings: {pairs}; retrain it with this version of nenv")
+
+
+def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
+    """Per-hop input features [shape=(n, N_INPUTS)], see the module docstring."""
+    frames, a, gain = analysis.frames, analysis.a, analysis.gain
+    n = frames.shape[0]
+    if n == 0:
+        return np.zeros((0, N_INPUTS))
+    w = lpc.asymmetric_window(frames.shape[1])
+    xw = frames * w
+    power = (xw * xw).sum(axis=1) / lpc.window_energy(frames.shape[1])
+    energy_db = np.maximum(10 * np.log10(np.maximum(power, 1e-30)), ENERGY_FLOOR_DB)
+    err_db = np.maximum(10 * np.log10(np.maximum(gain * gain, 1e-30)), ENERGY_FLOOR_DB)
+    pred_gain = np.minimum(np.maximum(energy_db - err_db, 0.0), 60.0)
+    ceps = cepstrum.to_cepstrum(a, n_ceps=10)[:, 1:]
+    # normalised autocorrelation over the pitch range, divided by the window's own normalised
+    # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17). Single
+    # precision is ample for a value in [0, 1] and halves the FFTs' cost; each frame is scaled
+    # to unit peak first (the ratio does not depend on scale), so nothing underflows.
+    peak = np.abs(xw).max(axis=1, keepdims=True)
+    r = lpc.autocorrelation((xw / np.where(peak > 0, peak, 1.0)).astype(np.float32), order=PITCH_LAGS[1]).astype(np.float64)
+    rw = _window_autocorrelation(frames.shape[1])
+    r0 = r[:, 0]
+    lags = slice(PITCH_LAGS[0], PITCH_LAGS[1] + 1)
+    norm = r[:, lags] / np.where(r0 > 0, r0, 1.0)[:, None] / (rw[lags] / rw[0])[None, :]
+    voicing = np.where(r0 > 0, np.minimum(np.maximum(norm.max(axis=1), 0.0), 1.0), 0.0)
+    hop = frames[:, -HOP_NB - 1 :]
+    zcr = (np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1])).sum(axis=1) / HOP_NB
+    out = np.empty((n, N_INPUTS))
+    m = ceps.shape[1]
+    out[:, :m] = ceps
+    out[:, m], out[:, m + 1], out[:, m + 2], out[:, m + 3] = energy_db, pred_gain, voicing, zcr
+    return out
+
+
+@lru_cache(maxsize=None)
+def _window_autocorrelation(length: int) -> np.ndarray:
+    """Autocorrelation of the analysis window over the pitch lags (read-only, computed once)."""
+    rw = lpc.autocorrelation(lpc.asymmetric_window(length)[None, :], order=PITCH_LAGS[1])[0]
+    rw.flags.writeable = False
+    return rw
+
+
+class ContextStacker:
+    """Stack each hop's features with its ``context`` predecessors, oldest first, with state.
+
+    Before the first hop the history is the first hop itself repeated, so
+    stacking a signal in pieces gives the same rows as stacking it at once.
+    """
+
+    def __init__(self, context: int):
+        self.context = context
+        self._history: np.ndarray | None = None
+
+    def reset(self) -> None:
+        self._history = None
+
+    def push(self, feats: np.ndarray) -> np.ndarray:
+        """feats [shape=(n, d)] -> stacked [shape=(n, d * (context + 1))]."""
+        n, d = feats.shape
+        if n == 0:
+            return np.zeros((0, d * (self.context + 1)))
+        if self._history is None:
+            self._history = np.repeat(feats[:1], self.context, axis=0)
+        buf = np.concatenate([self._history, feats])
+        if self.context:
+            self._history = buf[-self.context :].copy()
+        # row t of the result is buf[t : t + context + 1] flattened: frames of (context + 1) * d values every d
+        return lpc.hop_frames(buf.reshape(1, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=n)[0]
+
+
+def band_power(frames: np.ndarray, *, lo: float, hi: float) -> np.ndarray:
+    """Power per sample of windowed 16 kHz frames inside lo..hi Hz (Parseval, one-sided).
+
+    frames : np.ndarray [shape=(n, WIN_WB)] raw -> np.ndarray [shape=(n,)]
+    """
+    w = lpc.asymmetric_window(frames.shape[1])
+    n_fft = max(LEVEL_N_FFT, 1 << int(np.ceil(np.log2(frames.shape[1]))))
+    spec = np.fft.rfft(frames * w, n=n_fft, axis=1)
+    p = spec.real**2 + spec.imag**2
+    first, last = cepstrum.band_bins(lo, hi, n_fft=n_fft, sr=WB_SR)
+    return 2.0 * p[:, first : last + 1].sum(axis=1) / n_fft / lpc.window_energy(frames.shape[1])
+
+
+def wideband_targets(wb_frames: np.ndarray, nb_energy_db: np.ndarray, *, settings: FeatureSettings) -> tuple[np.ndarray, np.ndarray]:
+    """Training targets for hops whose 16 kHz frames are ``wb_frames`` [shape=(n, WIN_WB)].
+
+    Returns
+    -------
+    ceps : np.ndarray [shape=(n, n_wb_ceps)], shape cepstrum of the order-16 envelope
+    level_db : np.ndarray [shape=(n,)], high-band power re narrowband frame power, dB
+    """
+    a, _ = lpc.analyse(wb_frames, order=settings.wb_order, sr=settings.wb_sr)
+    ceps = cepstrum.to_cepstrum(a, n_ceps=settings.n_wb_ceps)[:, 1:]
+    hb = band_power(wb_frames, lo=settings.band_edge_hz, hi=settings.wb_sr / 2)
+    hb_db = np.maximum(10 * np.log10(np.maximum(hb, 1e-30)), ENERGY_FLOOR_DB)
+    return ceps, hb_db - nb_energy_db
+
+
+def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_db: np.ndarray, *, order: int = WB_ORDER, with_reflection: bool = False) -> tuple[np.ndarray, ...]:
+    """Stable all-pole envelopes whose high-band power matches the predicted level.
+
+    The shape comes from the cepstrum by the always-stable route; the gain is then
+    set so that a unit-power white excitation through ``G/A`` has power
+    ``nb_power * 10**(level_db/10)`` in 3.4-8 kHz.
+
+    Returns a [shape=(n, order+1)], gain [shape=(n,)] (may be inf/NaN for non-finite input) and,
+    with ``with_reflection``, the reflection coefficients of ``a`` [shape=(n, order)] from the
+    Levinson-Durbin recursion that produced it.
+    """
+    c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
+    a, g0, k = cepstrum.from_cepstrum_stable(np.where(np.isfinite(c), c, 0.0), order=order, with_reflection=True)
+    env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=cepstrum.band_bins(BAND_EDGE_HZ, WB_SR / 2, n_fft=LEVEL_N_FFT, sr=WB_SR))
+    model_hb = 2.0 * env.sum(axis=1) / LEVEL_N_FFT
+    target = 10 ** ((nb_energy_db + level_db) / 10)
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        gain = g0 * np.sqrt(target / model_hb)
+    return (a, gain, k) if with_reflection else (a, gain)

@@ -1,0 +1,207 @@
+"""The safety guard: every hop's network envelope is checked before it is used.
+
+Checks, each recorded per hop with its measured value:
+
+* ``nonfinite``: a predicted value or the derived gain is NaN or infinite;
+* ``unstable``: some reflection coefficient of the envelope has ``|k| >= 1 -
+  stability_margin`` (the coefficients of the Levinson-Durbin recursion that built
+  it when the caller has them, else the step-down of its predictor coefficients);
+* ``level``: the predicted high-band level lies outside the range seen in
+  training (0.1st..99.9th percentile of the training targets, widened by
+  ``level_margin_db``);
+* ``mismatch``: the predicted envelope's telephone-band part (300-3400 Hz)
+  disagrees with the observed narrowband envelope by more than the training
+  99.9th percentile (RMS difference of the mean-removed log envelopes, dB);
+* ``novel``: the narrowband input lies farther from every codebook cell than
+  99.9% of the training frames did.
+
+A rejected hop gets the codebook envelope of its nearest cell instead.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field, fields
+from enum import IntFlag
+
+import numpy as np
+
+from nenv.dsp import cepstrum, kernels, lpc
+from nenv.errors import ConfigError
+from nenv.settings import BAND_EDGE_HZ, CHANNEL_LOW_HZ, WB_SR
+
+MISMATCH_N_FFT_WB = 512  # 31.25 Hz bins at 16 kHz
+MISMATCH_N_FFT_NB = 256  # the same 31.25 Hz bins at 8 kHz
+
+
+class Check(IntFlag):
+    """Reasons a hop can be rejected (bit flags, combinable)."""
+
+    NONFINITE = 1
+    UNSTABLE = 2
+    LEVEL = 4
+    MISMATCH = 8
+    NOVEL = 16
+
+
+CHECK_NAMES = {c: c.name.lower() for c in Check}
+
+
+def reason_names(mask: int) -> list[str]:
+    """Names of the checks set in ``mask``, e.g. ['unstable', 'level']."""
+    return [CHECK_NAMES[c] for c in Check if mask & c]
+
+
+@dataclass(frozen=True)
+class GuardLimits:
+    """Thresholds, learned from training data and stored with the model."""
+
+    level_min_db: float
+    level_max_db: float
+    mismatch_max_db: float
+    novelty_max: float
+    stability_margin: float = 1e-3
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "GuardLimits":
+        names = {f.name for f in fields(cls)}
+        if set(d) - names or {"level_min_db", "level_max_db", "mismatch_max_db", "novelty_max"} - set(d):
+            raise ConfigError(f"guard limits must have exactly the keys {sorted(names)}, got {sorted(d)}")
+        return cls(**{k: float(v) for k, v in d.items()})
+
+
+@dataclass
+class Decisions:
+    """The guard's verdict on consecutive hops (arrays of shape (n,))."""
+
+    rejected: np.ndarray  # bool
+    reasons: np.ndarray  # int, Check bit mask
+    max_k: np.ndarray  # largest |reflection coefficient|
+    level_db: np.ndarray  # predicted high-band level re narrowband power
+    mismatch_db: np.ndarray  # telephone-band disagreement
+    novelty: np.ndarray  # distance to the nearest codebook cell
+    cell: np.ndarray  # int, nearest codebook cell (the fallback used when rejected)
+
+    def head(self, n: int) -> "Decisions":
+        """The verdicts on the first ``n`` hops."""
+        return Decisions(*(getattr(self, f.name)[:n] for f in fields(Decisions)))
+
+    @staticmethod
+    def concat(parts: list["Decisions"]) -> "Decisions":
+        if not parts:
+            z = np.zeros(0)
+            return Decisions(z.astype(bool), z.astype(int), z, z, z, z, z.astype(int))
+        return Decisions(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(Decisions)))
+
+
+@dataclass
+class Tally:
+    """Running counts of the guard's verdicts (constant memory, however long the call).
+
+    Only hops before ``limit`` count (the tail padding after a signal's end is not part of it).
+    """
+
+    limit: int = 2**62
+    hops: int = 0
+    rejected: int = 0
+    by_reason: dict = field(default_factory=dict)
+
+    def add(self, first_hop: int, dec: Decisions) -> Decisions:
+        """Count the verdicts on hops first_hop, first_hop+1, ... below the limit; return those."""
+        dec = dec.head(max(0, min(dec.rejected.size, self.limit - first_hop)))
+        self.hops += int(dec.rejected.size)
+        self.rejected += int(dec.rejected.sum())
+        for mask in dec.reasons[dec.rejected]:
+            for name in reason_names(int(mask)):
+                self.by_reason[name] = self.by_reason.get(name, 0) + 1
+        return dec
+
+    def line(self) -> str:
+        """The one-line summary that extend and stream print."""
+        return summary_line(self.hops, self.rejected, self.by_reason)
+
+
+def summary_line(hops: int, rejected: int, by_reason: dict) -> str:
+    """``guard: N of M hops (x%) fell back to the codebook (reason n, ...)`` or ``guard: all M hops passed; ...``."""
+    if not rejected:
+        return f"guard: all {hops} hops passed; none fell back to the codebook"
+    detail = ", ".join(f"{k} {v}" for k, v in by_reason.items())
+    return f"guard: {rejected} of {hops} hops ({100 * rejected / max(hops, 1):.1f}%) fell back to the codebook ({detail})"
+
+
+def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
+    """RMS difference (dB) of the mean-removed log envelopes over 300-3400 Hz (spectra by :func:`nenv.dsp.kernels.band_ratio`).
+
+    a_wb : np.ndarray [shape=(n, p+1)] at 16 kHz; a_nb : np.ndarray [shape=(n, q+1)] at 8 kHz
+    """
+    # envelope power is 1/|A|^2, so wb_dB - nb_dB = 10 log10(|A_nb|^2 / |A_wb|^2) on the same
+    # frequencies: the bins of a 512-point grid at 16 kHz are those of a 256-point grid at 8 kHz
+    bins = cepstrum.band_bins(CHANNEL_LOW_HZ, BAND_EDGE_HZ, n_fft=MISMATCH_N_FFT_WB, sr=WB_SR)
+    cos_wb, sin_wb = cepstrum.cosine_table(a_wb.shape[-1], MISMATCH_N_FFT_WB, *bins)
+    cos_nb, sin_nb = cepstrum.cosine_table(a_nb.shape[-1], MISMATCH_N_FFT_NB, *bins)
+    ratio = kernels.band_ratio(np.ascontiguousarray(a_wb, dtype=np.float64), np.ascontiguousarray(a_nb, dtype=np.float64), cos_wb, sin_wb, cos_nb, sin_nb)
+    # one logarithm per bin, in single precision (ample for a threshold in dB)
+    d = np.log10(ratio.astype(np.float32)).astype(np.float64)
+    d *= 10
+    n = d.shape[1]
+    d -= d.sum(axis=1, keepdims=True) / n
+    d *= d
+    return np.sqrt(d.sum(axis=1) / n)
+
+
+class Guard:
+    """Applies :class:`GuardLimits` to predicted envelopes."""
+
+    def __init__(self, limits: GuardLimits):
+        self.limits = limits
+
+    def check(self, **kwargs) -> Decisions:
+        """Verdict for each hop; see the module docstring for the checks (arguments: :meth:`assess`)."""
+        return self.assess(**kwargs)[0]
+
+    def assess(
+        self,
+        *,
+        ceps: np.ndarray,
+        level_db: np.ndarray,
+        a: np.ndarray,
+        gain: np.ndarray,
+        a_nb: np.ndarray,
+        novelty: np.ndarray,
+        cell: np.ndarray,
+        k: np.ndarray | None = None,
+    ) -> tuple[Decisions, np.ndarray]:
+        """:meth:`check`, and the reflection coefficients of ``a`` its stability test used
+        [shape=(n, p)] (the synthesis reuses them for the hops it accepts). ``k``: those
+        coefficients if the caller has them (the recursion that built ``a``), else the
+        step-down of ``a`` computes them."""
+        lim = self.limits
+        a_ok = np.isfinite(a)
+        finite = np.isfinite(ceps).all(axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & a_ok.all(axis=1)
+        a_fin = a if finite.all() else np.where(a_ok, a, 0.0)
+        if k is None:
+            k, stable = lpc.reflection(a_fin)
+        else:
+            k = np.where(np.isfinite(k), k, 0.0)
+            stable = True
+        max_k = np.abs(k).max(axis=1)
+        stable = stable & (max_k < 1.0 - lim.stability_margin)
+        mismatch = np.where(finite, telephone_band_mismatch(a_fin, a_nb), np.inf)
+        level_bad = ~((level_db >= lim.level_min_db) & (level_db <= lim.level_max_db))
+        reasons = np.where(finite, 0, int(Check.NONFINITE))
+        reasons |= np.where(finite & ~stable, int(Check.UNSTABLE), 0)
+        reasons |= np.where(np.isfinite(level_db) & level_bad, int(Check.LEVEL), 0)
+        reasons |= np.where(finite & (mismatch > lim.mismatch_max_db), int(Check.MISMATCH), 0)
+        reasons |= np.where(novelty > lim.novelty_max, int(Check.NOVEL), 0)
+        dec = Decisions(
+            rejected=reasons != 0,
+            reasons=reasons,
+            max_k=max_k,
+            level_db=np.asarray(level_db, dtype=float),
+            mismatch_db=mismatch,
+            novelty=np.asarray(novelty, dtype=float),
+            cell=np.asarray(cell, dtype=int),
+        )
+        return dec, k

@@ -1,0 +1,212 @@
+"""The systems a chain can run: what turns narrowband hops into a 16 kHz high-band candidate.
+
+Every system works on rows (calls) like the chain (:mod:`nenv.chain.pipeline`): ``add_rows``,
+``keep_rows`` and ``highband(x, analysis, sel)`` for the rows ``sel`` of its state.
+
+* ``neural``, ``codebook``, ``oracle``: :class:`SourceFilterSystem` (residual -> extended
+  excitation -> all-pole envelope from an estimator);
+* ``imaging``: spectral folding, no model (:mod:`nenv.chain.estimators.imaging`);
+* ``unextended``: no added band (the reference point);
+* ``true-band``: the reference's own band (the ceiling; evaluation only).
+"""
+
+from __future__ import annotations
+
+from typing import Callable, Protocol
+
+import numpy as np
+
+from nenv.dsp import lpc
+from nenv.errors import InputError
+from nenv.chain.estimators.base import EnvelopeEstimator, NarrowbandAnalysis
+from nenv.chain.estimators.imaging import ImagingSystem
+from nenv.chain.estimators.oracle import OracleEstimator
+from nenv.dsp.excitation import ExcitationExtender, Method, residual
+from nenv.dsp.rows import ALL
+from nenv.settings import HOP_NB, HOP_WB
+from nenv.dsp.synthesis import UPSAMPLER_DELAY, AllPoleSynthesizer
+
+DEFAULT_EXCITATION: Method = "rectify"
+
+
+class System(Protocol):
+    """Anything that turns narrowband hops into a 16 kHz high-band candidate, one row per call."""
+
+    name: str
+    needs_analysis: bool  # whether highband reads the narrowband LPC analysis
+
+    def add_rows(self, n: int) -> None: ...
+
+    def keep_rows(self, mask: np.ndarray) -> None: ...
+
+    def reset(self) -> None:
+        """Forget every call (rows and anything recorded about them)."""
+        ...
+
+    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis, sel=ALL) -> np.ndarray:
+        """Candidate for the hops in ``x`` [shape=(B, n)] of the rows ``sel`` -> [shape=(B, 2n)], before band isolation."""
+        ...
+
+
+class Unextended:
+    """No added band: the interpolated narrowband signal alone (the reference point)."""
+
+    name = "unextended"
+    needs_analysis = False
+
+    def add_rows(self, n: int) -> None:
+        pass
+
+    def keep_rows(self, mask: np.ndarray) -> None:
+        pass
+
+    def reset(self) -> None:
+        pass
+
+    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis, sel=ALL) -> np.ndarray:
+        return np.zeros((x.shape[0], 2 * x.shape[1]))
+
+
+class SingleRow:
+    """For systems that read one reference recording: one call only."""
+
+    _rows = 0
+
+    def add_rows(self, n: int) -> None:
+        if self._rows + n > 1:
+            raise InputError(f"the {self.name} system reads one reference recording: it serves one call, not several")
+        self._rows += n
+
+    def keep_rows(self, mask: np.ndarray) -> None:
+        self._rows = int(np.count_nonzero(mask))
+
+    def reset(self) -> None:
+        self._rows = 0
+        self._pos = 0
+
+
+class TrueBand(SingleRow):
+    """The reference's own band above 3.4 kHz added to the unextended signal: the ceiling of any extension.
+
+    Evaluation only (it needs the time-aligned 16 kHz original). The candidate is the reference
+    itself, delayed by the interpolator's delay like the narrowband signal, so after the same
+    band isolation the true band lines up with the telephone band.
+    """
+
+    name = "true-band"
+    needs_analysis = False
+
+    def __init__(self, reference: np.ndarray):
+        reference = np.asarray(reference, dtype=np.float64)
+        if reference.ndim != 1 or reference.size == 0:
+            raise InputError("the true-band system needs a non-empty mono 16 kHz reference signal")
+        self.reference = np.concatenate([np.zeros(UPSAMPLER_DELAY), reference])
+        self._pos = 0
+
+    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis, sel=ALL) -> np.ndarray:
+        n = 2 * x.shape[1]
+        seg = self.reference[self._pos : self._pos + n]
+        self._pos += n
+        return np.pad(seg, (0, n - seg.size))[None, :]
+
+
+class SourceFilterSystem:
+    """Residual -> extended excitation -> wideband all-pole envelope from ``estimator``, per row."""
+
+    needs_analysis = True
+
+    def __init__(self, estimator: EnvelopeEstimator, *, excitation: Method = DEFAULT_EXCITATION):
+        self.estimator = estimator
+        self.name = estimator.name
+        self.excitation = excitation
+        self._extender = ExcitationExtender(excitation, rows=0)
+        self._synth = AllPoleSynthesizer(order=estimator.order, rows=0)
+
+    def add_rows(self, n: int) -> None:
+        self.estimator.add_rows(n)
+        self._extender.add_rows(n)
+        self._synth.add_rows(n)
+
+    def keep_rows(self, mask: np.ndarray) -> None:
+        self.estimator.keep_rows(mask)
+        self._extender.keep_rows(mask)
+        self._synth.keep_rows(mask)
+
+    def reset(self) -> None:
+        self.estimator.reset()
+        self._extender = ExcitationExtender(self.excitation, rows=0)
+        self._synth = AllPoleSynthesizer(order=self.estimator.order, rows=0)
+
+    def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis, sel=ALL) -> np.ndarray:
+        B, H = x.shape[0], x.shape[1] // HOP_NB
+        env = self.estimator.estimate(analysis, sel)
+        e = residual(analysis.frames, analysis.a, hop_length=HOP_NB).reshape(B, H * HOP_NB)
+        u, rms = self._extender.rows(e, sel)
+        k = env.k if env.k is not None else lpc.reflection(env.a)[0]
+        log_g = np.log(np.maximum(env.gain / rms, 1e-12)).reshape(B, H)
+        return self._synth.rows(u.reshape(B, H * HOP_WB), k.reshape(B, H, -1), log_g, sel)
+
+
+def load_model(model=None, *, flush_denormals: bool = False):
+    """A loaded checkpoint: ``model`` as given (Checkpoint), loaded from a folder, or the default model."""
+    from nenv.chain import checkpoint
+
+    if isinstance(model, checkpoint.Checkpoint):
+        return model
+    if model is None:
+        model = checkpoint.default_path()
+        if model is None:
+            raise InputError("no model: pass --model FOLDER (made by 'nenv train'), or set NENV_MODEL")
+    return checkpoint.load(model, flush_denormals=flush_denormals)
+
+
+def _oracle(reference: np.ndarray | None, excitation: Method, model) -> System:
+    if reference is None:
+        raise InputError("the oracle system needs the wideband reference (it measures the true envelope)")
+    return SourceFilterSystem(OracleEstimator(reference), excitation=excitation)
+
+
+def _true_band(reference: np.ndarray | None, excitation: Method, model) -> System:
+    if reference is None:
+        raise InputError("the true-band system needs the wideband reference (it adds the reference's own band)")
+    return TrueBand(reference)
+
+
+def _neural(reference, excitation: Method, model) -> System:
+    from nenv.chain.estimators.neural import NeuralEstimator
+
+    return SourceFilterSystem(NeuralEstimator(load_model(model)), excitation=excitation)
+
+
+def _codebook(reference, excitation: Method, model) -> System:
+    from nenv.chain.estimators.codebook import CodebookEstimator
+
+    return SourceFilterSystem(CodebookEstimator(load_model(model).codebook), excitation=excitation)
+
+
+# name -> factory(reference, excitation, model). Model-based systems take a checkpoint folder or object.
+SYSTEMS: dict[str, Callable[[np.ndarray | None, Method, object], System]] = {
+    "unextended": lambda ref, exc, model: Unextended(),
+    "imaging": lambda ref, exc, model: ImagingSystem(),
+    "codebook": _codebook,
+    "neural": _neural,
+    "oracle": _oracle,
+    "true-band": _true_band,
+}
+REFERENCE_SYSTEMS = ("oracle", "true-band")  # evaluation only: they read the wideband original
+MODEL_SYSTEMS = ("codebook", "neural")
+
+
+def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION, model=None) -> System:
+    """Build a system by name.
+
+    'unextended', 'imaging'; 'codebook' and 'neural' (need ``model``: a checkpoint
+    folder or :class:`nenv.chain.checkpoint.Checkpoint`, default the shipped model);
+    'oracle' and 'true-band' (need ``reference``, the time-aligned 16 kHz original).
+    """
+    if name not in SYSTEMS:
+        raise InputError(f"method={name!r} is not known: choose one of {', '.join(SYSTEMS)}")
+    return SYSTEMS[name](reference, excitation, model)
+
+
+__all__ = ["DEFAULT_EXCITATION", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "load_model", "make_system"]

@@ -1,0 +1,77 @@
+"""The ``nenv`` command line's shared parts: the application, its options, one-line errors and progress bars."""
+
+from __future__ import annotations
+
+import functools
+import sys
+from pathlib import Path
+from typing import Annotated, Callable, Optional
+
+import typer
+
+from nenv import __version__
+from nenv.errors import NenvError
+
+app = typer.Typer(
+    help="nenv: extend telephone speech (8 kHz, 300-3400 Hz) to wideband (16 kHz), on CPU.\n\n"
+    "The added 3.4-8 kHz band is estimated, not recorded: never treat it as evidence of what was said or who said it.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+DEMO_CLIP = "order_confirmation_8k.wav"
+SNR_RANGE_DB = (-10.0, 100.0)  # dB: degrade --snr-db accepts this range (below -10 dB the noise is all there is)
+
+
+def _version(value: bool) -> None:
+    if value:
+        typer.echo(f"nenv {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _top(
+    version: Annotated[bool, typer.Option("--version", is_eager=True, callback=_version, help="Print nenv's version and exit.")] = False,
+) -> None:
+    """nenv: extend telephone speech (8 kHz, 300-3400 Hz) to wideband (16 kHz), on CPU.
+
+    The added 3.4-8 kHz band is estimated, not recorded: never treat it as evidence of what was said or who said it.
+    """
+
+
+def _say(msg: str) -> None:
+    typer.echo(msg, err=True)
+
+
+def _guarded(fn: Callable) -> Callable:
+    """Turn nenv's own errors into one line on stderr and exit status 2; Ctrl-C into 130."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except NenvError as e:
+            _say(f"nenv: error: {e}")
+            raise typer.Exit(2) from None
+        except KeyboardInterrupt:
+            _say("nenv: interrupted; no partial output was left behind")
+            raise typer.Exit(130) from None
+
+    return wrapper
+
+
+def _progress():
+    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    return Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"), TimeRemainingColumn(), transient=True, disable=not sys.stderr.isatty())
+
+
+ChannelOpt = Annotated[Optional[int], typer.Option("--channel", min=0, help="Channel of a multichannel file to use (0 = first).")]
+MixOpt = Annotated[bool, typer.Option("--mix", help="Average all channels of a multichannel file.")]
+
+
+def _default_method(model: Optional[Path]) -> str:
+    from nenv.chain.checkpoint import default_path
+
+    return "neural" if model is not None or default_path() is not None else "imaging"

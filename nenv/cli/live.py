@@ -1,0 +1,172 @@
+"""Commands for live audio: ``nenv stream`` (stdin/stdout) and ``nenv relay`` (RTP)."""
+
+from __future__ import annotations
+
+import os
+import sys
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from nenv.dsp import kernels
+from nenv.serve.streamfile import watch
+from nenv.cli.app import _default_method, _guarded, _say, app
+from nenv.errors import InputError, OutputError
+
+class _Terminate(Exception):
+    pass
+
+
+@app.command()
+@_guarded
+def stream(
+    input_format: Annotated[str, typer.Option("--input-format", help="stdin encoding at 8 kHz: s16le (16-bit little-endian PCM), mulaw (PCMU bytes) or alaw (PCMA bytes).")] = "s16le",
+    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
+    model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
+    excitation: Annotated[str, typer.Option(help="Excitation extension: rectify, fold or modulate.")] = "rectify",
+    record: Annotated[Optional[Path], typer.Option(help="Append the guard's record to this JSON Lines file while the call runs (neural only).")] = None,
+    call_id: Annotated[str, typer.Option(help="Call id stored with the record.")] = "stdin",
+    group: Annotated[Optional[str], typer.Option(help="Speaker group or codec label stored with the record.")] = None,
+) -> None:
+    """Extend a live call: 8 kHz audio on stdin, 16 kHz s16le on stdout, unbuffered.
+
+    Ends cleanly at end of input or on SIGTERM/SIGINT, writing the last samples first.
+    """
+    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
+    import signal as sig
+
+    import numpy as np
+
+    from nenv.dsp import g711
+    from nenv.chain import pipeline
+    from nenv.media.audio import to_int16
+    from nenv.serve.runtime import CallEngine
+
+    if input_format not in ("s16le", "mulaw", "alaw"):
+        raise InputError(f"--input-format {input_format} is not known: choose s16le, mulaw or alaw")
+    if sys.stdout.isatty():
+        raise InputError("standard output is a terminal: stream writes raw 16-bit audio; redirect it to a file or a pipe (nenv stream < call.raw > call-wb.raw)")
+    method = method or _default_method(model)
+    if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
+        raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
+    if method in pipeline.MODEL_SYSTEMS:
+        model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
+    engine = CallEngine(system=pipeline.make_system(method, model=model, excitation=excitation))
+    tally, writer = watch(engine.system, record, source=call_id, group=group, n_hops=2**62)
+    out = sys.stdout.buffer
+    fd = sys.stdin.fileno()
+
+    def stop(signum, frame):
+        raise _Terminate()
+
+    old = {s: sig.signal(s, stop) for s in (sig.SIGTERM, sig.SIGINT)}
+    leftover = b""
+    reader_gone = False  # stdout's reader closed the pipe: nothing more can be delivered
+    try:
+        while True:
+            try:
+                data = os.read(fd, 4096)
+            except _Terminate:
+                break
+            if not data:
+                break
+            if engine.samples_in == 0 and not leftover and data[:4] == b"RIFF" and data[8:12] == b"WAVE":
+                raise InputError("standard input is a WAV file, header and all: extend a file with 'nenv extend CALL.wav CALL-WB.wav', or stream its raw samples (for example: sox CALL.wav -t raw - | nenv stream)")
+            if input_format == "s16le":
+                data = leftover + data
+                n = len(data) // 2 * 2
+                leftover = data[n:]
+                x = np.frombuffer(data[:n], dtype="<i2").astype(np.float64) / 32768.0
+            else:
+                x = g711.decode(np.frombuffer(data, dtype=np.uint8), law=input_format)
+            y = engine.feed(x)
+            if y.size:
+                out.write(to_int16(y).astype("<i2").tobytes())
+                out.flush()
+    except _Terminate:
+        pass
+    except BrokenPipeError:
+        reader_gone = True
+        os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())  # so that exiting does not fail on the dead pipe again
+    finally:
+        for s, h in old.items():
+            sig.signal(s, h)
+    if leftover:  # s16le input that ended inside a sample: say so rather than drop it silently
+        _say("note: the input ended with half a 16-bit sample (one odd byte); it was ignored")
+    if tally is not None:
+        tally.limit = -(-engine.samples_in // 80)  # the tail padding is not part of the call
+    y = engine.flush()
+    if y.size and not reader_gone:
+        try:
+            out.write(to_int16(y).astype("<i2").tobytes())
+            out.flush()
+        except BrokenPipeError:
+            reader_gone = True
+            os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())
+    if writer is not None:  # the guard's record of the call is completed even when its output was cut short
+        writer.summary(source=call_id, group=group, tally=tally, seconds=engine.samples_in / 8000)
+        writer.close()
+    _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
+    if tally is not None and tally.hops:
+        _say(tally.line())
+    if reader_gone:
+        raise OutputError("standard output was closed by its reader before the call ended: the rest of the extended audio was not delivered")
+
+
+def _hostport(text: str, what: str) -> tuple[str, int]:
+    host, sep, port = text.rpartition(":")
+    if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
+        raise InputError(f"{what} {text!r} must look like HOST:PORT, e.g. 127.0.0.1:5004")
+    return host or "127.0.0.1", int(port)
+
+
+@app.command()
+@_guarded
+def relay(
+    to: Annotated[str, typer.Option("--to", help="Where to send the wideband RTP (L16/16000), HOST:PORT.")],
+    listen: Annotated[str, typer.Option(help="Where to receive PCMU/PCMA RTP, HOST:PORT. Loopback unless you say otherwise.")] = "127.0.0.1:5004",
+    allow: Annotated[list[str], typer.Option(help="Accept packets only from this source address (repeatable). Default: any.")] = [],
+    payload_type: Annotated[int, typer.Option(help="Dynamic RTP payload type of the output (96-127).")] = 96,
+    max_streams: Annotated[int, typer.Option(min=1, help="Most concurrent streams (SSRCs); packets of further streams are dropped and counted.")] = 64,
+    idle_timeout: Annotated[float, typer.Option(help="Seconds without packets after which a stream is flushed and closed.")] = 2.0,
+    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
+    model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
+    step_ms: Annotated[float, typer.Option(min=5.0, max=100.0, help="Neural method: all streams are extended together every this many ms (a packet waits at most one step; 10 halves the wait for more CPU per call).")] = 20.0,
+) -> None:
+    """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one call per SSRC. Stops on SIGTERM/Ctrl-C."""
+    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
+    import signal as sig
+
+    from nenv.chain import pipeline
+    from nenv.serve import rtp
+
+    method = method or _default_method(model)
+    if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
+        raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
+    if not 96 <= payload_type <= 127:
+        raise InputError(f"--payload-type {payload_type}: dynamic payload types are 96-127 (RFC 3551)")
+    ck = pipeline.load_model(model, flush_denormals=True) if method in pipeline.MODEL_SYSTEMS else None
+    try:
+        # the neural system runs every stream in one batched engine (one pass per hop for all calls)
+        r = rtp.Relay(lambda: pipeline.make_system(method, model=ck), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
+                      payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout,
+                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0)
+    except OSError as e:
+        raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
+    _say(f"relaying RTP from {r.address[0]}:{r.address[1]} to {to} (method={method}, output payload type {payload_type}); stop with Ctrl-C")
+
+    def stop(signum, frame):
+        raise _Terminate()
+
+    old = {s_: sig.signal(s_, stop) for s_ in (sig.SIGTERM, sig.SIGINT)}
+    try:
+        r.serve()
+    except _Terminate:
+        r._shutdown()
+    finally:
+        for s_, h in old.items():
+            sig.signal(s_, h)
+    for ssrc, c in r.closed.items():
+        _say(f"stream {ssrc:08x}: {c.packets} packets in, {c.packets_out} out, {c.lost_packets} lost ({c.filled_samples} samples filled), {c.late_or_duplicate} late or duplicate, {c.silence_filled} samples of suppressed silence filled, {c.timing_restarts} timing restarts, {c.resyncs} sender restarts, {c.source_changes} source address changes, {c.guard_fallbacks} guard fallbacks")
+    _say(f"relay: {r.counters.streams_opened} streams, {r.counters.malformed} malformed, {r.counters.oversized} oversized, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit, {r.counters.ssrc_conflicts} from a second sender of an SSRC in use, {r.counters.send_errors} packets the system would not send")

@@ -1,0 +1,180 @@
+"""Compiled loops of filtering and synthesis: the rectify excitation, second-order sections, FIR,
+the 2x interpolator and the all-pole synthesis (per row; see :mod:`nenv.dsp.kernels`)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from nenv.dsp import jit
+from nenv.dsp.lpc_loops import step_up_row
+
+
+@jit.sums
+def rectify(up, dc_state, pole, hop):
+    """The ``rectify`` excitation per row: |x|, DC removal (1 - z^-1) / (1 - pole z^-1) with state,
+    then each hop scaled to the power of the input hop it came from.
+
+    up [shape=(B, n * hop)]; dc_state [shape=(B,)] the filter's state (transposed direct form,
+    as ``scipy.signal.lfilter``'s ``zi``), updated in place. Returns u [shape=(B, n * hop)].
+    """
+    n_rows, total = up.shape
+    u = np.empty((n_rows, total))
+    for b in range(n_rows):
+        z = dc_state[b]
+        for i in range(total):
+            x = abs(up[b, i])
+            y = x + z
+            z = pole * y - x
+            u[b, i] = y
+        dc_state[b] = z
+        for s in range(0, total, hop):
+            p_in = 0.0
+            p_out = 0.0
+            for i in range(s, s + hop):
+                p_in += up[b, i] * up[b, i]
+                p_out += u[b, i] * u[b, i]
+            scale = math.sqrt((p_in / hop) / max(p_out / hop, 1e-30))
+            for i in range(s, s + hop):
+                u[b, i] *= scale
+    return u
+
+
+@jit.plain
+def sosfilt(sos, x, state):
+    """Second-order sections (transposed direct form II, as ``scipy.signal.sosfilt``) per row.
+
+    sos [shape=(S, 6)], a0 = 1; x [shape=(B, n)]; state [shape=(B, S, 2)], updated in place.
+    Returns y [shape=(B, n)].
+    """
+    n_rows, n = x.shape
+    n_sec = sos.shape[0]
+    y = np.empty((n_rows, n))
+    for b in range(n_rows):
+        for i in range(n):
+            v = x[b, i]
+            for s in range(n_sec):
+                z0, z1 = state[b, s, 0], state[b, s, 1]
+                out = sos[s, 0] * v + z0
+                state[b, s, 0] = sos[s, 1] * v - sos[s, 4] * out + z1
+                state[b, s, 1] = sos[s, 2] * v - sos[s, 5] * out
+                v = out
+            y[b, i] = v
+    return y
+
+
+@jit.sums
+def fir(taps, x, history):
+    """FIR filter per row with state: y[n] = sum_j taps[j] x[n - j]; history [shape=(B, len(taps) - 1)]
+    holds the last inputs (oldest first) and is updated in place. x [shape=(B, n)] -> y [shape=(B, n)]."""
+    n_rows, n = x.shape
+    m = taps.shape[0] - 1
+    y = np.zeros((n_rows, n))
+    buf = np.empty(m + n)
+    for b in range(n_rows):
+        for i in range(m):
+            buf[i] = history[b, i]
+        for i in range(n):
+            buf[m + i] = x[b, i]
+        for j in range(m + 1):
+            tj = taps[j]
+            for i in range(n):
+                y[b, i] += tj * buf[m + i - j]
+        for i in range(m):
+            history[b, i] = buf[n + i]
+    return y
+
+
+@jit.sums
+def upsample2(x, history, even, odd):
+    """Interpolation by 2 (zero insertion and a linear-phase FIR) per row, in polyphase form.
+
+    even, odd: the FIR's even and odd taps, each reversed; history [shape=(B, H)] with
+    H = len(even) - 1 holds the last 8 kHz inputs (oldest first), updated in place.
+    x [shape=(B, n)] -> y [shape=(B, 2n)]: y[2m] = sum_j even[j] buf[m + j] and
+    y[2m + 1] = sum_j odd[j] buf[m + 1 + j], where buf is the history followed by x.
+    """
+    n_rows, n = x.shape
+    h = history.shape[1]
+    n_even, n_odd = even.shape[0], odd.shape[0]
+    y = np.empty((n_rows, 2 * n))
+    buf = np.empty(h + n)
+    for b in range(n_rows):
+        for i in range(h):
+            buf[i] = history[b, i]
+        for i in range(n):
+            buf[h + i] = x[b, i]
+        for m in range(n):
+            s = 0.0
+            for j in range(n_even):
+                s += buf[m + j] * even[j]
+            y[b, 2 * m] = s
+            s = 0.0
+            for j in range(n_odd):
+                s += buf[m + 1 + j] * odd[j]
+            y[b, 2 * m + 1] = s
+        for i in range(h):
+            history[b, i] = buf[n + i]
+    return y
+
+
+@jit.sums
+def synthesize(u, k, log_g, k_prev, log_g_prev, past, n_sub, max_reflection):
+    """All-pole synthesis G/A(z) with sub-frame interpolation, per row (one call or stream).
+
+    u [shape=(B, H * L)] excitation of H hops of L samples; k [shape=(B, H, p)] each hop's
+    reflection coefficients (NaN -> 0, then clamped to +-max_reflection); log_g [shape=(B, H)].
+    Sub-frame j of hop t has weight (j + 1) / n_sub on hop t and the rest on hop t - 1 (for
+    t = 0: ``k_prev``, ``log_g_prev``), linear in k (stable whenever both ends are) and in log G.
+    ``past`` [shape=(B, p)] holds y[n-1], ..., y[n-p]; it, k_prev and log_g_prev are updated in
+    place. Returns y [shape=(B, H * L)].
+    """
+    n_rows, total = u.shape
+    n_hops, p = k.shape[1], k.shape[2]
+    length = total // n_hops
+    sub = length // n_sub
+    y = np.empty((n_rows, total))
+    kc = np.empty(p)
+    kb = np.empty(p)
+    ks = np.empty(p)
+    a = np.empty(p + 1)
+    ar = np.empty(p)
+    hist = np.empty(p + total)  # hist[p + n] = y[n]; hist[p - i] = y[-i]
+    for b in range(n_rows):
+        for i in range(p):
+            hist[p - 1 - i] = past[b, i]
+            kb[i] = k_prev[b, i]
+        gb = log_g_prev[b]
+        for t in range(n_hops):
+            for i in range(p):
+                v = k[b, t, i]
+                if v != v:
+                    v = 0.0
+                kc[i] = min(max(v, -max_reflection), max_reflection)
+            gc = log_g[b, t]
+            for j in range(n_sub):
+                w = (j + 1.0) / n_sub
+                wb = 1.0 - w
+                for i in range(p):
+                    ks[i] = kb[i] * wb + kc[i] * w
+                step_up_row(ks, a)
+                for i in range(p):
+                    ar[i] = a[p - i]  # a_p .. a_1: the dot product below reads the memory forwards
+                g = math.exp(gb * wb + gc * w)
+                start = t * length + j * sub
+                for n in range(start, start + sub):
+                    acc = 0.0
+                    for i in range(p):
+                        acc += ar[i] * hist[n + i]
+                    v = g * u[b, n] - acc
+                    hist[p + n] = v
+                    y[b, n] = v
+            for i in range(p):
+                kb[i] = kc[i]
+            gb = gc
+        for i in range(p):
+            past[b, i] = hist[p + total - 1 - i]
+            k_prev[b, i] = kb[i]
+        log_g_prev[b] = gb
+    return y

@@ -1,0 +1,148 @@
+"""Compiled per-hop kernels: the sequential and small-array work of the chain, over a batch of rows.
+
+The kernels are plain loops (:mod:`nenv.dsp.lpc_loops`, :mod:`nenv.dsp.filter_loops`) compiled
+by numba with ``cache=True``: only the first process after an install compiles; later ones load
+the machine code from numba's cache (``__pycache__`` beside the loops, or numba's per-user cache
+when that folder is read-only; ``NUMBA_CACHE_DIR`` overrides both). Rows are independent signals
+or frames (one hop of one call, many hops, many calls); every kernel takes C-contiguous float64
+arrays whose first axis is the row.
+
+Callers use ``kernels.NAME``: :func:`warm` compiles every kernel for its one signature and runs
+it once, before the first hop; until then ``kernels.NAME`` warms up first.
+
+The plain numpy/scipy formulations these replace are the references in ``tests/test_kernels.py``
+(scipy ``solve_toeplitz``, ``lfilter`` with ``lfiltic``, ``sosfilt``, ``upfirdn``, ``freqz``,
+``numpy.roots``, the FFT definition of the cepstrum).
+"""
+
+from __future__ import annotations
+
+import sys
+import threading
+import time
+from types import SimpleNamespace
+
+import numba
+import numpy as np
+
+from nenv.dsp import filter_loops, lpc_loops
+
+LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "band_ratio")
+FILTER_KERNELS = ("rectify", "sosfilt", "fir", "upsample2", "synthesize")
+PUBLIC = LPC_KERNELS + FILTER_KERNELS
+loops = SimpleNamespace(**{n: getattr(lpc_loops, n) for n in LPC_KERNELS}, **{n: getattr(filter_loops, n) for n in FILTER_KERNELS})
+
+
+# ---- start-up -------------------------------------------------------------------------------
+
+_warm: dict[str, float] = {}
+NOTICE_AFTER_S = 1.5  # a warm-up still running after this long is compiling (loading the cache takes ~0.4 s): say so
+
+
+def _signatures() -> dict:
+    """The one signature each kernel is compiled for: inputs as read-only C-contiguous arrays (writable
+    ones and cached read-only tables both convert to it; contiguous rows let the loops use SIMD, so
+    callers copy views of a signal first), state as writable C arrays."""
+    t = numba.types
+    r1, r2, r3 = (t.Array(t.float64, n, "C", readonly=True) for n in (1, 2, 3))
+    w1, w2, w3 = (t.Array(t.float64, n, "C") for n in (1, 2, 3))
+    i, f = t.int64, t.float64
+    return {
+        loops.autocorrelation: (r2, i),
+        loops.levinson: (r2, i, f),
+        loops.lpc_analyse: (r2, r1, r1, i, f, f),
+        loops.reflection: (r2,),
+        loops.from_reflection: (r2,),
+        loops.to_cepstrum: (r2, i),
+        loops.residual: (r2, r2, i),
+        loops.rectify: (r2, w1, f, i),
+        loops.sosfilt: (r2, r2, w3),
+        loops.fir: (r1, r2, w2),
+        loops.upsample2: (r2, w2, r1, r1),
+        loops.synthesize: (r2, r3, r2, w2, w1, w2, i, f),
+        loops.band_ratio: (r2, r2, r2, r2, r2, r2),
+    }
+
+
+def _compile_all() -> None:
+    """Compile (or load from numba's cache) every kernel for its signature, then forbid compiling at
+    call time: a call whose arguments do not convert to the signature fails at once (a test finds it)
+    instead of compiling in the middle of a call."""
+    for kernel, sig in _signatures().items():
+        kernel.compile(sig)
+        kernel.disable_compile()
+
+
+def _run_each_once() -> None:
+    """Call every kernel once on tiny inputs: a compiled function loaded from the cache unpacks its
+    constants on its first call (a call back into Python), which must not happen in the middle of
+    a call's hop, nor where a stop signal could interrupt it."""
+    f = np.zeros((2, 32))
+    f[:, ::3] = 1.0
+    a, k, _ = loops.lpc_analyse(f, np.ones(32), np.ones(5), 4, 1e-280, 32.0)
+    loops.levinson(loops.autocorrelation(f, 4), 4, 1e-280)
+    loops.reflection(a)
+    loops.from_reflection(k)
+    loops.to_cepstrum(a, 6)
+    loops.residual(f, a, 8)
+    loops.rectify(f, np.zeros(2), 0.99, 16)
+    loops.sosfilt(np.array([[1.0, 0.0, 0.0, 1.0, 0.1, 0.0]]), f, np.zeros((2, 1, 2)))
+    loops.fir(np.ones(3), f, np.zeros((2, 2)))
+    loops.upsample2(f, np.zeros((2, 2)), np.ones(3), np.ones(2))
+    loops.synthesize(np.ones((2, 16)), np.zeros((2, 2, 4)), np.zeros((2, 2)), np.zeros((2, 4)), np.zeros(2), np.zeros((2, 4)), 2, 0.9999)
+    loops.band_ratio(a, a, np.ones((5, 3)), np.zeros((5, 3)), np.ones((5, 3)), np.zeros((5, 3)))
+
+
+def warm(*, notice=None) -> float:
+    """Compile (first process after an install) or load from cache every kernel, once per process.
+
+    ``notice(text)`` is told "compiling signal kernels (once) ..." if this takes longer than
+    NOTICE_AFTER_S (a cold cache), and how long it took when done. Returns the seconds spent.
+    """
+    if "s" in _warm:
+        return 0.0
+    said = threading.Event()
+
+    def tell() -> None:
+        if notice is not None:
+            said.set()
+            notice("compiling signal kernels (once; later runs load them from numba's cache) ...")
+
+    timer = threading.Timer(NOTICE_AFTER_S, tell)
+    timer.daemon = True
+    t0 = time.perf_counter()
+    timer.start()
+    try:
+        _compile_all()
+        _run_each_once()
+    finally:
+        timer.cancel()
+    for name in PUBLIC:  # from now on a call goes straight to the compiled code
+        globals()[name] = getattr(loops, name)
+    took = time.perf_counter() - t0
+    _warm["s"] = took
+    if said.is_set() and notice is not None:
+        notice(f"signal kernels compiled in {took:.1f} s")
+    return took
+
+
+def stderr_notice(text: str) -> None:
+    """Default ``notice`` of the command line: one line on stderr."""
+    print(f"nenv: {text}", file=sys.stderr, flush=True)
+
+
+def _first_use(name: str):
+    """Until :func:`warm` has run, ``kernels.NAME`` runs it first: every process uses the same compiled
+    signatures (and so the same rounding), whether or not it warmed the kernels up itself."""
+
+    def run(*args):
+        warm()
+        return globals()[name](*args)
+
+    run.__name__ = run.__qualname__ = name
+    run.__doc__ = getattr(loops, name).__doc__
+    return run
+
+
+for _name in PUBLIC:
+    globals()[_name] = _first_use(_name)

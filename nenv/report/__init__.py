@@ -1,0 +1,1 @@
+"""Measuring and reporting: quality measures, evaluation, figures, guard records and their audit."""

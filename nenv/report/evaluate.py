@@ -1,0 +1,167 @@
+"""Compare extension systems on wideband reference recordings.
+
+For each reference: read it, resample to 16 kHz, set its active level to
+-26 dBov, pass it through the telephone channel (once per G.711 law asked
+for), extend the narrowband result with every system, and score each output
+against the reference with :mod:`nenv.report.measures`. The table goes to the screen,
+to CSV and to Markdown; one figure shows the spectrograms of every system.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+from dataclasses import asdict, dataclass, fields
+from pathlib import Path
+from typing import Callable, Sequence
+
+import numpy as np
+
+from nenv.media import audio
+from nenv.dsp import channel
+from nenv.chain import pipeline
+from nenv.errors import InputError
+from nenv.report.measures import Scores
+from nenv.settings import WB_SR
+
+DEFAULT_SYSTEMS = ("unextended", "imaging", "oracle", "true-band")  # when no model is available
+ALL_SYSTEMS = ("unextended", "imaging", "codebook", "neural", "oracle", "true-band")
+EVAL_LEVEL_DBOV = channel.NOMINAL_LEVEL_DBOV
+MEASURE_NAMES = [f.name for f in fields(Scores)]
+MEASURE_LABELS = {
+    "lsd_high": "LSD 3.4-8k [dB]",
+    "lsd_full": "LSD 0-8k [dB]",
+    "lsd_env_high": "env LSD 3.4-8k [dB]",
+    "lsd_env_full": "env LSD 0-8k [dB]",
+    "level_error_high": "HB level err [dB]",
+    "pesq_wb": "WB-PESQ [MOS]",
+    "visqol": "ViSQOL [MOS]",
+}
+
+
+@dataclass(frozen=True)
+class Row:
+    """One system on one clip through one channel."""
+
+    clip: str
+    law: str
+    system: str
+    scores: Scores
+
+
+@dataclass(frozen=True)
+class Clip:
+    """A reference and what the channel made of it."""
+
+    name: str
+    law: str
+    reference: np.ndarray  # 16 kHz
+    narrowband: np.ndarray  # 8 kHz
+    outputs: dict[str, np.ndarray]  # system -> 16 kHz output
+
+
+def prepare_reference(path: str | os.PathLike, *, channel_index: int | None = None, mix: bool = False) -> np.ndarray:
+    """Load a wideband reference at 16 kHz (an odd last sample dropped) and nominal level; refuse narrowband or silent files."""
+    a = audio.load(path, channel=channel_index, mix=mix)
+    if a.sr < WB_SR:
+        raise InputError(f"'{path}' is sampled at {a.sr} Hz: a reference must be wideband (16 kHz or more)")
+    if audio.is_silent(a.y):
+        raise InputError(f"'{path}' is digital silence: nothing to compare against")
+    y = audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR)
+    y = y[: y.size // 2 * 2]  # an even length: every output is twice its 8 kHz input's
+    return channel.set_level(y, sr=WB_SR, level_dbov=EVAL_LEVEL_DBOV)
+
+
+def run(
+    references: Sequence[str | os.PathLike],
+    *,
+    systems: Sequence[str] = DEFAULT_SYSTEMS,
+    laws: Sequence[str] = ("none",),
+    excitation: str = pipeline.DEFAULT_EXCITATION,
+    model=None,
+    on_step: Callable[[str], None] | None = None,
+) -> tuple[list[Row], list[Clip]]:
+    """Score every system on every reference and channel law.
+
+    Returns the rows of the table and the signals (for figures).
+    """
+    for s in systems:
+        if s not in pipeline.SYSTEMS:
+            raise InputError(f"system {s!r} is not known: choose from {', '.join(pipeline.SYSTEMS)}")
+    if any(s in pipeline.MODEL_SYSTEMS for s in systems):
+        model = pipeline.load_model(model)  # load once, fail early
+    refs = [(Path(p).stem, prepare_reference(p)) for p in references]  # fail early, before any scoring
+    rows: list[Row] = []
+    clips: list[Clip] = []
+    for name, ref in refs:
+        for law in laws:
+            nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
+            outs = {}
+            for s in systems:
+                y = pipeline.extend(nb, system=pipeline.make_system(s, reference=ref, excitation=excitation, model=model)).y
+                outs[s] = y
+                rows.append(Row(name, law, s, Scores.compute(ref, y)))
+                if on_step:
+                    on_step(f"{name} / {law} / {s}")
+            clips.append(Clip(name, law, ref, nb, outs))
+    return rows, clips
+
+
+def means(rows: Sequence[Row]) -> list[Row]:
+    """Mean of every measure per (law, system) over clips (NaN-aware)."""
+    out = []
+    keys = list(dict.fromkeys((r.law, r.system) for r in rows))
+    for law, system in keys:
+        sel = [asdict(r.scores) for r in rows if r.law == law and r.system == system]
+        avg = {m: float(np.nanmean([s[m] for s in sel])) if any(np.isfinite(s[m]) for s in sel) else float("nan") for m in MEASURE_NAMES}
+        out.append(Row("mean", law, system, Scores(**avg)))
+    return out
+
+
+BLANK_REASONS = {
+    "visqol": "the visqol package found nothing to align (a clip shorter than about half a second, or without speech)",
+    "pesq_wb": "the pesq package scores nothing shorter than a quarter of a second (beyond its alignment margins), without speech it can find, or with more than 50 utterances (its reference code's limit: split long recordings into clips of a minute or two)",
+}
+BLANK_DEFAULT = "the reference has no active frames (none within 40 dB of its loudest)"
+
+
+def blank_notes(rows: Sequence[Row]) -> list[str]:
+    """One line per measure and clip whose value is NaN (not measurable), saying why it is blank;
+    the mean rows leave such values out."""
+    notes = []
+    for m in MEASURE_NAMES:
+        where = list(dict.fromkeys(f"{r.clip} ({r.law})" for r in rows if r.clip != "mean" and not np.isfinite(getattr(r.scores, m))))
+        if where:
+            notes.append(f"{MEASURE_LABELS[m]} is blank (nan) for {', '.join(where)}: {BLANK_REASONS.get(m, BLANK_DEFAULT)}; the means leave it out")
+    return notes
+
+
+def to_csv(rows: Sequence[Row]) -> str:
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["clip", "law", "system", *MEASURE_NAMES])
+    for r in rows:
+        w.writerow([r.clip, r.law, r.system, *(f"{getattr(r.scores, m):.4f}" for m in MEASURE_NAMES)])
+    return buf.getvalue()
+
+
+def to_markdown(rows: Sequence[Row]) -> str:
+    head = ["clip", "channel", "system", *(MEASURE_LABELS[m] for m in MEASURE_NAMES)]
+    lines = ["| " + " | ".join(head) + " |", "|" + "|".join(["---"] * 3 + ["---:"] * len(MEASURE_NAMES)) + "|"]
+    for r in rows:
+        vals = [f"{getattr(r.scores, m):.2f}" for m in MEASURE_NAMES]
+        clip = f"**{r.clip}**" if r.clip == "mean" else r.clip
+        lines.append("| " + " | ".join([clip, r.law, r.system, *vals]) + " |")
+    return "\n".join(lines) + "\n"
+
+
+MEASURES_NOTE = """\
+Measures (nenv.report.measures): LSD = log-spectral distance, 512-point Hann frames every 10 ms, power
+floored 80 dB below the reference's loudest bin, mean over frames within 40 dB of the loudest;
+"env" = the same on order-16 LPC envelopes; HB level err = median over active frames of the
+3.4-8 kHz energy ratio, output / reference (positive = too loud); WB-PESQ = ITU-T P.862.2 via the
+`pesq` package; ViSQOL = ViSQOL v3 speech mode with its lattice model (Chinen et al. 2020) via
+the `visqol-python` package. Lower is better except WB-PESQ and ViSQOL. "true-band" adds the
+reference's own band above 3.4 kHz to the unextended signal: the ceiling of any extension. The added band is estimated, not recorded.
+"""

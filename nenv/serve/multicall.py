@@ -1,0 +1,152 @@
+"""Many calls on one core: the chain steps all active calls and their queued hops together.
+
+:class:`MultiCallEngine` keeps every call as one row of a :class:`nenv.chain.pipeline.Chain` (the
+same chain ``extend`` and :class:`nenv.serve.runtime.CallEngine` run), so each kernel, numpy
+operation and onnxruntime run serves all calls at once, and all hops queued since the
+last step (a 20 ms packet holds two) in one pass; Python overhead is paid per step, not
+per call or hop. Calls join (:meth:`open`) and leave (:meth:`close`) at any time. Each
+call's output equals what its own CallEngine would produce.
+
+One call's non-finite input is replaced by zeros for that call alone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from nenv.media.audio import PEAK_CEILING as CEILING
+from nenv.chain.pipeline import Chain, System, make_system, tail_padding
+from nenv.serve.runtime import OutputGate, as_samples
+from nenv.settings import HOP_NB
+
+MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
+
+
+@dataclass
+class _Call:
+    pending: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    out: list = field(default_factory=list)
+    gate: OutputGate = field(default_factory=OutputGate)
+    samples_in: int = 0
+    bad_samples: int = 0
+    rejected_hops: int = 0
+    hops: int = 0
+
+
+class MultiCallEngine:
+    """Batched streaming extension for many calls sharing one model (or one model-free method)."""
+
+    def __init__(self, model=None, *, method: str = "neural", guard: bool = True, system: System | None = None):
+        """``model``: a checkpoint (loaded, a folder, or None for the shipped model) for 'neural' and
+        'codebook'; ``method``: any system that serves several calls ('neural', 'codebook', 'imaging',
+        'unextended'); ``system``: a ready-made system instead. ``guard=False`` turns the neural
+        method's guard off (for measurements only)."""
+        if system is None:
+            system = make_system(method, model=model)
+            if not guard and hasattr(system, "estimator"):
+                system.estimator.guard = None
+        if hasattr(getattr(system, "estimator", None), "keep_decisions"):
+            system.estimator.keep_decisions = False  # verdicts are counted per call, not kept
+        self.system = system
+        self._chain = Chain(system, rows=0)
+        self._ids: list[str] = []
+        self._calls: dict[str, _Call] = {}
+
+    # ---- calls joining and leaving -------------------------------------------------
+    def open(self, call_id: str) -> None:
+        """Start a call (its state starts from silence, like a new CallEngine)."""
+        if call_id in self._calls:
+            raise ValueError(f"call {call_id!r} is already open")
+        self._ids.append(call_id)
+        self._calls[call_id] = _Call()
+        self._chain.add_rows(1)
+
+    def close(self, call_id: str, *, stats: dict | None = None) -> np.ndarray:
+        """End a call: flush its tail (total output = 2 x its input) and forget it.
+
+        ``stats``: a dict to fill with the call's final :meth:`stats` (tail included).
+        """
+        call = self._call(call_id)
+        call.pending = np.concatenate([call.pending, np.zeros(tail_padding(call.pending.size))])
+        self._run(only=call_id)
+        y = np.concatenate(call.out) if call.out else np.zeros(0)
+        want = 2 * call.samples_in - (call.gate.samples_out - y.size)
+        y = y[: max(want, 0)]
+        if stats is not None:
+            stats.update(self.stats(call_id))
+        i = self._ids.index(call_id)
+        self._chain.keep_rows(np.arange(len(self._ids)) != i)
+        self._ids.pop(i)
+        del self._calls[call_id]
+        return y
+
+    @property
+    def calls(self) -> list[str]:
+        return list(self._ids)
+
+    def stats(self, call_id: str) -> dict:
+        c = self._call(call_id)
+        return {"samples_in": c.samples_in, "samples_out": c.gate.samples_out, "limited": c.gate.limited, "bad_samples": c.bad_samples, "hops": c.hops, "rejected_hops": c.rejected_hops}
+
+    # ---- audio in and out ------------------------------------------------------------
+    def _call(self, call_id: str) -> "_Call":
+        try:
+            return self._calls[call_id]
+        except KeyError:
+            raise KeyError(f"call {call_id!r} is not open (open it first; a closed call cannot be fed)") from None
+
+    def feed(self, call_id: str, x: np.ndarray) -> None:
+        """Queue 8 kHz samples for a call (processed by the next :meth:`step`)."""
+        call = self._call(call_id)
+        x = as_samples(x)  # non-finite samples are replaced per hop, in _run
+        call.samples_in += x.size
+        call.pending = np.concatenate([call.pending, x]) if call.pending.size else x
+
+    def step(self) -> dict[str, np.ndarray]:
+        """Process every whole hop queued, all calls together; return each call's new 16 kHz samples."""
+        self._run()
+        out = {}
+        for cid, call in self._calls.items():
+            parts = call.out
+            # a copy, never a view: a chunk the caller keeps must not pin the whole batch's array
+            out[cid] = parts[0].copy() if len(parts) == 1 else np.concatenate(parts) if parts else np.zeros(0)
+            call.out = []
+        return out
+
+    # ---- one hop for a set of calls ----------------------------------------------------
+    def _run(self, only: str | None = None) -> None:
+        """Process queued whole hops: each round takes every call with a hop queued, as many hops
+        as all of them have (H), and runs them as one batch of B calls x H hops."""
+        while True:
+            ready = [(i, self._calls[cid]) for i, cid in enumerate(self._ids) if (only is None or cid == only) and self._calls[cid].pending.size >= HOP_NB]
+            if not ready:
+                return
+            rows = [i for i, _ in ready]
+            calls = [c for _, c in ready]
+            n_hops = min(MAX_HOPS_PER_BATCH, min(c.pending.size for c in calls) // HOP_NB)
+            n = n_hops * HOP_NB
+            x = np.concatenate([c.pending[:n] for c in calls]).reshape(len(calls), n)
+            for c in calls:
+                c.pending = c.pending[n:]
+            finite = np.isfinite(x)
+            if not finite.all():  # one corrupt packet must not poison a call's filter state
+                for r in np.flatnonzero(~finite.all(axis=1)):
+                    calls[r].bad_samples += int(np.count_nonzero(~finite[r]))
+                x = np.where(finite, x, 0.0)
+            # rows are in call order, so a batch of every call is the whole state: views, not gathers
+            y = self._chain.process(x, slice(None) if len(rows) == len(self._ids) else np.array(rows))
+            dec = getattr(getattr(self.system, "estimator", None), "last", None)
+            if dec is not None and dec.rejected.any():
+                for c, n_rej in zip(calls, dec.rejected.reshape(len(calls), n_hops).sum(axis=1)):
+                    c.rejected_hops += int(n_rej)
+            # the output gate, batched: limit every row at once, then each call's own bookkeeping
+            over = np.abs(y) > CEILING
+            if over.any():
+                n_over, y_lim = over.sum(axis=1).tolist(), np.clip(y, -CEILING, CEILING)
+            else:
+                n_over, y_lim = [0] * len(calls), y
+            for c, row, row_lim, n_lim in zip(calls, y, y_lim, n_over):
+                c.hops += n_hops
+                c.out.append(c.gate.emit(row) if c.gate.skip else c.gate.emit_limited(row_lim, n_lim))

@@ -1,0 +1,422 @@
+"""An RTP relay: PCMU/PCMA calls in, wideband L16 out, one call per SSRC.
+
+Receives RTP (RFC 3550) on a UDP port carrying G.711 mu-law (PCMU, static
+payload type 0) or A-law (PCMA, payload type 8) at 8 kHz (RFC 3551, Table 4),
+extends each stream with its own :class:`nenv.serve.runtime.CallEngine` (or, given a
+neural checkpoint as ``batch_model``, as one call of a shared
+:class:`nenv.serve.multicall.MultiCallEngine` stepped every ``tick_s``), and sends
+the result as RTP L16 at 16 kHz mono (RFC 3551 section 4.5.11: 16-bit signed,
+network byte order) with a configurable dynamic payload type, 20 ms per packet.
+
+Per stream: packets up to ``reorder_window`` ahead of the next expected
+sequence number wait for the missing ones; a gap that does not fill in time
+is declared lost and filled with silence of the gap's timestamp length
+(capped); late and duplicate packets are dropped. Sequence numbers and
+timestamps wrap modulo 2^16 and 2^32. Malformed packets, wrong payload types
+and packets from addresses not allowed are dropped and counted, never raised.
+A stream idle for ``idle_timeout_s`` is flushed (its tail sent) and closed.
+
+Robustness (each case counted): a payload longer than ``MAX_PAYLOAD`` bytes
+is dropped (``oversized``); a timestamp jump between consecutive packets
+(silence suppression) is filled with silence up to ``MAX_FILL`` samples, and
+a longer one restarts the timing (``timing_restarts``); a sender that
+restarts with the same SSRC but far-away sequence numbers is followed after
+``RESYNC_AFTER`` consecutive out-of-place packets (``resyncs``); a new SSRC
+(a restarted sender) opens a new stream. An SSRC already in use by a stream
+arriving from another address is a collision or a loop (RFC 3550 section 8.2):
+those packets are dropped (``ssrc_conflicts``), so two senders with the same
+SSRC never mix, unless the stream's own sender has been quiet for
+``REBIND_AFTER_S`` (its address or port changed): then the stream follows the
+new address (``source_changes``). Memory per stream is bounded (the
+reorder window holds at most ``reorder_window + 1`` packets); the counters of
+closed streams are kept for the last ``MAX_CLOSED`` streams only.
+"""
+
+from __future__ import annotations
+
+import os
+import select
+import socket
+import struct
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+
+from nenv.dsp import g711
+from nenv.media.audio import to_int16
+from nenv.errors import InputError
+from nenv.serve.runtime import CallEngine
+
+PT_PCMU = 0
+PT_PCMA = 8
+LAW_OF_PT = {PT_PCMU: "mulaw", PT_PCMA: "alaw"}
+OUT_SAMPLES = 320  # per outgoing packet: 20 ms at 16 kHz
+MAX_FILL = 8000  # samples: longest gap filled with silence (1 s); longer gaps restart the timing
+HEADER = struct.Struct("!BBHII")
+MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
+RESYNC_AFTER = 16  # consecutive late-looking packets after which a stream follows the new numbering
+REBIND_AFTER_S = 0.5  # quiet time of a stream's sender after which its SSRC may come from a new address
+MAX_CLOSED = 1024  # closed streams whose counters are kept
+RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
+EXPIRY_CHECK_S = 0.1  # how often idle streams are looked for
+
+
+@dataclass(frozen=True)
+class RtpPacket:
+    payload_type: int
+    marker: bool
+    seq: int
+    timestamp: int
+    ssrc: int
+    payload: bytes
+
+
+def parse(data: bytes) -> RtpPacket | None:
+    """Parse one RTP packet (RFC 3550 section 5.1); None if it is not a valid RTP version 2 packet."""
+    if len(data) < HEADER.size:
+        return None
+    b0, b1, seq, ts, ssrc = HEADER.unpack_from(data)
+    if b0 >> 6 != 2:
+        return None
+    pos = HEADER.size + 4 * (b0 & 0x0F)  # CSRC list
+    if b0 & 0x10:  # header extension: 16-bit profile, 16-bit length in 32-bit words
+        if len(data) < pos + 4:
+            return None
+        (ext_words,) = struct.unpack_from("!H", data, pos + 2)
+        pos += 4 + 4 * ext_words
+    end = len(data)
+    if b0 & 0x20:  # padding: the last octet counts the padding octets
+        if end == 0 or data[-1] == 0 or data[-1] > end - pos:
+            return None
+        end -= data[-1]
+    if pos > end:
+        return None
+    return RtpPacket(b1 & 0x7F, bool(b1 & 0x80), seq, ts, ssrc, bytes(data[pos:end]))
+
+
+def build(*, payload_type: int, seq: int, timestamp: int, ssrc: int, payload: bytes, marker: bool = False) -> bytes:
+    """An RTP version 2 packet with no CSRC, extension or padding."""
+    return HEADER.pack(0x80, (0x80 if marker else 0) | (payload_type & 0x7F), seq & 0xFFFF, timestamp & 0xFFFFFFFF, ssrc & 0xFFFFFFFF) + payload
+
+
+@dataclass
+class StreamCounters:
+    packets: int = 0
+    samples_in: int = 0
+    late_or_duplicate: int = 0
+    lost_packets: int = 0
+    filled_samples: int = 0
+    arrived_early: int = 0
+    packets_out: int = 0
+    limited: int = 0
+    silence_filled: int = 0  # samples of silence inserted for timestamp jumps (silence suppression)
+    timing_restarts: int = 0  # timestamp jumps too long to fill
+    resyncs: int = 0  # sender restarts with the same SSRC
+    guard_fallbacks: int = 0  # hops where the guard replaced the network's envelope by the codebook's
+    source_changes: int = 0  # the sender's address or port changed after a quiet spell (followed)
+
+
+@dataclass
+class _Stream:
+    engine: CallEngine | None  # None in batched mode (the relay's MultiCallEngine holds the call)
+    law: str
+    next_seq: int
+    next_ts: int
+    out_ssrc: int
+    last_seen: float
+    held: dict = field(default_factory=dict)  # seq -> packet
+    out_pcm: bytes = b""  # output not yet sent (less than a packet), as big-endian 16-bit samples
+    out_seq: int = 0
+    out_ts: int = 0
+    late_run: int = 0
+    call_id: str = ""
+    source: tuple = ()  # the transport address (host, port) the stream's packets come from
+    counters: StreamCounters = field(default_factory=StreamCounters)
+
+
+@dataclass
+class RelayCounters:
+    malformed: int = 0
+    oversized: int = 0
+    wrong_payload_type: int = 0
+    not_allowed: int = 0
+    over_stream_limit: int = 0
+    streams_opened: int = 0
+    streams_closed: int = 0
+    ssrc_conflicts: int = 0  # packets dropped: an SSRC in use by another sender (collision or loop)
+    send_errors: int = 0  # output packets the system refused to send (they are counted as sent for numbering)
+
+
+def _resolve(address: tuple[str, int]) -> tuple[str, int]:
+    """``(host, port)`` with the host resolved to an IPv4 address; InputError if it does not resolve."""
+    host, port = address
+    try:
+        info = socket.getaddrinfo(host, port, socket.AF_INET, socket.SOCK_DGRAM)
+    except (socket.gaierror, UnicodeError) as e:
+        raise InputError(f"cannot resolve '{host}': {e.strerror if isinstance(e, socket.gaierror) else e}") from e
+    return info[0][4][0], info[0][4][1]
+
+
+class Relay:
+    """Receive PCMU/PCMA RTP, send L16/16000 RTP; see the module docstring."""
+
+    def __init__(
+        self,
+        make_system: Callable[[], object],
+        *,
+        listen: tuple[str, int] = ("127.0.0.1", 0),
+        send_to: tuple[str, int],
+        payload_type_out: int = 96,
+        allowed_sources: list[str] | None = None,
+        max_streams: int = 64,
+        reorder_window: int = 4,
+        idle_timeout_s: float = 2.0,
+        batch_model=None,
+        tick_s: float = 0.02,
+    ):
+        """``batch_model``: a loaded neural checkpoint; if given, every stream is a call of one
+        :class:`nenv.serve.multicall.MultiCallEngine` (``make_system`` is not used), stepped every
+        ``tick_s`` seconds, so all streams share each hop's work (a packet waits at most one tick;
+        one tick per usual 20 ms packet time by default, ``0.01`` halves that wait for about twice
+        the fixed cost per second)."""
+        if not 96 <= payload_type_out <= 127:
+            raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
+        self.make_system = make_system
+        self.send_to = _resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
+        self.pt_out = payload_type_out
+        self.allowed = {_resolve((a, 0))[0] for a in allowed_sources} if allowed_sources else None  # names -> addresses, once
+        self.max_streams = max_streams
+        self.window = reorder_window
+        self.idle = idle_timeout_s
+        self.sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        self.sock.bind(listen)
+        self.sock.setblocking(False)  # serve() waits in select and then reads every datagram waiting
+        self.address = self.sock.getsockname()
+        self.out = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        self.streams: dict[int, _Stream] = {}
+        self.closed: dict[int, StreamCounters] = {}
+        self.counters = RelayCounters()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self.multi = None
+        if batch_model is not None:
+            from nenv.serve.multicall import MultiCallEngine
+
+            self.multi = MultiCallEngine(batch_model)
+        self.tick = tick_s
+        self._last_step = self._last_expiry = time.monotonic()
+        self._by_call: dict[str, _Stream] = {}
+
+    # ---- lifecycle ---------------------------------------------------------------------
+    def start(self) -> "Relay":
+        self._thread = threading.Thread(target=self.serve, name="nenv-rtp-relay", daemon=True)
+        self._thread.start()
+        return self
+
+    def stop(self) -> None:
+        """Stop receiving, flush every stream's tail, close the sockets."""
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=30)
+        else:
+            self._shutdown()
+
+    def serve(self) -> None:
+        try:
+            while not self._stop.is_set():
+                wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - time.monotonic())
+                ready, _, _ = select.select([self.sock], [], [], wait)
+                if ready:
+                    self._receive_all()
+                if self.multi is not None and time.monotonic() - self._last_step >= self.tick:
+                    self.step()
+                if time.monotonic() - self._last_expiry >= EXPIRY_CHECK_S:
+                    self._expire()
+        finally:
+            self._shutdown()
+
+    def _receive_all(self) -> None:
+        """Handle every datagram waiting in the socket (up to RECEIVE_BURST), without blocking."""
+        for _ in range(RECEIVE_BURST):
+            try:
+                data, addr = self.sock.recvfrom(65535)
+            except (BlockingIOError, InterruptedError):
+                return
+            self.handle(data, addr)
+
+    def step(self) -> None:
+        """Batched mode: run every queued hop of every stream and send what is ready."""
+        self._last_step = time.monotonic()
+        if self.multi is None:
+            return
+        out = [(self._by_call[call_id], y) for call_id, y in self.multi.step().items() if y.size]
+        if not out:
+            return
+        # every stream's new samples to 16-bit PCM in one conversion (elementwise: the same bytes as one by one)
+        pcm = to_int16(np.concatenate([y for _, y in out])).astype(">i2").tobytes()
+        pos = 0
+        for st, y in out:
+            self._send(st, pcm[pos : pos + 2 * y.size])
+            pos += 2 * y.size
+
+    def _shutdown(self) -> None:
+        for ssrc in list(self.streams):
+            self._close(ssrc)
+        self.sock.close()
+        self.out.close()
+
+    # ---- packets in ----------------------------------------------------------------------
+    def handle(self, data: bytes, addr: tuple[str, int]) -> None:
+        if self.allowed is not None and addr[0] not in self.allowed:
+            self.counters.not_allowed += 1
+            return
+        pkt = parse(data)
+        if pkt is None:
+            self.counters.malformed += 1
+            return
+        if pkt.payload_type not in LAW_OF_PT:
+            self.counters.wrong_payload_type += 1
+            return
+        if len(pkt.payload) > MAX_PAYLOAD:
+            self.counters.oversized += 1
+            return
+        st = self.streams.get(pkt.ssrc)
+        if st is not None and st.source != addr:
+            # the same SSRC from another transport address: a collision or a loop (RFC 3550 section 8.2),
+            # unless the first source has gone quiet (its NAT binding or port changed): then follow it
+            if time.monotonic() - st.last_seen < REBIND_AFTER_S:
+                self.counters.ssrc_conflicts += 1
+                return
+            st.source = addr
+            st.counters.source_changes += 1
+        if st is None:
+            if len(self.streams) >= self.max_streams:
+                self.counters.over_stream_limit += 1
+                return
+            if self.multi is None:
+                st = _Stream(CallEngine(system=self.make_system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
+                self._count_fallbacks(st)  # the engine keeps no per-hop verdicts: counted here
+            else:
+                st = _Stream(None, LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic(), call_id=f"{pkt.ssrc:08x}-{self.counters.streams_opened}")
+                self.multi.open(st.call_id)
+                self._by_call[st.call_id] = st
+            st.source = addr
+            st.out_seq = int.from_bytes(os.urandom(2), "big")
+            st.out_ts = int.from_bytes(os.urandom(4), "big")
+            self.streams[pkt.ssrc] = st
+            self.counters.streams_opened += 1
+        st.last_seen = time.monotonic()
+        ahead = (pkt.seq - st.next_seq) & 0xFFFF
+        if ahead >= 0x8000 or pkt.seq in st.held:  # behind the play-out point, or a copy
+            st.counters.late_or_duplicate += 1
+            st.late_run += 1
+            if st.late_run < RESYNC_AFTER:
+                return
+            # this many in a row: the sender restarted its numbering; follow it
+            self._drain(st, force=True)
+            st.next_seq, st.next_ts, st.late_run = pkt.seq, pkt.timestamp, 0
+            st.counters.resyncs += 1
+            ahead = 0
+        st.late_run = 0
+        if ahead > 0:
+            st.counters.arrived_early += 1  # an earlier packet is late (reordered) or lost
+        st.held[pkt.seq] = pkt
+        st.counters.packets += 1
+        self._drain(st, force=False)
+
+    @staticmethod
+    def _count_fallbacks(st: _Stream) -> None:
+        est = getattr(st.engine.system, "estimator", None)
+        if hasattr(est, "listener"):
+
+            def listen(first_hop, dec, x, a_nb):
+                st.counters.guard_fallbacks += int(dec.rejected.sum())
+
+            est.listener = listen
+
+    def _drain(self, st: _Stream, *, force: bool) -> None:
+        while st.held:
+            pkt = st.held.pop(st.next_seq, None)
+            if pkt is not None:
+                self._play(st, pkt)
+                continue
+            if not force and len(st.held) <= self.window:
+                return
+            # the next expected packet did not come in time: declare it (and any run) lost
+            nearest = min(st.held, key=lambda s: (s - st.next_seq) & 0xFFFF)
+            n_lost = (nearest - st.next_seq) & 0xFFFF
+            gap = (st.held[nearest].timestamp - st.next_ts) & 0xFFFFFFFF
+            st.counters.lost_packets += n_lost
+            if 0 < gap <= MAX_FILL:
+                st.counters.filled_samples += gap
+                self._feed(st, np.zeros(gap))
+            st.next_seq = nearest
+            st.next_ts = st.held[nearest].timestamp
+
+    def _play(self, st: _Stream, pkt: RtpPacket) -> None:
+        jump = (pkt.timestamp - st.next_ts) & 0xFFFFFFFF
+        if 0 < jump < 0x80000000:  # consecutive packets, later timestamp: suppressed silence
+            if jump <= MAX_FILL:
+                st.counters.silence_filled += jump
+                self._feed(st, np.zeros(jump))
+            else:
+                st.counters.timing_restarts += 1
+        codes = np.frombuffer(pkt.payload, dtype=np.uint8)
+        x = g711.decode(codes, law=LAW_OF_PT[pkt.payload_type])
+        st.counters.samples_in += x.size
+        st.next_seq = (pkt.seq + 1) & 0xFFFF
+        st.next_ts = (pkt.timestamp + x.size) & 0xFFFFFFFF
+        self._feed(st, x)
+
+    def _feed(self, st: _Stream, x: np.ndarray) -> None:
+        if st.engine is not None:
+            self._emit(st, st.engine.feed(x))
+        else:
+            self.multi.feed(st.call_id, x)  # processed, with every other stream, at the next step
+
+    # ---- packets out ---------------------------------------------------------------------
+    def _emit(self, st: _Stream, y: np.ndarray, *, final: bool = False) -> None:
+        self._send(st, to_int16(y).astype(">i2").tobytes(), final=final)
+
+    def _send(self, st: _Stream, pcm: bytes, *, final: bool = False) -> None:
+        """Send whole packets of the stream's pending output plus ``pcm`` (big-endian int16);
+        keep the rest for the next call, or with ``final`` send it as a last, shorter packet."""
+        buf = st.out_pcm + pcm if st.out_pcm else pcm
+        packet = 2 * OUT_SAMPLES
+        n_full = len(buf) if final else len(buf) // packet * packet
+        for s in range(0, n_full, packet):
+            payload = buf[s : min(s + packet, n_full)]
+            try:
+                self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload), self.send_to)
+            except OSError:  # no route, buffers full, ...: the packet is lost like one on the wire, the relay goes on
+                self.counters.send_errors += 1
+            st.out_seq = (st.out_seq + 1) & 0xFFFF
+            st.out_ts = (st.out_ts + len(payload) // 2) & 0xFFFFFFFF
+            st.counters.packets_out += 1
+        st.out_pcm = buf[n_full:]
+
+    def _expire(self) -> None:
+        now = self._last_expiry = time.monotonic()
+        for ssrc, st in list(self.streams.items()):
+            if now - st.last_seen > self.idle:
+                self._close(ssrc)
+
+    def _close(self, ssrc: int) -> None:
+        st = self.streams.pop(ssrc)
+        self._drain(st, force=True)
+        if st.engine is not None:
+            self._emit(st, st.engine.flush(), final=True)
+            st.counters.limited = st.engine.limited
+        else:
+            stats: dict = {}
+            self._emit(st, self.multi.close(st.call_id, stats=stats), final=True)
+            del self._by_call[st.call_id]
+            st.counters.limited = stats["limited"]
+            st.counters.guard_fallbacks = stats["rejected_hops"]
+        self.closed[ssrc] = st.counters
+        while len(self.closed) > MAX_CLOSED:
+            self.closed.pop(next(iter(self.closed)))
+        self.counters.streams_closed += 1
