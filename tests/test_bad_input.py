@@ -1,7 +1,7 @@
-"""The README's bad-input table, row by row, through the command a user runs.
+"""The bad-input table (docs/bad-input.md), row by row, through the command a user runs.
 
 Each test is named after its row id (F = files, C = content, M = models and
-configs). ``test_readme_table_lists_exactly_these_rows`` keeps the README and
+configs). ``test_the_documented_table_lists_exactly_these_rows`` keeps the table and
 these tests in step: a row without a test, or a test without a row, fails.
 """
 
@@ -23,7 +23,7 @@ from nenv.cli import app
 from tests.conftest import ARCTIC
 
 runner = CliRunner()
-README = Path(__file__).resolve().parents[1] / "README.md"
+TABLE = Path(__file__).resolve().parents[1] / "docs" / "bad-input.md"
 ROWS = [f"F{i}" for i in range(1, 16)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 9)]
 
 
@@ -59,8 +59,8 @@ def _no_output(folder: Path) -> None:
     assert left == [], left
 
 
-def test_readme_table_lists_exactly_these_rows():
-    text = README.read_text(encoding="utf-8")
+def test_the_documented_table_lists_exactly_these_rows():
+    text = TABLE.read_text(encoding="utf-8")
     ids = re.findall(r"^\| (F\d+|C\d+|M\d+) \|", text, flags=re.M)
     assert sorted(ids) == sorted(ROWS) and len(ids) == len(set(ids))
     tests = {name[5:].split("_")[0].upper() for name in globals() if name.startswith("test_") and re.match(r"test_[fcm]\d+_", name)}
@@ -342,7 +342,7 @@ def test_c10_very_short_input(tmp_path):
     for n in (1, 79, 80, 81):
         x = 0.1 * np.random.default_rng(n).standard_normal(n)
         sf.write(tmp_path / "short.wav", x, 8000, subtype="FLOAT")
-        _extended(_run("extend", tmp_path / "short.wav", tmp_path / "out.wav"), tmp_path / "out.wav", n)
+        _extended(_run("extend", tmp_path / "short.wav", tmp_path / "out.wav", "--overwrite"), tmp_path / "out.wav", n)
 
 
 # ---- models and configs --------------------------------------------------------------------

@@ -63,7 +63,7 @@ def test_folder_mirrors_layout_reports_failures_and_skips_finished(tree, tmp_pat
     assert sr == 16000 and silent.size == 8000 and not np.any(silent)
     for src, dst in GOOD.items():
         # each output equals the single-file command's output for the same input
-        single = tmp_path / "single.wav"
+        single = tmp_path / f"single-{Path(dst).stem}.wav"
         assert _run("extend", tree / src, single, "--method", "imaging").exit_code == 0
         assert sf.read(out / dst, dtype="int16")[0].tobytes() == sf.read(single, dtype="int16")[0].tobytes()
     assert not (out / "south" / "broken.wav").exists()
@@ -97,7 +97,7 @@ def test_batch_refusals(tree, tmp_path):
     sf.write(tree / "north" / "a.flac", _telephone(0, 1.0), 8000)  # a.wav and a.flac -> both a.wav
     err(_run("extend", tree / "north", tmp_path / "o", "--method", "imaging"), "would both be written")
     err(_run("extend", tree / "south" / "deep", tmp_path / "o.wav"), "must be a folder")
-    err(_run("extend", tree / "south" / "deep", tmp_path / "o2", "--format", "mp3"), "--format mp3")
+    err(_run("extend", tree / "south" / "deep", tmp_path / "o2", "--format", "mp3"), "'mp3' is not one of 'wav', 'flac'")
     err(_run("extend", tree / "south" / "deep", tmp_path / "o3", "--method", "oracle"), "reference per file")
     err(_run("extend", tree / "south" / "deep", tmp_path / "o4", "--model", tmp_path / "nomodel"), "does not exist")
     err(_run("extend", tree / "south" / "deep", tmp_path / "nope", "--figure", tmp_path / "f.png"), "one input file")

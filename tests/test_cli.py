@@ -48,6 +48,25 @@ def test_degrade_then_extend(nb_file, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["call.wav", "wide.png", "wide.wav"]
 
 
+def test_an_existing_output_is_kept_unless_overwrite_one_file_as_in_a_batch(nb_file, tmp_path):
+    out = tmp_path / "wb.wav"
+    out.write_bytes(b"not audio, but mine")
+    res = _run("extend", nb_file, out, "--method", "imaging")
+    assert res.exit_code == 0 and "skipped" in res.stderr and "--overwrite" in res.stderr
+    assert out.read_bytes() == b"not audio, but mine"
+    res = _run("extend", nb_file, out, "--method", "imaging", "--overwrite")
+    assert res.exit_code == 0 and out.read_bytes()[:4] == b"RIFF"
+
+
+def test_fixed_sets_of_values_are_checked_by_the_command_line_and_listed(nb_file, tmp_path):
+    for args, option in ((("extend", nb_file, tmp_path / "o.wav", "--method", "folding"), "--method"), (("degrade", ARCTIC[0], tmp_path / "d.wav", "--law", "ulaw"), "--law"), (("extend", nb_file, tmp_path / "o.wav", "--excitation", "square"), "--excitation")):
+        res = _run(*args)
+        assert res.exit_code == 2 and option in res.output, res.output
+    helptext = _run("extend", "--help").output
+    assert "neural|codebook|imaging|unextended|oracle|true-band" in helptext and "rectify|fold|modulate" in helptext
+    assert "<bool>" not in helptext and "--overwrite" in helptext  # switches read as switches, not as options taking a value
+
+
 def test_extend_oracle_needs_reference(nb_file, tmp_path):
     _assert_user_error(_run("extend", nb_file, tmp_path / "o.wav", "--method", "oracle"), "--reference")
     res = _run("extend", nb_file, tmp_path / "o.wav", "--method", "oracle", "--reference", ARCTIC[0])
@@ -119,7 +138,8 @@ def test_bad_inputs_get_one_clear_line_and_no_output(tmp_path):
     ok = _write(tmp_path / "ok.wav", speech, 8000)
     _assert_user_error(_run("extend", ok, tmp_path / "no" / "such" / "dir.wav"), "does not exist")
     _assert_user_error(_run("extend", ok, tmp_path / "x.mp3"), ".wav")
-    _assert_user_error(_run("extend", ok, out, "--method", "magic"), "--method magic")
+    res = _run("extend", ok, out, "--method", "magic")  # a value outside a fixed set: refused by the command line library
+    assert res.exit_code == 2 and "'magic' is not one of" in res.output and not out.exists()
     assert _run("extend", tmp_path / "stereo.wav", out, "--channel", "1").exit_code == 0
     assert _run("extend", tmp_path / "odd.wav", tmp_path / "r.wav", "--resample").exit_code == 0
     leftovers = [p for p in os.listdir(tmp_path) if p.endswith(".part.wav")]
@@ -143,7 +163,8 @@ def test_degrade_warns_when_the_level_clips(tmp_path, law):
 def test_degrade_refuses_narrowband(tmp_path):
     p = _write(tmp_path / "nb.wav", 0.1 * np.ones(800), 8000)
     _assert_user_error(_run("degrade", p, tmp_path / "o.wav"), "wideband")
-    _assert_user_error(_run("degrade", ARCTIC[0], tmp_path / "o.wav", "--law", "ulaw"), "law")
+    res = _run("degrade", ARCTIC[0], tmp_path / "o.wav", "--law", "ulaw")
+    assert res.exit_code == 2 and "'ulaw' is not one of 'mulaw', 'alaw', 'none'" in res.output
 
 
 def test_evaluate_refuses_narrowband_reference(nb_file, tmp_path):
@@ -217,6 +238,9 @@ def test_degrade_codes_g711_mu_law_by_default_and_refuses_absurd_noise(tmp_path)
         (["audit", "x.jsonl"], "Missing option '--out'"),
         (["no-such-command"], "No such command"),
         (["extend", "call.wav"], "an input and an output are needed"),
+        (["extend", "a.wav", "b.wav", "--method", "magic"], "'magic' is not one of 'neural', 'codebook'"),
+        (["stream", "--input-format", "wav"], "'wav' is not one of 's16le', 'mulaw', 'alaw'"),
+        (["evaluate", "r.wav", "--out", "o", "--law", "ulaw"], "'ulaw' is not one of"),
     ],
 )
 def test_usage_errors_are_one_line_with_status_2(args, needle):

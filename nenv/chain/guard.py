@@ -25,6 +25,7 @@ from enum import IntFlag
 
 import numpy as np
 
+from nenv.words import count
 from nenv.dsp import cepstrum, kernels, lpc
 from nenv.errors import ConfigError
 from nenv.settings import BAND_EDGE_HZ, CHANNEL_LOW_HZ, WB_SR
@@ -126,9 +127,9 @@ class Tally:
 def summary_line(hops: int, rejected: int, by_reason: dict) -> str:
     """``guard: N of M hops (x%) fell back to the codebook (reason n, ...)`` or ``guard: all M hops passed; ...``."""
     if not rejected:
-        return f"guard: all {hops} hops passed; none fell back to the codebook"
+        return f"guard: {'the one hop' if hops == 1 else 'all ' + count(hops, 'hop')} passed; none fell back to the codebook"
     detail = ", ".join(f"{k} {v}" for k, v in by_reason.items())
-    return f"guard: {rejected} of {hops} hops ({100 * rejected / max(hops, 1):.1f}%) fell back to the codebook ({detail})"
+    return f"guard: {rejected} of {count(hops, 'hop')} ({100 * rejected / max(hops, 1):.1f}%) fell back to the codebook ({detail})"
 
 
 def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:

@@ -44,7 +44,7 @@ def main() -> None:
                 typer.echo(ctx.get_help())
                 sys.exit(2)
             where = ctx.command_path if ctx is not None else "nenv"
-            message = e.format_message()
+            message = e.format_message().replace("Value error, ", "")
             if getattr(getattr(e, "param", None), "name", None) == "inputs":  # one path given: it was taken as the output
                 message = "an input and an output are needed (extend CALL.wav CALL-WB.wav, or extend FOLDER... OUTDIR)"
             _say(f"nenv: error: {message} (see '{where} --help')")

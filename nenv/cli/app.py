@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
+import enum
 import functools
 import sys
 from pathlib import Path
-from typing import Annotated, Callable, Optional
+from typing import Annotated, Callable, Literal, Optional, get_args
 
 import typer
 
@@ -18,9 +19,21 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,  # plain help: a switch reads as a switch (the rich panels labelled every flag "<bool>")
 )
 
 DEMO_CLIP = "order_confirmation_8k.wav"
+
+# the fixed sets of values, checked by the command line library and listed in --help
+Method = Literal["neural", "codebook", "imaging", "unextended", "oracle", "true-band"]
+LiveMethod = Literal["neural", "codebook", "imaging", "unextended"]  # what can run on a live call (no reference)
+Law = Literal["mulaw", "alaw", "none"]
+Excitation = Literal["rectify", "fold", "modulate"]
+InputFormat = Literal["s16le", "mulaw", "alaw"]
+AudioFormat = Literal["wav", "flac"]
+# the same sets for options that repeat (the library takes lists of enumerations, not of literals)
+LawChoice = enum.Enum("LawChoice", [(v, v) for v in get_args(Law)], type=str)
+MethodChoice = enum.Enum("MethodChoice", [(v.replace("-", "_"), v) for v in get_args(Method)], type=str)
 SNR_RANGE_DB = (-10.0, 100.0)  # dB: degrade --snr-db accepts this range (below -10 dB the noise is all there is)
 
 
@@ -59,6 +72,13 @@ def _guarded(fn: Callable) -> Callable:
             raise typer.Exit(130) from None
 
     return wrapper
+
+
+def _kernels_ready() -> None:
+    """Compile (first run after an install) or load the signal kernels before the first hop, saying so when it takes long."""
+    from nenv.dsp import kernels
+
+    kernels.warm(notice=kernels.stderr_notice)
 
 
 def _progress():

@@ -9,9 +9,9 @@ from typing import Annotated, Optional
 
 import typer
 
-from nenv.dsp import kernels
+from nenv.words import count
 from nenv.serve.streamfile import watch
-from nenv.cli.app import _default_method, _guarded, _say, app
+from nenv.cli.app import Excitation, InputFormat, LiveMethod, _default_method, _guarded, _kernels_ready, _say, app
 from nenv.errors import InputError, OutputError
 
 class _Terminate(Exception):
@@ -21,10 +21,10 @@ class _Terminate(Exception):
 @app.command()
 @_guarded
 def stream(
-    input_format: Annotated[str, typer.Option("--input-format", help="stdin encoding at 8 kHz: s16le (16-bit little-endian PCM), mulaw (PCMU bytes) or alaw (PCMA bytes).")] = "s16le",
-    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
+    input_format: Annotated[InputFormat, typer.Option("--input-format", help="stdin encoding at 8 kHz: s16le (16-bit little-endian PCM), mulaw (PCMU bytes) or alaw (PCMA bytes).")] = "s16le",
+    method: Annotated[Optional[LiveMethod], typer.Option(help="System (default: neural when a model is available).")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
-    excitation: Annotated[str, typer.Option(help="Excitation extension: rectify, fold or modulate.")] = "rectify",
+    excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
     record: Annotated[Optional[Path], typer.Option(help="Append the guard's record to this JSON Lines file while the call runs (neural only).")] = None,
     call_id: Annotated[str, typer.Option(help="Call id stored with the record.")] = "stdin",
     group: Annotated[Optional[str], typer.Option(help="Speaker group or codec label stored with the record.")] = None,
@@ -33,7 +33,7 @@ def stream(
 
     Ends cleanly at end of input or on SIGTERM/SIGINT, writing the last samples first.
     """
-    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
+    _kernels_ready()
     import signal as sig
 
     import numpy as np
@@ -43,8 +43,6 @@ def stream(
     from nenv.media.audio import to_int16
     from nenv.serve.runtime import CallEngine
 
-    if input_format not in ("s16le", "mulaw", "alaw"):
-        raise InputError(f"--input-format {input_format} is not known: choose s16le, mulaw or alaw")
     if sys.stdout.isatty():
         raise InputError("standard output is a terminal: stream writes raw 16-bit audio; redirect it to a file or a pipe (nenv stream < call.raw > call-wb.raw)")
     method = method or _default_method(model)
@@ -107,7 +105,7 @@ def stream(
     if writer is not None:  # the guard's record of the call is completed even when its output was cut short
         writer.summary(source=call_id, group=group, tally=tally, seconds=engine.samples_in / 8000)
         writer.close()
-    _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {engine.limited} samples limited, {engine.bad_samples} bad samples")
+    _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {count(engine.limited, 'sample')} limited, {count(engine.bad_samples, 'bad sample')}")
     if tally is not None and tally.hops:
         _say(tally.line())
     if reader_gone:
@@ -130,12 +128,12 @@ def relay(
     payload_type: Annotated[int, typer.Option(help="Dynamic RTP payload type of the output (96-127).")] = 96,
     max_streams: Annotated[int, typer.Option(min=1, help="Most concurrent streams (SSRCs); packets of further streams are dropped and counted.")] = 64,
     idle_timeout: Annotated[float, typer.Option(help="Seconds without packets after which a stream is flushed and closed.")] = 2.0,
-    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended.")] = None,
+    method: Annotated[Optional[LiveMethod], typer.Option(help="System (default: neural when a model is available).")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
     step_ms: Annotated[float, typer.Option(min=5.0, max=100.0, help="Neural method: all streams are extended together every this many ms (a packet waits at most one step; 10 halves the wait for more CPU per call).")] = 20.0,
 ) -> None:
     """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one call per SSRC. Stops on SIGTERM/Ctrl-C."""
-    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
+    _kernels_ready()
     import signal as sig
 
     from nenv.chain import pipeline
@@ -168,5 +166,5 @@ def relay(
         for s_, h in old.items():
             sig.signal(s_, h)
     for ssrc, c in r.closed.items():
-        _say(f"stream {ssrc:08x}: {c.packets} packets in, {c.packets_out} out, {c.lost_packets} lost ({c.filled_samples} samples filled), {c.late_or_duplicate} late or duplicate, {c.silence_filled} samples of suppressed silence filled, {c.timing_restarts} timing restarts, {c.resyncs} sender restarts, {c.source_changes} source address changes, {c.guard_fallbacks} guard fallbacks")
-    _say(f"relay: {r.counters.streams_opened} streams, {r.counters.malformed} malformed, {r.counters.oversized} oversized, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit, {r.counters.ssrc_conflicts} from a second sender of an SSRC in use, {r.counters.send_errors} packets the system would not send")
+        _say(f"stream {ssrc:08x}: {count(c.packets, 'packet')} in, {c.packets_out} out, {c.lost_packets} lost ({count(c.filled_samples, 'sample')} filled), {c.late_or_duplicate} late or duplicate, {count(c.silence_filled, 'sample')} of suppressed silence filled, {count(c.timing_restarts, 'timing restart')}, {count(c.resyncs, 'sender restart')}, {count(c.source_changes, 'source address change')}, {count(c.guard_fallbacks, 'guard fallback')}")
+    _say(f"relay: {count(r.counters.streams_opened, 'stream')}, {r.counters.malformed} malformed, {r.counters.oversized} oversized, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit, {r.counters.ssrc_conflicts} from a second sender of an SSRC in use, {count(r.counters.send_errors, 'packet')} the system would not send")

@@ -10,9 +10,9 @@ from typing import Annotated, Optional
 
 import typer
 
+from nenv.words import count
 from nenv import __version__
-from nenv.cli.app import DEMO_CLIP, SNR_RANGE_DB, ChannelOpt, MixOpt, _default_method, _guarded, _progress, _say, app
-from nenv.dsp import kernels
+from nenv.cli.app import DEMO_CLIP, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
 from nenv.errors import InputError
 
 @app.command()
@@ -20,7 +20,7 @@ from nenv.errors import InputError
 def degrade(
     wideband: Annotated[Path, typer.Argument(help="Wideband speech (16 kHz or more; wav, flac, ogg, mp3, ...).")],
     narrowband: Annotated[Path, typer.Argument(help="Where to write the 8 kHz telephone-band result (.wav, .flac).")],
-    law: Annotated[str, typer.Option(help="G.711 companding: mulaw (PCMU), alaw (PCMA) or none.")] = "mulaw",
+    law: Annotated[Law, typer.Option(help="G.711 companding: mulaw (PCMU), alaw (PCMA) or none.")] = "mulaw",
     level_dbov: Annotated[float, typer.Option(help="Active speech level of the result in dBov (0 dBov = full-scale square wave).")] = -26.0,
     snr_db: Annotated[Optional[float], typer.Option(help="Add white noise at this SNR in dB before the channel.")] = None,
     seed: Annotated[int, typer.Option(help="Seed of the noise generator.")] = 0,
@@ -34,7 +34,6 @@ def degrade(
     from nenv.dsp import g711
     from nenv.dsp import channel as chan
     from nenv.media.files import check_distinct, check_output
-    from nenv.dsp.g711 import LAWS
 
     out = check_output(narrowband, suffixes=(".wav", ".flac"))
     check_distinct(out, what="the output", others={"the input": wideband})
@@ -43,8 +42,6 @@ def degrade(
         raise InputError(f"'{wideband}' is digital silence (every sample is zero)")
     if a.sr < 16000:
         raise InputError(f"'{wideband}' is sampled at {a.sr} Hz: degrade needs wideband input (16 kHz or more)")
-    if law not in LAWS:
-        raise InputError(f"--law {law} is not known: choose one of {', '.join(LAWS)}")
     if snr_db is not None and not SNR_RANGE_DB[0] <= snr_db <= SNR_RANGE_DB[1]:
         raise InputError(f"--snr-db {snr_db:g} is out of range: choose {SNR_RANGE_DB[0]:g} to {SNR_RANGE_DB[1]:g} dB (telephone lines: 20-50 dB)")
     nb = chan.telephone(a.y, sr=a.sr, level_dbov=level_dbov, snr_db=snr_db, seed=seed)  # linear: clipping is counted before coding
@@ -55,7 +52,7 @@ def degrade(
     audio.write(out, nb, sr=8000)
     _say(f"wrote {out} (8 kHz, {nb.size / 8000:.2f} s, law={law}, {level_dbov:g} dBov{'' if snr_db is None else f', SNR {snr_db:g} dB'})")
     if clipped:
-        _say(f"nenv: warning: {clipped} sample(s) ({100 * clipped / nb.size:.2f}%) reached full scale and were clipped: lower --level-dbov (speech on telephone lines sits near -26 dBov)")
+        _say(f"nenv: warning: {count(clipped, 'sample')} ({100 * clipped / nb.size:.2f}%) reached full scale and were clipped: lower --level-dbov (speech on telephone lines sits near -26 dBov)")
 
 
 @app.command()
@@ -63,9 +60,9 @@ def degrade(
 def extend(
     inputs: Annotated[list[Path], typer.Argument(help="8 kHz telephone speech: one file, or folders (searched recursively), files and lists (.txt, one path per line).", show_default=False, readable=False)],
     output: Annotated[Path, typer.Argument(help="The 16 kHz result (.wav, .flac) for one input file; a folder (mirroring the input layout) otherwise.", show_default=False)],
-    method: Annotated[Optional[str], typer.Option(help="System: neural (default when a model is available), codebook, imaging, unextended, or oracle and true-band (evaluation only: need --reference).")] = None,
+    method: Annotated[Optional[Method], typer.Option(help="System (default: neural when a model is available); oracle and true-band are for evaluation only and need --reference.")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder made by 'nenv train' (default: $NENV_MODEL, else the shipped model).")] = None,
-    excitation: Annotated[str, typer.Option(help="Excitation extension for source-filter systems: rectify, fold or modulate.")] = "rectify",
+    excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
     reference: Annotated[Optional[Path], typer.Option(help="Wideband original, for --method oracle or true-band only (one file).")] = None,
     figure: Annotated[Optional[Path], typer.Option(help="Also write a spectrogram figure (.png, .svg, .pdf): input vs output (one file).")] = None,
     resample: Annotated[bool, typer.Option("--resample", help="Accept input at another rate (4-192 kHz) and resample it to 8 kHz.")] = False,
@@ -74,12 +71,12 @@ def extend(
     record: Annotated[Optional[Path], typer.Option(help="Append the guard's record (rejected hops, summary) to this JSON Lines file (neural only).")] = None,
     group: Annotated[Optional[str], typer.Option(help="Speaker group or codec label stored with the record.")] = None,
     jobs: Annotated[int, typer.Option(min=0, help="Folders and lists: files extended in parallel (0 = one per core).")] = 0,
-    overwrite: Annotated[bool, typer.Option("--overwrite", help="Folders and lists: redo outputs that already exist (default: skip them).")] = False,
-    format: Annotated[str, typer.Option("--format", help="Folders and lists: output format, wav or flac.")] = "wav",
+    overwrite: Annotated[bool, typer.Option("--overwrite", help="Extend again into outputs that already exist (default: skip them, for one file as for folders).")] = False,
+    format: Annotated[AudioFormat, typer.Option("--format", help="Folders and lists: output format.")] = "wav",
     scheduler: Annotated[Optional[str], typer.Option(help="Folders and lists: run on this dask.distributed scheduler (e.g. tcp://10.0.0.5:8786) instead of local processes.")] = None,
 ) -> None:
     """Extend 8 kHz telephone speech to 16 kHz wideband speech: one file, or whole folders in parallel."""
-    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
+    _kernels_ready()
     from nenv.serve import batch, streamfile
 
     opts = streamfile.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, resample=resample, channel=channel, mix=mix, group=group)
@@ -88,20 +85,24 @@ def extend(
             raise InputError("--reference and --figure work on one input file at a time")
         _extend_many(inputs, output, opts, jobs=jobs, overwrite=overwrite, suffix="." + format.lower(), scheduler=scheduler, record=record)
     else:
-        _extend_one(inputs[0], output, opts, reference=reference, figure=figure, record=record)
+        _extend_one(inputs[0], output, opts, reference=reference, figure=figure, record=record, overwrite=overwrite)
 
 
 RATE_MIN_S = 30.0  # seconds: a batch shorter than this reports no hourly rates (extrapolated, they mislead)
 FIGURE_MAX_S = 600.0  # a spectrogram of more than 10 minutes is unreadable (and costly)
 
 
-def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, record=None) -> None:
+def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, record=None, overwrite: bool = False) -> None:
     from nenv.media import audio
     from nenv.serve import streamfile
     from nenv.report.figures import FIGURE_SUFFIXES, spectrogram_grid
     from nenv.media.files import check_distinct, check_output
 
     check_output(dst, suffixes=streamfile.OUTPUT_SUFFIXES)
+    check_distinct(dst, what="the output", others={"the input": src, "the reference": reference})
+    if dst.exists() and not overwrite:  # the batch rule, for one file too: finished outputs are kept
+        _say(f"skipped: '{dst}' exists (pass --overwrite to extend it again)")
+        return
     if figure is not None:
         check_output(figure, suffixes=FIGURE_SUFFIXES)
         check_distinct(figure, what="the figure", others={"the input": src, "the reference": reference, "the output": dst, "the record": record})
@@ -114,7 +115,7 @@ def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, reco
         _say(f"appended the guard record to {record}")
     _say(f"wrote {dst} (16 kHz, {res.seconds:.2f} s, method={opts.method}, {res.seconds / max(res.wall_s, 1e-9):.0f}x real time)")
     if res.limited:
-        _say(f"nenv: warning: {res.limited} sample(s) of the output (telephone band plus added band) exceeded -0.1 dBFS and were limited: lower the input level; if the input peaks well below full scale, the added band caused it (try --method unextended, or another model)")
+        _say(f"nenv: warning: {count(res.limited, 'sample')} of the output (telephone band plus added band) exceeded -0.1 dBFS and were limited: lower the input level; if the input peaks well below full scale, the added band caused it (try --method unextended, or another model)")
     if res.hops:
         from nenv.chain.guard import summary_line
 
@@ -142,7 +143,7 @@ def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: b
     output_folder(out, what="the output folder")
     n_cpu = os.cpu_count() or 1
     where = f"scheduler {scheduler}" if scheduler else f"{min(jobs or n_cpu, len(work))} process(es)"
-    _say(f"extending {len(work)} file(s) into {out} on {where}")
+    _say(f"extending {count(len(work), 'file')} into {out} on {where}")
     finished: list = []
     t0 = time.perf_counter()
     with _progress() as bar:
@@ -160,7 +161,7 @@ def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: b
             # say what is finished (those outputs are whole and stay); rerun the command to go on
             partial = batch.Summary(finished, time.perf_counter() - t0)
             write_text(out / batch.REPORT_NAME, partial.to_csv())
-            _say(f"nenv: stopped after {partial.count('done')} file(s) done and {partial.count('skipped')} skipped of {len(work)}; "
+            _say(f"nenv: stopped after {count(partial.count('done'), 'file')} done and {partial.count('skipped')} skipped of {len(work)}; "
                  f"rerun the same command to finish (finished outputs are skipped); see {out / batch.REPORT_NAME}")
             raise
     write_text(out / batch.REPORT_NAME, summ.to_csv())
@@ -180,24 +181,21 @@ def _extend_many(inputs: list[Path], out: Path, opts, *, jobs: int, overwrite: b
 def evaluate(
     references: Annotated[list[Path], typer.Argument(help="Wideband reference recordings (16 kHz or more).")],
     out: Annotated[Path, typer.Option(help="Folder for table.csv, table.md and spectrograms.png (created if missing).")],
-    law: Annotated[list[str], typer.Option(help="Channel G.711 law; repeat to compare several (none, mulaw, alaw).")] = ["none"],
-    method: Annotated[list[str], typer.Option(help="Systems to compare; repeat. Default: every available system.")] = [],
-    excitation: Annotated[str, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
+    law: Annotated[list[LawChoice], typer.Option(help="Channel G.711 law; repeat to compare several.")] = [LawChoice.none],
+    method: Annotated[list[MethodChoice], typer.Option(help="Systems to compare; repeat. Default: every available system.")] = [],
+    excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
     model: Annotated[Optional[Path], typer.Option(help="Model folder for the neural and codebook systems (default: the shipped model, if any).")] = None,
 ) -> None:
     """Score every system against wideband references passed through the telephone channel."""
-    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
+    _kernels_ready()
     from nenv.report import evaluate as ev
     from nenv.report.figures import spectrogram_grid
     from nenv.media.files import output_folder, write_text
-    from nenv.dsp.g711 import LAWS
 
-    for lw in law:
-        if lw not in LAWS:
-            raise InputError(f"--law {lw} is not known: choose from {', '.join(LAWS)}")
     output_folder(out, create=False)
+    law = [lw.value for lw in law]
     if method:
-        systems = tuple(method)
+        systems = tuple(m.value for m in method)
     elif model is not None or _default_method(None) == "neural":
         systems = ev.ALL_SYSTEMS
     else:
@@ -226,13 +224,13 @@ def demo(
     out: Annotated[Path, typer.Option(help="Folder for the demo output (created if missing).")] = Path("nenv-demo"),
 ) -> None:
     """Extend the bundled demo call (an invented order confirmation) and draw input vs output."""
-    kernels.warm(notice=kernels.stderr_notice)  # compile or load before the first hop
+    _kernels_ready()
     from nenv.serve import streamfile
     from nenv.media.files import output_folder
 
     output_folder(out)
     with resources.as_file(resources.files("nenv") / "data" / "demo" / DEMO_CLIP) as clip:
-        _say(f"demo input: {clip} (8 kHz, G.711 mu-law telephone speech; invented scenario)")
+        _say(f"demo input: {clip} (8 kHz telephone speech coded with G.711 mu-law, stored decoded as 16-bit linear PCM; an invented scenario)")
         _extend_one(clip, out / "order_confirmation_16k.wav", streamfile.Options(method=_default_method(None)), figure=out / "order_confirmation.png")
     _say("listen at a moderate level: the added high band is estimated, not recorded")
 
@@ -279,5 +277,5 @@ def audit(
         write_text(check_output(manifest, suffixes=(".csv",)), au.manifest(rec, top=top))
         _say(f"wrote {manifest} (train with: nenv train --set manifest={manifest} ...; it needs wideband audio at those paths)")
     if rec.skipped_lines:
-        _say(f"nenv: note: skipped {rec.skipped_lines} incomplete or unreadable line(s)")
+        _say(f"nenv: note: skipped {count(rec.skipped_lines, 'incomplete or unreadable line')}")
     _say(f"wrote {out / 'audit.html'}, {out / 'by_source.csv'}, {out / 'by_group.csv'}")

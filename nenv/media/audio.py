@@ -17,6 +17,7 @@ from typing import Callable, Iterator
 
 import numpy as np
 
+from nenv.words import count
 from nenv.errors import InputError
 from nenv.media.files import atomic_output, check_output
 from nenv.settings import FULL_SCALE
@@ -103,7 +104,7 @@ class Reader:
                 self._pick = None
             elif channel is not None:
                 if not 0 <= channel < n_ch:
-                    raise InputError(f"channel={channel} does not exist: '{p}' has {n_ch} channel(s), numbered from 0")
+                    raise InputError(f"channel={channel} does not exist: '{p}' has {count(n_ch, 'channel')}, numbered from 0")
                 self._pick = channel
             elif n_ch > 1:
                 raise InputError(f"'{p}' has {n_ch} channels: choose one with --channel N (0..{n_ch - 1}) or average them with --mix")
@@ -130,7 +131,7 @@ class Reader:
             finite = np.isfinite(y)
             if not np.all(finite):
                 at = (self.frames_read + int(np.argmin(finite))) / self.sr
-                raise InputError(f"'{self.path}': sample(s) are NaN or infinite (first at {at:.3f} s)")
+                raise InputError(f"'{self.path}': some samples are NaN or infinite (the first at {at:.3f} s)")
             self.frames_read += y.size
             yield np.ascontiguousarray(y)
 
@@ -185,7 +186,7 @@ def validate(y: np.ndarray, *, sr: int, name: str = "signal") -> None:
         raise InputError(f"{name}: holds no samples")
     if not np.all(np.isfinite(y)):
         bad = int(np.count_nonzero(~np.isfinite(y)))
-        raise InputError(f"{name}: {bad} sample(s) are NaN or infinite")
+        raise InputError(f"{name}: {count(bad, 'sample')} {'is' if bad == 1 else 'are'} NaN or infinite")
     if not SUPPORTED_SR[0] <= sr <= SUPPORTED_SR[1]:
         raise InputError(f"{name}: sr={sr} Hz is outside the supported range {SUPPORTED_SR[0]}..{SUPPORTED_SR[1]} Hz")
 

@@ -22,6 +22,13 @@ from nenv.report.records import Records
 
 CHECKS = list(CHECK_NAMES.values())
 VALUE_OF = {"unstable": "max_k", "level": "level_db", "mismatch": "mismatch_db", "novel": "novelty"}
+# what each value is, in words, for figure titles and axes
+VALUE_WORDS = {
+    "max_k": ("largest |reflection coefficient|", "stable below the red line"),
+    "level_db": ("predicted high-band level [dB re narrowband]", "the training range between the red lines"),
+    "mismatch_db": ("telephone-band mismatch [dB RMS]", "accepted below the red line"),
+    "novelty": ("distance to the nearest codebook cell", "accepted below the red line"),
+}
 
 
 @dataclass
@@ -193,8 +200,10 @@ def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> di
             ax.axvline(lim["mismatch_max_db"], color="tab:red")
         elif check == "novel" and lim:
             ax.axvline(lim["novelty_max"], color="tab:red")
-        ax.set_title(f"{key} of rejected hops", fontsize=9)
-        ax.set_xlabel("red: threshold", fontsize=8)
+        words, rule = VALUE_WORDS[key]
+        ax.set_title(f"rejected hops: {words}", fontsize=8)
+        ax.set_xlabel(f"red: the guard's threshold ({rule})", fontsize=7)
+        ax.set_ylabel("hops", fontsize=8)
     out["values"] = _png(fig)
     # the worst sources whose output file is at hand: spectrogram with the rejected hops marked
     outputs = {x["source"]: x.get("output") for x in rec.summaries if x.get("output")}

@@ -69,6 +69,8 @@ def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: s
             s, col_s = specs[c][r]
             image = ax.imshow(s, origin="lower", aspect="auto", extent=(0, s.shape[1] * col_s, 0, WB_SR / 2000), vmin=top - DYNAMIC_RANGE_DB, vmax=top, cmap="magma", interpolation="nearest")
             ax.axhline(BAND_EDGE_HZ / 1000, color="white", lw=0.6, ls="--", alpha=0.7)
+            if r == 0 and c == 0:  # say once what the dashed line is
+                ax.text(0.995, BAND_EDGE_HZ / 1000 + 0.12, f"{BAND_EDGE_HZ / 1000:g} kHz: telephone band below, added band above", color="white", fontsize=6, ha="right", va="bottom", transform=ax.get_yaxis_transform())
             ax.set_title(label, fontsize=9, loc="left")
             if c == 0:
                 ax.set_ylabel("kHz")

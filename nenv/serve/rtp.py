@@ -37,7 +37,6 @@ from __future__ import annotations
 import os
 import select
 import socket
-import struct
 import threading
 import time
 from dataclasses import dataclass, field
@@ -48,6 +47,7 @@ import numpy as np
 from nenv.dsp import g711
 from nenv.media.audio import to_int16
 from nenv.errors import InputError
+from nenv.serve.rtp_packet import RtpPacket, build, parse
 from nenv.serve.runtime import CallEngine
 
 PT_PCMU = 0
@@ -55,51 +55,12 @@ PT_PCMA = 8
 LAW_OF_PT = {PT_PCMU: "mulaw", PT_PCMA: "alaw"}
 OUT_SAMPLES = 320  # per outgoing packet: 20 ms at 16 kHz
 MAX_FILL = 8000  # samples: longest gap filled with silence (1 s); longer gaps restart the timing
-HEADER = struct.Struct("!BBHII")
 MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
 RESYNC_AFTER = 16  # consecutive late-looking packets after which a stream follows the new numbering
 REBIND_AFTER_S = 0.5  # quiet time of a stream's sender after which its SSRC may come from a new address
 MAX_CLOSED = 1024  # closed streams whose counters are kept
 RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
 EXPIRY_CHECK_S = 0.1  # how often idle streams are looked for
-
-
-@dataclass(frozen=True)
-class RtpPacket:
-    payload_type: int
-    marker: bool
-    seq: int
-    timestamp: int
-    ssrc: int
-    payload: bytes
-
-
-def parse(data: bytes) -> RtpPacket | None:
-    """Parse one RTP packet (RFC 3550 section 5.1); None if it is not a valid RTP version 2 packet."""
-    if len(data) < HEADER.size:
-        return None
-    b0, b1, seq, ts, ssrc = HEADER.unpack_from(data)
-    if b0 >> 6 != 2:
-        return None
-    pos = HEADER.size + 4 * (b0 & 0x0F)  # CSRC list
-    if b0 & 0x10:  # header extension: 16-bit profile, 16-bit length in 32-bit words
-        if len(data) < pos + 4:
-            return None
-        (ext_words,) = struct.unpack_from("!H", data, pos + 2)
-        pos += 4 + 4 * ext_words
-    end = len(data)
-    if b0 & 0x20:  # padding: the last octet counts the padding octets
-        if end == 0 or data[-1] == 0 or data[-1] > end - pos:
-            return None
-        end -= data[-1]
-    if pos > end:
-        return None
-    return RtpPacket(b1 & 0x7F, bool(b1 & 0x80), seq, ts, ssrc, bytes(data[pos:end]))
-
-
-def build(*, payload_type: int, seq: int, timestamp: int, ssrc: int, payload: bytes, marker: bool = False) -> bytes:
-    """An RTP version 2 packet with no CSRC, extension or padding."""
-    return HEADER.pack(0x80, (0x80 if marker else 0) | (payload_type & 0x7F), seq & 0xFFFF, timestamp & 0xFFFFFFFF, ssrc & 0xFFFFFFFF) + payload
 
 
 @dataclass

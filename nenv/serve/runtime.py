@@ -1,4 +1,4 @@
-"""The streaming engine a gateway embeds: torch-free (numpy, scipy, onnxruntime).
+"""The streaming engine a gateway embeds: torch-free (numpy, scipy, numba kernels, onnxruntime).
 
 One :class:`CallEngine` per call. Feed it 8 kHz samples in chunks of any size
 (one sample to minutes); it returns 16 kHz samples as soon as whole 10 ms hops

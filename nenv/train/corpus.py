@@ -267,9 +267,10 @@ def survey_figure(reports: Sequence[FileReport], path: str | os.PathLike) -> Non
     kept = [r for r in reports if not r.excluded and np.isfinite(r.snr_db)]
     excl = [r for r in reports if r.excluded and np.isfinite(r.snr_db)]
     fig, ax = plt.subplots(1, 3, figsize=(12, 3.6), layout="constrained")
-    for group, colour, label in ((kept, "tab:blue", "kept"), (excl, "tab:red", "excluded")):
-        ax[0].scatter([r.snr_db for r in group], [r.hb_ratio_db for r in group], s=8, c=colour, label=f"{label} ({len(group)})", alpha=0.6)
-        ax[1].scatter([r.cutoff_hz / 1000 for r in group], [r.clipped_fraction * 100 for r in group], s=8, c=colour, alpha=0.6)
+    # excluded files first, kept ones drawn over them (smaller, opaque): no kept file hides under a red one
+    for group, colour, label, size, z in ((excl, "tab:red", "excluded", 10, 1), (kept, "tab:blue", "kept", 6, 2)):
+        ax[0].scatter([r.snr_db for r in group], [r.hb_ratio_db for r in group], s=size, c=colour, label=f"{label} ({len(group)})", alpha=0.8, zorder=z, linewidths=0)
+        ax[1].scatter([r.cutoff_hz / 1000 for r in group], [r.clipped_fraction * 100 for r in group], s=size, c=colour, alpha=0.8, zorder=z, linewidths=0)
     ax[0].set_xlabel("estimated SNR [dB]")
     ax[0].set_ylabel("3.4-8 kHz re 0.3-3.4 kHz [dB]")
     ax[0].legend(fontsize=8)

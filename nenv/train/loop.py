@@ -36,7 +36,8 @@ from nenv.chain.features import FeatureSettings, envelope_from_prediction
 from nenv.media.files import is_within, write_text
 from nenv.chain.guard import GuardLimits, telephone_band_mismatch
 from nenv.settings import BAND_EDGE_HZ, WB_SR
-from nenv.train import corpus, dataset
+from nenv.train import corpus, dataset, workdir
+from nenv.train.workdir import RECIPE_FILE, RESUME_FILE, partial_folder
 from nenv.train.recipe import Recipe
 
 CALIBRATION_HOPS = 50000  # training hops used to calibrate the mismatch threshold
@@ -127,7 +128,7 @@ def train(
         raise ConfigError(f"cannot create '{out.parent}': {e.strerror}") from e
     settings = FeatureSettings(context=recipe.context)
     work = partial_folder(out)
-    state = _open_work(work, recipe, resume=resume, force=force)
+    state = workdir.open_work(work, recipe, resume=resume, force=force)
     record_id = state["record_id"] if state else time.strftime("%Y%m%dT%H%M%S") + "-" + uuid.uuid4().hex[:6]
     if not state:
         write_text(work / RECIPE_FILE, json.dumps({"record_id": record_id, "recipe": recipe.to_dict()}, indent=1))
@@ -201,7 +202,7 @@ def train(
         history = []
         best = (float("inf"), None, -1)
         first, finished = 0, False
-        state = _load_state(work) if state else None
+        state = workdir.load_state(work) if state else None
         if state:
             rep.log(f"resuming run {record_id} after epoch {state['epoch']}")
             model.load_state_dict(state["model"])
@@ -239,7 +240,7 @@ def train(
             elif epoch + 1 - best[2] >= recipe.patience and epoch + 1 < recipe.epochs:
                 rep.log(f"early stop after epoch {epoch + 1}: no validation gain since epoch {best[2]}")
                 finished = True
-            _save_state(work, record_id=record_id, epoch=epoch + 1, finished=finished or epoch + 1 == recipe.epochs, model=model, opt=opt, sched=sched, gen=gen, history=history, best=best, wall_s=time.perf_counter() - t_start)
+            workdir.save_state(work, record_id=record_id, epoch=epoch + 1, finished=finished or epoch + 1 == recipe.epochs, model=model, opt=opt, sched=sched, gen=gen, history=history, best=best, wall_s=time.perf_counter() - t_start)
             if finished:
                 break
         model.load_state_dict(best[1])
@@ -312,7 +313,7 @@ def train(
         for leftover in (work / RESUME_FILE, work / RECIPE_FILE):
             leftover.unlink(missing_ok=True)
         shutil.rmtree(work / "features", ignore_errors=True)
-        _install(work, out)
+        workdir.install(work, out)
     except NenvError:
         keep_work = False
         raise
@@ -340,83 +341,6 @@ def quality_warnings(metrics: dict, corpus_summary: dict) -> list[str]:
     if minutes < MIN_ACTIVE_MINUTES:
         out.append(f"only {minutes:.1f} minutes of active speech were kept for training (a rule of thumb asks for {MIN_ACTIVE_MINUTES:g} or more): expect errors on new speakers")
     return out
-
-
-RESUME_FILE = "resume.pt"  # training state after the last finished epoch
-RECIPE_FILE = "run.json"  # the recipe and record id of the run a partial folder belongs to
-
-
-def partial_folder(out: str | os.PathLike) -> Path:
-    """Where a run for ``out`` works until it is finished (kept after a kill, for --resume)."""
-    out = Path(out)
-    return out.parent / f".{out.name}.partial"
-
-
-def _open_work(work: Path, recipe: Recipe, *, resume: bool, force: bool) -> dict | None:
-    """Prepare the partial folder; return the saved training state when resuming (None: start fresh)."""
-    if work.exists() and not resume:
-        if not force:
-            raise ConfigError(f"an interrupted run left '{work}': pass --resume to continue it, or --force to start over")
-        shutil.rmtree(work)
-    if not resume:
-        work.mkdir()
-        return None
-    if not (work / RECIPE_FILE).is_file():
-        raise ConfigError(f"nothing to resume: '{work}' does not hold an interrupted run")
-    saved = json.loads((work / RECIPE_FILE).read_text(encoding="utf-8"))
-    diff = sorted(k for k, v in recipe.to_dict().items() if saved["recipe"].get(k) != v)
-    if diff:
-        raise ConfigError(f"the interrupted run in '{work}' used another recipe (differs in: {', '.join(diff)}); resume it with the same recipe, or pass --force to start over")
-    # the saved training state itself is read later, once the feature workers are done (no fork after torch)
-    return {"record_id": saved["record_id"]}
-
-
-def _load_state(work: Path) -> dict | None:
-    """The training state saved after the last finished epoch (None if killed before the first ended)."""
-    if not (work / RESUME_FILE).is_file():
-        return None
-    import torch
-
-    try:
-        return torch.load(work / RESUME_FILE, weights_only=True)
-    except Exception as e:
-        raise ConfigError(f"cannot read the saved training state '{work / RESUME_FILE}': {str(e).splitlines()[0]}") from e
-
-
-def _save_state(work: Path, *, record_id, epoch, finished, model, opt, sched, gen, history, best, wall_s) -> None:
-    import torch
-
-    from nenv.media.files import atomic_output
-
-    state = {
-        "record_id": record_id,
-        "epoch": epoch,
-        "finished": finished,
-        "model": model.state_dict(),
-        "optimizer": opt.state_dict(),
-        "scheduler": sched.state_dict(),
-        "generator": gen.get_state(),
-        "torch_rng": torch.get_rng_state(),
-        "history": history,
-        "best": list(best),
-        "wall_s": wall_s,
-    }
-    with atomic_output(work / RESUME_FILE) as tmp:
-        with open(tmp, "wb") as fh:
-            torch.save(state, fh)
-            fh.flush()
-            os.fsync(fh.fileno())
-
-
-def _install(work: Path, out: Path) -> None:
-    """Move the finished folder into place; an old folder is replaced only once the new one is whole."""
-    if out.exists():
-        old = out.parent / f".{out.name}.old-{uuid.uuid4().hex[:6]}"
-        os.replace(out, old)
-        os.replace(work, out)
-        shutil.rmtree(old, ignore_errors=True)
-    else:
-        os.replace(work, out)
 
 
 def _curves(history: list[dict], path: Path) -> None:

@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
+from nenv.words import count
 from nenv.chain import checkpoint
 from nenv.report import evaluate
 from nenv.report.figures import spectrogram_grid
@@ -99,7 +100,7 @@ def goals(table: list[dict], guard_rejection_rate: float) -> list[tuple[str, str
     gap = _mean(table, "codebook", "lsd_high") - _mean(table, "neural", "lsd_high")
     lsd_nn, lsd_cb = _per_clip(table, "neural", "lsd_high"), _per_clip(table, "codebook", "lsd_high")
     worse = [c for c in lsd_nn if lsd_nn[c] >= lsd_cb[c]]
-    out.append(("high-band LSD at least 1.5 dB below the codebook's, and below it on every clip", f"{gap:.2f} dB below; not below on {len(worse)} clip(s){': ' + ', '.join(worse) if worse else ''}", gap >= 1.5 and not worse))
+    out.append(("high-band LSD at least 1.5 dB below the codebook's, and below it on every clip", f"{gap:.2f} dB below; not below on {count(len(worse), 'clip')}{': ' + ', '.join(worse) if worse else ''}", gap >= 1.5 and not worse))
     for g in GROUPS:
         lev = float(np.median([r["level_error_high"] for r in table if not r["clip"].startswith("mean") and r["system"] == "neural" and r["group"] == g]))
         out.append((f"median high-band level error within +-3 dB, never a systematic over-estimate ({g})", f"{lev:+.2f} dB", -3.0 <= lev <= 0.5))

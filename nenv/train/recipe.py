@@ -135,7 +135,7 @@ def load(path: str | os.PathLike | None, *, overrides: typing.Sequence[str] = ()
     known = {f.name for f in fields(Recipe)}
     unknown = sorted(set(data) - known)
     if unknown:
-        raise ConfigError(f"unknown recipe key(s) {unknown}; known keys: {', '.join(sorted(known))}")
+        raise ConfigError(f"unknown recipe {'key' if len(unknown) == 1 else 'keys'} {unknown}; known keys: {', '.join(sorted(known))}")
     recipe = Recipe(**{k: _check_type(k, v, types[k]) for k, v in data.items()})
     _validate(recipe)
     return recipe

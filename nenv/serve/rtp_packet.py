@@ -1,0 +1,46 @@
+"""RTP packets (RFC 3550 section 5.1): parsing what arrives, building what is sent."""
+
+from __future__ import annotations
+
+import struct
+from dataclasses import dataclass
+
+HEADER = struct.Struct("!BBHII")  # V/P/X/CC, M/PT, sequence number, timestamp, SSRC
+
+
+@dataclass(frozen=True)
+class RtpPacket:
+    payload_type: int
+    marker: bool
+    seq: int
+    timestamp: int
+    ssrc: int
+    payload: bytes
+
+
+def parse(data: bytes) -> RtpPacket | None:
+    """Parse one RTP packet (RFC 3550 section 5.1); None if it is not a valid RTP version 2 packet."""
+    if len(data) < HEADER.size:
+        return None
+    b0, b1, seq, ts, ssrc = HEADER.unpack_from(data)
+    if b0 >> 6 != 2:
+        return None
+    pos = HEADER.size + 4 * (b0 & 0x0F)  # CSRC list
+    if b0 & 0x10:  # header extension: 16-bit profile, 16-bit length in 32-bit words
+        if len(data) < pos + 4:
+            return None
+        (ext_words,) = struct.unpack_from("!H", data, pos + 2)
+        pos += 4 + 4 * ext_words
+    end = len(data)
+    if b0 & 0x20:  # padding: the last octet counts the padding octets
+        if end == 0 or data[-1] == 0 or data[-1] > end - pos:
+            return None
+        end -= data[-1]
+    if pos > end:
+        return None
+    return RtpPacket(b1 & 0x7F, bool(b1 & 0x80), seq, ts, ssrc, bytes(data[pos:end]))
+
+
+def build(*, payload_type: int, seq: int, timestamp: int, ssrc: int, payload: bytes, marker: bool = False) -> bytes:
+    """An RTP version 2 packet with no CSRC, extension or padding."""
+    return HEADER.pack(0x80, (0x80 if marker else 0) | (payload_type & 0x7F), seq & 0xFFFF, timestamp & 0xFFFFFFFF, ssrc & 0xFFFFFFFF) + payload
