@@ -86,6 +86,8 @@ def run(n: int, seconds: float, payload: list[bytes], model: str | None) -> str:
     proc = subprocess.Popen(cmd, stderr=subprocess.PIPE, text=True, env=env)
     try:
         proc.stderr.readline()  # "relaying RTP from ...": the socket is bound
+        # keep reading: the per-stream report at the end outgrows a pipe's buffer with a few hundred streams
+        threading.Thread(target=proc.stderr.read, daemon=True).start()
         tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
         tx.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, 8 * 2**20)
         n_packets = int(seconds * 50)
