@@ -18,7 +18,7 @@ import numpy as np
 
 from nenv.dsp import lpc
 from nenv.errors import InputError
-from nenv.chain.estimators.base import EnvelopeEstimator, NarrowbandAnalysis
+from nenv.chain.estimators.base import EnvelopeEstimator, NarrowbandAnalysis, ReferenceReader
 from nenv.chain.estimators.imaging import ImagingSystem
 from nenv.chain.estimators.oracle import OracleEstimator
 from nenv.dsp.excitation import ExcitationExtender, Method, residual
@@ -67,25 +67,7 @@ class Unextended:
         return np.zeros((x.shape[0], 2 * x.shape[1]))
 
 
-class SingleRow:
-    """For systems that read one reference recording: one call only."""
-
-    _rows = 0
-
-    def add_rows(self, n: int) -> None:
-        if self._rows + n > 1:
-            raise InputError(f"the {self.name} system reads one reference recording: it serves one call, not several")
-        self._rows += n
-
-    def keep_rows(self, mask: np.ndarray) -> None:
-        self._rows = int(np.count_nonzero(mask))
-
-    def reset(self) -> None:
-        self._rows = 0
-        self._pos = 0
-
-
-class TrueBand(SingleRow):
+class TrueBand(ReferenceReader):
     """The reference's own band above 3.4 kHz added to the unextended signal: the ceiling of any extension.
 
     Evaluation only (it needs the time-aligned 16 kHz original). The candidate is the reference
@@ -97,17 +79,11 @@ class TrueBand(SingleRow):
     needs_analysis = False
 
     def __init__(self, reference: np.ndarray):
-        reference = np.asarray(reference, dtype=np.float64)
-        if reference.ndim != 1 or reference.size == 0:
-            raise InputError("the true-band system needs a non-empty mono 16 kHz reference signal")
-        self.reference = np.concatenate([np.zeros(UPSAMPLER_DELAY), reference])
-        self._pos = 0
+        super().__init__(reference)
+        self.reference = np.concatenate([np.zeros(UPSAMPLER_DELAY), self.reference])
 
     def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis, sel=ALL) -> np.ndarray:
-        n = 2 * x.shape[1]
-        seg = self.reference[self._pos : self._pos + n]
-        self._pos += n
-        return np.pad(seg, (0, n - seg.size))[None, :]
+        return self.take(2 * x.shape[1])[None, :]
 
 
 class SourceFilterSystem:

@@ -6,6 +6,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from nenv.errors import InputError
+
 
 @dataclass(frozen=True)
 class NarrowbandAnalysis:
@@ -63,3 +65,36 @@ class EnvelopeEstimator:
 
     def reset(self) -> None:
         """Forget every call (rows and anything recorded about them)."""
+
+
+class ReferenceReader:
+    """What reads one time-aligned 16 kHz reference recording (oracle, true band): one call only,
+    and a position in the reference that starts again at :meth:`reset`."""
+
+    name = "reference"
+
+    def __init__(self, reference: np.ndarray):
+        reference = np.asarray(reference, dtype=np.float64)
+        if reference.ndim != 1 or reference.size == 0:
+            raise InputError(f"the {self.name} system needs a non-empty mono 16 kHz reference signal")
+        self.reference = reference
+        self._rows = 0
+        self._pos = 0
+
+    def take(self, n: int) -> np.ndarray:
+        """The next ``n`` reference samples (zeros past its end)."""
+        seg = self.reference[self._pos : self._pos + n]
+        self._pos += n
+        return np.pad(seg, (0, n - seg.size))
+
+    def add_rows(self, n: int) -> None:
+        if self._rows + n > 1:
+            raise InputError(f"the {self.name} system reads one reference recording: it serves one call, not several")
+        self._rows += n
+
+    def keep_rows(self, mask) -> None:
+        self._rows = int(np.count_nonzero(mask))
+
+    def reset(self) -> None:
+        self._rows = 0
+        self._pos = 0
