@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import select
 import sys
 from pathlib import Path
 from typing import Annotated, Optional
@@ -13,10 +14,6 @@ from nenv.words import count
 from nenv.serve.streamfile import watch
 from nenv.cli.app import Excitation, InputFormat, LiveMethod, _default_method, _guarded, _kernels_ready, _say, app
 from nenv.errors import InputError, OutputError
-
-class _Terminate(Exception):
-    pass
-
 
 @app.command()
 @_guarded
@@ -55,59 +52,69 @@ def stream(
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()
 
-    def stop(signum, frame):
-        raise _Terminate()
-
-    old = {s: sig.signal(s, stop) for s in (sig.SIGTERM, sig.SIGINT)}
-    leftover = b""
-    reader_gone = False  # stdout's reader closed the pipe: nothing more can be delivered
+    # SIGTERM/SIGINT set a flag that the loop checks between blocks: a stop never cuts a block in
+    # half, and further signals while the tail is flushed are absorbed. The signal also wakes the
+    # wait for input (a byte on a wake-up pipe), so a quiet input does not delay the stop.
+    stopping: list[int] = []
+    wake_r, wake_w = os.pipe()
+    os.set_blocking(wake_w, False)
+    old = {s: sig.signal(s, lambda signum, frame: stopping.append(signum)) for s in (sig.SIGTERM, sig.SIGINT)}
+    old_wake = sig.set_wakeup_fd(wake_w)
     try:
-        while True:
-            try:
-                data = os.read(fd, 4096)
-            except _Terminate:
-                break
-            if not data:
-                break
-            if engine.samples_in == 0 and not leftover and data[:4] == b"RIFF" and data[8:12] == b"WAVE":
-                raise InputError("standard input is a WAV file, header and all: extend a file with 'nenv extend CALL.wav CALL-WB.wav', or stream its raw samples (for example: sox CALL.wav -t raw - | nenv stream)")
-            if input_format == "s16le":
-                data = leftover + data
-                n = len(data) // 2 * 2
-                leftover = data[n:]
-                x = np.frombuffer(data[:n], dtype="<i2").astype(np.float64) / 32768.0
-            else:
-                x = g711.decode(np.frombuffer(data, dtype=np.uint8), law=input_format)
-            y = engine.feed(x)
-            if y.size:
-                out.write(to_int16(y).astype("<i2").tobytes())
-                out.flush()
-    except _Terminate:
-        pass
-    except BrokenPipeError:
-        reader_gone = True
-        os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())  # so that exiting does not fail on the dead pipe again
-    finally:
-        for s, h in old.items():
-            sig.signal(s, h)
-    if leftover:  # s16le input that ended inside a sample: say so rather than drop it silently
-        _say("note: the input ended with half a 16-bit sample (one odd byte); it was ignored")
-    if tally is not None:
-        tally.limit = -(-engine.samples_in // 80)  # the tail padding is not part of the call
-    y = engine.flush()
-    if y.size and not reader_gone:
+        leftover = b""
+        reader_gone = False  # stdout's reader closed the pipe: nothing more can be delivered
         try:
-            out.write(to_int16(y).astype("<i2").tobytes())
-            out.flush()
+            while not stopping:
+                ready, _, _ = select.select([fd, wake_r], [], [])
+                if stopping or fd not in ready:
+                    continue
+                data = os.read(fd, 4096)
+                if not data:
+                    break
+                if engine.samples_in == 0 and not leftover and data[:4] == b"RIFF" and data[8:12] == b"WAVE":
+                    raise InputError("standard input is a WAV file, header and all: extend a file with 'nenv extend CALL.wav CALL-WB.wav', or stream its raw samples (for example: sox CALL.wav -t raw - | nenv stream)")
+                if input_format == "s16le":
+                    data = leftover + data
+                    n = len(data) // 2 * 2
+                    leftover = data[n:]
+                    x = np.frombuffer(data[:n], dtype="<i2").astype(np.float64) / 32768.0
+                else:
+                    x = g711.decode(np.frombuffer(data, dtype=np.uint8), law=input_format)
+                y = engine.feed(x)
+                if y.size:
+                    out.write(to_int16(y).astype("<i2").tobytes())
+                    out.flush()
         except BrokenPipeError:
             reader_gone = True
-            os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())
-    if writer is not None:  # the guard's record of the call is completed even when its output was cut short
-        writer.summary(source=call_id, group=group, tally=tally, seconds=engine.samples_in / 8000)
-        writer.close()
-    _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {count(engine.limited, 'sample')} limited, {count(engine.bad_samples, 'bad sample')}")
-    if tally is not None and tally.hops:
-        _say(tally.line())
+            os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())  # so that exiting does not fail on the dead pipe again
+        # the handlers stay until the tail is out: a second signal during the flush is absorbed
+        if leftover:  # s16le input that ended inside a sample: say so rather than drop it silently
+            _say("note: the input ended with half a 16-bit sample (one odd byte); it was ignored")
+        if tally is not None:
+            tally.limit = -(-engine.samples_in // 80)  # the tail padding is not part of the call
+        y = engine.flush()
+        if y.size and not reader_gone:
+            try:
+                out.write(to_int16(y).astype("<i2").tobytes())
+                out.flush()
+            except BrokenPipeError:
+                reader_gone = True
+                os.dup2(os.open(os.devnull, os.O_WRONLY), out.fileno())
+        if writer is not None:  # the guard's record of the call is completed even when its output was cut short
+            writer.summary(source=call_id, group=group, tally=tally, seconds=engine.samples_in / 8000)
+            writer.close()
+        _say(f"stream ended: {engine.samples_in / 8000:.2f} s in, {engine.samples_out / 16000:.2f} s out, {count(engine.limited, 'sample')} limited, {count(engine.bad_samples, 'bad sample')}")
+        if tally is not None and tally.hops:
+            _say(tally.line())
+    finally:
+        sig.set_wakeup_fd(old_wake)
+        os.close(wake_r)
+        os.close(wake_w)
+        # after a stop the process is on its way out: further signals are ignored to the end (a
+        # supervisor's second SIGTERM must not turn a clean stop into status 143; the interpreter
+        # resets Python-level handlers while it shuts down, an ignored signal stays ignored)
+        for s, h in old.items():
+            sig.signal(s, sig.SIG_IGN if stopping else h)
     if reader_gone:
         raise OutputError("standard output was closed by its reader before the call ended: the rest of the extended audio was not delivered")
 
@@ -154,17 +161,15 @@ def relay(
         raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
     _say(f"relaying RTP from {r.address[0]}:{r.address[1]} to {to} (method={method}, output payload type {payload_type}); stop with Ctrl-C")
 
-    def stop(signum, frame):
-        raise _Terminate()
-
-    old = {s_: sig.signal(s_, stop) for s_ in (sig.SIGTERM, sig.SIGINT)}
+    # SIGTERM/SIGINT ask the relay to stop: it finishes the datagram at hand, flushes every stream and
+    # closes; a stop never lands between sending a packet and counting it, and further signals
+    # during the flush are absorbed
+    old = {s_: sig.signal(s_, lambda signum, frame: r.request_stop()) for s_ in (sig.SIGTERM, sig.SIGINT)}
     try:
         r.serve()
-    except _Terminate:
-        r._shutdown()
     finally:
-        for s_, h in old.items():
-            sig.signal(s_, h)
+        for s_, h in old.items():  # after a stop, further signals are ignored until the process has exited
+            sig.signal(s_, sig.SIG_IGN if r.stop_requested else h)
     for ssrc, c in r.closed.items():
         _say(f"stream {ssrc:08x}: {count(c.packets, 'packet')} in, {c.packets_out} out, {c.lost_packets} lost ({count(c.filled_samples, 'sample')} filled), {c.late_or_duplicate} late or duplicate, {count(c.silence_filled, 'sample')} of suppressed silence filled, {count(c.timing_restarts, 'timing restart')}, {count(c.resyncs, 'sender restart')}, {count(c.source_changes, 'source address change')}, {count(c.guard_fallbacks, 'guard fallback')}")
     _say(f"relay: {count(r.counters.streams_opened, 'stream')}, {r.counters.malformed} malformed, {r.counters.oversized} oversized, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit, {r.counters.ssrc_conflicts} from a second sender of an SSRC in use, {count(r.counters.send_errors, 'packet')} the system would not send")

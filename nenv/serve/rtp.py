@@ -20,8 +20,9 @@ Robustness (each case counted): a payload longer than ``MAX_PAYLOAD`` bytes
 is dropped (``oversized``); a timestamp jump between consecutive packets
 (silence suppression) is filled with silence up to ``MAX_FILL`` samples, and
 a longer one restarts the timing (``timing_restarts``); a sender that
-restarts with the same SSRC but far-away sequence numbers is followed after
-``RESYNC_AFTER`` consecutive out-of-place packets (``resyncs``); a new SSRC
+restarts with the same SSRC but far-away sequence numbers is followed as soon as
+a second packet confirms the new numbering, with nothing counted lost (RFC 3550
+appendix A.1; ``resyncs``; the rules are :class:`nenv.serve.jitter.PlayOut`'s); a new SSRC
 (a restarted sender) opens a new stream. An SSRC already in use by a stream
 arriving from another address is a collision or a loop (RFC 3550 section 8.2):
 those packets are dropped (``ssrc_conflicts``), so two senders with the same
@@ -39,24 +40,21 @@ import select
 import socket
 import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Callable
 
 import numpy as np
 
-from nenv.dsp import g711
 from nenv.media.audio import to_int16
 from nenv.errors import InputError
-from nenv.serve.rtp_packet import RtpPacket, build, parse
+from nenv.serve.jitter import LAW_OF_PT, PlayOut, StreamCounters
+from nenv.serve.rtp_packet import build, parse
 from nenv.serve.runtime import CallEngine
 
 PT_PCMU = 0
 PT_PCMA = 8
-LAW_OF_PT = {PT_PCMU: "mulaw", PT_PCMA: "alaw"}
 OUT_SAMPLES = 320  # per outgoing packet: 20 ms at 16 kHz
-MAX_FILL = 8000  # samples: longest gap filled with silence (1 s); longer gaps restart the timing
 MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
-RESYNC_AFTER = 16  # consecutive late-looking packets after which a stream follows the new numbering
 REBIND_AFTER_S = 0.5  # quiet time of a stream's sender after which its SSRC may come from a new address
 MAX_CLOSED = 1024  # closed streams whose counters are kept
 RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
@@ -64,38 +62,21 @@ EXPIRY_CHECK_S = 0.1  # how often idle streams are looked for
 
 
 @dataclass
-class StreamCounters:
-    packets: int = 0
-    samples_in: int = 0
-    late_or_duplicate: int = 0
-    lost_packets: int = 0
-    filled_samples: int = 0
-    arrived_early: int = 0
-    packets_out: int = 0
-    limited: int = 0
-    silence_filled: int = 0  # samples of silence inserted for timestamp jumps (silence suppression)
-    timing_restarts: int = 0  # timestamp jumps too long to fill
-    resyncs: int = 0  # sender restarts with the same SSRC
-    guard_fallbacks: int = 0  # hops where the guard replaced the network's envelope by the codebook's
-    source_changes: int = 0  # the sender's address or port changed after a quiet spell (followed)
-
-
-@dataclass
 class _Stream:
     engine: CallEngine | None  # None in batched mode (the relay's MultiCallEngine holds the call)
     law: str
-    next_seq: int
-    next_ts: int
+    playout: PlayOut
     out_ssrc: int
     last_seen: float
-    held: dict = field(default_factory=dict)  # seq -> packet
     out_pcm: bytes = b""  # output not yet sent (less than a packet), as big-endian 16-bit samples
     out_seq: int = 0
     out_ts: int = 0
-    late_run: int = 0
     call_id: str = ""
     source: tuple = ()  # the transport address (host, port) the stream's packets come from
-    counters: StreamCounters = field(default_factory=StreamCounters)
+
+    @property
+    def counters(self) -> StreamCounters:
+        return self.playout.counters
 
 
 @dataclass
@@ -176,6 +157,14 @@ class Relay:
         self._thread = threading.Thread(target=self.serve, name="nenv-rtp-relay", daemon=True)
         self._thread.start()
         return self
+
+    @property
+    def stop_requested(self) -> bool:
+        return self._stop.is_set()
+
+    def request_stop(self) -> None:
+        """Ask :meth:`serve` to stop at its next safe point (safe to call from a signal handler, any number of times)."""
+        self._stop.set()
 
     def stop(self) -> None:
         """Stop receiving, flush every stream's tail, close the sockets."""
@@ -258,10 +247,10 @@ class Relay:
                 self.counters.over_stream_limit += 1
                 return
             if self.multi is None:
-                st = _Stream(CallEngine(system=self.make_system()), LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic())
+                st = _Stream(CallEngine(system=self.make_system()), LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), int.from_bytes(os.urandom(4), "big"), time.monotonic())
                 self._count_fallbacks(st)  # the engine keeps no per-hop verdicts: counted here
             else:
-                st = _Stream(None, LAW_OF_PT[pkt.payload_type], pkt.seq, pkt.timestamp, int.from_bytes(os.urandom(4), "big"), time.monotonic(), call_id=f"{pkt.ssrc:08x}-{self.counters.streams_opened}")
+                st = _Stream(None, LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), int.from_bytes(os.urandom(4), "big"), time.monotonic(), call_id=f"{pkt.ssrc:08x}-{self.counters.streams_opened}")
                 self.multi.open(st.call_id)
                 self._by_call[st.call_id] = st
             st.source = addr
@@ -270,23 +259,8 @@ class Relay:
             self.streams[pkt.ssrc] = st
             self.counters.streams_opened += 1
         st.last_seen = time.monotonic()
-        ahead = (pkt.seq - st.next_seq) & 0xFFFF
-        if ahead >= 0x8000 or pkt.seq in st.held:  # behind the play-out point, or a copy
-            st.counters.late_or_duplicate += 1
-            st.late_run += 1
-            if st.late_run < RESYNC_AFTER:
-                return
-            # this many in a row: the sender restarted its numbering; follow it
-            self._drain(st, force=True)
-            st.next_seq, st.next_ts, st.late_run = pkt.seq, pkt.timestamp, 0
-            st.counters.resyncs += 1
-            ahead = 0
-        st.late_run = 0
-        if ahead > 0:
-            st.counters.arrived_early += 1  # an earlier packet is late (reordered) or lost
-        st.held[pkt.seq] = pkt
-        st.counters.packets += 1
-        self._drain(st, force=False)
+        for x in st.playout.push(pkt):
+            self._feed(st, x)
 
     @staticmethod
     def _count_fallbacks(st: _Stream) -> None:
@@ -297,40 +271,6 @@ class Relay:
                 st.counters.guard_fallbacks += int(dec.rejected.sum())
 
             est.listener = listen
-
-    def _drain(self, st: _Stream, *, force: bool) -> None:
-        while st.held:
-            pkt = st.held.pop(st.next_seq, None)
-            if pkt is not None:
-                self._play(st, pkt)
-                continue
-            if not force and len(st.held) <= self.window:
-                return
-            # the next expected packet did not come in time: declare it (and any run) lost
-            nearest = min(st.held, key=lambda s: (s - st.next_seq) & 0xFFFF)
-            n_lost = (nearest - st.next_seq) & 0xFFFF
-            gap = (st.held[nearest].timestamp - st.next_ts) & 0xFFFFFFFF
-            st.counters.lost_packets += n_lost
-            if 0 < gap <= MAX_FILL:
-                st.counters.filled_samples += gap
-                self._feed(st, np.zeros(gap))
-            st.next_seq = nearest
-            st.next_ts = st.held[nearest].timestamp
-
-    def _play(self, st: _Stream, pkt: RtpPacket) -> None:
-        jump = (pkt.timestamp - st.next_ts) & 0xFFFFFFFF
-        if 0 < jump < 0x80000000:  # consecutive packets, later timestamp: suppressed silence
-            if jump <= MAX_FILL:
-                st.counters.silence_filled += jump
-                self._feed(st, np.zeros(jump))
-            else:
-                st.counters.timing_restarts += 1
-        codes = np.frombuffer(pkt.payload, dtype=np.uint8)
-        x = g711.decode(codes, law=LAW_OF_PT[pkt.payload_type])
-        st.counters.samples_in += x.size
-        st.next_seq = (pkt.seq + 1) & 0xFFFF
-        st.next_ts = (pkt.timestamp + x.size) & 0xFFFFFFFF
-        self._feed(st, x)
 
     def _feed(self, st: _Stream, x: np.ndarray) -> None:
         if st.engine is not None:
@@ -367,7 +307,8 @@ class Relay:
 
     def _close(self, ssrc: int) -> None:
         st = self.streams.pop(ssrc)
-        self._drain(st, force=True)
+        for x in st.playout.flush():
+            self._feed(st, x)
         if st.engine is not None:
             self._emit(st, st.engine.flush(), final=True)
             st.counters.limited = st.engine.limited

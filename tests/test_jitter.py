@@ -1,0 +1,102 @@
+"""One stream's play-out rules (nenv.serve.jitter.PlayOut), packet by packet: no sockets, no sleeps.
+
+References: RFC 3550 appendix A.1 (sequence-number validity: MAX_DROPOUT 3000, MAX_MISORDER 100,
+a restart confirmed by two packets in sequence) and RFC 3551 section 4.5.14 (PCMU: one sample
+per octet, the timestamp counts samples).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from nenv.dsp import g711
+from nenv.serve.jitter import MAX_FILL, PlayOut
+from nenv.serve.rtp_packet import RtpPacket
+
+N = 160  # samples per 20 ms PCMU packet
+
+
+def _pkt(seq: int, ts: int, value: float = 0.25) -> RtpPacket:
+    payload = g711.encode(np.full(N, value), law="mulaw").tobytes()
+    return RtpPacket(payload_type=0, marker=False, seq=seq & 0xFFFF, timestamp=ts & 0xFFFFFFFF, ssrc=1, payload=payload)
+
+
+def _play(po: PlayOut, packets) -> np.ndarray:
+    out = [x for p in packets for x in po.push(p)]
+    return np.concatenate(out) if out else np.zeros(0)
+
+
+def _stream(seq0: int, ts0: int, n: int, values=None):
+    return [_pkt(seq0 + i, ts0 + N * i, 0.1 + 0.01 * i if values is None else values[i]) for i in range(n)]
+
+
+def test_in_order_packets_play_at_once_across_both_wraps():
+    pkts = _stream(65534, 2**32 - 2 * N, 6)
+    po = PlayOut(pkts[0], window=3)
+    y = _play(po, pkts)
+    assert y.size == 6 * N and po.counters.packets == 6 and po.counters.lost_packets == 0
+    want = np.concatenate([g711.decode(np.frombuffer(p.payload, np.uint8), law="mulaw") for p in pkts])
+    np.testing.assert_array_equal(y, want)
+
+
+def test_a_swap_within_the_window_is_reordered_and_a_late_copy_dropped():
+    pkts = _stream(100, 0, 8)
+    po = PlayOut(pkts[0], window=3)
+    order = [pkts[0], pkts[2], pkts[1], pkts[3], pkts[1], pkts[4], pkts[5], pkts[6], pkts[7]]
+    y = _play(po, order)
+    c = po.counters
+    assert y.size == 8 * N and c.packets == 8 and c.arrived_early == 1 and c.late_or_duplicate == 1 and c.lost_packets == 0
+    assert po.push(pkts[3]) == [] and c.late_or_duplicate == 2  # behind the play-out point
+
+
+def test_a_missing_packet_is_declared_lost_when_the_window_overflows_and_filled_with_its_span():
+    pkts = _stream(0, 0, 10)
+    po = PlayOut(pkts[0], window=3)
+    arrived = [p for i, p in enumerate(pkts) if i != 4]
+    y = _play(po, arrived[:7])  # 0..3 played, 5..7 wait (window 3)
+    assert y.size == 4 * N and len(po.held) == 3
+    y2 = _play(po, arrived[7:])  # a fourth waiting packet: 4 is lost
+    c = po.counters
+    assert c.lost_packets == 1 and c.filled_samples == N and y2.size == 6 * N
+    assert not np.any(y2[:N]) and np.all(y2[N:] != 0)
+
+
+def test_suppressed_silence_is_filled_up_to_a_second_and_a_longer_jump_restarts_timing():
+    po = PlayOut(_pkt(0, 0), window=3)
+    _play(po, [_pkt(0, 0)])
+    y = _play(po, [_pkt(1, N + 2000)])  # the next packet, 2000 samples of silence later
+    assert y.size == 2000 + N and not np.any(y[:2000]) and po.counters.silence_filled == 2000
+    y = _play(po, [_pkt(2, 2 * N + 2000 + MAX_FILL + 1)])  # longer than MAX_FILL: no fill, timing restarts
+    assert y.size == N and po.counters.timing_restarts == 1
+
+
+def test_a_sender_restart_far_ahead_or_behind_is_followed_on_the_second_packet_with_nothing_lost():
+    """RFC 3550 A.1: a jump beyond MAX_DROPOUT (or farther back than MAX_MISORDER) is a probable
+    restart; the next packet in sequence confirms it. 1000 -> 30000 -> 5000, as a sender that
+    restarts twice would send."""
+    first, second, third = _stream(1000, 0, 20), _stream(30000, 10**6, 20), _stream(5000, 3 * 10**6, 20)
+    po = PlayOut(first[0], window=4)
+    y = _play(po, first + second + third)
+    c = po.counters
+    assert c.resyncs == 2 and c.lost_packets == 0 and c.late_or_duplicate == 0 and c.filled_samples == 0
+    assert y.size == 60 * N and c.packets == 60 and c.samples_in == 60 * N
+
+
+def test_a_single_stray_packet_far_away_is_not_taken_for_a_restart():
+    pkts = _stream(200, 0, 10)
+    po = PlayOut(pkts[0], window=3)
+    y = _play(po, pkts[:5] + [_pkt(40000, 5_000_000)] + pkts[5:])
+    c = po.counters
+    assert y.size == 10 * N and c.resyncs == 0 and c.lost_packets == 0
+    assert po.candidate is not None  # kept only until a successor confirms it: one packet of memory
+    _play(po, [_pkt(50000, 7_000_000)])  # another stray replaces it, counted
+    assert c.late_or_duplicate == 1
+
+
+def test_flush_plays_what_waits_and_declares_the_gaps_lost():
+    pkts = _stream(0, 0, 6)
+    po = PlayOut(pkts[0], window=5)
+    _play(po, [pkts[0], pkts[2], pkts[5]])
+    y = np.concatenate(po.flush())
+    c = po.counters
+    assert c.lost_packets == 3 and c.filled_samples == 3 * N and y.size == 5 * N and not po.held  # packet 0 played on arrival
