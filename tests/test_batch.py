@@ -128,7 +128,7 @@ def _reference_outputs(tree, tmp_path) -> dict[str, bytes]:
 def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
     """SIGKILL and Ctrl-C (SIGINT) at random moments; then a rerun finishes the job."""
     (tree / "long").mkdir()
-    n_long, long_s = 6, 120.0  # longer inputs, enough of them that every run still has some to write (a whole pass takes longer than the latest kill)
+    n_long, long_s = 8, 180.0  # longer inputs, enough of them that every run still has some to write (a whole pass takes longer than the latest kill)
     for i in range(n_long):
         sf.write(tree / "long" / f"l{i}.wav", _telephone(i, long_s), 8000)
     expected = _reference_outputs(tree, tmp_path)
