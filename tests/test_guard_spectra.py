@@ -138,3 +138,14 @@ def test_verdicts_follow_the_documented_rules_alone_or_in_a_batch(rng):
         assert one.max_k[0] == max_k
         np.testing.assert_allclose(one.mismatch_db[0], mismatch, rtol=1e-5, atol=1e-5)  # logarithms in single precision
     assert guard.assess(**kw, k=k)[0].rejected.dtype == bool
+
+
+def test_counts_in_messages_agree_in_number():
+    """Messages say '1 hop' and '2 hops', never '1 hops' or 'hop(s)'."""
+    from nenv.chain.guard import summary_line
+    from nenv.words import count
+
+    assert (count(1, "hop"), count(0, "hop"), count(2, "sample"), count(1, "bad sample")) == ("1 hop", "0 hops", "2 samples", "1 bad sample")
+    assert summary_line(1, 0, {}) == "guard: the one hop passed; none fell back to the codebook"
+    assert summary_line(5, 0, {}) == "guard: all 5 hops passed; none fell back to the codebook"
+    assert summary_line(1, 1, {"level": 1}).startswith("guard: 1 of 1 hop (100.0%) fell back")
