@@ -100,3 +100,40 @@ def test_flush_plays_what_waits_and_declares_the_gaps_lost():
     y = np.concatenate(po.flush())
     c = po.counters
     assert c.lost_packets == 3 and c.filled_samples == 3 * N and y.size == 5 * N and not po.held  # packet 0 played on arrival
+
+
+def test_an_rtcp_bye_ends_its_stream_at_once_and_the_first_packet_out_carries_the_marker():
+    """RFC 3550 section 6.6 (BYE), RFC 5761 section 4 (RTCP on the RTP port, told apart by the second
+    octet), RFC 3551 section 4.1 (marker bit on the first packet). Driven through Relay.handle: no
+    serving loop, no sleeps."""
+    import socket
+
+    from nenv.chain import pipeline
+    from nenv.serve import rtp
+    from nenv.serve.rtp_packet import build, bye, goodbyes, parse
+
+    rx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    rx.bind(("127.0.0.1", 0))
+    rx.settimeout(2.0)
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), idle_timeout_s=60)
+    sender = ("127.0.0.1", 40000)
+    for i in range(10):
+        relay.handle(build(payload_type=0, seq=i, timestamp=N * i, ssrc=0xAB, payload=_pkt(i, 0).payload), sender)
+    relay.handle(build(payload_type=0, seq=0, timestamp=0, ssrc=0xCD, payload=_pkt(0, 0).payload), sender)
+    receiver_report = bytes([0x80, 201]) + (1).to_bytes(2, "big") + (0xAB).to_bytes(4, "big")  # RR, no report blocks
+    relay.handle(receiver_report + bye([0xAB]), ("127.0.0.1", 40001))  # compound RR + BYE, from the RTCP port
+    assert 0xAB not in relay.streams and 0xAB in relay.closed and 0xCD in relay.streams  # the other stream goes on
+    assert relay.counters.goodbyes == 1 and relay.counters.malformed == 0
+    got = []
+    while True:
+        try:
+            got.append(parse(rx.recv(65535)))
+        except socket.timeout:
+            break
+    ab = [p for p in got if p.payload_type == 96]
+    assert sum(len(p.payload) // 2 for p in ab) == 2 * 10 * N  # the whole call, tail included, sent on the BYE
+    assert ab[0].marker and not any(p.marker for p in ab[1:])
+    assert goodbyes(bye([1, 2])) == [1, 2] and goodbyes(b"\x80\xcb\x00\x05") is None  # a length past the end
+    relay.handle(bytes([0x80, 203, 0, 9]), sender)  # malformed RTCP: counted, never raised
+    assert relay.counters.malformed == 1
+    relay.stop()

@@ -48,7 +48,7 @@ import numpy as np
 from nenv.media.audio import to_int16
 from nenv.errors import InputError
 from nenv.serve.jitter import LAW_OF_PT, PlayOut, StreamCounters
-from nenv.serve.rtp_packet import build, parse
+from nenv.serve.rtp_packet import build, goodbyes, is_rtcp, parse
 from nenv.serve.runtime import CallEngine
 
 PT_PCMU = 0
@@ -90,6 +90,7 @@ class RelayCounters:
     streams_closed: int = 0
     ssrc_conflicts: int = 0  # packets dropped: an SSRC in use by another sender (collision or loop)
     send_errors: int = 0  # output packets the system refused to send (they are counted as sent for numbering)
+    goodbyes: int = 0  # streams closed at once by their sender's RTCP BYE
 
 
 def _resolve(address: tuple[str, int]) -> tuple[str, int]:
@@ -137,6 +138,14 @@ class Relay:
         self.sock.bind(listen)
         self.sock.setblocking(False)  # serve() waits in select and then reads every datagram waiting
         self.address = self.sock.getsockname()
+        # RTCP: on the RTP port itself (RFC 5761) and, where it is free, on the port above (RFC 3550 section 11)
+        self.rtcp_sock: socket.socket | None = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        try:
+            self.rtcp_sock.bind((self.address[0], self.address[1] + 1))
+            self.rtcp_sock.setblocking(False)
+        except OSError:
+            self.rtcp_sock.close()
+            self.rtcp_sock = None
         self.out = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
         self.streams: dict[int, _Stream] = {}
         self.closed: dict[int, StreamCounters] = {}
@@ -178,9 +187,9 @@ class Relay:
         try:
             while not self._stop.is_set():
                 wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - time.monotonic())
-                ready, _, _ = select.select([self.sock], [], [], wait)
-                if ready:
-                    self._receive_all()
+                ready, _, _ = select.select([self.sock] + ([self.rtcp_sock] if self.rtcp_sock else []), [], [], wait)
+                for sock in ready:
+                    self._receive_all(sock)
                 if self.multi is not None and time.monotonic() - self._last_step >= self.tick:
                     self.step()
                 if time.monotonic() - self._last_expiry >= EXPIRY_CHECK_S:
@@ -188,11 +197,11 @@ class Relay:
         finally:
             self._shutdown()
 
-    def _receive_all(self) -> None:
-        """Handle every datagram waiting in the socket (up to RECEIVE_BURST), without blocking."""
+    def _receive_all(self, sock: socket.socket) -> None:
+        """Handle every datagram waiting in ``sock`` (up to RECEIVE_BURST), without blocking."""
         for _ in range(RECEIVE_BURST):
             try:
-                data, addr = self.sock.recvfrom(65535)
+                data, addr = sock.recvfrom(65535)
             except (BlockingIOError, InterruptedError):
                 return
             self.handle(data, addr)
@@ -216,12 +225,17 @@ class Relay:
         for ssrc in list(self.streams):
             self._close(ssrc)
         self.sock.close()
+        if self.rtcp_sock is not None:
+            self.rtcp_sock.close()
         self.out.close()
 
     # ---- packets in ----------------------------------------------------------------------
     def handle(self, data: bytes, addr: tuple[str, int]) -> None:
         if self.allowed is not None and addr[0] not in self.allowed:
             self.counters.not_allowed += 1
+            return
+        if is_rtcp(data):
+            self._rtcp(data, addr)
             return
         pkt = parse(data)
         if pkt is None:
@@ -262,6 +276,19 @@ class Relay:
         for x in st.playout.push(pkt):
             self._feed(st, x)
 
+    def _rtcp(self, data: bytes, addr: tuple[str, int]) -> None:
+        """An RTCP compound packet: a BYE from a stream's own sender ends that stream at once (its tail
+        is sent now, not after the idle timeout); other RTCP is not used."""
+        ssrcs = goodbyes(data)
+        if ssrcs is None:
+            self.counters.malformed += 1
+            return
+        for ssrc in ssrcs:
+            st = self.streams.get(ssrc)
+            if st is not None and st.source[0] == addr[0]:  # from the sender's host (RTCP may use another port)
+                self._close(ssrc)
+                self.counters.goodbyes += 1
+
     @staticmethod
     def _count_fallbacks(st: _Stream) -> None:
         est = getattr(st.engine.system, "estimator", None)
@@ -291,7 +318,8 @@ class Relay:
         for s in range(0, n_full, packet):
             payload = buf[s : min(s + packet, n_full)]
             try:
-                self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload), self.send_to)
+                first = st.counters.packets_out == 0  # the marker bit starts the stream's first talkspurt (RFC 3551 section 4.1)
+                self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload, marker=first), self.send_to)
             except OSError:  # no route, buffers full, ...: the packet is lost like one on the wire, the relay goes on
                 self.counters.send_errors += 1
             st.out_seq = (st.out_seq + 1) & 0xFFFF

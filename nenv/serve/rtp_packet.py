@@ -44,3 +44,37 @@ def parse(data: bytes) -> RtpPacket | None:
 def build(*, payload_type: int, seq: int, timestamp: int, ssrc: int, payload: bytes, marker: bool = False) -> bytes:
     """An RTP version 2 packet with no CSRC, extension or padding."""
     return HEADER.pack(0x80, (0x80 if marker else 0) | (payload_type & 0x7F), seq & 0xFFFF, timestamp & 0xFFFFFFFF, ssrc & 0xFFFFFFFF) + payload
+
+
+RTCP_BYE = 203  # RFC 3550 section 6.6
+RTCP_TYPES = range(192, 224)  # RFC 5761 section 4: the second octet of an RTCP packet on a shared port
+
+
+def is_rtcp(data: bytes) -> bool:
+    """True for an RTCP packet arriving on the RTP port (RFC 5761 section 4: multiplexed by the second octet)."""
+    return len(data) >= 2 and data[1] in RTCP_TYPES
+
+
+def goodbyes(data: bytes) -> list[int] | None:
+    """The SSRCs that leave in an RTCP compound packet (its BYE packets, RFC 3550 section 6.6);
+    None if the datagram is not a valid RTCP compound packet (version 2, lengths that add up)."""
+    ssrcs: list[int] = []
+    pos = 0
+    while pos < len(data):
+        if len(data) - pos < 4 or data[pos] >> 6 != 2:
+            return None
+        end = pos + 4 * (int.from_bytes(data[pos + 2 : pos + 4], "big") + 1)
+        if end > len(data):
+            return None
+        if data[pos + 1] == RTCP_BYE:
+            count = data[pos] & 0x1F
+            if 4 + 4 * count > end - pos:
+                return None
+            ssrcs += [int.from_bytes(data[pos + 4 + 4 * i : pos + 8 + 4 * i], "big") for i in range(count)]
+        pos = end
+    return ssrcs
+
+
+def bye(ssrcs: list[int]) -> bytes:
+    """An RTCP BYE packet for ``ssrcs`` (no reason given)."""
+    return bytes([0x80 | len(ssrcs), RTCP_BYE]) + len(ssrcs).to_bytes(2, "big") + b"".join(s.to_bytes(4, "big") for s in ssrcs)
