@@ -241,6 +241,7 @@ def test_degrade_codes_g711_mu_law_by_default_and_refuses_absurd_noise(tmp_path)
         (["extend", "a.wav", "b.wav", "--method", "magic"], "'magic' is not one of 'neural', 'codebook'"),
         (["stream", "--input-format", "wav"], "'wav' is not one of 's16le', 'mulaw', 'alaw'"),
         (["evaluate", "r.wav", "--out", "o", "--law", "ulaw"], "'ulaw' is not one of"),
+        (["relay", "--to", "::1:5004"], "IPv6 address in brackets"),
     ],
 )
 def test_usage_errors_are_one_line_with_status_2(args, needle):

@@ -8,6 +8,7 @@ per octet, the timestamp counts samples).
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from nenv.dsp import g711
 from nenv.serve.jitter import MAX_FILL, PlayOut
@@ -137,3 +138,32 @@ def test_an_rtcp_bye_ends_its_stream_at_once_and_the_first_packet_out_carries_th
     relay.handle(bytes([0x80, 203, 0, 9]), sender)  # malformed RTCP: counted, never raised
     assert relay.counters.malformed == 1
     relay.stop()
+
+
+@pytest.mark.parametrize("family", ["ipv4", "ipv6"])
+def test_the_relay_speaks_ipv6_and_symmetric_rtp(family):
+    """IPv6 listen and destination addresses; symmetric RTP sends from the listening port (the
+    receiver sees the relay's own RTP address as the source). Driven through Relay.handle."""
+    import socket
+
+    from nenv.chain import pipeline
+    from nenv.serve import rtp
+    from nenv.serve.rtp_packet import build
+
+    host = "::1" if family == "ipv6" else "127.0.0.1"
+    if family == "ipv6":
+        try:
+            socket.socket(socket.AF_INET6, socket.SOCK_DGRAM).bind(("::1", 0))
+        except OSError:
+            pytest.skip("this machine has no IPv6 loopback")
+    rx = socket.socket(socket.AF_INET6 if family == "ipv6" else socket.AF_INET, socket.SOCK_DGRAM)
+    rx.bind((host, 0))
+    rx.settimeout(2.0)
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), listen=(host, 0), send_to=rx.getsockname()[:2], symmetric=True, idle_timeout_s=60)
+    for i in range(4):
+        relay.handle(build(payload_type=8, seq=i, timestamp=N * i, ssrc=5, payload=b"\xd5" * N), (host, 40000, 0, 0)[: 4 if family == "ipv6" else 2])
+    data, source = rx.recvfrom(65535)
+    assert source[:2] == relay.address[:2]  # symmetric: from the port the relay listens on
+    relay.stop()
+    with pytest.raises(Exception, match="one family"):
+        rtp.Relay(lambda: pipeline.make_system("imaging"), listen=("127.0.0.1", 0), send_to=("::1", 9), symmetric=True)

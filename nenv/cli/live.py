@@ -120,9 +120,14 @@ def stream(
 
 
 def _hostport(text: str, what: str) -> tuple[str, int]:
+    """HOST:PORT, with an IPv6 address in brackets ([::1]:5004)."""
     host, sep, port = text.rpartition(":")
+    if host.startswith("[") and host.endswith("]"):
+        host = host[1:-1]
+    elif ":" in host:
+        raise InputError(f"{what} {text!r}: write an IPv6 address in brackets, e.g. [::1]:5004")
     if not sep or not port.isdigit() or not 0 <= int(port) <= 65535:
-        raise InputError(f"{what} {text!r} must look like HOST:PORT, e.g. 127.0.0.1:5004")
+        raise InputError(f"{what} {text!r} must look like HOST:PORT, e.g. 127.0.0.1:5004 or [::1]:5004")
     return host or "127.0.0.1", int(port)
 
 
@@ -138,6 +143,7 @@ def relay(
     method: Annotated[Optional[LiveMethod], typer.Option(help="System (default: neural when a model is available).")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
     step_ms: Annotated[float, typer.Option(min=5.0, max=100.0, help="Neural method: all streams are extended together every this many ms (a packet waits at most one step; 10 halves the wait for more CPU per call).")] = 20.0,
+    symmetric: Annotated[bool, typer.Option("--symmetric", help="Send from the listening port (symmetric RTP, which many gateways and NATs expect).")] = False,
 ) -> None:
     """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one call per SSRC. Stops on SIGTERM/Ctrl-C."""
     _kernels_ready()
@@ -156,10 +162,11 @@ def relay(
         # the neural system runs every stream in one batched engine (one pass per hop for all calls)
         r = rtp.Relay(lambda: pipeline.make_system(method, model=ck), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
                       payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout,
-                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0)
+                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0, symmetric=symmetric)
     except OSError as e:
         raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
-    _say(f"relaying RTP from {r.address[0]}:{r.address[1]} to {to} (method={method}, output payload type {payload_type}); stop with Ctrl-C")
+    host = f"[{r.address[0]}]" if ":" in r.address[0] else r.address[0]
+    _say(f"relaying RTP from {host}:{r.address[1]} to {to} (method={method}, output payload type {payload_type}{', symmetric' if symmetric else ''}); stop with Ctrl-C")
 
     # SIGTERM/SIGINT ask the relay to stop: it finishes the datagram at hand, flushes every stream and
     # closes; a stop never lands between sending a packet and counting it, and further signals

@@ -55,7 +55,7 @@ PT_PCMU = 0
 PT_PCMA = 8
 OUT_SAMPLES = 320  # per outgoing packet: 20 ms at 16 kHz
 MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
-REBIND_AFTER_S = 0.5  # quiet time of a stream's sender after which its SSRC may come from a new address
+REBIND_AFTER_S = 0.1  # quiet time (five 20 ms packet times) of a stream's sender after which its SSRC may come from a new address: a loop or a collision keeps both senders busy, a sender that moved or restarted on a new port has stopped
 MAX_CLOSED = 1024  # closed streams whose counters are kept
 RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
 EXPIRY_CHECK_S = 0.1  # how often idle streams are looked for
@@ -93,14 +93,15 @@ class RelayCounters:
     goodbyes: int = 0  # streams closed at once by their sender's RTCP BYE
 
 
-def _resolve(address: tuple[str, int]) -> tuple[str, int]:
-    """``(host, port)`` with the host resolved to an IPv4 address; InputError if it does not resolve."""
-    host, port = address
+def _resolve(address: tuple[str, int]) -> tuple[int, tuple]:
+    """``(family, socket address)`` of ``(host, port)``, IPv4 or IPv6 (the first the resolver gives);
+    InputError if it does not resolve."""
+    host, port = address[0], address[1]
     try:
-        info = socket.getaddrinfo(host, port, socket.AF_INET, socket.SOCK_DGRAM)
+        info = socket.getaddrinfo(host, port, socket.AF_UNSPEC, socket.SOCK_DGRAM)
     except (socket.gaierror, UnicodeError) as e:
         raise InputError(f"cannot resolve '{host}': {e.strerror if isinstance(e, socket.gaierror) else e}") from e
-    return info[0][4][0], info[0][4][1]
+    return info[0][0], info[0][4]
 
 
 class Relay:
@@ -119,34 +120,40 @@ class Relay:
         idle_timeout_s: float = 2.0,
         batch_model=None,
         tick_s: float = 0.02,
+        symmetric: bool = False,
     ):
         """``batch_model``: a loaded neural checkpoint; if given, every stream is a call of one
         :class:`nenv.serve.multicall.MultiCallEngine` (``make_system`` is not used), stepped every
         ``tick_s`` seconds, so all streams share each hop's work (a packet waits at most one tick;
         one tick per usual 20 ms packet time by default, ``0.01`` halves that wait for about twice
-        the fixed cost per second)."""
+        the fixed cost per second). ``symmetric``: send from the listening socket (symmetric RTP, which
+        many gateways and NATs expect); the destination must then be of the listening address's
+        family. Addresses may be IPv4 or IPv6."""
         if not 96 <= payload_type_out <= 127:
             raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
         self.make_system = make_system
-        self.send_to = _resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
+        out_family, self.send_to = _resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
         self.pt_out = payload_type_out
-        self.allowed = {_resolve((a, 0))[0] for a in allowed_sources} if allowed_sources else None  # names -> addresses, once
+        self.allowed = {_resolve((a, 0))[1][0] for a in allowed_sources} if allowed_sources else None  # names -> addresses, once
         self.max_streams = max_streams
         self.window = reorder_window
         self.idle = idle_timeout_s
-        self.sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
-        self.sock.bind(listen)
+        family, listen_at = _resolve(listen)
+        if symmetric and family != out_family:
+            raise InputError("symmetric RTP sends from the listening socket: give the listen and destination addresses in one family (both IPv4 or both IPv6)")
+        self.sock = socket.socket(family, socket.SOCK_DGRAM)
+        self.sock.bind(listen_at)
         self.sock.setblocking(False)  # serve() waits in select and then reads every datagram waiting
         self.address = self.sock.getsockname()
         # RTCP: on the RTP port itself (RFC 5761) and, where it is free, on the port above (RFC 3550 section 11)
-        self.rtcp_sock: socket.socket | None = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        self.rtcp_sock: socket.socket | None = socket.socket(family, socket.SOCK_DGRAM)
         try:
-            self.rtcp_sock.bind((self.address[0], self.address[1] + 1))
+            self.rtcp_sock.bind((self.address[0], self.address[1] + 1) + tuple(self.address[2:]))
             self.rtcp_sock.setblocking(False)
         except OSError:
             self.rtcp_sock.close()
             self.rtcp_sock = None
-        self.out = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        self.out = self.sock if symmetric else socket.socket(out_family, socket.SOCK_DGRAM)
         self.streams: dict[int, _Stream] = {}
         self.closed: dict[int, StreamCounters] = {}
         self.counters = RelayCounters()
@@ -227,7 +234,8 @@ class Relay:
         self.sock.close()
         if self.rtcp_sock is not None:
             self.rtcp_sock.close()
-        self.out.close()
+        if self.out is not self.sock:
+            self.out.close()
 
     # ---- packets in ----------------------------------------------------------------------
     def handle(self, data: bytes, addr: tuple[str, int]) -> None:
