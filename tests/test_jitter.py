@@ -167,3 +167,42 @@ def test_the_relay_speaks_ipv6_and_symmetric_rtp(family):
     relay.stop()
     with pytest.raises(Exception, match="one family"):
         rtp.Relay(lambda: pipeline.make_system("imaging"), listen=("127.0.0.1", 0), send_to=("::1", 9), symmetric=True)
+
+
+def test_a_quiet_stream_sends_its_tail_at_once_and_keeps_its_timing():
+    """After TAIL_AFTER_S without packets the audio the engine holds back goes out (the end of a call
+    no longer waits for the idle timeout); when the sender resumes after its pause, the silence
+    already played is taken off the pause, so the output stays as long as the call's timestamps say."""
+    import socket
+
+    from nenv.chain import pipeline
+    from nenv.serve import rtp
+    from nenv.serve.rtp_packet import build, parse
+
+    rx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    rx.bind(("127.0.0.1", 0))
+    rx.settimeout(1.0)
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), idle_timeout_s=60)
+    sender = ("127.0.0.1", 40000)
+    for i in range(5):  # 100 ms of speech
+        relay.handle(build(payload_type=0, seq=i, timestamp=N * i, ssrc=3, payload=_pkt(i, 0).payload), sender)
+
+    def received() -> int:
+        n = 0
+        while True:
+            try:
+                n += len(parse(rx.recv(65535)).payload) // 2
+            except socket.timeout:
+                return n
+
+    before = received()
+    assert before < 2 * 5 * N  # part of the call is still held back in the engine and the packetiser
+    relay.streams[3].last_seen -= rtp.TAIL_AFTER_S + 0.01  # the sender went quiet
+    relay._expire()
+    assert before + received() >= 2 * 5 * N  # every sample of the call is out, long before the idle timeout
+    # the sender resumes after a 1 s pause (silence suppression): the pause is filled, minus what was played
+    relay.handle(build(payload_type=0, seq=5, timestamp=N * 5 + 8000, ssrc=3, payload=_pkt(5, 0).payload), sender)
+    relay._close(3)
+    c = relay.closed[3]
+    assert c.silence_filled == 8000 and c.samples_in == 6 * N
+    relay.stop()

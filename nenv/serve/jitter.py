@@ -88,6 +88,16 @@ class PlayOut:
         c.late_or_duplicate += 1  # behind the play-out point, within MAX_MISORDER
         return []
 
+    def pad(self, n: int) -> list[np.ndarray]:
+        """``n`` samples of silence played now, ahead of the packets still to come: counted as
+        suppressed silence, and taken off the next timestamp jump so the timing is kept. Only
+        when nothing is waiting (a quiet stream); otherwise nothing."""
+        if self.held:
+            return []
+        self.next_ts = (self.next_ts + n) & 0xFFFFFFFF
+        self.counters.silence_filled += n
+        return [np.zeros(n)]
+
     def flush(self) -> list[np.ndarray]:
         """The end of the stream: play every packet still waiting (gaps declared lost)."""
         return self._drain(force=True)

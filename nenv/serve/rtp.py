@@ -58,7 +58,9 @@ MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone
 REBIND_AFTER_S = 0.1  # quiet time (five 20 ms packet times) of a stream's sender after which its SSRC may come from a new address: a loop or a collision keeps both senders busy, a sender that moved or restarted on a new port has stopped
 MAX_CLOSED = 1024  # closed streams whose counters are kept
 RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
-EXPIRY_CHECK_S = 0.1  # how often idle streams are looked for
+EXPIRY_CHECK_S = 0.02  # how often quiet and idle streams are looked for
+TAIL_AFTER_S = 0.2  # a stream quiet this long (ten packet times) has its held-back tail sent, without ending it (a delay spike longer than this inserts 20 ms of silence)
+TAIL_SAMPLES = 160  # 8 kHz samples of silence that push the tail out (a partial hop and the interpolator's delay)
 
 
 @dataclass
@@ -73,6 +75,7 @@ class _Stream:
     out_ts: int = 0
     call_id: str = ""
     source: tuple = ()  # the transport address (host, port) the stream's packets come from
+    tail_sent: bool = False  # its held-back tail went out during the current quiet spell
 
     @property
     def counters(self) -> StreamCounters:
@@ -225,7 +228,7 @@ class Relay:
         pcm = to_int16(np.concatenate([y for _, y in out])).astype(">i2").tobytes()
         pos = 0
         for st, y in out:
-            self._send(st, pcm[pos : pos + 2 * y.size])
+            self._send(st, pcm[pos : pos + 2 * y.size], final=st.tail_sent)  # a quiet stream's last, shorter packet goes too
             pos += 2 * y.size
 
     def _shutdown(self) -> None:
@@ -281,6 +284,7 @@ class Relay:
             self.streams[pkt.ssrc] = st
             self.counters.streams_opened += 1
         st.last_seen = time.monotonic()
+        st.tail_sent = False
         for x in st.playout.push(pkt):
             self._feed(st, x)
 
@@ -336,10 +340,19 @@ class Relay:
         st.out_pcm = buf[n_full:]
 
     def _expire(self) -> None:
+        """Close streams idle for ``idle_timeout_s``; for streams quiet for TAIL_AFTER_S, push out the
+        audio the engine still holds (the end of a call, or the start of a pause) with a little
+        silence that counts as part of the pause, so the stream's timing is kept."""
         now = self._last_expiry = time.monotonic()
         for ssrc, st in list(self.streams.items()):
             if now - st.last_seen > self.idle:
                 self._close(ssrc)
+            elif now - st.last_seen > TAIL_AFTER_S and not st.tail_sent:
+                st.tail_sent = True
+                for x in st.playout.pad(TAIL_SAMPLES):
+                    self._feed(st, x)
+                if st.engine is not None:  # a batched stream's tail comes out at the next step
+                    self._send(st, b"", final=True)  # the last, shorter packet too
 
     def _close(self, ssrc: int) -> None:
         st = self.streams.pop(ssrc)
