@@ -111,7 +111,7 @@ def run(n: int, seconds: float, payload: list[bytes], model: str | None) -> str:
         while time.monotonic() - rx.last < 2.5:  # idle streams are flushed after 1 s
             time.sleep(0.2)
         got = sum(rx.samples.values())
-        complete = got / (2 * sent.sum())
+        complete = got / (2 * (sent.sum() + n * rtp.TAIL_SAMPLES))  # each stream ends with its tail pushed out by TAIL_SAMPLES of silence
     finally:
         proc.terminate()
         proc.wait(timeout=30)
