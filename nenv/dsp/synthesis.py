@@ -1,8 +1,7 @@
-"""All-pole synthesis, band isolation and mixing with the narrowband signal.
+"""The interpolator, the high-band isolation filter and the all-pole synthesis, one row of state per call.
 
-Every class here is a causal stage with its state carried across calls, so a
-signal processed in pieces gives the same output as processed at once. The loops
-themselves are compiled kernels (:mod:`nenv.dsp.kernels`).
+Each keeps its state across calls, so a signal processed in pieces gives the same output as
+processed at once. The loops themselves are compiled kernels (:mod:`nenv.dsp.kernels`).
 """
 
 from __future__ import annotations
@@ -43,32 +42,6 @@ def isolation_sos() -> np.ndarray:
     return signal.ellip(ISOLATION_ORDER, 0.2, ISOLATION_STOP_DB, ISOLATION_PASS_HZ, btype="highpass", fs=WB_SR, output="sos")
 
 
-class FirStage:
-    """FIR filter with state."""
-
-    def __init__(self, taps: np.ndarray):
-        self.taps = np.ascontiguousarray(taps, dtype=np.float64)
-        self._zi = np.zeros((1, taps.size - 1))
-
-    def process(self, x: np.ndarray) -> np.ndarray:
-        if x.size == 0:
-            return np.zeros(0)
-        return kernels.fir(self.taps, np.ascontiguousarray(x, dtype=np.float64)[None, :], self._zi)[0]
-
-
-class SosStage:
-    """IIR filter in second-order sections with state (:func:`nenv.dsp.kernels.sosfilt`)."""
-
-    def __init__(self, sos: np.ndarray):
-        self.sos = np.ascontiguousarray(sos, dtype=np.float64)
-        self._zi = np.zeros((1, sos.shape[0], 2))
-
-    def process(self, x: np.ndarray) -> np.ndarray:
-        if x.size == 0:
-            return np.zeros(0)
-        return kernels.sosfilt(self.sos, np.ascontiguousarray(x, dtype=np.float64)[None, :], self._zi)[0]
-
-
 @lru_cache(maxsize=None)
 def upsampler_phases() -> tuple[np.ndarray, np.ndarray]:
     """The :func:`upsampler_taps` split into the even and odd output phases, each reversed (read-only):
@@ -87,36 +60,6 @@ def upsample_rows(x: np.ndarray, history: np.ndarray) -> np.ndarray:
     UPSAMPLER_DELAY; ``history`` [shape=(B, UPSAMPLER_HISTORY)], each row's last inputs, is updated in place."""
     even, odd = upsampler_phases()
     return kernels.upsample2(np.ascontiguousarray(x, dtype=np.float64), history, even, odd)
-
-
-class Upsampler:
-    """8 -> 16 kHz by zero insertion and the :func:`upsampler_taps` low-pass; delay UPSAMPLER_DELAY.
-
-    State: the last UPSAMPLER_HISTORY inputs. Any number of samples per call.
-    """
-
-    def __init__(self):
-        self._hist = np.zeros((1, UPSAMPLER_HISTORY))
-
-    def process(self, x: np.ndarray) -> np.ndarray:
-        x = np.asarray(x, dtype=np.float64)
-        if x.size == 0:
-            return np.zeros(0)
-        return upsample_rows(x[None, :], self._hist)[0]
-
-
-class Delay:
-    """Pure delay of ``n`` samples."""
-
-    def __init__(self, n: int):
-        self._buf = np.zeros(n)
-
-    def process(self, x: np.ndarray) -> np.ndarray:
-        if self._buf.size == 0:
-            return x
-        buf = np.concatenate([self._buf, x])
-        self._buf = buf[x.size :].copy()
-        return buf[: x.size]
 
 
 INITIAL_LOG_GAIN = float(np.log(1e-9))  # the envelope every synthesis interpolates from at its start
