@@ -125,19 +125,36 @@ def _window_autocorrelation(length: int) -> np.ndarray:
     return rw
 
 
-class ContextStacker:
-    """Stack each hop's features with its ``context`` predecessors, oldest first, with state.
+def stack_context(history: np.ndarray, ready: np.ndarray, feats: np.ndarray, *, context: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Each hop's features with its call's ``context`` previous hops, oldest first, for B calls.
 
-    Before the first hop the history is the first hop itself repeated, so
-    stacking a signal in pieces gives the same rows as stacking it at once.
+    history [shape=(B, context * d)]: each call's last ``context`` hops; ready [shape=(B,)]: whether
+    it holds any yet (before a call's first hop its history is that hop repeated, so stacking a
+    signal in pieces gives the same rows as stacking it at once); feats [shape=(B, H, d)].
+    Returns stacked [shape=(B * H, (context + 1) * d)] and the new history and ready flags.
+    Training (:class:`ContextStacker`) and the runtime estimator both stack through here.
     """
+    B, H, d = feats.shape
+    history = history.copy()
+    if not ready.all():
+        fresh = ~ready
+        history[fresh] = np.tile(feats[fresh, 0], (1, context))
+    hist = np.concatenate([history.reshape(B, context, d), feats], axis=1)
+    # row (b, h) = hist[b, h : h + context + 1] flattened: frames of (context + 1) * d values every d
+    stacked = lpc.hop_frames(hist.reshape(B, -1), frame_length=(context + 1) * d, hop_length=d, n_frames=H).reshape(B * H, -1)
+    return stacked, hist[:, H:].reshape(B, context * d), np.ones_like(ready)
+
+
+class ContextStacker:
+    """:func:`stack_context` for one signal, with state (training stacks a whole utterance at once)."""
 
     def __init__(self, context: int):
         self.context = context
-        self._history: np.ndarray | None = None
+        self.reset()
 
     def reset(self) -> None:
-        self._history = None
+        self._history: np.ndarray | None = None
+        self._ready = np.zeros(1, dtype=bool)
 
     def push(self, feats: np.ndarray) -> np.ndarray:
         """feats [shape=(n, d)] -> stacked [shape=(n, d * (context + 1))]."""
@@ -145,12 +162,9 @@ class ContextStacker:
         if n == 0:
             return np.zeros((0, d * (self.context + 1)))
         if self._history is None:
-            self._history = np.repeat(feats[:1], self.context, axis=0)
-        buf = np.concatenate([self._history, feats])
-        if self.context:
-            self._history = buf[-self.context :].copy()
-        # row t of the result is buf[t : t + context + 1] flattened: frames of (context + 1) * d values every d
-        return lpc.hop_frames(buf.reshape(1, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=n)[0]
+            self._history = np.zeros((1, self.context * d))
+        stacked, self._history, self._ready = stack_context(self._history, self._ready, feats[None], context=self.context)
+        return stacked
 
 
 def band_power(frames: np.ndarray, *, lo: float, hi: float) -> np.ndarray:

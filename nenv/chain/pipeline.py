@@ -97,9 +97,7 @@ class Chain:
         return low + high
 
     def _analyse(self, x: np.ndarray, sel, H: int) -> NarrowbandAnalysis:
-        buf = np.concatenate([self._state.get("nb", sel), x], axis=1)
-        self._state.put("nb", sel, buf[:, H * HOP_NB :])
-        frames = np.ascontiguousarray(lpc.hop_frames(buf, frame_length=WIN_NB, hop_length=HOP_NB, n_frames=H)).reshape(x.shape[0] * H, WIN_NB)
+        frames = self._state.frames("nb", sel, x, hop=HOP_NB)
         a, gain = lpc.analyse(frames, order=NB_ORDER, sr=NB_SR)
         return NarrowbandAnalysis(frames=frames, a=a, gain=gain, rows=x.shape[0])
 

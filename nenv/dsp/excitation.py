@@ -120,10 +120,7 @@ class ExcitationExtender:
         st.put("n", sel, st.get("n", sel) + u.shape[1])
         if not self.whiten:
             return u, hop_rms(u.reshape(-1))
-        wbuf = np.concatenate([st.get("wb", sel), u], axis=1)
-        st.put("wb", sel, wbuf[:, H * HOP_WB :])
-        frames = np.ascontiguousarray(lpc.hop_frames(wbuf, frame_length=WIN_WB, hop_length=HOP_WB, n_frames=H)).reshape(B * H, WIN_WB)
-        w, rms = whiten_hops(frames)
+        w, rms = whiten_hops(st.frames("wb", sel, np.ascontiguousarray(u), hop=HOP_WB))
         return w.reshape(B, H * HOP_WB), rms
 
 

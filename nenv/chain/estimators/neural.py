@@ -8,7 +8,7 @@ from nenv.dsp import lpc
 from nenv.chain.checkpoint import Checkpoint
 from nenv.chain.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAnalysis
 from nenv.chain.estimators.codebook import ENERGY_COLUMN
-from nenv.chain.features import ENERGY_FLOOR_DB, envelope_from_prediction, narrowband_features
+from nenv.chain.features import ENERGY_FLOOR_DB, envelope_from_prediction, narrowband_features, stack_context
 from nenv.chain.guard import Decisions, Guard
 from nenv.dsp.rows import RowState
 from nenv.settings import HOP_NB, NB_SR
@@ -80,17 +80,9 @@ class NeuralEstimator(EnvelopeEstimator):
         self.last = None
 
     def _stack(self, feats: np.ndarray, sel, B: int, H: int) -> np.ndarray:
-        """Each hop's features with its call's ``context`` previous hops, oldest first [shape=(B * H, (context + 1) * d)]."""
-        d = feats.shape[1]
-        ctx, ready = self._state.get("ctx", sel), self._state.get("ready", sel)
-        if not ready.all():
-            fresh = ~ready
-            ctx[fresh] = np.tile(feats.reshape(B, H, d)[fresh, 0], (1, self.context))
-            ready = np.ones_like(ready)
-        hist = np.concatenate([ctx.reshape(B, self.context, d), feats.reshape(B, H, d)], axis=1)
-        # row (b, h) = hist[b, h : h + context + 1] flattened: frames of (context + 1) * d values every d
-        stacked = lpc.hop_frames(hist.reshape(B, -1), frame_length=(self.context + 1) * d, hop_length=d, n_frames=H).reshape(B * H, -1)
-        self._state.put("ctx", sel, hist[:, H:].reshape(B, self.context * d))
+        """Each hop's features with its call's ``context`` previous hops (:func:`nenv.chain.features.stack_context`)."""
+        stacked, ctx, ready = stack_context(self._state.get("ctx", sel), self._state.get("ready", sel), feats.reshape(B, H, -1), context=self.context)
+        self._state.put("ctx", sel, ctx)
         self._state.put("ready", sel, ready)
         return stacked
 
