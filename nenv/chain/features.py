@@ -32,7 +32,7 @@ import numpy as np
 from nenv.dsp import cepstrum, lpc
 from nenv.errors import ConfigError
 from nenv.chain.estimators.base import NarrowbandAnalysis
-from nenv.settings import BAND_EDGE_HZ, HOP_NB, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
+from nenv.settings import BAND_EDGE_HZ, HOP_NB, LOW_BAND_HZ, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
 
 FEATURE_VERSION = 1
 ENERGY_FLOOR_DB = -100.0  # dB re full scale
@@ -97,17 +97,7 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
     err_db = np.maximum(10 * np.log10(np.maximum(gain * gain, 1e-30)), ENERGY_FLOOR_DB)
     pred_gain = np.minimum(np.maximum(energy_db - err_db, 0.0), 60.0)
     ceps = cepstrum.to_cepstrum(a, n_ceps=10)[:, 1:]
-    # normalised autocorrelation over the pitch range, divided by the window's own normalised
-    # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17). Single
-    # precision is ample for a value in [0, 1] and halves the FFTs' cost; each frame is scaled
-    # to unit peak first (the ratio does not depend on scale), so nothing underflows.
-    peak = np.abs(xw).max(axis=1, keepdims=True)
-    r = lpc.autocorrelation((xw / np.where(peak > 0, peak, 1.0)).astype(np.float32), order=PITCH_LAGS[1]).astype(np.float64)
-    rw = _window_autocorrelation(frames.shape[1])
-    r0 = r[:, 0]
-    lags = slice(PITCH_LAGS[0], PITCH_LAGS[1] + 1)
-    norm = r[:, lags] / np.where(r0 > 0, r0, 1.0)[:, None] / (rw[lags] / rw[0])[None, :]
-    voicing = np.where(r0 > 0, np.minimum(np.maximum(norm.max(axis=1), 0.0), 1.0), 0.0)
+    voicing = _voicing(xw, frames.shape[1])
     hop = frames[:, -HOP_NB - 1 :]
     zcr = (np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1])).sum(axis=1) / HOP_NB
     out = np.empty((n, N_INPUTS))
@@ -115,6 +105,30 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
     out[:, :m] = ceps
     out[:, m], out[:, m + 1], out[:, m + 2], out[:, m + 3] = energy_db, pred_gain, voicing, zcr
     return out
+
+
+VOICING_COLUMN = INPUT_NAMES.index("voicing")
+
+
+def voicing(frames: np.ndarray) -> np.ndarray:
+    """The ``voicing`` input alone, per frame: frames [shape=(n, WIN_NB)] raw -> [shape=(n,)] in [0, 1]."""
+    if frames.shape[0] == 0:
+        return np.zeros(0)
+    return _voicing(frames * lpc.asymmetric_window(frames.shape[1]), frames.shape[1])
+
+
+def _voicing(xw: np.ndarray, length: int) -> np.ndarray:
+    # normalised autocorrelation over the pitch range, divided by the window's own normalised
+    # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17). Single
+    # precision is ample for a value in [0, 1] and halves the FFTs' cost; each frame is scaled
+    # to unit peak first (the ratio does not depend on scale), so nothing underflows.
+    peak = np.abs(xw).max(axis=1, keepdims=True)
+    r = lpc.autocorrelation((xw / np.where(peak > 0, peak, 1.0)).astype(np.float32), order=PITCH_LAGS[1]).astype(np.float64)
+    rw = _window_autocorrelation(length)
+    r0 = r[:, 0]
+    lags = slice(PITCH_LAGS[0], PITCH_LAGS[1] + 1)
+    norm = r[:, lags] / np.where(r0 > 0, r0, 1.0)[:, None] / (rw[lags] / rw[0])[None, :]
+    return np.where(r0 > 0, np.minimum(np.maximum(norm.max(axis=1), 0.0), 1.0), 0.0)
 
 
 @lru_cache(maxsize=None)
@@ -214,3 +228,18 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         gain = g0 * np.sqrt(target / model_hb)
     return (a, gain, k) if with_reflection else (a, gain)
+
+
+def low_band_target(wb_frames: np.ndarray, nb_energy_db: np.ndarray) -> np.ndarray:
+    """The true low-band (50-300 Hz) power of 16 kHz frames re the narrowband frame power, dB [shape=(n,)]
+    (what the guard's low-band range is learned from)."""
+    lb = band_power(wb_frames, lo=LOW_BAND_HZ[0], hi=LOW_BAND_HZ[1])
+    return np.maximum(10 * np.log10(np.maximum(lb, 1e-30)), ENERGY_FLOOR_DB) - nb_energy_db
+
+
+def low_band_level(a: np.ndarray, gain: np.ndarray, nb_energy_db: np.ndarray) -> np.ndarray:
+    """Power in 50-300 Hz of a unit-power white excitation through each envelope ``gain / A``, re the
+    narrowband frame power, dB [shape=(n,)] (the level the low band is synthesised at; NaN/inf pass through)."""
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        env = cepstrum.power_spectrum(a, gain=gain, n_fft=LEVEL_N_FFT, bins=cepstrum.band_bins(LOW_BAND_HZ[0], LOW_BAND_HZ[1], n_fft=LEVEL_N_FFT, sr=WB_SR))
+        return 10 * np.log10(2.0 * env.sum(axis=1) / LEVEL_N_FFT) - nb_energy_db

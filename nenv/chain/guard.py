@@ -13,7 +13,11 @@ Checks, each recorded per hop with its measured value:
   disagrees with the observed narrowband envelope by more than the training
   99.9th percentile (RMS difference of the mean-removed log envelopes, dB);
 * ``novel``: the narrowband input lies farther from every codebook cell than
-  99.9% of the training frames did.
+  99.9% of the training frames did;
+* ``low_band`` (only when the low band is on): the level at which the envelope would
+  synthesise the low band (50-300 Hz, re the narrowband frame power) lies outside the
+  range of the true low band in training (0.1st..99.9th percentile, widened by
+  ``level_margin_db``), or is not finite.
 
 A rejected hop gets the codebook envelope of its nearest cell instead.
 """
@@ -42,6 +46,7 @@ class Check(IntFlag):
     LEVEL = 4
     MISMATCH = 8
     NOVEL = 16
+    LOW_BAND = 32
 
 
 CHECK_NAMES = {c: c.name.lower() for c in Check}
@@ -61,6 +66,8 @@ class GuardLimits:
     mismatch_max_db: float
     novelty_max: float
     stability_margin: float = 1e-3
+    low_min_db: float | None = None  # low band's range; None: models trained before the low band (finiteness only)
+    low_max_db: float | None = None
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -70,7 +77,7 @@ class GuardLimits:
         names = {f.name for f in fields(cls)}
         if set(d) - names or {"level_min_db", "level_max_db", "mismatch_max_db", "novelty_max"} - set(d):
             raise ConfigError(f"guard limits must have exactly the keys {sorted(names)}, got {sorted(d)}")
-        return cls(**{k: float(v) for k, v in d.items()})
+        return cls(**{k: None if v is None else float(v) for k, v in d.items()})
 
 
 @dataclass
@@ -84,6 +91,7 @@ class Decisions:
     mismatch_db: np.ndarray  # telephone-band disagreement
     novelty: np.ndarray  # distance to the nearest codebook cell
     cell: np.ndarray  # int, nearest codebook cell (the fallback used when rejected)
+    low_db: np.ndarray  # level of the low band the envelope implies (NaN when the low band is off)
 
     def head(self, n: int) -> "Decisions":
         """The verdicts on the first ``n`` hops."""
@@ -93,7 +101,7 @@ class Decisions:
     def concat(parts: list["Decisions"]) -> "Decisions":
         if not parts:
             z = np.zeros(0)
-            return Decisions(z.astype(bool), z.astype(int), z, z, z, z, z.astype(int))
+            return Decisions(z.astype(bool), z.astype(int), z, z, z, z, z.astype(int), z)
         return Decisions(*(np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(Decisions)))
 
 
@@ -155,8 +163,9 @@ def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
 class Guard:
     """Applies :class:`GuardLimits` to predicted envelopes."""
 
-    def __init__(self, limits: GuardLimits):
+    def __init__(self, limits: GuardLimits, *, low_band: bool = False):
         self.limits = limits
+        self.low_band = low_band  # whether the low band is synthesised (and so checked)
 
     def check(self, **kwargs) -> Decisions:
         """Verdict for each hop; see the module docstring for the checks (arguments: :meth:`assess`)."""
@@ -173,11 +182,13 @@ class Guard:
         novelty: np.ndarray,
         cell: np.ndarray,
         k: np.ndarray | None = None,
+        low_db: np.ndarray | None = None,
     ) -> tuple[Decisions, np.ndarray]:
         """:meth:`check`, and the reflection coefficients of ``a`` its stability test used
         [shape=(n, p)] (the synthesis reuses them for the hops it accepts). ``k``: those
         coefficients if the caller has them (the recursion that built ``a``), else the
-        step-down of ``a`` computes them."""
+        step-down of ``a`` computes them. ``low_db``: the low-band level of each envelope
+        (:func:`nenv.chain.features.low_band_level`), needed when the low band is on."""
         lim = self.limits
         a_ok = np.isfinite(a)
         finite = np.isfinite(ceps).all(axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & a_ok.all(axis=1)
@@ -196,6 +207,14 @@ class Guard:
         reasons |= np.where(np.isfinite(level_db) & level_bad, int(Check.LEVEL), 0)
         reasons |= np.where(finite & (mismatch > lim.mismatch_max_db), int(Check.MISMATCH), 0)
         reasons |= np.where(novelty > lim.novelty_max, int(Check.NOVEL), 0)
+        if self.low_band:
+            if low_db is None:
+                raise ValueError("the guard checks the low band: pass low_db")
+            lo = -np.inf if lim.low_min_db is None else lim.low_min_db
+            hi = np.inf if lim.low_max_db is None else lim.low_max_db
+            reasons |= np.where(finite & ~((low_db >= lo) & (low_db <= hi)), int(Check.LOW_BAND), 0)
+        else:
+            low_db = np.full(max_k.shape, np.nan)
         dec = Decisions(
             rejected=reasons != 0,
             reasons=reasons,
@@ -204,5 +223,6 @@ class Guard:
             mismatch_db=mismatch,
             novelty=np.asarray(novelty, dtype=float),
             cell=np.asarray(cell, dtype=int),
+            low_db=np.asarray(low_db, dtype=float),
         )
         return dec, k

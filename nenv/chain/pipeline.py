@@ -4,8 +4,10 @@ For every hop of 8 kHz input the :class:`Chain`
 
 1. frames and analyses the narrowband signal (LPC, order NB_ORDER), for systems that use it;
 2. asks its *system* for a 16 kHz high-band candidate for the hop;
-3. keeps only the band above 3.4 kHz of that candidate (elliptic high-pass);
-4. adds it to the interpolated narrowband signal, which is never altered.
+3. keeps only the band above 3.4 kHz of that candidate (elliptic high-pass) and, for a system made
+   with ``low_band=True``, also its 50-300 Hz band weighted per hop by the system (elliptic band
+   filter, :func:`nenv.dsp.synthesis.low_band_sos`);
+4. adds them to the interpolated narrowband signal, which is never altered.
 
 Every stage keeps its state as rows (:class:`nenv.dsp.rows.RowState`): row ``i`` is call ``i``.
 One call offline (:func:`extend`, in blocks), one call streaming
@@ -33,8 +35,8 @@ from nenv.media.audio import limit_peaks
 from nenv.errors import InputError
 from nenv.chain.estimators.base import NarrowbandAnalysis
 from nenv.dsp.rows import ALL, RowState
-from nenv.settings import HOP_NB, NB_ORDER, NB_SR, WIN_NB
-from nenv.dsp.synthesis import UPSAMPLER_DELAY, UPSAMPLER_HISTORY, isolation_sos, upsample_rows
+from nenv.settings import HOP_NB, HOP_WB, NB_ORDER, NB_SR, WIN_NB
+from nenv.dsp.synthesis import UPSAMPLER_DELAY, UPSAMPLER_HISTORY, isolation_sos, low_band_sos, upsample_rows
 from nenv.chain.systems import DEFAULT_EXCITATION, MODEL_SYSTEMS, REFERENCE_SYSTEMS, SYSTEMS, System, load_model, make_system
 
 __all__ = ["Chain", "DEFAULT_EXCITATION", "Extended", "LATENCY", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "System", "extend", "load_model", "make_system", "tail_padding"]
@@ -50,7 +52,12 @@ class Chain:
         self.system = system
         system.reset()  # a system starts with no calls: this chain's rows are its rows
         self._iso = np.ascontiguousarray(isolation_sos())
-        self._state = RowState(nb=np.zeros(WIN_NB - HOP_NB), up=np.zeros(UPSAMPLER_HISTORY), iso=np.zeros((self._iso.shape[0], 2)))
+        self.low_band = bool(getattr(system, "low_band", False))
+        state = dict(nb=np.zeros(WIN_NB - HOP_NB), up=np.zeros(UPSAMPLER_HISTORY), iso=np.zeros((self._iso.shape[0], 2)))
+        if self.low_band:
+            self._low = np.ascontiguousarray(low_band_sos())
+            state.update(low=np.zeros((self._low.shape[0], 2)), lw=np.zeros(()))  # filter memory, last hop's weight
+        self._state = RowState(**state)
         self.add_rows(rows)
 
     @property
@@ -91,10 +98,25 @@ class Chain:
         up = self._state.get("up", sel)
         low = upsample_rows(x, up)
         self._state.put("up", sel, up)
+        candidate = np.ascontiguousarray(candidate, dtype=np.float64)
         iso = self._state.get("iso", sel)
-        high = kernels.sosfilt(self._iso, np.ascontiguousarray(candidate), iso)
+        high = kernels.sosfilt(self._iso, candidate, iso)
         self._state.put("iso", sel, iso)
-        return low + high
+        out = low + high
+        if self.low_band:
+            out += self._low_band(candidate, sel, B, H)
+        return out
+
+    def _low_band(self, candidate: np.ndarray, sel, B: int, H: int) -> np.ndarray:
+        """The candidate's 50-300 Hz band, weighted per hop (linearly from one hop's weight to the
+        next's across each hop, so a weight change makes no step) and then isolated."""
+        prev = self._state.get("lw", sel)
+        weighted = kernels.hop_ramp(candidate, np.ascontiguousarray(self.system.low_weights, dtype=np.float64), prev, HOP_WB)
+        self._state.put("lw", sel, prev)
+        mem = self._state.get("low", sel)
+        y = kernels.sosfilt(self._low, weighted, mem)
+        self._state.put("low", sel, mem)
+        return y
 
     def _analyse(self, x: np.ndarray, sel, H: int) -> NarrowbandAnalysis:
         frames = self._state.frames("nb", sel, x, hop=HOP_NB)

@@ -3,6 +3,11 @@
 Every system works on rows (calls) like the chain (:mod:`nenv.chain.pipeline`): ``add_rows``,
 ``keep_rows`` and ``highband(x, analysis, sel)`` for the rows ``sel`` of its state.
 
+A system made with ``low_band=True`` (source-filter systems and the true band) also weights its
+candidate's 50-300 Hz part per hop (:attr:`low_weights`, set by each ``highband`` call): the chain
+isolates that part and adds it too. Source-filter systems weight it by the narrowband voicing
+(:func:`low_band_weights`), so nothing is added in unvoiced speech or silence.
+
 * ``neural``, ``codebook``, ``oracle``: :class:`SourceFilterSystem` (residual -> extended
   excitation -> all-pole envelope from an estimator);
 * ``imaging``: spectral folding, no model (:mod:`nenv.chain.estimators.imaging`);
@@ -23,7 +28,8 @@ from nenv.chain.estimators.imaging import ImagingSystem
 from nenv.chain.estimators.oracle import OracleEstimator
 from nenv.dsp.excitation import ExcitationExtender, Method, residual
 from nenv.dsp.rows import ALL
-from nenv.settings import HOP_NB, HOP_WB
+from nenv.chain import features
+from nenv.settings import HOP_NB, HOP_WB, LOW_BAND_GAIN_DB
 from nenv.dsp.synthesis import UPSAMPLER_DELAY, AllPoleSynthesizer
 
 DEFAULT_EXCITATION: Method = "rectify"
@@ -34,6 +40,8 @@ class System(Protocol):
 
     name: str
     needs_analysis: bool  # whether highband reads the narrowband LPC analysis
+    low_band: bool  # whether the chain adds the candidate's low band, weighted per hop by low_weights
+    low_weights: np.ndarray | None  # [shape=(B, H)] amplitude weights of the latest highband call's hops
 
     def add_rows(self, n: int) -> None: ...
 
@@ -53,6 +61,8 @@ class Unextended:
 
     name = "unextended"
     needs_analysis = False
+    low_band = False
+    low_weights = None
 
     def add_rows(self, n: int) -> None:
         pass
@@ -77,13 +87,29 @@ class TrueBand(ReferenceReader):
 
     name = "true-band"
     needs_analysis = False
+    low_weights = None
 
-    def __init__(self, reference: np.ndarray):
+    def __init__(self, reference: np.ndarray, *, low_band: bool = False):
         super().__init__(reference)
+        self.low_band = low_band  # the reference's own low band as well (the ceiling of the low band)
         self.reference = np.concatenate([np.zeros(UPSAMPLER_DELAY), self.reference])
 
     def highband(self, x: np.ndarray, analysis: NarrowbandAnalysis, sel=ALL) -> np.ndarray:
+        if self.low_band:
+            self.low_weights = np.ones((1, x.shape[1] // HOP_NB))
         return self.take(2 * x.shape[1])[None, :]
+
+
+VOICING_GATE = (0.4, 0.7)  # narrowband voicing at which the low band starts and reaches full weight (our choice)
+
+
+def low_band_weights(voicing: np.ndarray, gain: np.ndarray) -> np.ndarray:
+    """Amplitude weight of each hop's low band: 0 below VOICING_GATE[0] (unvoiced speech, noise, silence),
+    rising linearly to the LOW_BAND_GAIN_DB trim at VOICING_GATE[1]; 0 where the envelope's gain is 0
+    (digital silence) or not finite."""
+    lo, hi = VOICING_GATE
+    w = np.clip((voicing - lo) / (hi - lo), 0.0, 1.0) * 10 ** (LOW_BAND_GAIN_DB / 20)
+    return np.where(np.isfinite(gain) & (gain > 0), w, 0.0)
 
 
 class SourceFilterSystem:
@@ -91,10 +117,12 @@ class SourceFilterSystem:
 
     needs_analysis = True
 
-    def __init__(self, estimator: EnvelopeEstimator, *, excitation: Method = DEFAULT_EXCITATION):
+    def __init__(self, estimator: EnvelopeEstimator, *, excitation: Method = DEFAULT_EXCITATION, low_band: bool = False):
         self.estimator = estimator
         self.name = estimator.name
         self.excitation = excitation
+        self.low_band = low_band
+        self.low_weights: np.ndarray | None = None
         self._extender = ExcitationExtender(excitation, rows=0)
         self._synth = AllPoleSynthesizer(order=estimator.order, rows=0)
 
@@ -120,6 +148,9 @@ class SourceFilterSystem:
         u, rms = self._extender.rows(e, sel)
         k = env.k if env.k is not None else lpc.reflection(env.a)[0]
         log_g = np.log(np.maximum(env.gain / rms, 1e-12)).reshape(B, H)
+        if self.low_band:
+            v = env.voicing if env.voicing is not None else features.voicing(analysis.frames)
+            self.low_weights = low_band_weights(v, env.gain).reshape(B, H)
         return self._synth.rows(u.reshape(B, H * HOP_WB), k.reshape(B, H, -1), log_g, sel)
 
 
@@ -136,34 +167,35 @@ def load_model(model=None, *, flush_denormals: bool = False):
     return checkpoint.load(model, flush_denormals=flush_denormals)
 
 
-def _oracle(reference: np.ndarray | None, excitation: Method, model) -> System:
+def _oracle(reference: np.ndarray | None, excitation: Method, model, low_band: bool) -> System:
     if reference is None:
         raise InputError("the oracle system needs the wideband reference (it measures the true envelope)")
-    return SourceFilterSystem(OracleEstimator(reference), excitation=excitation)
+    return SourceFilterSystem(OracleEstimator(reference), excitation=excitation, low_band=low_band)
 
 
-def _true_band(reference: np.ndarray | None, excitation: Method, model) -> System:
+def _true_band(reference: np.ndarray | None, excitation: Method, model, low_band: bool) -> System:
     if reference is None:
         raise InputError("the true-band system needs the wideband reference (it adds the reference's own band)")
-    return TrueBand(reference)
+    return TrueBand(reference, low_band=low_band)
 
 
-def _neural(reference, excitation: Method, model) -> System:
+def _neural(reference, excitation: Method, model, low_band: bool) -> System:
     from nenv.chain.estimators.neural import NeuralEstimator
 
-    return SourceFilterSystem(NeuralEstimator(load_model(model)), excitation=excitation)
+    return SourceFilterSystem(NeuralEstimator(load_model(model), low_band=low_band), excitation=excitation, low_band=low_band)
 
 
-def _codebook(reference, excitation: Method, model) -> System:
+def _codebook(reference, excitation: Method, model, low_band: bool) -> System:
     from nenv.chain.estimators.codebook import CodebookEstimator
 
-    return SourceFilterSystem(CodebookEstimator(load_model(model).codebook), excitation=excitation)
+    return SourceFilterSystem(CodebookEstimator(load_model(model).codebook), excitation=excitation, low_band=low_band)
 
 
-# name -> factory(reference, excitation, model). Model-based systems take a checkpoint folder or object.
-SYSTEMS: dict[str, Callable[[np.ndarray | None, Method, object], System]] = {
-    "unextended": lambda ref, exc, model: Unextended(),
-    "imaging": lambda ref, exc, model: ImagingSystem(),
+# name -> factory(reference, excitation, model, low_band). Model-based systems take a checkpoint folder or object.
+# Imaging and unextended have no low band (there is nothing to shape one with).
+SYSTEMS: dict[str, Callable[[np.ndarray | None, Method, object, bool], System]] = {
+    "unextended": lambda ref, exc, model, low_band: Unextended(),
+    "imaging": lambda ref, exc, model, low_band: ImagingSystem(),
     "codebook": _codebook,
     "neural": _neural,
     "oracle": _oracle,
@@ -173,16 +205,18 @@ REFERENCE_SYSTEMS = ("oracle", "true-band")  # evaluation only: they read the wi
 MODEL_SYSTEMS = ("codebook", "neural")
 
 
-def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION, model=None) -> System:
+def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION, model=None, low_band: bool = False) -> System:
     """Build a system by name.
 
     'unextended', 'imaging'; 'codebook' and 'neural' (need ``model``: a checkpoint
     folder or :class:`nenv.chain.checkpoint.Checkpoint`, default the shipped model);
     'oracle' and 'true-band' (need ``reference``, the time-aligned 16 kHz original).
+    ``low_band``: add the 50-300 Hz band as well (source-filter systems and the true band;
+    unextended and imaging have none).
     """
     if name not in SYSTEMS:
         raise InputError(f"method={name!r} is not known: choose one of {', '.join(SYSTEMS)}")
-    return SYSTEMS[name](reference, excitation, model)
+    return SYSTEMS[name](reference, excitation, model, low_band)
 
 
 __all__ = ["DEFAULT_EXCITATION", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "load_model", "make_system"]

@@ -89,6 +89,7 @@ def _progress():
 
 ChannelOpt = Annotated[Optional[int], typer.Option("--channel", min=0, help="Channel of a multichannel file to use (0 = first).")]
 MixOpt = Annotated[bool, typer.Option("--mix", help="Average all channels of a multichannel file.")]
+LowBandOpt = Annotated[bool, typer.Option("--low-band", help="Also add an estimated 50-300 Hz band (neural, codebook, oracle, true-band). Off by default: it lowers WB-PESQ (docs/2026-12-03-low-band.md).")]
 
 
 def _default_method(model: Optional[Path]) -> str:

@@ -12,7 +12,7 @@ import typer
 
 from nenv.words import count
 from nenv.serve.streamfile import watch
-from nenv.cli.app import Excitation, InputFormat, LiveMethod, _default_method, _guarded, _kernels_ready, _say, app
+from nenv.cli.app import Excitation, LowBandOpt, InputFormat, LiveMethod, _default_method, _guarded, _kernels_ready, _say, app
 from nenv.errors import InputError, OutputError
 
 @app.command()
@@ -22,6 +22,7 @@ def stream(
     method: Annotated[Optional[LiveMethod], typer.Option(help="System (default: neural when a model is available).")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
     excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
+    low_band: LowBandOpt = False,
     record: Annotated[Optional[Path], typer.Option(help="Append the guard's record to this JSON Lines file while the call runs (neural only).")] = None,
     call_id: Annotated[str, typer.Option(help="Call id stored with the record.")] = "stdin",
     group: Annotated[Optional[str], typer.Option(help="Speaker group or codec label stored with the record.")] = None,
@@ -47,7 +48,7 @@ def stream(
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
     if method in pipeline.MODEL_SYSTEMS:
         model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
-    engine = CallEngine(system=pipeline.make_system(method, model=model, excitation=excitation))
+    engine = CallEngine(system=pipeline.make_system(method, model=model, excitation=excitation, low_band=low_band))
     tally, writer = watch(engine.system, record, source=call_id, group=group, n_hops=2**62)
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()
@@ -144,6 +145,7 @@ def relay(
     model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
     step_ms: Annotated[float, typer.Option(min=5.0, max=100.0, help="Neural method: all streams are extended together every this many ms (a packet waits at most one step; 10 halves the wait for more CPU per call).")] = 20.0,
     symmetric: Annotated[bool, typer.Option("--symmetric", help="Send from the listening port (symmetric RTP, which many gateways and NATs expect).")] = False,
+    low_band: LowBandOpt = False,
 ) -> None:
     """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one call per SSRC. Stops on SIGTERM/Ctrl-C."""
     _kernels_ready()
@@ -160,9 +162,9 @@ def relay(
     ck = pipeline.load_model(model, flush_denormals=True) if method in pipeline.MODEL_SYSTEMS else None
     try:
         # the neural system runs every stream in one batched engine (one pass per hop for all calls)
-        r = rtp.Relay(lambda: pipeline.make_system(method, model=ck), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
+        r = rtp.Relay(lambda: pipeline.make_system(method, model=ck, low_band=low_band), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
                       payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout,
-                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0, symmetric=symmetric)
+                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0, symmetric=symmetric, low_band=low_band)
     except OSError as e:
         raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
     host = f"[{r.address[0]}]" if ":" in r.address[0] else r.address[0]

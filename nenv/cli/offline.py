@@ -12,7 +12,7 @@ import typer
 
 from nenv.words import count
 from nenv import __version__
-from nenv.cli.app import DEMO_CLIP, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
+from nenv.cli.app import DEMO_CLIP, LowBandOpt, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
 from nenv.errors import InputError
 
 @app.command()
@@ -63,6 +63,7 @@ def extend(
     method: Annotated[Optional[Method], typer.Option(help="System (default: neural when a model is available); oracle and true-band are for evaluation only and need --reference.")] = None,
     model: Annotated[Optional[Path], typer.Option(help="Model folder made by 'nenv train' (default: $NENV_MODEL, else the shipped model).")] = None,
     excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
+    low_band: LowBandOpt = False,
     reference: Annotated[Optional[Path], typer.Option(help="Wideband original, for --method oracle or true-band only (one file).")] = None,
     figure: Annotated[Optional[Path], typer.Option(help="Also write a spectrogram figure (.png, .svg, .pdf): input vs output (one file).")] = None,
     resample: Annotated[bool, typer.Option("--resample", help="Accept input at another rate (4-192 kHz) and resample it to 8 kHz.")] = False,
@@ -79,7 +80,7 @@ def extend(
     _kernels_ready()
     from nenv.serve import batch, streamfile
 
-    opts = streamfile.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, resample=resample, channel=channel, mix=mix, group=group)
+    opts = streamfile.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, low_band=low_band, resample=resample, channel=channel, mix=mix, group=group)
     if batch.is_batch(inputs):
         if reference is not None or figure is not None:
             raise InputError("--reference and --figure work on one input file at a time")
@@ -185,6 +186,7 @@ def evaluate(
     method: Annotated[list[MethodChoice], typer.Option(help="Systems to compare; repeat. Default: every available system.")] = [],
     excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
     model: Annotated[Optional[Path], typer.Option(help="Model folder for the neural and codebook systems (default: the shipped model, if any).")] = None,
+    low_band: LowBandOpt = False,
 ) -> None:
     """Score every system against wideband references passed through the telephone channel."""
     _kernels_ready()
@@ -202,7 +204,7 @@ def evaluate(
         systems = ev.DEFAULT_SYSTEMS
     with _progress() as bar:
         task = bar.add_task("evaluating", total=len(references) * len(law) * len(systems))
-        rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task))
+        rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task), low_band=low_band)
     table = rows + ev.means(rows)
     output_folder(out)
     md = ev.to_markdown(table)

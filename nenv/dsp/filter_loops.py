@@ -52,15 +52,68 @@ def sosfilt(sos, x, state):
     n_sec = sos.shape[0]
     y = np.empty((n_rows, n))
     for b in range(n_rows):
+        # sections over the whole row, two at a time (the second one sample behind the first, so
+        # their two chains of dependent steps overlap), states in locals: the same operations in the
+        # same order per sample as sample by sample through every section
         for i in range(n):
-            v = x[b, i]
-            for s in range(n_sec):
-                z0, z1 = state[b, s, 0], state[b, s, 1]
-                out = sos[s, 0] * v + z0
-                state[b, s, 0] = sos[s, 1] * v - sos[s, 4] * out + z1
-                state[b, s, 1] = sos[s, 2] * v - sos[s, 5] * out
-                v = out
-            y[b, i] = v
+            y[b, i] = x[b, i]
+        for s in range(0, n_sec - 1, 2):
+            p0, p1, p2, p4, p5 = sos[s, 0], sos[s, 1], sos[s, 2], sos[s, 4], sos[s, 5]
+            q0, q1, q2, q4, q5 = sos[s + 1, 0], sos[s + 1, 1], sos[s + 1, 2], sos[s + 1, 4], sos[s + 1, 5]
+            z0, z1 = state[b, s, 0], state[b, s, 1]
+            w0, w1 = state[b, s + 1, 0], state[b, s + 1, 1]
+            if n == 0:
+                continue
+            v = y[b, 0]
+            prev = p0 * v + z0
+            z0 = p1 * v - p4 * prev + z1
+            z1 = p2 * v - p5 * prev
+            for i in range(1, n):
+                v = y[b, i]
+                out = p0 * v + z0
+                z0 = p1 * v - p4 * out + z1
+                z1 = p2 * v - p5 * out
+                o2 = q0 * prev + w0
+                w0 = q1 * prev - q4 * o2 + w1
+                w1 = q2 * prev - q5 * o2
+                y[b, i - 1] = o2
+                prev = out
+            o2 = q0 * prev + w0
+            w0 = q1 * prev - q4 * o2 + w1
+            w1 = q2 * prev - q5 * o2
+            y[b, n - 1] = o2
+            state[b, s, 0], state[b, s, 1] = z0, z1
+            state[b, s + 1, 0], state[b, s + 1, 1] = w0, w1
+        if n_sec % 2:
+            s = n_sec - 1
+            p0, p1, p2, p4, p5 = sos[s, 0], sos[s, 1], sos[s, 2], sos[s, 4], sos[s, 5]
+            z0, z1 = state[b, s, 0], state[b, s, 1]
+            for i in range(n):
+                v = y[b, i]
+                out = p0 * v + z0
+                z0 = p1 * v - p4 * out + z1
+                z1 = p2 * v - p5 * out
+                y[b, i] = out
+            state[b, s, 0], state[b, s, 1] = z0, z1
+    return y
+
+
+@jit.plain
+def hop_ramp(x, w, prev, hop):
+    """``x`` times per-hop weights that move linearly from one hop's to the next's across each hop
+    (sample ``j`` of hop ``h`` gets ``w[h-1] + (w[h] - w[h-1]) * (j + 1) / hop``; before the first,
+    ``prev``), so a weight change makes no step. x [shape=(B, H * hop)], w [shape=(B, H)], prev
+    [shape=(B,)] each row's last weight, updated in place. Returns [shape=(B, H * hop)]."""
+    n_rows, n_hops = w.shape
+    y = np.empty(x.shape)
+    for b in range(n_rows):
+        g0 = prev[b]
+        for h in range(n_hops):
+            g1 = w[b, h]
+            for j in range(hop):
+                y[b, h * hop + j] = x[b, h * hop + j] * (g0 + (g1 - g0) * ((j + 1) / hop))
+            g0 = g1
+        prev[b] = g0
     return y
 
 

@@ -28,7 +28,7 @@ import numpy as np
 from nenv.dsp import filter_loops, lpc_loops
 
 LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "band_ratio")
-FILTER_KERNELS = ("rectify", "sosfilt", "fir", "upsample2", "synthesize")
+FILTER_KERNELS = ("rectify", "sosfilt", "hop_ramp", "fir", "upsample2", "synthesize")
 PUBLIC = LPC_KERNELS + FILTER_KERNELS
 loops = SimpleNamespace(**{n: getattr(lpc_loops, n) for n in LPC_KERNELS}, **{n: getattr(filter_loops, n) for n in FILTER_KERNELS})
 
@@ -57,6 +57,7 @@ def _signatures() -> dict:
         loops.residual: (r2, r2, i),
         loops.rectify: (r2, w1, f, i),
         loops.sosfilt: (r2, r2, w3),
+        loops.hop_ramp: (r2, r2, w1, i),
         loops.fir: (r1, r2, w2),
         loops.upsample2: (r2, w2, r1, r1),
         loops.synthesize: (r2, r3, r2, w2, w1, w2, i, f),
@@ -87,6 +88,7 @@ def _run_each_once() -> None:
     loops.residual(f, a, 8)
     loops.rectify(f, np.zeros(2), 0.99, 16)
     loops.sosfilt(np.array([[1.0, 0.0, 0.0, 1.0, 0.1, 0.0]]), f, np.zeros((2, 1, 2)))
+    loops.hop_ramp(f, np.ones((2, 2)), np.zeros(2), 16)
     loops.fir(np.ones(3), f, np.zeros((2, 2)))
     loops.upsample2(f, np.zeros((2, 2)), np.ones(3), np.ones(2))
     loops.synthesize(np.ones((2, 16)), np.zeros((2, 2, 4)), np.zeros((2, 2)), np.zeros((2, 4)), np.zeros(2), np.zeros((2, 4)), 2, 0.9999)

@@ -91,9 +91,11 @@ def to_text(rows: list[SourceRow]) -> str:
 def rerun(rec: Records, checkpoint) -> list[dict]:
     """Recompute every recorded rejection with ``checkpoint``'s network and guard.
 
-    Returns one dict per reject line: source, hop, old reasons, new reasons.
+    Returns one dict per reject line: source, hop, old reasons, new reasons. Records made with the
+    low band on (they hold its level) are re-checked with the low band on.
     """
-    from nenv.chain.features import envelope_from_prediction
+    from nenv.chain.features import envelope_from_prediction, low_band_level
+    from nenv.settings import LOW_BAND_GAIN_DB
 
     if not rec.rejects:
         return []
@@ -109,7 +111,9 @@ def rerun(rec: Records, checkpoint) -> list[dict]:
     ceps, level = checkpoint.predict(x)
     a, gain = envelope_from_prediction(ceps, level, energy, order=checkpoint.features.wb_order)
     cell, novelty = checkpoint.codebook.nearest(current)
-    dec = Guard(checkpoint.limits).check(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell)
+    low_band = any(r.get("values", {}).get("low_db") is not None or "low_band" in r["reasons"] for r in rec.rejects)
+    low_db = low_band_level(a, gain, energy) + LOW_BAND_GAIN_DB if low_band else None
+    dec = Guard(checkpoint.limits, low_band=low_band).check(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell, low_db=low_db)
     return [{"source": r["source"], "hop": r["hop"], "old": r["reasons"], "new": reason_names(int(m))} for r, m in zip(rec.rejects, dec.reasons)]
 
 

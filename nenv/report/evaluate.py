@@ -35,6 +35,8 @@ MEASURE_LABELS = {
     "lsd_env_high": "env LSD 3.4-8k [dB]",
     "lsd_env_full": "env LSD 0-8k [dB]",
     "level_error_high": "HB level err [dB]",
+    "lsd_low": "LSD 50-300 [dB]",
+    "level_error_low": "LB level err [dB]",
     "pesq_wb": "WB-PESQ [MOS]",
     "visqol": "ViSQOL [MOS]",
 }
@@ -81,8 +83,10 @@ def run(
     excitation: str = pipeline.DEFAULT_EXCITATION,
     model=None,
     on_step: Callable[[str], None] | None = None,
+    low_band: bool = False,
 ) -> tuple[list[Row], list[Clip]]:
-    """Score every system on every reference and channel law.
+    """Score every system on every reference and channel law (``low_band``: systems that can add
+    the 50-300 Hz band do, the true band adds the reference's own).
 
     Returns the rows of the table and the signals (for figures).
     """
@@ -99,7 +103,7 @@ def run(
             nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
             outs = {}
             for s in systems:
-                y = pipeline.extend(nb, system=pipeline.make_system(s, reference=ref, excitation=excitation, model=model)).y
+                y = pipeline.extend(nb, system=pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=low_band)).y
                 outs[s] = y
                 rows.append(Row(name, law, s, Scores.compute(ref, y)))
                 if on_step:
@@ -160,8 +164,10 @@ MEASURES_NOTE = """\
 Measures (nenv.report.measures): LSD = log-spectral distance, 512-point Hann frames every 10 ms, power
 floored 80 dB below the reference's loudest bin, mean over frames within 40 dB of the loudest;
 "env" = the same on order-16 LPC envelopes; HB level err = median over active frames of the
-3.4-8 kHz energy ratio, output / reference (positive = too loud); WB-PESQ = ITU-T P.862.2 via the
+3.4-8 kHz energy ratio, output / reference (positive = too loud); LSD 50-300 and LB level err: the
+same for the low band, the level over frames where the reference holds a low band; WB-PESQ = ITU-T P.862.2 via the
 `pesq` package; ViSQOL = ViSQOL v3 speech mode with its lattice model (Chinen et al. 2020) via
 the `visqol-python` package. Lower is better except WB-PESQ and ViSQOL. "true-band" adds the
-reference's own band above 3.4 kHz to the unextended signal: the ceiling of any extension. The added band is estimated, not recorded.
+reference's own band above 3.4 kHz (with --low-band, also its own 50-300 Hz) to the unextended signal: the
+ceiling of any extension. The added band is estimated, not recorded.
 """

@@ -21,7 +21,7 @@ import numpy as np
 
 from nenv.dsp import cepstrum, lpc
 from nenv.errors import InputError
-from nenv.settings import BAND_EDGE_HZ, WB_SR
+from nenv.settings import BAND_EDGE_HZ, LOW_BAND_HZ, WB_SR
 
 N_FFT = 512  # samples at 16 kHz = 32 ms
 HOP = 160  # samples = 10 ms
@@ -30,6 +30,8 @@ FLOOR_DB = 80.0  # dB below the loudest reference bin: power floor
 ENVELOPE_ORDER = 16  # LPC order of the smoothed (envelope-only) spectra
 HIGH_BAND = (BAND_EDGE_HZ, WB_SR / 2)  # Hz
 FULL_BAND = (0.0, WB_SR / 2)  # Hz
+LOW_BAND = LOW_BAND_HZ  # Hz, 50-300: the low band wideband telephony adds (bins 62.5-281 Hz on this grid)
+LOW_PRESENT_DB = 30.0  # dB: frames whose reference low band is within this of its loudest frame's hold a low band
 
 
 def frames(y: np.ndarray) -> np.ndarray:
@@ -124,6 +126,26 @@ def high_band_level_error(ref: np.ndarray, est: np.ndarray) -> float:
     e_ref = np.maximum(p_ref[active][:, sel].sum(axis=1), floor)
     e_est = np.maximum(p_est[active][:, sel].sum(axis=1), floor)
     return float(np.median(10 * np.log10(e_est / e_ref)))
+
+
+def low_band_level_error(ref: np.ndarray, est: np.ndarray) -> float:
+    """Median of ``10 log10(E_est / E_ref)`` in 50-300 Hz, in dB, over the active frames where the
+    reference holds a low band (its 50-300 Hz power within LOW_PRESENT_DB of its loudest frame's:
+    voiced speech, in practice; a rule of our own). Positive: the low band is louder than the reference's.
+    """
+    _check(ref, est)
+    p_ref, p_est = power_spectra(ref), power_spectra(est)
+    return _low_level_error(p_ref, p_est)
+
+
+def _low_level_error(p_ref: np.ndarray, p_est: np.ndarray) -> float:
+    sel = _band(LOW_BAND)
+    e_ref, e_est = p_ref[:, sel].sum(axis=1), p_est[:, sel].sum(axis=1)
+    frames = _active(p_ref) & (e_ref > 0) & (e_ref >= e_ref.max() * 10 ** (-LOW_PRESENT_DB / 10))
+    if not np.any(frames):
+        return float("nan")
+    floor = p_ref.max() * 10 ** (-FLOOR_DB / 10)
+    return float(np.median(10 * np.log10(np.maximum(e_est[frames], floor) / np.maximum(e_ref[frames], floor))))
 
 
 def pesq_wb(ref: np.ndarray, est: np.ndarray) -> float:
@@ -225,6 +247,8 @@ class Scores:
     lsd_env_high: float
     lsd_env_full: float
     level_error_high: float
+    lsd_low: float  # 50-300 Hz
+    level_error_low: float  # 50-300 Hz, frames where the reference holds a low band
     pesq_wb: float  # MOS-LQO, 1.04..4.64
     visqol: float  # MOS-LQO, 1..5 (speech mode)
 
@@ -239,6 +263,8 @@ class Scores:
             lsd_env_high=_lsd(e_ref, e_est, HIGH_BAND, p_ref),
             lsd_env_full=_lsd(e_ref, e_est, FULL_BAND, p_ref),
             level_error_high=high_band_level_error(ref, est),
+            lsd_low=_lsd(p_ref, p_est, LOW_BAND, p_ref),
+            level_error_low=_low_level_error(p_ref, p_est),
             pesq_wb=pesq_wb(ref, est),
             visqol=visqol_speech(ref, est),
         )

@@ -111,7 +111,7 @@ class RecordWriter:
                     "hop": hop,
                     "t": round(hop * HOP_S, 4),
                     "reasons": reason_names(int(dec.reasons[i])),
-                    "values": {"max_k": _f(dec.max_k[i]), "level_db": _f(dec.level_db[i]), "mismatch_db": _f(dec.mismatch_db[i]), "novelty": _f(dec.novelty[i])},
+                    "values": {"max_k": _f(dec.max_k[i]), "level_db": _f(dec.level_db[i]), "mismatch_db": _f(dec.mismatch_db[i]), "novelty": _f(dec.novelty[i]), "low_db": _f(dec.low_db[i])},
                     "limits": self.limits,
                     "fallback": {"kind": "codebook", "cell": int(dec.cell[i])},
                     "x": [_f(v) for v in x[i]],

@@ -38,13 +38,13 @@ class _Call:
 class MultiCallEngine:
     """Batched streaming extension for many calls sharing one model (or one model-free method)."""
 
-    def __init__(self, model=None, *, method: str = "neural", guard: bool = True, system: System | None = None):
+    def __init__(self, model=None, *, method: str = "neural", guard: bool = True, system: System | None = None, low_band: bool = False):
         """``model``: a checkpoint (loaded, a folder, or None for the shipped model) for 'neural' and
         'codebook'; ``method``: any system that serves several calls ('neural', 'codebook', 'imaging',
         'unextended'); ``system``: a ready-made system instead. ``guard=False`` turns the neural
-        method's guard off (for measurements only)."""
+        method's guard off (for measurements only). ``low_band``: add the 50-300 Hz band as well."""
         if system is None:
-            system = make_system(method, model=model)
+            system = make_system(method, model=model, low_band=low_band)
             if not guard and hasattr(system, "estimator"):
                 system.estimator.guard = None
         if hasattr(getattr(system, "estimator", None), "keep_decisions"):

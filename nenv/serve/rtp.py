@@ -122,6 +122,7 @@ class Relay:
         reorder_window: int = 4,
         idle_timeout_s: float = 2.0,
         batch_model=None,
+        low_band: bool = False,
         tick_s: float = 0.02,
         symmetric: bool = False,
     ):
@@ -166,7 +167,7 @@ class Relay:
         if batch_model is not None:
             from nenv.serve.multicall import MultiCallEngine
 
-            self.multi = MultiCallEngine(batch_model)
+            self.multi = MultiCallEngine(batch_model, low_band=low_band)
         self.tick = tick_s
         self._last_step = self._last_expiry = time.monotonic()
         self._by_call: dict[str, _Stream] = {}

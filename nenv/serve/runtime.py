@@ -79,15 +79,16 @@ class CallEngine:
 
     latency_ms = ALGORITHMIC_LATENCY_MS
 
-    def __init__(self, model=None, *, method: str = "neural", system: System | None = None, keep_decisions: bool = False):
+    def __init__(self, model=None, *, method: str = "neural", system: System | None = None, keep_decisions: bool = False, low_band: bool = False):
         """``model``: a checkpoint (loaded, a folder, or None for the shipped model) for the 'neural'
         and 'codebook' methods; ``method``: 'neural' (default), 'codebook', 'imaging' or
         'unextended'; ``system``: a ready-made system instead (any of :mod:`nenv.chain.systems`).
         ``keep_decisions``: keep every hop's guard verdict for ``system.estimator.record()``
         (memory grows with the call's length; off by default: count verdicts with the
-        estimator's ``listener`` or :func:`nenv.serve.streamfile.watch` instead)."""
+        estimator's ``listener`` or :func:`nenv.serve.streamfile.watch` instead). ``low_band``: add the
+        50-300 Hz band as well (neural and codebook; see :mod:`nenv.chain.systems`)."""
         if system is None:
-            system = make_system(method, model=model)
+            system = make_system(method, model=model, low_band=low_band)
         estimator = getattr(system, "estimator", None)
         if hasattr(estimator, "keep_decisions"):
             estimator.keep_decisions = keep_decisions

@@ -33,6 +33,7 @@ class Options:
     method: str = "neural"
     model: Optional[str] = None  # model folder; None = default model
     excitation: str = "rectify"
+    low_band: bool = False
     resample: bool = False
     channel: Optional[int] = None
     mix: bool = False
@@ -78,7 +79,7 @@ def _system(opts: Options, reference: Optional[np.ndarray]):
     if opts.excitation not in METHODS:
         raise InputError(f"--excitation {opts.excitation} is not known: choose one of {', '.join(METHODS)}")
     model = load_checkpoint(opts.model) if opts.method in pipeline.MODEL_SYSTEMS else None
-    return pipeline.make_system(opts.method, reference=reference, excitation=opts.excitation, model=model)
+    return pipeline.make_system(opts.method, reference=reference, excitation=opts.excitation, model=model, low_band=opts.low_band)
 
 
 def _narrowband_blocks(reader, *, resample: bool, notes: list) -> tuple[Iterator[np.ndarray], int]:

@@ -24,12 +24,13 @@ import numpy as np
 
 from nenv.dsp import channel, lpc
 from nenv.chain.estimators.base import NarrowbandAnalysis
-from nenv.chain.features import ContextStacker, FeatureSettings, narrowband_features, wideband_targets
+from nenv.chain.features import ContextStacker, FeatureSettings, low_band_target, narrowband_features, wideband_targets
 from nenv.settings import HOP_NB, HOP_WB, NB_SR, WB_SR
 from nenv.media import audio
 from nenv.train.corpus import load_native
 from nenv.train.recipe import Recipe
 
+CACHE_FIELDS = "with-low-band"  # what a cached file holds; a change makes older caches misses
 AUGMENT_KEYS = ("copies", "warp_max", "laws", "level_min_dbov", "level_max_dbov", "noise_probability", "snr_min_db", "snr_max_db", "active_range_db", "seed")
 
 
@@ -43,6 +44,7 @@ class Pairs:
     a_nb : [shape=(n, NB_ORDER+1)] narrowband LPC (for guard calibration)
     group : [shape=(n,)] int index of the file the hop came from
     seconds : float, narrowband audio processed (all copies)
+    low : [shape=(n,)] true low-band (50-300 Hz) level re the narrowband frame, dB (guard calibration)
     """
 
     x: np.ndarray
@@ -52,6 +54,7 @@ class Pairs:
     a_nb: np.ndarray
     group: np.ndarray
     seconds: float
+    low: np.ndarray | None = None
 
     @staticmethod
     def concat(parts: Sequence["Pairs"]) -> "Pairs":
@@ -60,6 +63,7 @@ class Pairs:
             *(np.concatenate([getattr(p, k) for p in parts]) for k in ("x", "current", "ceps", "level", "a_nb")),
             group=np.concatenate(groups) if groups else np.zeros(0, int),
             seconds=float(sum(p.seconds for p in parts)),
+            low=np.concatenate([p.low for p in parts]) if parts and all(p.low is not None for p in parts) else None,
         )
 
 
@@ -109,7 +113,8 @@ def pairs_from_signal(y: np.ndarray, *, recipe: Recipe, settings: FeatureSetting
         wb_frames = lpc.frame(wb, frame_length=settings.win_wb, hop_length=HOP_WB)
         ceps, lev = wideband_targets(wb_frames, feats[:, 10], settings=settings)
         keep = feats[:, 10] > feats[:, 10].max() - recipe.active_range_db
-        parts.append(Pairs(stacked[keep], feats[keep], ceps[keep], lev[keep], a[keep], np.zeros(int(keep.sum()), int), nb.size / NB_SR))
+        low = low_band_target(wb_frames, feats[:, 10])
+        parts.append(Pairs(stacked[keep], feats[keep], ceps[keep], lev[keep], a[keep], np.zeros(int(keep.sum()), int), nb.size / NB_SR, low[keep]))
     if not parts:
         return _empty(settings)
     out = Pairs.concat(parts)
@@ -118,13 +123,13 @@ def pairs_from_signal(y: np.ndarray, *, recipe: Recipe, settings: FeatureSetting
 
 
 def _empty(settings: FeatureSettings) -> Pairs:
-    return Pairs(np.zeros((0, settings.input_dim)), np.zeros((0, settings.n_inputs)), np.zeros((0, settings.n_wb_ceps)), np.zeros(0), np.zeros((0, settings.nb_order + 1)), np.zeros(0, int), 0.0)
+    return Pairs(np.zeros((0, settings.input_dim)), np.zeros((0, settings.n_inputs)), np.zeros((0, settings.n_wb_ceps)), np.zeros(0), np.zeros((0, settings.nb_order + 1)), np.zeros(0, int), 0.0, np.zeros(0))
 
 
 def _cache_key(path: str, recipe: Recipe, settings: FeatureSettings) -> str:
     st = os.stat(path)
     aug = {k: getattr(recipe, k) for k in AUGMENT_KEYS}
-    blob = json.dumps([os.path.abspath(path), st.st_size, st.st_mtime_ns, settings.to_dict(), aug], sort_keys=True)
+    blob = json.dumps([os.path.abspath(path), st.st_size, st.st_mtime_ns, settings.to_dict(), aug, CACHE_FIELDS], sort_keys=True)
     return hashlib.sha1(blob.encode()).hexdigest()
 
 
@@ -133,7 +138,7 @@ def _file_pairs(path: str, index: int, recipe: Recipe, settings: FeatureSettings
     cached = Path(cache_dir) / f"{key}.npz" if cache_dir else None
     if cached is not None and cached.is_file():
         with np.load(cached, allow_pickle=False) as z:
-            return Pairs(z["x"], z["current"], z["ceps"], z["level"], z["a_nb"], z["group"], float(z["seconds"]))
+            return Pairs(z["x"], z["current"], z["ceps"], z["level"], z["a_nb"], z["group"], float(z["seconds"]), z["low"])
     y, sr = load_native(path)
     # augmentation draws depend on the recording itself, not on where it lies or when it was copied there
     # (the cache key must, and seeding from it made the same corpus give another model in another folder)
@@ -144,7 +149,7 @@ def _file_pairs(path: str, index: int, recipe: Recipe, settings: FeatureSettings
 
         with atomic_output(cached) as tmp:
             with open(tmp, "wb") as fh:
-                np.savez(fh, x=pairs.x, current=pairs.current, ceps=pairs.ceps, level=pairs.level, a_nb=pairs.a_nb, group=pairs.group, seconds=np.array(pairs.seconds))
+                np.savez(fh, x=pairs.x, current=pairs.current, ceps=pairs.ceps, level=pairs.level, a_nb=pairs.a_nb, group=pairs.group, seconds=np.array(pairs.seconds), low=pairs.low)
     return pairs
 
 

@@ -59,6 +59,13 @@ class Result:
     record: dict
 
 
+def low_band_range(low: np.ndarray, recipe) -> tuple[float, float]:
+    """The guard's low-band range: the training hops' true low-band levels (re the narrowband frame)
+    from the (100 - guard_percentile)th to the guard_percentile-th percentile, widened by level_margin_db."""
+    lo, hi = np.percentile(low, [100 - recipe.guard_percentile, recipe.guard_percentile])
+    return float(lo - recipe.level_margin_db), float(hi + recipe.level_margin_db)
+
+
 def envelope_lsd(ceps_true, level_true, ceps_pred, level_pred) -> np.ndarray:
     """Per-hop high-band LSD (dB) between two envelopes given as shape cepstra + level.
 
@@ -252,12 +259,15 @@ def train(
         a_cal, _ = envelope_from_prediction(c_cal, l_cal, np.zeros(pick.size))
         mismatch = telephone_band_mismatch(a_cal, tr.a_nb[pick])
         lo, hi = np.percentile(tr.level, [100 - recipe.guard_percentile, recipe.guard_percentile])
+        low_lo, low_hi = low_band_range(tr.low, recipe)
         limits = GuardLimits(
             level_min_db=float(lo - recipe.level_margin_db),
             level_max_db=float(hi + recipe.level_margin_db),
             mismatch_max_db=float(np.percentile(mismatch, recipe.guard_percentile)),
             novelty_max=book.novelty_limit,
             stability_margin=recipe.stability_margin,
+            low_min_db=low_lo,
+            low_max_db=low_hi,
         )
         # 5. validation: network vs codebook on held-out speakers
         c_va, l_va = _predict(model, va.x, x_mean, x_std, y_mean, y_std)

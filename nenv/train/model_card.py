@@ -190,7 +190,7 @@ error {m['val_median_level_error_db']['neural']:+.2f} dB, guard rejections {100 
 {selection_md}
 ### Every clip
 
-{evaluate.to_markdown([evaluate.Row(r['clip'], r['law'], r['system'], evaluate.Scores(**{k: r[k] for k in evaluate.MEASURE_NAMES})) for r in table])}
+{evaluate.to_markdown([evaluate.Row(r['clip'], r['law'], r['system'], evaluate.Scores(**{k: r.get(k, float('nan')) for k in evaluate.MEASURE_NAMES})) for r in table])}
 {evaluate.MEASURES_NOTE}
 ![spectrograms](evaluation.png)
 

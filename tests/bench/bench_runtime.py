@@ -50,10 +50,10 @@ def main() -> None:
     seconds = x.size / 8000
 
     # 1. offline, interleaved rounds
-    times: dict[str, list[float]] = {"imaging": [], "neural": []}
+    times: dict[str, list[float]] = {"imaging": [], "neural": [], "neural+low": []}
     for _ in range(args.repeats):
         for name in times:
-            system = pipeline.make_system(name, model=model)
+            system = pipeline.make_system(name.removesuffix("+low"), model=model, low_band=name.endswith("+low"))
             t0 = time.perf_counter()
             pipeline.extend(x, system=system)
             times[name].append(time.perf_counter() - t0)
@@ -61,7 +61,18 @@ def main() -> None:
     base = statistics.median(times["imaging"])
     for name, t in times.items():
         med = statistics.median(t)
-        print(f"  {name:<8} {seconds / med:8.0f}x real time   {med / base:5.2f}x the time of imaging")
+        print(f"  {name:<10} {seconds / med:8.0f}x real time   {med / base:5.2f}x the time of imaging")
+    print(f"  the low band (--low-band) adds {100 * (statistics.median(times['neural+low']) / statistics.median(times['neural']) - 1):.0f}% to the neural method's time (goal: at most 15%)")
+    # one call, 10 ms chunks, with and without the low band, chunk by chunk alternately
+    pair = {k: CallEngine(system=pipeline.make_system("neural", model=model, low_band=k)) for k in (False, True)}
+    spent: dict[bool, list[float]] = {False: [], True: []}
+    for s in range(0, x.size - 80, 80):
+        for k, e in pair.items():
+            t0 = time.perf_counter()
+            e.feed(x[s : s + 80])
+            spent[k].append(time.perf_counter() - t0)
+    p50 = {k: np.percentile(v[10:], 50) for k, v in spent.items()}
+    print(f"  one call, 10 ms chunks: the low band adds {100 * (p50[True] / p50[False] - 1):.0f}% to the p50 per chunk ({p50[False] * 1000:.3f} -> {p50[True] * 1000:.3f} ms)")
 
     # 2. streaming, one call, 10 ms chunks; then as many runs of a fixed reference workload, to show
     # how much of the spread is the machine's own (a shared machine's p99 is well above its p50).

@@ -37,11 +37,14 @@ class Envelope:
     k : np.ndarray [shape=(n, p)] or None, the reflection coefficients of ``a`` when the
         estimator has them already (exactly what :func:`nenv.dsp.lpc.reflection` gives for ``a``);
         the synthesis computes them otherwise
+    voicing : np.ndarray [shape=(n,)] or None, the narrowband voicing of each hop when the estimator
+        computed it (:func:`nenv.chain.features.voicing`); the low band computes it otherwise
     """
 
     a: np.ndarray
     gain: np.ndarray
     k: np.ndarray | None = None
+    voicing: np.ndarray | None = None
 
 
 class EnvelopeEstimator:

@@ -17,7 +17,7 @@ import numpy as np
 
 from nenv.errors import ConfigError
 from nenv.chain.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAnalysis
-from nenv.chain.features import ENERGY_FLOOR_DB, envelope_from_prediction, narrowband_features
+from nenv.chain.features import ENERGY_FLOOR_DB, VOICING_COLUMN, envelope_from_prediction, narrowband_features
 from nenv.settings import WB_ORDER
 
 ENERGY_COLUMN = 10  # index of energy_db in the narrowband features
@@ -120,4 +120,4 @@ class CodebookEstimator(EnvelopeEstimator):
         cell, _ = self.codebook.nearest(feats)
         a, gain = self.codebook.envelopes(cell, feats[:, ENERGY_COLUMN])
         silent = feats[:, ENERGY_COLUMN] <= ENERGY_FLOOR_DB
-        return Envelope(a=a, gain=np.where(silent, 0.0, gain))
+        return Envelope(a=a, gain=np.where(silent, 0.0, gain), voicing=feats[:, VOICING_COLUMN])

@@ -48,6 +48,8 @@ class ImagingSystem:
 
     name = "imaging"
     needs_analysis = False
+    low_band = False  # nothing to shape a low band with
+    low_weights = None
 
     def __init__(self, *, db_at_4k: float = SHAPING_DB_AT_4K, db_at_8k: float = SHAPING_DB_AT_8K):
         self._taps = np.ascontiguousarray(np.concatenate([np.zeros(UPSAMPLER_DELAY), shaping_taps(db_at_4k, db_at_8k)]))

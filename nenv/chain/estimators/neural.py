@@ -8,10 +8,10 @@ from nenv.dsp import lpc
 from nenv.chain.checkpoint import Checkpoint
 from nenv.chain.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAnalysis
 from nenv.chain.estimators.codebook import ENERGY_COLUMN
-from nenv.chain.features import ENERGY_FLOOR_DB, envelope_from_prediction, narrowband_features, stack_context
+from nenv.chain.features import ENERGY_FLOOR_DB, VOICING_COLUMN, envelope_from_prediction, low_band_level, narrowband_features, stack_context
 from nenv.chain.guard import Decisions, Guard
 from nenv.dsp.rows import RowState
-from nenv.settings import HOP_NB, NB_SR
+from nenv.settings import HOP_NB, LOW_BAND_GAIN_DB, NB_SR
 
 
 def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.ndarray, stacked: np.ndarray, a_nb: np.ndarray) -> tuple[np.ndarray, np.ndarray, Decisions | None, np.ndarray]:
@@ -30,7 +30,8 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
     if guard is not None:
         book = checkpoint.codebook
         cell, novelty = book.nearest(feats)
-        dec, k = guard.assess(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell, k=k)
+        low_db = low_band_level(a, gain, energy) + LOW_BAND_GAIN_DB if guard.low_band else None
+        dec, k = guard.assess(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell, k=k, low_db=low_db)
         silent = energy <= ENERGY_FLOOR_DB  # digital silence: nothing is added, nothing to judge
         dec.rejected[silent] = False
         dec.reasons[silent] = 0
@@ -54,11 +55,11 @@ class NeuralEstimator(EnvelopeEstimator):
 
     name = "neural"
 
-    def __init__(self, checkpoint: Checkpoint, *, guard: bool = True, keep_decisions: bool = True):
+    def __init__(self, checkpoint: Checkpoint, *, guard: bool = True, keep_decisions: bool = True, low_band: bool = False):
         self.checkpoint = checkpoint
         self.keep_decisions = keep_decisions
         self.order = checkpoint.features.wb_order
-        self.guard = Guard(checkpoint.limits) if guard else None
+        self.guard = Guard(checkpoint.limits, low_band=low_band) if guard else None
         self.listener = None  # called as listener(first_hop, decisions, stacked_inputs, a_nb) after each batch (one call)
         self.context = checkpoint.features.context
         n_in = checkpoint.features.n_inputs
@@ -99,7 +100,7 @@ class NeuralEstimator(EnvelopeEstimator):
             if self.keep_decisions:
                 self._parts.append(dec)
         self._hops += H
-        return Envelope(a=a, gain=gain, k=k)
+        return Envelope(a=a, gain=gain, k=k, voicing=feats[:, VOICING_COLUMN])
 
     def record(self) -> Decisions:
         """All verdicts of the one call so far, one per hop in order (hop t starts at t * 10 ms)."""
