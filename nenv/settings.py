@@ -18,4 +18,4 @@ BAND_EDGE_HZ = 3400.0  # Hz, upper edge of the telephone band = lower edge of th
 CHANNEL_LOW_HZ = 300.0  # Hz, lower edge of the telephone band
 LOW_BAND_HZ = (50.0, 300.0)  # Hz, the low band that wideband telephony (ITU-T G.722) adds below the telephone band
 FULL_SCALE = 1.0  # float sample value of digital full scale (0 dBFS)
-LOW_BAND_GAIN_DB = 3.0  # dB, level trim of the synthesised low band (chosen on validation speakers, docs/2026-12-03-low-band.md)
+LOW_BAND_GAIN_DB = 6.0  # dB, level trim of the synthesised low band (chosen on validation speakers by its level error, docs/2026-12-03-low-band.md)

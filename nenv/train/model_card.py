@@ -72,6 +72,13 @@ BELOW_INPUT = """\
 """
 
 
+def _low_range(guard: dict) -> str:
+    """The low band's range in words, for models that have one (trained or updated since the low band)."""
+    if guard.get("low_min_db") is None:
+        return ""
+    return f"; with --low-band, the low band's level {guard['low_min_db']:.1f} to {guard['low_max_db']:.1f} dB re the narrowband frame"
+
+
 def _mean(table, system, key, group="all"):
     """Mean of ``key`` for ``system`` over the clips of ``group`` (NaN-aware)."""
     vals = [r[key] for r in table if not r["clip"].startswith("mean") and r["system"] == system and group in ("all", r["group"])]
@@ -153,7 +160,7 @@ The envelope network and codebook that `nenv extend` uses when no `--model` is g
 - A {record['recipe']['codebook_size']}-cell paired codebook: the guard's fallback and the `codebook` baseline.
 - Guard thresholds learned from the training data: level {info['guard']['level_min_db']:.1f} to {info['guard']['level_max_db']:.1f} dB
   re the narrowband frame, telephone-band mismatch up to {info['guard']['mismatch_max_db']:.2f} dB, novelty up to
-  {info['guard']['novelty_max']:.2f}, reflection coefficients below {1 - info['guard']['stability_margin']:.3f}.
+  {info['guard']['novelty_max']:.2f}, reflection coefficients below {1 - info['guard']['stability_margin']:.3f}{_low_range(info['guard'])}.
 - Training: {record['data']['train_hops']} hops (10 ms) of training speakers, {record['data']['val_hops']} of validation
   speakers for early stopping (best epoch {m['best_epoch']}), {record['wall_s'] / 60:.1f} minutes on 2 CPU cores.
 
