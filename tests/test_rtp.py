@@ -154,14 +154,47 @@ def test_two_senders_with_one_ssrc_never_mix_and_a_moved_sender_is_followed(monk
         relay.handle(rtp.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=1, payload=loud), first)
         relay.handle(rtp.build(payload_type=0, seq=100 + seq, timestamp=999 + 160 * seq, ssrc=1, payload=other), second)
     st = relay.streams[1]
-    assert relay.counters.ssrc_conflicts == 5 and st.counters.packets == 5 and st.counters.late_or_duplicate == 0
-    assert st.source == first and st.counters.samples_in == 5 * 160
+    # each packet of the second address is held until the first speaks again, then dropped: four so far,
+    # and the last one still held (the first sender's next packet, or its silence, decides)
+    assert relay.counters.ssrc_conflicts == 4 and st.newcomer == second and len(st.newcomer_packets) == 1
+    assert st.counters.packets == 5 and st.counters.late_or_duplicate == 0
+    assert st.source == first and st.counters.samples_in == 5 * 160  # nothing of the second sender was played
     time.sleep(0.25)  # the first sender goes quiet, then its packets come from a new port (NAT rebinding)
     moved = ("10.0.0.1", 4002)
     relay.handle(rtp.build(payload_type=0, seq=5, timestamp=800, ssrc=1, payload=loud), moved)
     assert st.source == moved and st.counters.source_changes == 1 and st.counters.packets == 6
-    relay.handle(rtp.build(payload_type=0, seq=6, timestamp=960, ssrc=1, payload=loud), first)  # the old port, right away: refused
-    assert relay.counters.ssrc_conflicts == 6
+    assert relay.counters.ssrc_conflicts == 5  # the second address's held packet went when the stream moved elsewhere
+    relay.handle(rtp.build(payload_type=0, seq=6, timestamp=960, ssrc=1, payload=loud), first)  # the old port, right away: held
+    relay.handle(rtp.build(payload_type=0, seq=6, timestamp=960, ssrc=1, payload=loud), moved)  # ... and dropped: the source is alive
+    assert relay.counters.ssrc_conflicts == 6 and st.counters.packets == 7 and st.source == moved
+    relay.stop()
+
+
+def test_a_sender_that_restarts_on_a_new_port_at_once_loses_nothing(monkeypatch):
+    """A sender restarting on a new port within REBIND_AFTER_S of its last packet: its first packets are
+    held, not dropped, and played in order once the old port has stayed quiet (by its next packet, or by
+    the relay's clock when it sends no more)."""
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
+    relay.out.close()
+    relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+    old, new = ("10.0.0.1", 4000), ("10.0.0.1", 4010)
+    for seq in range(5):
+        relay.handle(rtp.build(payload_type=0, seq=1000 + seq, timestamp=160 * seq, ssrc=7, payload=b"\x10" * 160), old)
+    st = relay.streams[7]
+    for seq in range(3):  # the restarted sender: a new port, new numbering, at once
+        relay.handle(rtp.build(payload_type=0, seq=30000 + seq, timestamp=5000 + 160 * seq, ssrc=7, payload=b"\x20" * 160), new)
+    assert st.source == old and len(st.newcomer_packets) == 3 and st.counters.packets == 5
+    time.sleep(rtp.REBIND_AFTER_S + 0.02)
+    relay.handle(rtp.build(payload_type=0, seq=30003, timestamp=5000 + 480, ssrc=7, payload=b"\x20" * 160), new)
+    assert st.source == new and st.counters.packets == 9 and st.counters.resyncs == 1 and st.counters.lost_packets == 0
+    assert relay.counters.ssrc_conflicts == 0 and st.counters.samples_in == 9 * 160
+    # the same when the newcomer sends nothing more: the relay's clock decides
+    for seq in range(2):
+        relay.handle(rtp.build(payload_type=0, seq=100 + seq, timestamp=90000 + 160 * seq, ssrc=7, payload=b"\x30" * 160), old)
+    assert st.source == new and len(st.newcomer_packets) == 2
+    time.sleep(rtp.REBIND_AFTER_S + 0.02)
+    relay._expire()
+    assert st.source == old and st.counters.source_changes == 2 and st.counters.packets == 11 and relay.counters.ssrc_conflicts == 0
     relay.stop()
 
 

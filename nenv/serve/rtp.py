@@ -24,11 +24,12 @@ restarts with the same SSRC but far-away sequence numbers is followed as soon as
 a second packet confirms the new numbering, with nothing counted lost (RFC 3550
 appendix A.1; ``resyncs``; the rules are :class:`nenv.serve.jitter.PlayOut`'s); a new SSRC
 (a restarted sender) opens a new stream. An SSRC already in use by a stream
-arriving from another address is a collision or a loop (RFC 3550 section 8.2):
-those packets are dropped (``ssrc_conflicts``), so two senders with the same
-SSRC never mix, unless the stream's own sender has been quiet for
-``REBIND_AFTER_S`` (its address or port changed): then the stream follows the
-new address (``source_changes``). Memory per stream is bounded (the
+arriving from another address is a collision or a loop (RFC 3550 section 8.2),
+unless the stream's own sender stays quiet for ``REBIND_AFTER_S`` after its last
+packet (it restarted on a new port, or its NAT binding changed): the other
+address's packets are held until then, and either played (the stream follows the
+new address, ``source_changes``; nothing is lost) or, if the sender spoke again,
+dropped (``ssrc_conflicts``), so two senders with the same SSRC never mix. Memory per stream is bounded (the
 reorder window holds at most ``reorder_window + 1`` packets); the counters of
 closed streams are kept for the last ``MAX_CLOSED`` streams only.
 """
@@ -40,7 +41,7 @@ import select
 import socket
 import threading
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable
 
 import numpy as np
@@ -57,6 +58,7 @@ OUT_SAMPLES = 320  # per outgoing packet: 20 ms at 16 kHz
 MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
 REBIND_AFTER_S = 0.1  # quiet time (five 20 ms packet times) of a stream's sender after which its SSRC may come from a new address: a loop or a collision keeps both senders busy, a sender that moved or restarted on a new port has stopped
 MAX_CLOSED = 1024  # closed streams whose counters are kept
+MAX_NEWCOMER_PACKETS = 16  # packets of another address held per stream while the source may still be sending (0.32 s of 20 ms packets)
 RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
 EXPIRY_CHECK_S = 0.02  # how often quiet and idle streams are looked for
 TAIL_AFTER_S = 0.2  # a stream quiet this long (ten packet times) has its held-back tail sent, without ending it (a delay spike longer than this inserts 20 ms of silence)
@@ -76,6 +78,8 @@ class _Stream:
     call_id: str = ""
     source: tuple = ()  # the transport address (host, port) the stream's packets come from
     tail_sent: bool = False  # its held-back tail went out during the current quiet spell
+    newcomer: tuple = ()  # another address sending this SSRC while the source may still be sending
+    newcomer_packets: list = field(default_factory=list)  # its packets, held until the source is known to be quiet
 
     @property
     def counters(self) -> StreamCounters:
@@ -262,12 +266,16 @@ class Relay:
         st = self.streams.get(pkt.ssrc)
         if st is not None and st.source != addr:
             # the same SSRC from another transport address: a collision or a loop (RFC 3550 section 8.2),
-            # unless the first source has gone quiet (its NAT binding or port changed): then follow it
+            # unless the first source has gone quiet (a sender that restarted on a new port, or whose NAT
+            # binding changed): its packets are held until REBIND_AFTER_S after the source's last packet,
+            # then followed (nothing lost) or, if the source spoke again meanwhile, dropped as conflicts
             if time.monotonic() - st.last_seen < REBIND_AFTER_S:
-                self.counters.ssrc_conflicts += 1
+                self._hold_newcomer(st, pkt, addr)
                 return
-            st.source = addr
-            st.counters.source_changes += 1
+            self._follow_newcomer(st, addr)
+        elif st is not None and st.newcomer:
+            self.counters.ssrc_conflicts += len(st.newcomer_packets)  # the source is alive: the other is a collision or loop
+            st.newcomer, st.newcomer_packets = (), []
         if st is None:
             if len(self.streams) >= self.max_streams:
                 self.counters.over_stream_limit += 1
@@ -288,6 +296,29 @@ class Relay:
         st.tail_sent = False
         for x in st.playout.push(pkt):
             self._feed(st, x)
+
+    def _hold_newcomer(self, st: _Stream, pkt, addr: tuple[str, int]) -> None:
+        if st.newcomer != addr:  # a third address: the earlier newcomer's packets go
+            self.counters.ssrc_conflicts += len(st.newcomer_packets)
+            st.newcomer, st.newcomer_packets = addr, []
+        st.newcomer_packets.append(pkt)
+        if len(st.newcomer_packets) > MAX_NEWCOMER_PACKETS:
+            st.newcomer_packets.pop(0)
+            self.counters.ssrc_conflicts += 1
+
+    def _follow_newcomer(self, st: _Stream, addr: tuple[str, int]) -> None:
+        """The stream's packets now come from ``addr``: play what that address sent while it was held."""
+        held = st.newcomer_packets if st.newcomer == addr else []
+        if st.newcomer and st.newcomer != addr:
+            self.counters.ssrc_conflicts += len(st.newcomer_packets)
+        st.newcomer, st.newcomer_packets = (), []
+        st.source = addr
+        st.counters.source_changes += 1
+        st.last_seen = time.monotonic()
+        st.tail_sent = False
+        for pkt in held:
+            for x in st.playout.push(pkt):
+                self._feed(st, x)
 
     def _rtcp(self, data: bytes, addr: tuple[str, int]) -> None:
         """An RTCP compound packet: a BYE from a stream's own sender ends that stream at once (its tail
@@ -346,6 +377,8 @@ class Relay:
         silence that counts as part of the pause, so the stream's timing is kept."""
         now = self._last_expiry = time.monotonic()
         for ssrc, st in list(self.streams.items()):
+            if st.newcomer and now - st.last_seen >= REBIND_AFTER_S:  # the source stayed quiet: follow the newcomer
+                self._follow_newcomer(st, st.newcomer)
             if now - st.last_seen > self.idle:
                 self._close(ssrc)
             elif now - st.last_seen > TAIL_AFTER_S and not st.tail_sent:
