@@ -2,7 +2,7 @@
 
 ``app`` holds the application and what the commands share; each module registers its commands
 on it (files: :mod:`nenv.cli.offline`; live audio: :mod:`nenv.cli.live`; training:
-:mod:`nenv.cli.training`), in the order ``--help`` lists them.
+:mod:`nenv.cli.training`; listening panels: :mod:`nenv.cli.listening`), in the order ``--help`` lists them.
 """
 
 from __future__ import annotations
@@ -13,7 +13,7 @@ import sys
 import typer
 
 from nenv.cli import offline  # noqa: F401, I001  (each module registers its commands on app, in this order)
-from nenv.cli import live, training  # noqa: F401, E402
+from nenv.cli import live, training, listening  # noqa: F401, E402
 from nenv.cli.app import _say, app
 
 __all__ = ["app", "main"]

@@ -68,7 +68,9 @@ BELOW_INPUT = """\
   the oracle envelope higher than the input. The estimated envelope's shape is the cause (measured on
   validation speakers: with the true shape and this model's level the output scores near the
   unextended input; with the true level and this model's shape, lower). Whether listeners prefer it
-  should be checked by listening tests for your use.
+  should be checked by listening tests for your use: `nenv panel YOUR_RECORDINGS.wav... --out panel
+  --method neural` prepares a blind test of this model against your own recordings (the hidden
+  reference and the unextended call are always in), and `nenv verdicts` analyses the results.
 """
 
 

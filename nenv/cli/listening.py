@@ -1,0 +1,59 @@
+"""Listening panels: ``nenv panel`` prepares a blind multi-stimulus test (ITU-R BS.1534) as one web page,
+``nenv verdicts`` analyses the results the listeners send back."""
+
+from __future__ import annotations
+
+from pathlib import Path
+import enum
+from typing import Annotated, Optional
+
+import typer
+
+from nenv.cli.app import Law, _guarded, _kernels_ready, _progress, _say, app
+
+PanelMethod = enum.Enum("PanelMethod", [(v, v) for v in ("neural", "codebook", "imaging")], type=str)
+
+
+@app.command()
+@_guarded
+def panel(
+    references: Annotated[list[Path], typer.Argument(help="Wideband reference recordings (16 kHz or more), one trial each.", show_default=False)],
+    out: Annotated[Path, typer.Option(help="Folder for page/index.html (what listeners open) and key.json (keep it; the analysis reads it).")],
+    method: Annotated[list[PanelMethod], typer.Option(help="Systems to compare; repeat. The hidden reference and unextended (the anchor) are always in.")] = [PanelMethod.neural],
+    model: Annotated[Optional[Path], typer.Option(help="Model folder for neural and codebook (default: $NENV_MODEL, else the shipped model).")] = None,
+    law: Annotated[Law, typer.Option(help="G.711 law of the telephone channel applied to the references.")] = "mulaw",
+    post_url: Annotated[Optional[str], typer.Option(help="Also POST each listener's results (JSON) to this URL when they finish (they can always save a file).")] = None,
+) -> None:
+    """Prepare a blind listening test (multi-stimulus with hidden reference and anchor) as one web page."""
+    _kernels_ready()
+    from nenv.report import panel as pn
+
+    with _progress() as bar:
+        systems = [m.value for m in method]
+        task = bar.add_task("preparing the panel", total=len(references) * len(set(systems)))
+        key = pn.prepare([str(p) for p in references], out, systems=systems, model=model, law=law, post_url=post_url, on_step=lambda s: bar.advance(task))
+    n = len(key["trials"])
+    _say(f"wrote {out / 'page' / 'index.html'}: {n} trial{'s' if n != 1 else ''} of {len(key['systems'])} stimuli ({', '.join(key['systems'])}), levels aligned")
+    _say(f"kept the key in {out / 'key.json'} (not for listeners); analyse the results with: nenv verdicts RESULTS.json... --key {out / 'key.json'} --out DIR")
+
+
+@app.command()
+@_guarded
+def verdicts(
+    results: Annotated[list[Path], typer.Argument(help="Results files the panel page saved (one per listener session).", show_default=False)],
+    key: Annotated[Path, typer.Option(help="The panel's key.json (written by nenv panel).")],
+    out: Annotated[Path, typer.Option(help="Folder for verdicts.md, verdicts.csv and verdicts.png (created if missing).")],
+    default_system: Annotated[str, typer.Option(help="The system compared pairwise with every other.")] = "neural",
+) -> None:
+    """Analyse a listening panel: post-screening, mean scores with 95% intervals, paired differences."""
+    from nenv.media.files import output_folder, write_text
+    from nenv.report import verdicts as vd
+
+    analysis = vd.analyse(vd.read([str(p) for p in results], key), default_system=default_system)
+    folder = output_folder(out)
+    md = vd.to_markdown(analysis)
+    write_text(folder / "verdicts.md", md)
+    write_text(folder / "verdicts.csv", vd.to_csv(analysis))
+    if analysis.listeners:
+        vd.figure(analysis, folder / "verdicts.png")
+    typer.echo(md)

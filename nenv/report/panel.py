@@ -1,0 +1,116 @@
+"""Prepare a listening panel: a blind multi-stimulus test with hidden reference and anchor (the method
+of ITU-R BS.1534, "MUSHRA") as one self-contained web page.
+
+For every wideband reference clip the telephone channel is applied and every system asked for runs
+on it; the stimuli of a trial are the hidden reference (the original), the anchor (``unextended``)
+and each system. All stimuli of a trial are set to the reference's active speech level (nenv's
+active-level measure, :func:`nenv.dsp.channel.active_level_dbov`) and, if any would then clip, all
+are lowered together. The output folder holds
+
+* ``page/index.html``: the test, audio included (WAV, base64), nothing to install: open it from a
+  file or serve the folder from any static web server. Stimuli carry random tokens, in a random
+  order, so neither their names nor the page's source say which system a stimulus is.
+* ``key.json``: which token is which system and clip: what the analysis (``nenv verdicts``) reads.
+  Keep it away from the listeners.
+
+The page shows the cautions (moderate level, headphones, stop when tired), a level check, a
+training trial, then every trial in an order drawn per listener (seeded by the listener's name and
+the panel, recorded in the results); the results are saved as a file the listener sends back.
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+import json
+import os
+import secrets
+from importlib import resources
+from pathlib import Path
+from typing import Callable, Sequence
+
+import numpy as np
+import soundfile as sf
+
+from nenv.chain import pipeline
+from nenv.dsp import channel
+from nenv.errors import InputError
+from nenv.media.files import output_folder, write_text
+from nenv.report.evaluate import prepare_reference
+from nenv.report.verdicts import ANCHOR, HIDDEN_REFERENCE
+from nenv.settings import WB_SR
+
+PEAK = 0.98  # highest sample after level alignment (full scale 1.0)
+PANEL_SYSTEMS = ("neural",)  # what a panel compares by default, beside the hidden reference and the anchor
+
+
+def _wav_base64(y: np.ndarray) -> str:
+    buf = io.BytesIO()
+    sf.write(buf, y, WB_SR, format="WAV", subtype="PCM_16")
+    return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _aligned(stimuli: dict[str, np.ndarray], target_dbov: float) -> dict[str, np.ndarray]:
+    """Every stimulus at ``target_dbov`` active level; all lowered together if any would clip."""
+    out = {}
+    for s, y in stimuli.items():
+        level = channel.active_level_dbov(y, sr=WB_SR)
+        out[s] = y * 10 ** ((target_dbov - level) / 20) if np.isfinite(level) else y
+    peak = max(float(np.max(np.abs(y))) for y in out.values())
+    if peak > PEAK:
+        out = {s: y * (PEAK / peak) for s, y in out.items()}
+    return out
+
+
+def prepare(
+    references: Sequence[str | os.PathLike],
+    out: str | os.PathLike,
+    *,
+    systems: Sequence[str] = PANEL_SYSTEMS,
+    model=None,
+    law: str = "mulaw",
+    post_url: str | None = None,
+    on_step: Callable[[str], None] | None = None,
+) -> dict:
+    """Write the panel (see the module docstring) for ``references``; returns the key."""
+    if not references:
+        raise InputError("a listening panel needs at least one reference recording")
+    names = [Path(p).stem for p in references]
+    if len(set(names)) != len(names):
+        raise InputError("two references have the same file name: rename one (trials are named after their clip)")
+    asked = [s for s in systems if s not in (ANCHOR, HIDDEN_REFERENCE)]
+    for s in asked:
+        if s not in pipeline.SYSTEMS or s in pipeline.REFERENCE_SYSTEMS:
+            raise InputError(f"--method {s}: a panel compares neural, codebook or imaging (the reference and unextended are always in)")
+    asked = list(dict.fromkeys(asked))
+    if any(s in pipeline.MODEL_SYSTEMS for s in asked):
+        model = pipeline.load_model(model)
+    refs = [(n, prepare_reference(p)) for n, p in zip(names, references)]  # fail early, before any work
+    folder = output_folder(Path(out))
+    panel_id = secrets.token_hex(4)
+    key = {"panel": panel_id, "method": "ITU-R BS.1534 (multi-stimulus with hidden reference and anchor)", "law": law,
+           "systems": [HIDDEN_REFERENCE, ANCHOR, *asked], "trials": {}, "stimuli": {}}
+    trials = []
+    for i, (name, ref) in enumerate(refs):
+        nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
+        raw = {HIDDEN_REFERENCE: ref, ANCHOR: pipeline.extend(nb, system=pipeline.make_system(ANCHOR)).y}
+        for s in asked:
+            raw[s] = pipeline.extend(nb, system=pipeline.make_system(s, model=model)).y
+            if on_step:
+                on_step(f"{name} / {s}")
+        aligned = _aligned(raw, channel.active_level_dbov(ref, sr=WB_SR))
+        trial_id = f"t{i + 1}"
+        key["trials"][trial_id] = name
+        stimuli = []
+        for s in sorted(aligned, key=lambda _: secrets.randbelow(2**30)):  # page order says nothing
+            token = secrets.token_hex(4)
+            key["stimuli"][token] = {"clip": name, "system": s, "trial": trial_id}
+            stimuli.append({"id": token, "audio": _wav_base64(aligned[s])})
+        trials.append({"id": trial_id, "reference": _wav_base64(aligned[HIDDEN_REFERENCE]), "stimuli": stimuli})
+    data = {"panel": panel_id, "trials": trials, "post_url": post_url or ""}
+    page = resources.files("nenv.report").joinpath("panel_page.html").read_text(encoding="utf-8")
+    html = page.replace("/*PANEL_DATA*/null", json.dumps(data, separators=(",", ":")))
+    (folder / "page").mkdir(exist_ok=True)
+    write_text(folder / "page" / "index.html", html)
+    write_text(folder / "key.json", json.dumps(key, indent=1) + "\n")
+    return key

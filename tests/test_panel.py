@@ -1,0 +1,205 @@
+"""Listening panels: the analysis against a worked example, the prepared page, and the page driven in a
+real browser (Debian's chromium through Playwright) with its results fed back to the analysis."""
+
+from __future__ import annotations
+
+import base64
+import io
+import json
+import math
+import os
+import re
+import shutil
+
+import numpy as np
+import pytest
+import soundfile as sf
+from scipy import stats
+
+from nenv.dsp import channel
+from nenv.report import panel, verdicts
+from tests.conftest import ARCTIC
+
+
+def _write_panel(tmp_path, scores: dict[str, dict[str, list[float]]], systems=("reference", "unextended", "neural")):
+    """A key and one results file per listener: scores[listener][system] = one score per trial."""
+    n_trials = len(next(iter(next(iter(scores.values())).values())))
+    key = {"panel": "p1", "stimuli": {}, "trials": {}}
+    for t in range(n_trials):
+        key["trials"][f"t{t}"] = f"clip{t}"
+        for s in systems:
+            key["stimuli"][f"{s}-{t}"] = {"clip": f"clip{t}", "system": s, "trial": f"t{t}"}
+    (tmp_path / "key.json").write_text(json.dumps(key))
+    files = []
+    for who, by in scores.items():
+        ratings = [{"trial": f"t{t}", "stimulus": f"{s}-{t}", "score": by[s][t], "seconds": 30.0} for t in range(n_trials) for s in systems]
+        f = tmp_path / f"{who}.json"
+        f.write_text(json.dumps({"panel": "p1", "listener": who, "ratings": ratings}))
+        files.append(f)
+    return files, tmp_path / "key.json"
+
+
+def test_analysis_reproduces_a_worked_example_and_flags_a_careless_listener(tmp_path):
+    # Worked by hand. Listeners L1, L2 rate two trials; L3 rates the hidden reference 50 in both (careless).
+    scores = {
+        "L1": {"reference": [100, 95], "unextended": [35, 40], "neural": [60, 70]},
+        "L2": {"reference": [100, 100], "unextended": [20, 45], "neural": [50, 80]},
+        "L3": {"reference": [50, 50], "unextended": [90, 10], "neural": [40, 60]},
+    }
+    files, key = _write_panel(tmp_path, scores)
+    a = verdicts.analyse(verdicts.read(files, key))
+    assert list(a.excluded) == ["L3"] and "hidden reference below 90 in 2 of 2" in a.excluded["L3"]
+    assert a.listeners == ["L1", "L2"]
+    # neural: 60, 70, 50, 80 -> mean 65, s = sqrt(500/3) = 12.910; t(0.975, 3 df) = 3.182 (t table)
+    # half-width 3.182 * 12.910 / 2 = 20.54 -> [44.46, 85.54]
+    iv = a.overall["neural"]
+    assert iv.n == 4 and iv.mean == 65.0
+    assert iv.low == pytest.approx(65 - 3.182446 * math.sqrt(500 / 3) / 2, abs=1e-4)
+    assert iv.low == pytest.approx(44.457, abs=1e-3) and iv.high == pytest.approx(85.543, abs=1e-3)
+    # per clip: clip0 neural 60, 50 -> mean 55, s = 7.071, t(0.975, 1 df) = 12.706 -> half 12.706 * 7.071 / sqrt(2) = 63.53
+    assert a.per_clip["clip0"]["neural"].high == pytest.approx(55 + 12.7062 * 5, abs=1e-3)
+    # neural - unextended on the same trials: 25, 30, 30, 35 -> mean 30, s = 4.0825, half 6.496;
+    # t = 30 / (4.0825 / 2) = 14.70 on 3 df (scipy.stats.ttest_rel); Wilcoxon: all 4 differences
+    # positive, exact two-sided p = 2 / 2**4 = 0.125
+    p = next(p for p in a.paired if (p.a, p.b) == ("neural", "unextended"))
+    assert p.difference.mean == 30.0 and p.difference.n == 4
+    assert p.difference.low == pytest.approx(30 - 3.182446 * math.sqrt(50 / 3) / 2, abs=1e-4)
+    assert p.t_p == pytest.approx(stats.ttest_rel([60, 70, 50, 80], [35, 40, 20, 45]).pvalue) and p.t_p < 0.001
+    assert p.wilcoxon_p == pytest.approx(0.125)
+    md = verdicts.to_markdown(a)
+    assert "excluded L3" in md and "65.0 [44.5, 85.5]" in md
+    assert "neural,65.0" in verdicts.to_csv(a).replace("all,", "")
+
+
+def test_post_screening_follows_the_15_percent_rule(tmp_path):
+    # ITU-R BS.1534-3 4.1.2: more than 15% of the trials. 1 of 7 (14%) keeps a listener, 2 of 7 (29%) does not;
+    # the anchor rated above 90 is judged the same way.
+    base = {"reference": [100] * 7, "unextended": [20] * 7, "neural": [50] * 7}
+    one = {**base, "reference": [80] + [100] * 6}
+    two = {**base, "reference": [80, 85] + [100] * 5}
+    loud_anchor = {**base, "unextended": [95, 95] + [20] * 5}
+    files, key = _write_panel(tmp_path, {"A": base, "B": one, "C": two, "D": loud_anchor})
+    excluded = verdicts.screen(verdicts.read(files, key))
+    assert sorted(excluded) == ["C", "D"] and "anchor" in excluded["D"]
+
+
+def test_results_of_another_panel_or_out_of_range_are_refused(tmp_path):
+    from nenv.errors import InputError
+
+    files, key = _write_panel(tmp_path, {"A": {"reference": [100], "unextended": [20], "neural": [50]}})
+    data = json.loads(files[0].read_text())
+    files[0].write_text(json.dumps({**data, "panel": "other"}))
+    with pytest.raises(InputError, match="another panel"):
+        verdicts.read(files, key)
+    data["ratings"][0]["score"] = 130
+    files[0].write_text(json.dumps(data))
+    with pytest.raises(InputError, match="outside 0..100"):
+        verdicts.read(files, key)
+
+
+def _page_data(page_file) -> dict:
+    html = page_file.read_text()
+    m = re.search(r"const DATA = (\{.*?\});\n", html, re.S)
+    return json.loads(m.group(1))
+
+
+def test_prepared_panel_is_blind_and_level_aligned(tmp_path):
+    key = panel.prepare([ARCTIC[0], ARCTIC[1]], tmp_path / "p", systems=["neural", "imaging"])
+    page = tmp_path / "p" / "page" / "index.html"
+    assert sorted(os.listdir(tmp_path / "p" / "page")) == ["index.html"]  # nothing else to name a stimulus
+    html = page.read_text()
+    for name in ("neural", "imaging", "unextended", "codebook"):
+        assert name not in html  # the page says nothing of which stimulus is which system
+    data = _page_data(page)
+    assert data["panel"] == key["panel"] and len(data["trials"]) == 2
+    for trial in data["trials"]:
+        assert {key["stimuli"][s["id"]]["system"] for s in trial["stimuli"]} == {"reference", "unextended", "neural", "imaging"}
+        ref, _ = sf.read(io.BytesIO(base64.b64decode(trial["reference"])))
+        level = channel.active_level_dbov(ref, sr=16000)
+        for s in trial["stimuli"]:
+            y, sr = sf.read(io.BytesIO(base64.b64decode(s["audio"])))
+            assert sr == 16000 and np.max(np.abs(y)) <= panel.PEAK + 1e-4
+            assert abs(channel.active_level_dbov(y, sr=16000) - level) < 0.1  # loudness-aligned (active speech level)
+
+
+def _browser():
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    try:
+        import playwright.sync_api  # noqa: F401
+    except ImportError:
+        browser = None
+    if browser is None:
+        msg = "chromium or playwright is not installed (apt-get install chromium; pip install playwright)"
+        if os.environ.get("NENV_INTEROP") == "required":
+            pytest.fail(msg)
+        pytest.skip(msg)
+    return browser
+
+
+def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path):
+    """Headless chromium driven by Playwright: a listener goes through the cautions, the level check and
+    the practice, plays every stimulus, moves every slider with the keyboard, saves the results; the
+    analysis reads them back. Switching stimuli keeps the playback position."""
+    from playwright.sync_api import sync_playwright
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+
+    browser = _browser()
+    runner = CliRunner()
+    res = runner.invoke(app, ["panel", str(ARCTIC[0]), str(ARCTIC[1]), "--out", str(tmp_path / "p"), "--method", "imaging"])
+    assert res.exit_code == 0, res.output
+    key = json.loads((tmp_path / "p" / "key.json").read_text())
+    args = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking", "--disable-component-update",
+            "--disable-sync", "--autoplay-policy=no-user-gesture-required"]
+    saved = []
+    for listener in ("ana", "ben"):
+        with sync_playwright() as pw:
+            b = pw.chromium.launch(executable_path=browser, headless=True, args=args)
+            pg = b.new_page(accept_downloads=True)
+            errors = []
+            pg.on("pageerror", lambda e: errors.append(str(e)))
+            pg.goto((tmp_path / "p" / "page" / "index.html").as_uri())
+            pg.fill("#listener", listener)
+            pg.wait_for_function("!document.getElementById('start').disabled", timeout=60000)
+            pg.click("#start")
+            pg.click("#level-play")
+            pg.click("#level-stop")
+            pg.click("#level-next")
+            pg.click("#training-next")
+            first = True
+            while pg.is_visible("#trial"):
+                sliders = pg.locator("#stimuli input.score")
+                assert pg.is_disabled("#next")  # every slider must be moved first
+                for i in range(sliders.count()):
+                    pg.click(f"#stimuli button.play >> nth={i}")
+                    if first and i == 0:
+                        pg.wait_for_timeout(600)
+                    if first and i == 1:  # switched from A to B: playback went on from the same point
+                        pos = pg.evaluate("position()")
+                        assert 0.4 < pos < 1.5 and pg.evaluate("ctx.state") == "running"
+                    sliders.nth(i).focus()
+                    pg.keyboard.press("End")  # 100, then down by 10 per position: the score says the position
+                    for _ in range(10 * i):
+                        pg.keyboard.press("ArrowLeft")
+                first = False
+                pg.click("#next")
+            with pg.expect_download() as d:
+                pg.click("#save")
+            out = tmp_path / f"{listener}.json"
+            d.value.save_as(out)
+            b.close()
+        assert errors == []
+        saved.append(out)
+    results = [json.loads(f.read_text()) for f in saved]
+    for r in results:
+        assert sorted(r["order"]) == ["t1", "t2"] and len(r["ratings"]) == 2 * 3
+        assert all(x["score"] == 100 - 10 * x["position"] for x in r["ratings"])
+    res = runner.invoke(app, ["verdicts", *map(str, saved), "--key", str(tmp_path / "p" / "key.json"), "--out", str(tmp_path / "v")])
+    assert res.exit_code == 0, res.output
+    ratings = verdicts.read(saved, tmp_path / "p" / "key.json")
+    assert {r.system for r in ratings} == {"reference", "unextended", "imaging"} and len(ratings) == 12
+    for r in ratings:  # each rating reached the system of the stimulus it was given to
+        tok = next(x["stimulus"] for res_ in results for x in res_["ratings"] if res_["listener"] == r.listener and x["trial"] == r.trial and x["score"] == r.score)
+        assert key["stimuli"][tok]["system"] == r.system
+    assert (tmp_path / "v" / "verdicts.md").is_file() and (tmp_path / "v" / "verdicts.csv").is_file()
