@@ -136,6 +136,39 @@ def _browser():
     return browser
 
 
+def _collector():
+    """A local HTTP server that takes POSTed JSON (answering the browser's CORS preflight)."""
+    import threading
+    from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+    from types import SimpleNamespace
+
+    bodies: list = []
+
+    class Handler(BaseHTTPRequestHandler):
+        def _cors(self):
+            self.send_header("Access-Control-Allow-Origin", "*")
+            self.send_header("Access-Control-Allow-Methods", "POST")
+            self.send_header("Access-Control-Allow-Headers", "Content-Type")
+
+        def do_OPTIONS(self):
+            self.send_response(204)
+            self._cors()
+            self.end_headers()
+
+        def do_POST(self):
+            bodies.append(json.loads(self.rfile.read(int(self.headers["Content-Length"]))))
+            self.send_response(200)
+            self._cors()
+            self.end_headers()
+
+        def log_message(self, *args):
+            pass
+
+    server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    return SimpleNamespace(server=server, bodies=bodies, url=f"http://127.0.0.1:{server.server_address[1]}/results")
+
+
 def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path):
     """Headless chromium driven by Playwright: a listener goes through the cautions, the level check and
     the practice, plays every stimulus, moves every slider with the keyboard, saves the results; the
@@ -146,8 +179,9 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
     from nenv.cli import app
 
     browser = _browser()
+    posted = _collector()  # the results are also POSTed here (the page's optional --post-url)
     runner = CliRunner()
-    res = runner.invoke(app, ["panel", str(ARCTIC[0]), str(ARCTIC[1]), "--out", str(tmp_path / "p"), "--method", "imaging"])
+    res = runner.invoke(app, ["panel", str(ARCTIC[0]), str(ARCTIC[1]), "--out", str(tmp_path / "p"), "--method", "imaging", "--post-url", posted.url])
     assert res.exit_code == 0, res.output
     key = json.loads((tmp_path / "p" / "key.json").read_text())
     args = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking", "--disable-component-update",
@@ -178,12 +212,20 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
                     if first and i == 1:  # switched from A to B: playback went on from the same point
                         pos = pg.evaluate("position()")
                         assert 0.4 < pos < 1.5 and pg.evaluate("ctx.state") == "running"
+                        pg.focus("#loop-start")
+                        pg.keyboard.press("End")  # loop over the last 5% only: playback jumps into it
+                        pg.wait_for_timeout(100)
+                        dur = pg.evaluate("player.source.buffer.duration")
+                        assert 0.94 * dur <= pg.evaluate("position()") <= dur
+                        pg.focus("#loop-start")
+                        pg.keyboard.press("Home")
                     sliders.nth(i).focus()
                     pg.keyboard.press("End")  # 100, then down by 10 per position: the score says the position
                     for _ in range(10 * i):
                         pg.keyboard.press("ArrowLeft")
                 first = False
                 pg.click("#next")
+            pg.wait_for_function("document.getElementById('status').textContent.startsWith('Results sent')", timeout=10000)
             with pg.expect_download() as d:
                 pg.click("#save")
             out = tmp_path / f"{listener}.json"
@@ -191,7 +233,10 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
             b.close()
         assert errors == []
         saved.append(out)
+    posted.server.shutdown()
     results = [json.loads(f.read_text()) for f in saved]
+    assert sorted(r["listener"] for r in posted.bodies) == ["ana", "ben"]
+    assert all(p["ratings"] == next(r for r in results if r["listener"] == p["listener"])["ratings"] for p in posted.bodies)
     for r in results:
         assert sorted(r["order"]) == ["t1", "t2"] and len(r["ratings"]) == 2 * 3
         assert all(x["score"] == 100 - 10 * x["position"] for x in r["ratings"])
@@ -203,3 +248,5 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
         tok = next(x["stimulus"] for res_ in results for x in res_["ratings"] if res_["listener"] == r.listener and x["trial"] == r.trial and x["score"] == r.score)
         assert key["stimuli"][tok]["system"] == r.system
     assert (tmp_path / "v" / "verdicts.md").is_file() and (tmp_path / "v" / "verdicts.csv").is_file()
+    rows = (tmp_path / "v" / "ratings.csv").read_text().splitlines()
+    assert rows[0] == "listener,trial,clip,system,score,seconds" and len(rows) == 13

@@ -42,15 +42,17 @@ def panel(
 def verdicts(
     results: Annotated[list[Path], typer.Argument(help="Results files the panel page saved (one per listener session).", show_default=False)],
     key: Annotated[Path, typer.Option(help="The panel's key.json (written by nenv panel).")],
-    out: Annotated[Path, typer.Option(help="Folder for verdicts.md, verdicts.csv and verdicts.png (created if missing).")],
+    out: Annotated[Path, typer.Option(help="Folder for verdicts.md, verdicts.csv, ratings.csv and verdicts.png (created if missing).")],
     default_system: Annotated[str, typer.Option(help="The system compared pairwise with every other.")] = "neural",
 ) -> None:
     """Analyse a listening panel: post-screening, mean scores with 95% intervals, paired differences."""
     from nenv.media.files import output_folder, write_text
     from nenv.report import verdicts as vd
 
-    analysis = vd.analyse(vd.read([str(p) for p in results], key), default_system=default_system)
+    ratings = vd.read([str(p) for p in results], key)
+    analysis = vd.analyse(ratings, default_system=default_system)
     folder = output_folder(out)
+    write_text(folder / "ratings.csv", vd.ratings_csv(ratings))  # every rating, excluded listeners' too
     md = vd.to_markdown(analysis)
     write_text(folder / "verdicts.md", md)
     write_text(folder / "verdicts.csv", vd.to_csv(analysis))

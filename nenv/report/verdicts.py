@@ -204,6 +204,17 @@ def to_csv(a: Analysis) -> str:
     return buf.getvalue()
 
 
+def ratings_csv(ratings: Sequence[Rating]) -> str:
+    """One row per rating, with the system the listener rated (the key applied): listener, trial, clip,
+    system, score, seconds."""
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["listener", "trial", "clip", "system", "score", "seconds"])
+    for r in ratings:
+        w.writerow([r.listener, r.trial, r.clip, r.system, r.score, r.seconds])
+    return buf.getvalue()
+
+
 def figure(a: Analysis, path: str | os.PathLike) -> None:
     """Mean and 95% interval per system, overall and per clip (one marker per clip)."""
     import matplotlib
