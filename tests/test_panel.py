@@ -216,7 +216,8 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
                         pg.keyboard.press("End")  # loop over the last 5% only: playback jumps into it
                         pg.wait_for_timeout(100)
                         dur = pg.evaluate("player.source.buffer.duration")
-                        assert 0.94 * dur <= pg.evaluate("position()") <= dur
+                        dbg = pg.evaluate("JSON.stringify({ls: player.loopStart, le: player.loopEnd, off: player.offset, id: player.id, idx: state.index, order: state.order, v: document.getElementById('loop-start').value, durs: Object.fromEntries(Object.entries(buffers).map(([k, b]) => [k, b.duration]))})")
+                        assert 0.94 * dur <= pg.evaluate("position()") <= dur, dbg
                         pg.focus("#loop-start")
                         pg.keyboard.press("Home")
                     sliders.nth(i).focus()
