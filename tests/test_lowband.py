@@ -249,3 +249,15 @@ def test_low_band_rejections_are_recorded_and_audited(tmp_path, arctic_refs):
     # without --low-band the same model rejects none of them for it
     res = runner.invoke(app, ["extend", str(tmp_path / "call.wav"), str(tmp_path / "wb2.wav"), "--model", str(model), "--record", str(tmp_path / "g2.jsonl")])
     assert res.exit_code == 0 and "low_band" not in next(line for line in res.output.splitlines() if line.startswith("guard:"))
+
+
+def test_low_band_with_a_method_that_has_none_is_refused(tmp_path, arctic_refs):
+    import soundfile as sf
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+
+    _, ref = arctic_refs[0]
+    sf.write(tmp_path / "call.wav", _nb(ref)[:8000], 8000)
+    res = CliRunner().invoke(app, ["extend", str(tmp_path / "call.wav"), str(tmp_path / "wb.wav"), "--method", "imaging", "--low-band"])
+    assert res.exit_code != 0 and "adds no low band" in res.output and not (tmp_path / "wb.wav").exists()

@@ -97,6 +97,24 @@ def test_results_of_another_panel_or_out_of_range_are_refused(tmp_path):
         verdicts.read(files, key)
 
 
+def test_a_panel_folder_is_not_overwritten_by_accident(tmp_path):
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+
+    runner = CliRunner()
+    args = ["panel", str(ARCTIC[0]), "--out", str(tmp_path / "p"), "--method", "imaging"]
+    assert runner.invoke(app, args).exit_code == 0
+    key = (tmp_path / "p" / "key.json").read_text()
+    res = runner.invoke(app, args)
+    assert res.exit_code != 0 and "holds a panel already" in res.output
+    assert (tmp_path / "p" / "key.json").read_text() == key  # the key of the panel already sent out is kept
+    assert runner.invoke(app, args + ["--overwrite"]).exit_code == 0
+    assert (tmp_path / "p" / "key.json").read_text() != key
+    res = runner.invoke(app, ["panel", str(tmp_path / "missing.wav"), "--out", str(tmp_path / "q")])
+    assert res.exit_code != 0 and not (tmp_path / "q" / "key.json").exists()
+
+
 def _page_data(page_file) -> dict:
     html = page_file.read_text()
     m = re.search(r"const DATA = (\{.*?\});\n", html, re.S)

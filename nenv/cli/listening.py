@@ -23,6 +23,7 @@ def panel(
     model: Annotated[Optional[Path], typer.Option(help="Model folder for neural and codebook (default: $NENV_MODEL, else the shipped model).")] = None,
     law: Annotated[Law, typer.Option(help="G.711 law of the telephone channel applied to the references.")] = "mulaw",
     post_url: Annotated[Optional[str], typer.Option(help="Also POST each listener's results (JSON) to this URL when they finish (they can always save a file).")] = None,
+    overwrite: Annotated[bool, typer.Option("--overwrite", help="Replace a panel already in --out (its key is lost: results of that panel can no longer be analysed).")] = False,
 ) -> None:
     """Prepare a blind listening test (multi-stimulus with hidden reference and anchor) as one web page."""
     _kernels_ready()
@@ -31,7 +32,7 @@ def panel(
     with _progress() as bar:
         systems = [m.value for m in method]
         task = bar.add_task("preparing the panel", total=len(references) * len(set(systems)))
-        key = pn.prepare([str(p) for p in references], out, systems=systems, model=model, law=law, post_url=post_url, on_step=lambda s: bar.advance(task))
+        key = pn.prepare([str(p) for p in references], out, systems=systems, model=model, law=law, post_url=post_url, on_step=lambda s: bar.advance(task), overwrite=overwrite)
     n = len(key["trials"])
     _say(f"wrote {out / 'page' / 'index.html'}: {n} trial{'s' if n != 1 else ''} of {len(key['systems'])} stimuli ({', '.join(key['systems'])}), levels aligned")
     _say(f"kept the key in {out / 'key.json'} (not for listeners); analyse the results with: nenv verdicts RESULTS.json... --key {out / 'key.json'} --out DIR")

@@ -12,7 +12,7 @@ import typer
 
 from nenv.words import count
 from nenv import __version__
-from nenv.cli.app import DEMO_CLIP, LowBandOpt, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
+from nenv.cli.app import DEMO_CLIP, LowBandOpt, _check_low_band, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
 from nenv.errors import InputError
 
 @app.command()
@@ -80,6 +80,7 @@ def extend(
     _kernels_ready()
     from nenv.serve import batch, streamfile
 
+    _check_low_band(method or _default_method(model), low_band)
     opts = streamfile.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, low_band=low_band, resample=resample, channel=channel, mix=mix, group=group)
     if batch.is_batch(inputs):
         if reference is not None or figure is not None:

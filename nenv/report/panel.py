@@ -34,7 +34,7 @@ import soundfile as sf
 
 from nenv.chain import pipeline
 from nenv.dsp import channel
-from nenv.errors import InputError
+from nenv.errors import InputError, OutputError
 from nenv.media.files import output_folder, write_text
 from nenv.report.evaluate import prepare_reference
 from nenv.report.verdicts import ANCHOR, HIDDEN_REFERENCE
@@ -71,8 +71,12 @@ def prepare(
     law: str = "mulaw",
     post_url: str | None = None,
     on_step: Callable[[str], None] | None = None,
+    overwrite: bool = False,
 ) -> dict:
-    """Write the panel (see the module docstring) for ``references``; returns the key."""
+    """Write the panel (see the module docstring) for ``references``; returns the key. A folder that
+    holds a panel already is refused unless ``overwrite``: its key is what makes results readable."""
+    if (Path(out) / "key.json").exists() and not overwrite:
+        raise OutputError(f"'{out}' holds a panel already (key.json): its listeners' results need that key; choose another folder, or pass --overwrite")
     if not references:
         raise InputError("a listening panel needs at least one reference recording")
     names = [Path(p).stem for p in references]
