@@ -15,7 +15,7 @@ from nenv.errors import InputError, NenvError
 
 app = typer.Typer(
     help="nenv: extend telephone speech (8 kHz, 300-3400 Hz) to wideband (16 kHz), on CPU.\n\n"
-    "The added 3.4-8 kHz band is estimated, not recorded: never treat it as evidence of what was said or who said it.",
+    "The added bands (3.4-8 kHz, and 50-300 Hz with --low-band) are estimated, not recorded: never treat them as evidence of what was said or who said it.",
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
@@ -49,7 +49,7 @@ def _top(
 ) -> None:
     """nenv: extend telephone speech (8 kHz, 300-3400 Hz) to wideband (16 kHz), on CPU.
 
-    The added 3.4-8 kHz band is estimated, not recorded: never treat it as evidence of what was said or who said it.
+    The added bands (3.4-8 kHz, and 50-300 Hz with --low-band) are estimated, not recorded: never treat them as evidence of what was said or who said it.
     """
 
 
