@@ -261,3 +261,15 @@ def test_low_band_with_a_method_that_has_none_is_refused(tmp_path, arctic_refs):
     sf.write(tmp_path / "call.wav", _nb(ref)[:8000], 8000)
     res = CliRunner().invoke(app, ["extend", str(tmp_path / "call.wav"), str(tmp_path / "wb.wav"), "--method", "imaging", "--low-band"])
     assert res.exit_code != 0 and "adds no low band" in res.output and not (tmp_path / "wb.wav").exists()
+
+
+def test_evaluate_with_the_low_band_says_so_and_scores_it():
+    from nenv.report import evaluate as ev
+    from tests.conftest import ARCTIC
+
+    rows, _ = ev.run([ARCTIC[0]], systems=("unextended", "true-band"), laws=("mulaw",), low_band=True)
+    by = {r.system: r.scores for r in rows}
+    assert set(by) == {"unextended", "true-band +low band"}  # unextended has none to add
+    # the reference's own low band brings the low band's level and spectrum back (unextended: 5-6 dB short)
+    assert by["unextended"].level_error_low < -3 and abs(by["true-band +low band"].level_error_low) < 1
+    assert by["true-band +low band"].lsd_low < by["unextended"].lsd_low - 10

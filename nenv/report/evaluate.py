@@ -103,9 +103,11 @@ def run(
             nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
             outs = {}
             for s in systems:
-                y = pipeline.extend(nb, system=pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=low_band)).y
+                system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=low_band)
+                y = pipeline.extend(nb, system=system).y
                 outs[s] = y
-                rows.append(Row(name, law, s, Scores.compute(ref, y)))
+                label = f"{s} +low band" if system.low_band else s  # the table says what ran
+                rows.append(Row(name, law, label, Scores.compute(ref, y)))
                 if on_step:
                     on_step(f"{name} / {law} / {s}")
             clips.append(Clip(name, law, ref, nb, outs))
