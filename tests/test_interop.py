@@ -11,7 +11,6 @@ tools only packetise, pace, depacketise and pipe: the audio that comes back must
 
 from __future__ import annotations
 
-import os
 import shutil
 import signal
 import socket
@@ -28,6 +27,7 @@ from nenv.chain import pipeline
 from nenv.dsp import channel, g711
 from nenv.media.audio import to_int16
 from nenv.serve import rtp
+from tests.conftest import missing_tool
 
 WAV_FORMAT_TAG = {"mulaw": 7, "alaw": 6}  # WAVE_FORMAT_MULAW / WAVE_FORMAT_ALAW (Microsoft RIFF specification)
 PAYLOAD_TYPE = {"mulaw": 0, "alaw": 8}  # RFC 3551 table 4: PCMU, PCMA
@@ -37,10 +37,7 @@ L16_CAPS = "application/x-rtp,media=audio,clock-rate=16000,encoding-name=L16,cha
 def _tool(name: str) -> str:
     path = shutil.which(name)
     if path is None:
-        msg = f"{name} is not installed (Debian: .ci/run installs it)"
-        if os.environ.get("NENV_INTEROP") == "required":
-            pytest.fail(msg)
-        pytest.skip(msg)
+        missing_tool(f"{name} is not installed (Debian: .ci/run installs it)")
     return path
 
 

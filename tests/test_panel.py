@@ -18,7 +18,7 @@ from scipy import stats
 
 from nenv.dsp import channel
 from nenv.report import panel, verdicts
-from tests.conftest import ARCTIC
+from tests.conftest import ARCTIC, missing_tool
 
 
 def _write_panel(tmp_path, scores: dict[str, dict[str, list[float]]], systems=("reference", "unextended", "neural")):
@@ -147,10 +147,7 @@ def _browser():
     except ImportError:
         browser = None
     if browser is None:
-        msg = "chromium or playwright is not installed (apt-get install chromium; pip install playwright)"
-        if os.environ.get("NENV_INTEROP") == "required":
-            pytest.fail(msg)
-        pytest.skip(msg)
+        missing_tool("chromium or playwright is not installed (apt-get install chromium; pip install playwright)")
     return browser
 
 
@@ -288,10 +285,7 @@ def test_page_runs_in_firefox(tmp_path):
     except ImportError:
         firefox = None
     if firefox is None:
-        msg = "firefox or marionette-driver is not installed (apt-get install firefox-esr; pip install marionette-driver)"
-        if os.environ.get("NENV_INTEROP") == "required":
-            pytest.fail(msg)
-        pytest.skip(msg)
+        missing_tool("firefox or marionette-driver is not installed (apt-get install firefox-esr; pip install marionette-driver)")
     key = panel.prepare([ARCTIC[0], ARCTIC[1]], tmp_path / "p", systems=["imaging"])
     profile = tempfile.mkdtemp(dir=tmp_path)
     s = socket.socket()
