@@ -247,3 +247,19 @@ def test_first_process_compiles_and_says_so_later_ones_load_the_cache(tmp_path):
     assert cold[0].startswith("compiling signal kernels (once") and cold[1].startswith("signal kernels compiled in ")
     assert warm == ["0.0"], warm  # loaded from the cache: no notice; a second warm() in a process does nothing
     assert any(tmp_path.rglob("*.nbi")), "numba wrote no cache index"
+
+
+def test_mismatch_equals_the_numpy_formula(rng):
+    # Reference: numpy's float32 log10 of the ratios, mean removed, RMS. The kernel takes each log in
+    # single precision too, with the C library's log10f: the two agree to about a unit in the last
+    # place of a float32 (measured 1e-6 dB), far below any threshold's meaning.
+    from nenv.dsp import kernels
+
+    r = np.exp(rng.normal(0, 3, (300, 100)))
+    r[0] = 1.0  # a flat row: 0 dB
+    d = np.log10(r.astype(np.float32)).astype(np.float64) * 10
+    d -= d.mean(axis=1, keepdims=True)
+    want = np.sqrt((d * d).mean(axis=1))
+    got = kernels.mismatch_db(r)
+    np.testing.assert_allclose(got, want, atol=1e-5)
+    assert got[0] == 0.0

@@ -140,24 +140,23 @@ def summary_line(hops: int, rejected: int, by_reason: dict) -> str:
     return f"guard: {rejected} of {count(hops, 'hop')} ({100 * rejected / max(hops, 1):.1f}%) fell back to the codebook ({detail})"
 
 
-def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
-    """RMS difference (dB) of the mean-removed log envelopes over 300-3400 Hz (spectra by :func:`nenv.dsp.kernels.band_ratio`).
-
-    a_wb : np.ndarray [shape=(n, p+1)] at 16 kHz; a_nb : np.ndarray [shape=(n, q+1)] at 8 kHz
-    """
+def _band_ratios(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
+    """|A_nb|^2 / |A_wb|^2 on the 31.25 Hz bins of 300-3400 Hz (:func:`nenv.dsp.kernels.band_ratio`)."""
     # envelope power is 1/|A|^2, so wb_dB - nb_dB = 10 log10(|A_nb|^2 / |A_wb|^2) on the same
     # frequencies: the bins of a 512-point grid at 16 kHz are those of a 256-point grid at 8 kHz
     bins = cepstrum.band_bins(CHANNEL_LOW_HZ, BAND_EDGE_HZ, n_fft=MISMATCH_N_FFT_WB, sr=WB_SR)
     cos_wb, sin_wb = cepstrum.cosine_table(a_wb.shape[-1], MISMATCH_N_FFT_WB, *bins)
     cos_nb, sin_nb = cepstrum.cosine_table(a_nb.shape[-1], MISMATCH_N_FFT_NB, *bins)
-    ratio = kernels.band_ratio(np.ascontiguousarray(a_wb, dtype=np.float64), np.ascontiguousarray(a_nb, dtype=np.float64), cos_wb, sin_wb, cos_nb, sin_nb)
-    # one logarithm per bin, in single precision (ample for a threshold in dB)
-    d = np.log10(ratio.astype(np.float32)).astype(np.float64)
-    d *= 10
-    n = d.shape[1]
-    d -= d.sum(axis=1, keepdims=True) / n
-    d *= d
-    return np.sqrt(d.sum(axis=1) / n)
+    return kernels.band_ratio(np.ascontiguousarray(a_wb, dtype=np.float64), np.ascontiguousarray(a_nb, dtype=np.float64), cos_wb, sin_wb, cos_nb, sin_nb)
+
+
+def telephone_band_mismatch(a_wb: np.ndarray, a_nb: np.ndarray) -> np.ndarray:
+    """RMS difference (dB) of the mean-removed log envelopes over 300-3400 Hz (each log in single
+    precision, ample for a threshold in dB; :func:`nenv.dsp.kernels.mismatch_db`).
+
+    a_wb : np.ndarray [shape=(n, p+1)] at 16 kHz; a_nb : np.ndarray [shape=(n, q+1)] at 8 kHz
+    """
+    return kernels.mismatch_db(_band_ratios(a_wb, a_nb))
 
 
 class Guard:
@@ -190,31 +189,22 @@ class Guard:
         step-down of ``a`` computes them. ``low_db``: the low-band level of each envelope
         (:func:`nenv.chain.features.low_band_level`), needed when the low band is on."""
         lim = self.limits
+        if self.low_band and low_db is None:
+            raise ValueError("the guard checks the low band: pass low_db")
+        a = np.ascontiguousarray(a, dtype=np.float64)
         a_ok = np.isfinite(a)
-        finite = np.isfinite(ceps).all(axis=1) & np.isfinite(level_db) & np.isfinite(gain) & (gain > 0) & a_ok.all(axis=1)
-        a_fin = a if finite.all() else np.where(a_ok, a, 0.0)
+        a_fin = a if a_ok.all() else np.where(a_ok, a, 0.0)
         if k is None:
             k, stable = lpc.reflection(a_fin)
+            stable = np.asarray(stable, dtype=np.float64)
         else:
-            k = np.where(np.isfinite(k), k, 0.0)
-            stable = True
-        max_k = np.abs(k).max(axis=1)
-        stable = stable & (max_k < 1.0 - lim.stability_margin)
-        mismatch = np.where(finite, telephone_band_mismatch(a_fin, a_nb), np.inf)
-        level_bad = ~((level_db >= lim.level_min_db) & (level_db <= lim.level_max_db))
-        reasons = np.where(finite, 0, int(Check.NONFINITE))
-        reasons |= np.where(finite & ~stable, int(Check.UNSTABLE), 0)
-        reasons |= np.where(np.isfinite(level_db) & level_bad, int(Check.LEVEL), 0)
-        reasons |= np.where(finite & (mismatch > lim.mismatch_max_db), int(Check.MISMATCH), 0)
-        reasons |= np.where(novelty > lim.novelty_max, int(Check.NOVEL), 0)
-        if self.low_band:
-            if low_db is None:
-                raise ValueError("the guard checks the low band: pass low_db")
-            lo = -np.inf if lim.low_min_db is None else lim.low_min_db
-            hi = np.inf if lim.low_max_db is None else lim.low_max_db
-            reasons |= np.where(finite & ~((low_db >= lo) & (low_db <= hi)), int(Check.LOW_BAND), 0)
-        else:
-            low_db = np.full(max_k.shape, np.nan)
+            stable = np.ones(a.shape[0])
+        low = np.asarray(low_db, dtype=np.float64) if self.low_band else np.full(a.shape[0], np.nan)
+        params = np.array([lim.level_min_db, lim.level_max_db, lim.mismatch_max_db, lim.novelty_max, lim.stability_margin, float(self.low_band),
+                           -np.inf if lim.low_min_db is None else lim.low_min_db, np.inf if lim.low_max_db is None else lim.low_max_db])
+        f64 = lambda v: np.ascontiguousarray(v, dtype=np.float64)  # noqa: E731
+        reasons, max_k, mismatch, k = kernels.guard_rules(f64(ceps), f64(level_db), a, f64(gain), f64(k), stable, _band_ratios(a_fin, a_nb), f64(novelty), low, params)
+        low_db = low
         dec = Decisions(
             rejected=reasons != 0,
             reasons=reasons,

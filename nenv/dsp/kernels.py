@@ -27,7 +27,7 @@ import numpy as np
 
 from nenv.dsp import filter_loops, lpc_loops
 
-LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "band_ratio")
+LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "band_ratio", "mismatch_db", "guard_rules")
 FILTER_KERNELS = ("rectify", "sosfilt", "hop_ramp", "fir", "upsample2", "synthesize")
 PUBLIC = LPC_KERNELS + FILTER_KERNELS
 loops = SimpleNamespace(**{n: getattr(lpc_loops, n) for n in LPC_KERNELS}, **{n: getattr(filter_loops, n) for n in FILTER_KERNELS})
@@ -62,6 +62,8 @@ def _signatures() -> dict:
         loops.upsample2: (r2, w2, r1, r1),
         loops.synthesize: (r2, r3, r2, w2, w1, w2, i, f),
         loops.band_ratio: (r2, r2, r2, r2, r2, r2),
+        loops.mismatch_db: (r2,),
+        loops.guard_rules: (r2, r1, r2, r1, r2, r1, r2, r1, r1, r1),
     }
 
 
@@ -92,7 +94,9 @@ def _run_each_once() -> None:
     loops.fir(np.ones(3), f, np.zeros((2, 2)))
     loops.upsample2(f, np.zeros((2, 2)), np.ones(3), np.ones(2))
     loops.synthesize(np.ones((2, 16)), np.zeros((2, 2, 4)), np.zeros((2, 2)), np.zeros((2, 4)), np.zeros(2), np.zeros((2, 4)), 2, 0.9999)
-    loops.band_ratio(a, a, np.ones((5, 3)), np.zeros((5, 3)), np.ones((5, 3)), np.zeros((5, 3)))
+    ratio = loops.band_ratio(a, a, np.ones((5, 3)), np.zeros((5, 3)), np.ones((5, 3)), np.zeros((5, 3)))
+    loops.mismatch_db(ratio)
+    loops.guard_rules(np.zeros((2, 3)), np.zeros(2), a, np.ones(2), k, np.ones(2), ratio, np.zeros(2), np.zeros(2), np.zeros(8))
 
 
 def warm(*, notice=None) -> float:

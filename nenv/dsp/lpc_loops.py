@@ -216,3 +216,78 @@ def band_ratio(a_wb, a_nb, cos_wb, sin_wb, cos_nb, sin_nb):
             m_wb = max(re_w[f] * re_w[f] + im_w[f] * im_w[f], 1e-300)
             out[b, f] = min(max(m_nb / m_wb, 1e-30), 1e30)
     return out
+
+
+@jit.plain
+def _rms_db(ratio, b):
+    """RMS of the mean-removed 10 log10(ratio[b]) over its bins; each log in single precision."""
+    n = ratio.shape[1]
+    d = np.empty(n)
+    mean = 0.0
+    for f in range(n):
+        d[f] = 10.0 * np.float64(math.log10(np.float32(ratio[b, f])))
+        mean += d[f]
+    mean /= n
+    s = 0.0
+    for f in range(n):
+        v = d[f] - mean
+        s += v * v
+    return math.sqrt(s / n)
+
+
+@jit.plain
+def mismatch_db(ratio):
+    """Per row, :func:`_rms_db` of a :func:`band_ratio` result: ratio [shape=(B, bins)] -> [shape=(B,)]."""
+    out = np.empty(ratio.shape[0])
+    for b in range(ratio.shape[0]):
+        out[b] = _rms_db(ratio, b)
+    return out
+
+
+@jit.plain
+def guard_rules(ceps, level, a, gain, k, stable, ratio, novelty, low_db, limits):
+    """The guard's checks per hop (:mod:`nenv.chain.guard` documents them), in one pass.
+
+    ceps [shape=(n, c)], level, gain, novelty, low_db [shape=(n,)] (low_db NaN when the low band is
+    off), a [shape=(n, p + 1)], k [shape=(n, p)] reflection coefficients (non-finite ones count as 0),
+    stable [shape=(n,)] 1.0 where the step-down found the envelope stable, ratio [shape=(n, bins)]
+    the band spectra of a with its non-finite values zeroed; limits = (level_min, level_max,
+    mismatch_max, novelty_max, stability_margin, low_on, low_min, low_max).
+    Returns reasons (bit flags, int64), max |k|, the mismatch in dB (inf where not finite) and k
+    with its non-finite values zeroed.
+    """
+    n = ceps.shape[0]
+    reasons = np.zeros(n, dtype=np.int64)
+    max_k = np.zeros(n)
+    mismatch = np.full(n, np.inf)
+    k_out = np.empty(k.shape)
+    level_min, level_max, mismatch_max, novelty_max, margin, low_on, low_min, low_max = limits[0], limits[1], limits[2], limits[3], limits[4], limits[5], limits[6], limits[7]
+    for b in range(n):
+        finite = np.isfinite(level[b]) and np.isfinite(gain[b]) and gain[b] > 0
+        for j in range(ceps.shape[1]):
+            finite = finite and np.isfinite(ceps[b, j])
+        for j in range(a.shape[1]):
+            finite = finite and np.isfinite(a[b, j])
+        m = 0.0
+        for j in range(k.shape[1]):
+            v = k[b, j] if np.isfinite(k[b, j]) else 0.0
+            k_out[b, j] = v
+            m = max(m, abs(v))
+        max_k[b] = m
+        r = 0
+        if not finite:
+            r |= 1  # NONFINITE
+        else:
+            if not (stable[b] > 0.5 and m < 1.0 - margin):
+                r |= 2  # UNSTABLE
+            mismatch[b] = _rms_db(ratio, b)
+            if mismatch[b] > mismatch_max:
+                r |= 8  # MISMATCH
+            if low_on > 0.5 and not (low_db[b] >= low_min and low_db[b] <= low_max):
+                r |= 32  # LOW_BAND
+        if np.isfinite(level[b]) and not (level[b] >= level_min and level[b] <= level_max):
+            r |= 4  # LEVEL
+        if novelty[b] > novelty_max:
+            r |= 16  # NOVEL
+        reasons[b] = r
+    return reasons, max_k, mismatch, k_out
