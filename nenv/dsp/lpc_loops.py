@@ -291,3 +291,58 @@ def guard_rules(ceps, level, a, gain, k, stable, ratio, novelty, low_db, limits)
             r |= 16  # NOVEL
         reasons[b] = r
     return reasons, max_k, mismatch, k_out
+
+
+@jit.plain
+def envelopes_from_cepstra(c, cos, inv, floor_ln, silent_energy, hb_cos, hb_sin, target, n_fft):
+    """The always-stable route from cepstra to all-pole envelopes, and each envelope's gain set to a
+    target high-band power, per row (:func:`nenv.chain.features.envelope_from_prediction`).
+
+    c [shape=(n, m + 1)] cepstra with c_0 (non-finite values count as 0); cos [shape=(m + 1, F)] the
+    log-magnitude series on the rfft grid; inv [shape=(F, order + 1)] the inverse transform to the
+    autocorrelation; floor_ln: the spectrum's floor below its peak (natural log of magnitude);
+    hb_cos / hb_sin [shape=(order + 1, bins)] the high band's bins; target [shape=(n,)] the power
+    wanted there. Returns a [shape=(n, order + 1)], gain [shape=(n,)] (inf or NaN when the target or
+    the level is), k [shape=(n, order)] from the Levinson-Durbin recursion.
+    """
+    n, terms = c.shape
+    n_freq = cos.shape[1]
+    order = inv.shape[1] - 1
+    a = np.zeros((n, order + 1))
+    k = np.zeros((n, order))
+    gain = np.empty(n)
+    logmag = np.empty(n_freq)
+    r = np.zeros((1, order + 1))
+    for b in range(n):
+        for f in range(n_freq):
+            logmag[f] = 0.0
+        for j in range(terms):
+            cj = c[b, j] if np.isfinite(c[b, j]) else 0.0
+            for f in range(n_freq):
+                logmag[f] += cj * cos[j, f]
+        top = logmag[0]
+        for f in range(1, n_freq):
+            top = max(top, logmag[f])
+        for lag in range(order + 1):
+            r[0, lag] = 0.0
+        for f in range(n_freq):
+            e = math.exp(2.0 * max(logmag[f] - top, -floor_ln))
+            for lag in range(order + 1):
+                r[0, lag] += e * inv[f, lag]
+        ab, kb, err = levinson(r, order, silent_energy)
+        g0 = math.sqrt(max(err[0], 0.0)) * math.exp(top)
+        hb = 0.0
+        for f in range(hb_cos.shape[1]):
+            re = 0.0
+            im = 0.0
+            for j in range(order + 1):
+                re += ab[0, j] * hb_cos[j, f]
+                im += ab[0, j] * hb_sin[j, f]
+            hb += g0 * g0 / max(re * re + im * im, 1e-300)
+        hb = 2.0 * hb / n_fft
+        gain[b] = g0 * math.sqrt(target[b] / hb) if hb > 0 else (math.inf if target[b] > 0 else math.nan)
+        for j in range(order + 1):
+            a[b, j] = ab[0, j]
+        for j in range(order):
+            k[b, j] = kb[0, j]
+    return a, gain, k
