@@ -287,25 +287,3 @@ def test_envelopes_from_cepstra_equal_the_numpy_route(rng):
     np.testing.assert_allclose(a, a_ref, atol=1e-12)
     np.testing.assert_allclose(k, k_ref, atol=1e-12)
     np.testing.assert_allclose(gain, g_ref, rtol=1e-12)  # NaN and inf where the reference has them
-
-
-def test_voicing_equals_numpy_correlate(rng):
-    # Reference: numpy.correlate of each windowed frame with itself (float64), divided by its lag-0
-    # value and by the window's own normalised autocorrelation, largest over the pitch lags, clipped.
-    from nenv.chain import features
-    from nenv.dsp import lpc
-
-    frames = rng.normal(size=(40, 240))
-    t = np.arange(240)
-    frames[:20] += 3 * np.sin(2 * np.pi * t[None, :] / rng.uniform(25, 140, (20, 1)))  # voiced-like rows
-    frames[20] = 0.0  # silence
-    got = features.voicing(frames)
-    w = lpc.asymmetric_window(240)
-    rw = np.correlate(w, w, "full")[239:]
-    lo, hi = features.PITCH_LAGS
-    for b in range(40):
-        xw = frames[b] * w
-        r = np.correlate(xw, xw, "full")[239:]
-        want = 0.0 if r[0] <= 0 else min(max((r[lo : hi + 1] / r[0] / (rw[lo : hi + 1] / rw[0])).max(), 0.0), 1.0)
-        assert got[b] == pytest.approx(want, abs=1e-12)
-    assert got[20] == 0.0 and got[:20].min() > 0.5

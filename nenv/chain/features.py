@@ -119,18 +119,16 @@ def voicing(frames: np.ndarray) -> np.ndarray:
 
 def _voicing(xw: np.ndarray, length: int) -> np.ndarray:
     # normalised autocorrelation over the pitch range, divided by the window's own normalised
-    # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17), as direct
-    # sums in a compiled kernel (:func:`nenv.dsp.kernels.voicing`)
-    return kernels.voicing(np.ascontiguousarray(xw, dtype=np.float64), _window_ratio(length), PITCH_LAGS[0])
-
-
-@lru_cache(maxsize=None)
-def _window_ratio(length: int) -> np.ndarray:
-    """The window's normalised autocorrelation over the pitch lags (read-only, computed once)."""
+    # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17). Single
+    # precision is ample for a value in [0, 1] and halves the FFTs' cost; each frame is scaled
+    # to unit peak first (the ratio does not depend on scale), so nothing underflows.
+    peak = np.abs(xw).max(axis=1, keepdims=True)
+    r = lpc.autocorrelation((xw / np.where(peak > 0, peak, 1.0)).astype(np.float32), order=PITCH_LAGS[1]).astype(np.float64)
     rw = _window_autocorrelation(length)
-    ratio = np.ascontiguousarray(rw[PITCH_LAGS[0] : PITCH_LAGS[1] + 1] / rw[0])
-    ratio.flags.writeable = False
-    return ratio
+    r0 = r[:, 0]
+    lags = slice(PITCH_LAGS[0], PITCH_LAGS[1] + 1)
+    norm = r[:, lags] / np.where(r0 > 0, r0, 1.0)[:, None] / (rw[lags] / rw[0])[None, :]
+    return np.where(r0 > 0, np.minimum(np.maximum(norm.max(axis=1), 0.0), 1.0), 0.0)
 
 
 @lru_cache(maxsize=None)

@@ -346,27 +346,3 @@ def envelopes_from_cepstra(c, cos, inv, floor_ln, silent_energy, hb_cos, hb_sin,
         for j in range(order):
             k[b, j] = kb[0, j]
     return a, gain, k
-
-
-@jit.sums
-def voicing(xw, rw_ratio, lag_lo):
-    """Largest normalised autocorrelation over lags lag_lo .. lag_lo + len(rw_ratio) - 1, each divided
-    by the window's own normalised autocorrelation at that lag (``rw_ratio``), clipped to 0..1; 0 for
-    a silent frame. xw [shape=(n, L)] windowed frames -> [shape=(n,)]."""
-    n, length = xw.shape
-    out = np.zeros(n)
-    for b in range(n):
-        r0 = 0.0
-        for i in range(length):
-            r0 += xw[b, i] * xw[b, i]
-        if not r0 > 0:
-            continue
-        best = -np.inf
-        for j in range(rw_ratio.shape[0]):
-            lag = lag_lo + j
-            s = 0.0
-            for i in range(length - lag):
-                s += xw[b, i] * xw[b, i + lag]
-            best = max(best, s / r0 / rw_ratio[j])
-        out[b] = min(max(best, 0.0), 1.0)
-    return out
