@@ -29,7 +29,7 @@ from functools import lru_cache
 
 import numpy as np
 
-from nenv.dsp import cepstrum, kernels, lpc
+from nenv.dsp import cepstrum, lpc
 from nenv.errors import ConfigError
 from nenv.chain.estimators.base import NarrowbandAnalysis
 from nenv.settings import BAND_EDGE_HZ, HOP_NB, LOW_BAND_HZ, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
@@ -209,15 +209,6 @@ def wideband_targets(wb_frames: np.ndarray, nb_energy_db: np.ndarray, *, setting
     return ceps, hb_db - nb_energy_db
 
 
-@lru_cache(maxsize=None)
-def _envelope_tables(n_terms: int, order: int) -> tuple[np.ndarray, ...]:
-    """The transforms :func:`envelope_from_prediction` uses (read-only, computed once)."""
-    cos, _ = cepstrum.cosine_table(n_terms, LEVEL_N_FFT)
-    inv = cepstrum.inverse_cosine_table(order + 1, LEVEL_N_FFT)
-    hb_cos, hb_sin = cepstrum.cosine_table(order + 1, LEVEL_N_FFT, *cepstrum.band_bins(BAND_EDGE_HZ, WB_SR / 2, n_fft=LEVEL_N_FFT, sr=WB_SR))
-    return cos, inv, hb_cos, hb_sin
-
-
 def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_db: np.ndarray, *, order: int = WB_ORDER, with_reflection: bool = False) -> tuple[np.ndarray, ...]:
     """Stable all-pole envelopes whose high-band power matches the predicted level.
 
@@ -229,13 +220,13 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
     with ``with_reflection``, the reflection coefficients of ``a`` [shape=(n, order)] from the
     Levinson-Durbin recursion that produced it.
     """
-    c = np.concatenate([np.zeros((ceps.shape[0], 1)), np.asarray(ceps, dtype=np.float64)], axis=1)
-    with np.errstate(over="ignore", invalid="ignore"):
-        target = np.ascontiguousarray(10 ** ((nb_energy_db + level_db) / 10), dtype=np.float64)
-    # one compiled pass per hop: cepstrum -> log spectrum -> autocorrelation -> Levinson-Durbin (the
-    # always-stable route of cepstrum.from_cepstrum_stable), then the gain for the target level
-    cos, inv, hb_cos, hb_sin = _envelope_tables(c.shape[1], order)
-    a, gain, k = kernels.envelopes_from_cepstra(c, cos, inv, cepstrum.STABLE_FLOOR_DB * np.log(10) / 20, lpc.SILENT_ENERGY, hb_cos, hb_sin, target, LEVEL_N_FFT)
+    c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
+    a, g0, k = cepstrum.from_cepstrum_stable(np.where(np.isfinite(c), c, 0.0), order=order, with_reflection=True)
+    env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=cepstrum.band_bins(BAND_EDGE_HZ, WB_SR / 2, n_fft=LEVEL_N_FFT, sr=WB_SR))
+    model_hb = 2.0 * env.sum(axis=1) / LEVEL_N_FFT
+    target = 10 ** ((nb_energy_db + level_db) / 10)
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        gain = g0 * np.sqrt(target / model_hb)
     return (a, gain, k) if with_reflection else (a, gain)
 
 

@@ -138,12 +138,6 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512, with_re
     return (a, gain, k) if with_reflection else (a, gain)
 
 
-def inverse_cosine_table(n_lags: int, n_fft: int) -> np.ndarray:
-    """W [shape=(n_fft//2 + 1, n_lags)] with ``S @ W == irfft(S, n_fft)[..., :n_lags]`` for real, even
-    spectra S on the rfft grid (read-only, computed once)."""
-    return _inverse_cosines(n_lags, n_fft)
-
-
 @lru_cache(maxsize=None)
 def _inverse_cosines(n_lags: int, n_fft: int) -> np.ndarray:
     """W with ``S @ W == irfft(S, n_fft)[..., :n_lags]`` for real, even spectra S on the rfft grid."""

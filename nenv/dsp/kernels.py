@@ -27,7 +27,7 @@ import numpy as np
 
 from nenv.dsp import filter_loops, lpc_loops
 
-LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "band_ratio", "mismatch_db", "guard_rules", "envelopes_from_cepstra")
+LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "band_ratio", "mismatch_db", "guard_rules")
 FILTER_KERNELS = ("rectify", "sosfilt", "hop_ramp", "fir", "upsample2", "synthesize")
 PUBLIC = LPC_KERNELS + FILTER_KERNELS
 loops = SimpleNamespace(**{n: getattr(lpc_loops, n) for n in LPC_KERNELS}, **{n: getattr(filter_loops, n) for n in FILTER_KERNELS})
@@ -64,7 +64,6 @@ def _signatures() -> dict:
         loops.band_ratio: (r2, r2, r2, r2, r2, r2),
         loops.mismatch_db: (r2,),
         loops.guard_rules: (r2, r1, r2, r1, r2, r1, r2, r1, r1, r1),
-        loops.envelopes_from_cepstra: (r2, r2, r2, f, f, r2, r2, r1, i),
     }
 
 
@@ -98,7 +97,6 @@ def _run_each_once() -> None:
     ratio = loops.band_ratio(a, a, np.ones((5, 3)), np.zeros((5, 3)), np.ones((5, 3)), np.zeros((5, 3)))
     loops.mismatch_db(ratio)
     loops.guard_rules(np.zeros((2, 3)), np.zeros(2), a, np.ones(2), k, np.ones(2), ratio, np.zeros(2), np.zeros(2), np.zeros(8))
-    loops.envelopes_from_cepstra(np.zeros((2, 3)), np.ones((3, 5)), np.ones((5, 3)), 9.0, 1e-280, np.ones((3, 2)), np.zeros((3, 2)), np.ones(2), 8)
 
 
 def warm(*, notice=None) -> float:
