@@ -194,15 +194,21 @@ def test_ffmpeg_sends_pcma_and_receives_through_the_batched_relay(arctic_refs, t
     assert np.max(np.abs(y[: expected.size] - expected)) <= 1
 
 
-def test_gstreamer_rtcp_bye_ends_the_call_at_once(arctic_refs, tmp_path):
-    """GStreamer's rtpbin sends RTCP to the port above the RTP port and a BYE at the end of the stream: the
-    relay closes the call on it (RFC 3550 section 6.6), well before its idle timeout."""
-    codes, decoded = _clip(arctic_refs, "mulaw", seconds=1.0)
-    wav = _g711_wav(tmp_path / "call.wav", codes, "mulaw")
+def _imaging_relay(*, idle_timeout_s: float):
+    """An imaging relay on a free RTP/RTCP port pair, sending to a socket nobody reads (its output is not checked here)."""
     rx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     rx.bind(("127.0.0.1", 0))
     listen = _free_pair()
-    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), listen=("127.0.0.1", listen), send_to=rx.getsockname(), idle_timeout_s=10.0).start()
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), listen=("127.0.0.1", listen), send_to=rx.getsockname(), idle_timeout_s=idle_timeout_s).start()
+    return relay, listen, rx  # the caller keeps rx open while the relay runs
+
+
+def test_gstreamer_rtcp_bye_ends_the_call_at_once(arctic_refs, tmp_path):
+    """GStreamer's rtpbin sends RTCP to the port above the RTP port and a BYE at the end of the stream: the
+    relay closes the call on it (RFC 3550 section 6.6), well before its idle timeout."""
+    codes, _ = _clip(arctic_refs, "mulaw", seconds=1.0)
+    wav = _g711_wav(tmp_path / "call.wav", codes, "mulaw")
+    relay, listen, _rx = _imaging_relay(idle_timeout_s=10.0)
     sender = subprocess.Popen(_gst_sender(wav, listen, "mulaw", rtcp=True), stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     try:
         waited = _wait_closed(relay, 0x4E454E56, 8.0)
@@ -218,12 +224,9 @@ def test_gstreamer_rtcp_bye_ends_the_call_at_once(arctic_refs, tmp_path):
 def test_three_gstreamer_senders_in_turn_on_one_ssrc_lose_nothing(arctic_refs, tmp_path):
     """Three senders one after another with the same SSRC and sequence numbers jumping 1000 -> 30000 -> 5000
     (restarts per RFC 3550 appendix A.1): every packet is delivered and none is counted lost."""
-    codes, decoded = _clip(arctic_refs, "mulaw", seconds=1.0)
+    codes, _ = _clip(arctic_refs, "mulaw", seconds=1.0)
     wav = _g711_wav(tmp_path / "call.wav", codes, "mulaw")
-    rx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
-    rx.bind(("127.0.0.1", 0))
-    listen = _free_pair()
-    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), listen=("127.0.0.1", listen), send_to=rx.getsockname(), idle_timeout_s=3.0).start()
+    relay, listen, _rx = _imaging_relay(idle_timeout_s=3.0)
     try:
         for seq in (1000, 30000, 5000):
             sender = subprocess.run(_gst_sender(wav, listen, "mulaw", seq=seq), capture_output=True, timeout=60)

@@ -140,15 +140,18 @@ def test_prepared_panel_is_blind_and_level_aligned(tmp_path):
             assert abs(channel.active_level_dbov(y, sr=16000) - level) < 0.1  # loudness-aligned (active speech level)
 
 
-def _browser():
-    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+def _browser(names: tuple[str, ...], client: str, install: str) -> str:
+    """The first of ``names`` on the PATH, if the Python ``client`` that drives it imports too."""
+    import importlib
+
+    path = next((p for p in map(shutil.which, names) if p), None)
     try:
-        import playwright.sync_api  # noqa: F401
+        importlib.import_module(client)
     except ImportError:
-        browser = None
-    if browser is None:
-        missing_tool("chromium or playwright is not installed (apt-get install chromium; pip install playwright)")
-    return browser
+        path = None
+    if path is None:
+        missing_tool(f"{names[0]} or {client} is not installed ({install})")
+    return path
 
 
 def _collector():
@@ -193,7 +196,7 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
 
     from nenv.cli import app
 
-    browser = _browser()
+    browser = _browser(("chromium", "chromium-browser"), "playwright.sync_api", "apt-get install chromium; pip install playwright")
     posted = _collector()  # the results are also POSTed here (the page's optional --post-url)
     runner = CliRunner()
     res = runner.invoke(app, ["panel", str(ARCTIC[0]), str(ARCTIC[1]), "--out", str(tmp_path / "p"), "--method", "imaging", "--post-url", posted.url])
@@ -278,14 +281,10 @@ def test_page_runs_in_firefox(tmp_path):
     import tempfile
     import time
 
-    firefox = shutil.which("firefox-esr") or shutil.which("firefox")
-    try:
-        from marionette_driver.keys import Keys
-        from marionette_driver.marionette import Marionette
-    except ImportError:
-        firefox = None
-    if firefox is None:
-        missing_tool("firefox or marionette-driver is not installed (apt-get install firefox-esr; pip install marionette-driver)")
+    firefox = _browser(("firefox-esr", "firefox"), "marionette_driver", "apt-get install firefox-esr; pip install marionette-driver")
+    from marionette_driver.keys import Keys
+    from marionette_driver.marionette import Marionette
+
     key = panel.prepare([ARCTIC[0], ARCTIC[1]], tmp_path / "p", systems=["imaging"])
     profile = tempfile.mkdtemp(dir=tmp_path)
     s = socket.socket()
