@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 
@@ -30,6 +32,15 @@ def calls(arctic_refs):
     return out
 
 
+@pytest.fixture(scope="module")
+def strict_model(model):
+    """The shipped model with its guard's level range narrowed to 16 dB around the middle, so that it
+    rejects a good share of these calls' hops (the shipped guard rejects none of them): the per-call
+    counts of rejected hops are then worth comparing."""
+    mid = 0.5 * (model.limits.level_min_db + model.limits.level_max_db)
+    return dataclasses.replace(model, limits=dataclasses.replace(model.limits, level_min_db=mid - 8.0, level_max_db=mid + 8.0))
+
+
 def _alone(model, x, chunks):
     eng = CallEngine(system=pipeline.make_system("neural", model=model), keep_decisions=True)
     pos, out = 0, []
@@ -41,7 +52,9 @@ def _alone(model, x, chunks):
     return np.concatenate(out), eng.system.estimator.record()
 
 
-def test_batched_calls_equal_their_own_engines(model, calls):
+@pytest.mark.parametrize("guard", ["shipped", "strict"])
+def test_batched_calls_equal_their_own_engines(model, strict_model, calls, guard):
+    model = strict_model if guard == "strict" else model
     rng = np.random.default_rng(0)
     engine = MultiCallEngine(model)
     outs = {i: [] for i in range(len(calls))}
@@ -68,6 +81,8 @@ def test_batched_calls_equal_their_own_engines(model, calls):
         assert y.shape == ref.shape == (2 * x.size,)
         np.testing.assert_allclose(y, ref, atol=1e-6)
         assert stats["rejected_hops"] == int(dec.rejected[: stats["hops"]].sum())
+        if guard == "strict":
+            assert 0 < stats["rejected_hops"] < stats["hops"]
     assert engine.calls == []
 
 
