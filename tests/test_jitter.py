@@ -51,15 +51,19 @@ def test_a_swap_within_the_window_is_reordered_and_a_late_copy_dropped():
 
 
 def test_a_missing_packet_is_declared_lost_when_the_window_overflows_and_filled_with_its_span():
-    pkts = _stream(0, 0, 10)
+    pkts = _stream(0, 0, 40)
     po = PlayOut(pkts[0], window=3)
     arrived = [p for i, p in enumerate(pkts) if i != 4]
-    y = _play(po, arrived[:7])  # 0..3 played, 5..7 wait (window 3)
-    assert y.size == 4 * N and len(po.held) == 3
-    y2 = _play(po, arrived[7:])  # a fourth waiting packet: 4 is lost
+    y = _play(po, arrived[:7])  # 0..3 played, 5..7 wait (window 3: three may wait)
+    assert y.size == 4 * N and len(po.held) == 3 and po.counters.lost_packets == 0
+    y2 = _play(po, [pkts[8]])  # a fourth waiting packet: 4 is lost now, not later
     c = po.counters
-    assert c.lost_packets == 1 and c.filled_samples == N and y2.size == 6 * N
+    assert c.lost_packets == 1 and c.filled_samples == N and y2.size == 5 * N and not po.held
     assert not np.any(y2[:N]) and np.all(y2[N:] != 0)
+    # a run of 20 lost packets (400 ms) is filled with exactly its span once the window overflows
+    y3 = _play(po, [pkts[9]] + pkts[30:34])
+    assert c.lost_packets == 21 and c.filled_samples == 21 * N and y3.size == (1 + 20 + 4) * N
+    assert np.all(y3[:N] != 0) and not np.any(y3[N : 21 * N]) and np.all(y3[21 * N :] != 0)
 
 
 def test_suppressed_silence_is_filled_up_to_a_second_and_a_longer_jump_restarts_timing():
