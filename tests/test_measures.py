@@ -51,6 +51,49 @@ def test_an_empty_band_costs_the_floor_distance(rng):
     assert 20 < d <= measures.FLOOR_DB
 
 
+def _band_noise(rng, n, lo, hi):
+    """White noise of unit power inside lo..hi Hz only (bins outside zeroed)."""
+    spec = np.fft.rfft(rng.standard_normal(n))
+    f = np.fft.rfftfreq(n, 1 / 16000)
+    spec[(f < lo) | (f > hi)] = 0
+    x = np.fft.irfft(spec, n)
+    return x / np.sqrt(np.mean(x * x))
+
+
+def _segments(rng, plan):
+    """plan: (seconds, level dB of the segment, high-band gain dB of the estimate) per segment ->
+    reference and estimate; the estimate's 3.6-7.9 kHz part is the reference's times the gain."""
+    ref, est = [], []
+    for seconds, level_db, gain_db in plan:
+        n = int(seconds * 16000)
+        low, high = _band_noise(rng, n, 100, 3000), _band_noise(rng, n, 3600, 7900)
+        a = 0.1 * 10 ** (level_db / 20)
+        ref.append(a * (low + high))
+        est.append(a * (low + 10 ** (gain_db / 20) * high))
+    return np.concatenate(ref), np.concatenate(est)
+
+
+def test_level_errors_are_medians_over_active_frames_only(rng):
+    # Worked example: 0.8 s at 0 dB with the estimate's band +6 dB, 0.4 s at -20 dB with it -12 dB
+    # (both active: within ACTIVE_DB = 40 dB of the loudest frame), and 1.5 s at -50 dB with it
+    # -20 dB (not active). The median over active frames is +6 dB; a mean would give about 0, and
+    # counting the quiet frames would give -20.
+    ref, est = _segments(rng, [(0.8, 0, 6), (0.4, -20, -12), (1.5, -50, -20)])
+    assert measures.high_band_level_error(ref, est) == pytest.approx(6.0206, abs=0.3)
+    # the low band: frames whose reference holds one within LOW_PRESENT_DB = 30 dB of its loudest
+    # frame's. 0.8 s with a loud low band, the estimate's +6 dB; 0.3 s with it too, the estimate's
+    # -12 dB; 1.2 s of equally loud speech whose low band is 40 dB weaker, the estimate's -20 dB
+    # there: only the first two count, median +6 dB (a mean would give about +1).
+    parts_ref, parts_est = [], []
+    for seconds, low_db, gain_db in [(0.8, 0, 6), (0.3, 0, -12), (1.2, -40, -20)]:
+        n = int(seconds * 16000)
+        low, mid = _band_noise(rng, n, 80, 280), _band_noise(rng, n, 500, 3000)
+        parts_ref.append(0.1 * (10 ** (low_db / 20) * low + mid))
+        parts_est.append(0.1 * (10 ** ((low_db + gain_db) / 20) * low + mid))
+    ref, est = np.concatenate(parts_ref), np.concatenate(parts_est)
+    assert measures.low_band_level_error(ref, est) == pytest.approx(6.0206, abs=0.3)
+
+
 def test_silent_reference_gives_nan():
     z = np.zeros(16000)
     assert np.isnan(measures.lsd(z, z))
