@@ -128,6 +128,17 @@ def test_low_band_is_gated_by_voicing_hop_by_hop(arctic_refs):
     assert np.median(p[quiet]) < 10 ** (-2.5) * np.median(p[loud])
 
 
+def test_low_band_weight_rule_by_hand():
+    # 0 below voicing 0.4, linear to the +LOW_BAND_GAIN_DB trim at 0.7; 0 where the envelope's gain is
+    # 0 (digital silence) or not finite, whatever the voicing.
+    from nenv.chain.systems import low_band_weights
+    from nenv.settings import LOW_BAND_GAIN_DB
+
+    trim = 10 ** (LOW_BAND_GAIN_DB / 20)
+    w = low_band_weights(np.array([0.2, 0.4, 0.55, 0.7, 0.95, 0.9, 0.9, 0.9]), np.array([1.0, 1, 1, 1, 1, 0.0, np.nan, np.inf]))
+    np.testing.assert_allclose(w, [0, 0, 0.5 * trim, trim, trim, 0, 0, 0], atol=1e-12)
+
+
 def test_hop_ramp_kernel_equals_numpy_broadcasting(rng):
     # Reference: the weights built with numpy broadcasting, hop by hop from the previous hop's weight.
     from nenv.dsp import kernels
