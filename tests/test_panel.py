@@ -81,6 +81,11 @@ def test_post_screening_follows_the_15_percent_rule(tmp_path):
     files, key = _write_panel(tmp_path, {"A": base, "B": one, "C": two, "D": loud_anchor})
     excluded = verdicts.screen(verdicts.read(files, key))
     assert sorted(excluded) == ["C", "D"] and "anchor" in excluded["D"]
+    # exactly 15% (3 of 20) is not more than 15%: kept; 4 of 20 is
+    twenty = {"reference": [100] * 20, "unextended": [20] * 20, "neural": [50] * 20}
+    (tmp_path / "t20").mkdir()
+    files, key = _write_panel(tmp_path / "t20", {"E": {**twenty, "reference": [80] * 3 + [100] * 17}, "F": {**twenty, "reference": [80] * 4 + [100] * 16}})
+    assert list(verdicts.screen(verdicts.read(files, key))) == ["F"]
 
 
 def test_results_of_another_panel_or_out_of_range_are_refused(tmp_path):
