@@ -129,6 +129,8 @@ def test_an_rtcp_bye_ends_its_stream_at_once_and_the_first_packet_out_carries_th
     relay.handle(receiver_report + bye([0xAB]), ("127.0.0.1", 40001))  # compound RR + BYE, from the RTCP port
     assert 0xAB not in relay.streams and 0xAB in relay.closed and 0xCD in relay.streams  # the other stream goes on
     assert relay.counters.goodbyes == 1 and relay.counters.malformed == 0
+    relay.handle(bye([0xCD]), ("127.0.0.2", 40001))  # a BYE from another host does not end a stream
+    assert 0xCD in relay.streams and relay.counters.goodbyes == 1
     got = []
     while True:
         try:

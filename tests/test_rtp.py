@@ -342,11 +342,17 @@ def test_relay_memory_per_stream_is_bounded(monkeypatch):
 
 
 def test_batched_relay_extends_many_streams_like_offline(arctic_refs):
-    """Neural relay, all streams in one MultiCallEngine: each stream's audio equals its own offline extension."""
+    """Neural relay, all streams in one MultiCallEngine: each stream's audio equals its own offline
+    extension, and its count of guard fallbacks the offline record's (a guard narrowed to 16 dB of
+    level, so that it rejects some hops: the shipped one rejects none of these)."""
+    import dataclasses
+
     from nenv.chain import checkpoint
     from nenv.media.audio import to_int16
 
     ck = checkpoint.load(checkpoint.default_path())
+    mid = 0.5 * (ck.limits.level_min_db + ck.limits.level_max_db)
+    ck = dataclasses.replace(ck, limits=dataclasses.replace(ck.limits, level_min_db=mid - 8.0, level_max_db=mid + 8.0))
     clips = []
     for i in range(6):
         _, ref = arctic_refs[i % 2]
@@ -376,8 +382,13 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs):
     for i, codes in enumerate(clips):
         played = g711.decode(codes, law="mulaw")
         expected = to_int16(pipeline.extend(played, system=pipeline.make_system("neural", model=ck)).y).astype(np.int64)
+        # the stream's engine saw the call and then the tail's silence
+        offline = pipeline.make_system("neural", model=ck)
+        pipeline.extend(np.concatenate([played, np.zeros(rtp.TAIL_SAMPLES)]), system=offline)
+        rejected = int(offline.estimator.record().rejected.sum())
         # each stream went quiet at its end: its tail came out with TAIL_SAMPLES of silence after the call
         match = [o for o in outs if o.size == expected.size + 2 * rtp.TAIL_SAMPLES and np.max(np.abs(o[: expected.size] - expected)) <= 1]
         assert len(match) == 1, i  # exactly one stream carries this clip, to within one LSB
         c = relay.closed[100 + i]
         assert c.packets == clips[0].size // 160 and c.packets_out > 0
+        assert 0 < c.guard_fallbacks == rejected, (i, c.guard_fallbacks, rejected)
