@@ -147,3 +147,58 @@ def test_the_same_recording_gives_the_same_training_pairs_wherever_it_lies(tmp_p
     np.testing.assert_array_equal(one.level, two.level)
     other = dataset._file_pairs(str(tmp_path / "a" / "x.wav"), 0, recipe.load(None, overrides=["copies=2", "warp_max=1.15", "noise_probability=0.5", "seed=7"]), s, None)
     assert not np.array_equal(one.level, other.level)  # the recipe's seed still decides the draws
+
+
+def _bursts(rng, spectrum_step=None, seconds=3.0):
+    """White-noise bursts of 0.25 s with near-silence between (the survey needs active frames);
+    spectrum_step = (Hz, dB): everything above Hz lowered by dB."""
+    n = int(16000 * seconds)
+    spec = np.fft.rfft(rng.standard_normal(n))
+    if spectrum_step is not None:
+        spec[np.fft.rfftfreq(n, 1 / 16000) > spectrum_step[0]] *= 10 ** (-spectrum_step[1] / 20)
+    x = 0.1 * np.fft.irfft(spec, n)
+    return np.where((np.arange(n) // 4000) % 2 == 0, x, 1e-4 * rng.standard_normal(n))
+
+
+def test_band_limit_rules_at_their_thresholds():
+    # A drop of more than CLIFF_DB (25 dB) within 600 Hz is a cliff; a 20 dB step is not. A roll-off
+    # just above the searched range counts when 6.4-7.0 kHz lies more than TOP_DROP_DB (12 dB) over
+    # 7.3-7.6 kHz (reported as 7200 Hz). Our own rules, measured on shaped noise.
+    rng = np.random.default_rng(5)
+    assert corpus.measure(_bursts(rng, (6000, 30)))["cutoff_hz"] == 6000
+    assert corpus.measure(_bursts(rng, (6000, 20)))["cutoff_hz"] == 8000
+    assert corpus.measure(_bursts(rng, (7250, 18)))["cutoff_hz"] == corpus.TOP_ROLLOFF_HZ
+    assert corpus.measure(_bursts(rng, (7250, 6)))["cutoff_hz"] == 8000
+
+
+def test_active_speech_is_10_db_over_the_floor():
+    # 1 s of floor noise, 1 s 8 dB above it (not active), 0.5 s 30 dB above it (active): 0.5 s counts.
+    rng = np.random.default_rng(6)
+    floor = 1e-3
+    y = np.concatenate([floor * rng.standard_normal(16000), floor * 10 ** (8 / 20) * rng.standard_normal(16000), floor * 10 ** (30 / 20) * rng.standard_normal(8000)])
+    m = corpus.measure(y)
+    assert m["active_s"] == pytest.approx(0.5, abs=0.02) and m["snr_db"] == pytest.approx(30, abs=1.5)
+
+
+def test_clipping_shows_as_flat_runs_or_as_a_pile_up_near_full_scale():
+    rng = np.random.default_rng(7)
+    y = 0.2 * rng.standard_normal(16000)
+    assert corpus._clipped_fraction(y / np.max(np.abs(y)) * 0.9) < 0.001  # a normal peak: nothing
+    flat = y.copy()
+    flat[1000:1040] = 0.999  # one clipped run of 40 samples
+    assert corpus._clipped_fraction(flat) == pytest.approx(40 / 16000)
+    # lossy coding turns clipped plateaus into ripples: 1% of the samples scattered in 0.92-1.0
+    piled = 0.3 * y
+    where = rng.choice(y.size, 160, replace=False)
+    piled[where] = rng.uniform(0.92, 1.0, 160) * rng.choice([-1, 1], 160)
+    assert corpus._clipped_fraction(piled) == pytest.approx(0.01, abs=0.001)
+    assert corpus._clipped_fraction(piled * 0.9) < 0.001  # the same shape peaking below 0.95: not counted
+
+
+def test_exclusion_thresholds_are_the_recipes():
+    r = recipe.load(None)
+    ok = dict(active_s=r.min_active_s, clipped_fraction=r.max_clipped_fraction, snr_db=r.min_snr_db, cutoff_hz=r.min_cutoff_hz)
+    assert corpus.exclusions(ok, r) == []  # each value at its threshold passes
+    for key, bad, word in [("active_s", 0.99, "too little"), ("clipped_fraction", 1.01, "clipped"), ("snr_db", 0.99, "noisy"), ("cutoff_hz", 0.99, "band-limited")]:
+        reasons = corpus.exclusions({**ok, key: ok[key] * bad}, r)
+        assert len(reasons) == 1 and word in reasons[0], (key, reasons)
