@@ -73,6 +73,17 @@ def test_level_in_dbov_of_a_full_scale_sine():
     assert channel.active_level_dbov(nb, sr=8000) == pytest.approx(-26.0, abs=0.01)
 
 
+def test_active_level_counts_frames_within_50_db_of_the_loudest(rng):
+    # Worked example (our simplified activity rule, not ITU-T P.56): 1 s of a steady sine at -20 dBov
+    # (RMS) then 1 s of noise. Noise 55 dB down is not active: the level is the sine's, -20.0 dBov.
+    # Noise 45 dB down is: the mean energy of both halves, 10 log10((1e-2 + 10**-6.5) / 2) = -23.01 dBov.
+    t = np.arange(8000) / 8000
+    tone = np.sqrt(2) * 0.1 * np.sin(2 * np.pi * 400 * t)  # RMS 0.1 = -20 dBov
+    for down, want in [(55, -20.0), (45, 10 * np.log10((1e-2 + 10**-6.5) / 2))]:
+        noise = rng.standard_normal(8000) * 0.1 * 10 ** (-down / 20)
+        assert channel.active_level_dbov(np.concatenate([tone, noise]), sr=8000) == pytest.approx(want, abs=0.02)
+
+
 def test_snr_of_added_noise(rng):
     y = _tone(1000, n=160000, amp=0.3)
     noisy = channel.add_noise(y, sr=SR, snr_db=20.0, rng=rng)
