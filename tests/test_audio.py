@@ -102,3 +102,7 @@ def test_written_file_has_normal_permissions(tmp_path):
 def test_limit_peaks_counts():
     y, n = audio.limit_peaks(np.array([0.0, 0.5, 1.5, -2.0, 0.99]))
     assert n == 2 and np.max(np.abs(y)) <= 0.99
+    # just over the ceiling (0.99 of full scale) is limited and counted too; at it, untouched
+    y, n = audio.limit_peaks(np.array([0.9901, -0.9905, 0.99, -0.5]))
+    assert n == 2
+    np.testing.assert_array_equal(y, [0.99, -0.99, 0.99, -0.5])
