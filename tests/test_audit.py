@@ -189,6 +189,7 @@ def test_each_check_tripped_lands_in_the_record_with_its_reason(tmp_path, monkey
     for check, hops in blocks.items():
         for h in hops:
             assert check.name.lower() in by_hop[h]["reasons"], (check, h, by_hop.get(h))
+            assert by_hop[h]["t"] == pytest.approx(h * 0.010)  # hop h starts h x 10 ms into the input
     assert rec.summaries[0]["rejected"] == len(rec.rejects)
     assert rec.summaries[0]["by_reason"][Check.LEVEL.name.lower()] >= 5
 
