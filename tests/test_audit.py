@@ -10,7 +10,7 @@ import soundfile as sf
 from typer.testing import CliRunner
 
 from nenv.chain import checkpoint
-from nenv.report import records
+from nenv.report import audit, records
 from nenv.report.audit import rerun, table
 from nenv.cli import app
 from nenv.errors import InputError
@@ -235,3 +235,31 @@ def test_silence_with_a_click(tmp_path):
     assert rec.summaries[0]["hops"] == 200 and rec.summaries[0]["rejected"] == len(rec.rejects)
     out, _ = sf.read(tmp_path / "o.wav")
     assert np.all(np.abs(out[:15000]) < 1e-3)  # silence stays silent up to the click (sample 16000 at 16 kHz)
+
+
+def test_sources_are_listed_worst_first_and_totals_add_up():
+    rec = records.Records(
+        summaries=[
+            {"source": "b", "group": "g1", "hops": 100, "rejected": 10, "by_reason": {"level": 3, "novel": 7}},
+            {"source": "c", "group": "g2", "hops": 100, "rejected": 50, "by_reason": {"level": 4}},
+            {"source": "a", "group": "g1", "hops": 100, "rejected": 0, "by_reason": {}},
+        ],
+        rejects=[{"source": "killed", "group": "g2", "hop": 5, "reasons": ["level", "mismatch"]}],
+    )
+    rows = audit.table(rec)
+    # highest rejection rate first; a source whose session died before its summary (hops unknown) and
+    # the sources with none rejected after, by name
+    assert [r.source for r in rows] == ["c", "b", "a", "killed"]
+    assert rows[3].hops == 0 and rows[3].rejected == 1 and rows[3].by_reason == {"level": 1, "mismatch": 1}
+    (total,) = audit.totals(rows)
+    assert (total.hops, total.rejected) == (300, 61) and total.by_reason == {"level": 8, "novel": 7, "mismatch": 1}
+    by_group = {t.source: t for t in audit.totals(rows, key=lambda r: r.group)}
+    assert by_group["g1"].rejected == 10 and by_group["g2"].by_reason == {"level": 5, "mismatch": 1}
+
+
+def test_rejected_hops_are_merged_into_listening_spans():
+    # hops closer than join_s (0.1 s) after the previous span's end join it; each span is padded by
+    # pad_s (0.2 s) on both sides, never before 0
+    assert audit.segments([1.0, 1.01, 1.15, 1.2]) == pytest.approx([(0.8, 1.22), (0.95, 1.41)])
+    assert audit.segments([0.05, 0.06]) == pytest.approx([(0.0, 0.27)])
+    assert audit.segments([]) == []
