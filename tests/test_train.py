@@ -62,6 +62,18 @@ def test_level_is_not_systematically_overestimated(trained):
     assert h[-1]["val_loss"] < h[0]["val_loss"]
 
 
+def test_the_saved_weights_are_the_best_epochs(trained):
+    # Selection on the held-out speakers: the model that ships has the lowest validation loss of the
+    # run, not the last epoch's (recomputed with the saved weights after training).
+    m, h = trained.record["metrics"], trained.record["history"]
+    best = min(h, key=lambda e: e["val_loss"])
+    assert m["best_epoch"] == best["epoch"] and m["best_val_loss"] == pytest.approx(best["val_loss"])
+    assert m["saved_model_val_loss"] == pytest.approx(best["val_loss"], rel=1e-5)
+    assert h[-1]["val_loss"] > best["val_loss"] * (1 + 1e-4)  # the run went on past its best (else this test could not fail)
+    r = trained.record["recipe"]
+    assert len(h) == r["epochs"] or len(h) == m["best_epoch"] + r["patience"]  # early stop: `patience` epochs without a gain
+
+
 def test_model_folder_is_complete_and_self_describing(trained):
     out = trained.out
     for name in ("model.onnx", "codebook.npz", "nenv.json", "model.pt", "record.json", "curves.png", "survey.csv", "survey.png"):
