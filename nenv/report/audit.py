@@ -94,6 +94,7 @@ def rerun(rec: Records, checkpoint) -> list[dict]:
     Returns one dict per reject line: source, hop, old reasons, new reasons. Records made with the
     low band on (they hold its level) are re-checked with the low band on.
     """
+    from nenv.chain.estimators.codebook import ENERGY_COLUMN
     from nenv.chain.features import envelope_from_prediction, low_band_level
     from nenv.settings import LOW_BAND_GAIN_DB
 
@@ -107,7 +108,7 @@ def rerun(rec: Records, checkpoint) -> list[dict]:
 
         raise ConfigError(f"the records hold inputs of width {x.shape[1]}; the model takes {checkpoint.features.input_dim}")
     current = x[:, -n_in:]
-    energy = current[:, 10]
+    energy = current[:, ENERGY_COLUMN]
     ceps, level = checkpoint.predict(x)
     a, gain = envelope_from_prediction(ceps, level, energy, order=checkpoint.features.wb_order)
     cell, novelty = checkpoint.codebook.nearest(current)

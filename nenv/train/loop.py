@@ -252,6 +252,8 @@ def train(
                 break
         model.load_state_dict(best[1])
         model.eval()
+        with torch.no_grad():  # the weights that ship are the best epoch's: their loss says so in the record
+            saved_val_loss = float(loss_fn(model(xv), yv))
         # 4. codebook and guard calibration
         book = Codebook.fit(tr.current, tr.ceps, tr.level, size=recipe.codebook_size, seed=recipe.seed)
         pick = np.random.default_rng(recipe.seed).permutation(tr.x.shape[0])[:CALIBRATION_HOPS]
@@ -285,6 +287,7 @@ def train(
             "val_guard_rejection_rate": float(np.mean(dec.rejected)),
             "best_epoch": best[2],
             "best_val_loss": best[0],
+            "saved_model_val_loss": saved_val_loss,
         }
         rep.log(f"validation (held-out speakers): envelope LSD 3.4-8 kHz neural {metrics['val_envelope_lsd_high_db']['neural']:.2f} dB, codebook {metrics['val_envelope_lsd_high_db']['codebook']:.2f} dB; median level error {metrics['val_median_level_error_db']['neural']:+.2f} dB; guard rejects {100 * metrics['val_guard_rejection_rate']:.2f}%")
         # 6. write the folder
