@@ -145,6 +145,21 @@ def test_prepared_panel_is_blind_and_level_aligned(tmp_path):
             assert abs(channel.active_level_dbov(y, sr=16000) - level) < 0.1  # loudness-aligned (active speech level)
 
 
+def test_level_alignment_lowers_every_stimulus_together_when_one_would_clip():
+    # A steady tone and a sparse click train set to the same active level of -10 dBov: the clicks would
+    # peak far above full scale, so both come down by the same factor until the clicks peak at PEAK.
+    t = np.arange(16000) / 16000
+    tone = 0.1 * np.sin(2 * np.pi * 440 * t)
+    clicks = np.zeros(16000)
+    clicks[::400] = 0.1
+    out = panel._aligned({"tone": tone, "clicks": clicks}, -10.0)
+    assert np.max(np.abs(out["clicks"])) == pytest.approx(panel.PEAK) and panel.PEAK < 1.0  # never clips
+    lv = {k: channel.active_level_dbov(v, sr=16000) for k, v in out.items()}
+    assert lv["tone"] == pytest.approx(lv["clicks"], abs=1e-9) and lv["tone"] < -10.0
+    quiet = panel._aligned({"tone": tone}, -30.0)  # nothing near clipping: exactly the target level
+    assert channel.active_level_dbov(quiet["tone"], sr=16000) == pytest.approx(-30.0, abs=1e-9)
+
+
 def _browser(names: tuple[str, ...], client: str, install: str) -> str:
     """The first of ``names`` on the PATH, if the Python ``client`` that drives it imports too."""
     import importlib
