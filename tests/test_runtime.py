@@ -124,6 +124,33 @@ def test_stream_command_is_bit_exact_with_extend(tmp_path, call_audio, fmt):
     np.testing.assert_array_equal(y, ref)
 
 
+def test_stream_reassembles_samples_split_across_reads(tmp_path, call_audio):
+    # A pipe may deliver any number of bytes per read: 16-bit samples split across reads (chunks of 333
+    # bytes, written apart so each read sees one) must come out as if written at once.
+    import subprocess
+    import sys
+    import time
+
+    from nenv.media.audio import to_int16
+
+    _, x = call_audio
+    raw = to_int16(x[:8000]).astype("<i2").tobytes()
+    whole = _nenv("stream", "--method", "imaging", input=raw)
+    p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--method", "imaging"], stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    p.stdin.write(raw[:320])  # two whole hops; their output shows the reading loop is running
+    p.stdin.flush()
+    from nenv.chain.pipeline import LATENCY
+
+    first = p.stdout.read(2 * 320 - 2 * LATENCY)  # 320 samples at 16 kHz, less the interpolator's delay
+    for s in range(320, len(raw), 333):
+        p.stdin.write(raw[s : s + 333])
+        p.stdin.flush()
+        time.sleep(0.003)
+    out, err = p.communicate(timeout=60)
+    assert p.returncode == 0, err
+    assert first + out == whole.stdout and len(first + out) == 2 * len(raw)
+
+
 def test_stream_says_when_s16le_input_ends_inside_a_sample():
     whole = _nenv("stream", "--method", "imaging", input=b"\x01\x02" * 80)
     odd = _nenv("stream", "--method", "imaging", input=b"\x01\x02" * 80 + b"\x03")
