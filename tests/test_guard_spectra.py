@@ -149,3 +149,17 @@ def test_counts_in_messages_agree_in_number():
     assert summary_line(1, 0, {}) == "guard: the one hop passed; none fell back to the codebook"
     assert summary_line(5, 0, {}) == "guard: all 5 hops passed; none fell back to the codebook"
     assert summary_line(1, 1, {"level": 1}).startswith("guard: 1 of 1 hop (100.0%) fell back")
+
+
+def test_codebook_cell_and_novelty_by_hand():
+    # Two cells in a 2-feature space normalised by mean (1, 2) and std (2, 0.5). The raw point (7, 4)
+    # normalises to (3, 4): nearest cell (0, 0) at distance 5, i.e. 5 / sqrt(2) per dimension (RMS);
+    # (-7, 2.5) normalises to (-4, 1): nearest cell (-4, 0), distance 1 -> 1 / sqrt(2). Non-finite
+    # features are far from every cell (novel), never an error.
+    from nenv.chain.estimators.codebook import Codebook
+
+    book = Codebook(np.array([1.0, 2.0]), np.array([2.0, 0.5]), np.array([[0.0, 0.0], [-4.0, 0.0]]), np.zeros((2, 3)), np.zeros((2, 17)), np.zeros(2), 1.0)
+    cell, dist = book.nearest(np.array([[7.0, 4.0], [-7.0, 2.5], [np.nan, 2.0]]))
+    np.testing.assert_array_equal(cell[:2], [0, 1])
+    np.testing.assert_allclose(dist[:2], [5 / np.sqrt(2), 1 / np.sqrt(2)], rtol=1e-12)
+    assert dist[2] > 1e5
