@@ -48,6 +48,21 @@ def test_degrade_then_extend(nb_file, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["call.wav", "wide.png", "wide.wav"]
 
 
+@pytest.mark.parametrize(("method", "excitation"), [("neural", "fold"), ("codebook", "modulate"), ("imaging", "rectify")])
+def test_extend_runs_the_method_and_excitation_asked_for(nb_file, tmp_path, method, excitation):
+    # The file written equals the library's extension with the same system, to the 16-bit sample.
+    from nenv.chain import pipeline
+    from nenv.media.audio import to_int16
+
+    out = tmp_path / f"{method}-{excitation}.wav"
+    res = _run("extend", nb_file, out, "--method", method, "--excitation", excitation)
+    assert res.exit_code == 0, res.output
+    x, _ = sf.read(nb_file)
+    want = to_int16(pipeline.extend(x, system=pipeline.make_system(method, excitation=excitation)).y)
+    got, _ = sf.read(out, dtype="int16")
+    np.testing.assert_array_equal(got, want)
+
+
 def test_an_existing_output_is_kept_unless_overwrite_one_file_as_in_a_batch(nb_file, tmp_path):
     out = tmp_path / "wb.wav"
     out.write_bytes(b"not audio, but mine")
