@@ -124,6 +124,23 @@ def test_stream_command_is_bit_exact_with_extend(tmp_path, call_audio, fmt):
     np.testing.assert_array_equal(y, ref)
 
 
+@pytest.mark.parametrize("options", [("--method", "neural", "--low-band"), ("--method", "codebook", "--excitation", "modulate")])
+def test_stream_runs_the_options_asked_for(tmp_path, call_audio, options):
+    # nenv stream with a method, the low band or an excitation equals nenv extend with the same options.
+    import soundfile as sf
+
+    from nenv.media.audio import to_int16
+
+    _, x = call_audio
+    pcm = to_int16(x[:8000])
+    sf.write(tmp_path / "nb.wav", pcm, 8000, subtype="PCM_16")
+    res = _nenv("stream", *options, input=pcm.astype("<i2").tobytes())
+    assert res.returncode == 0, res.stderr
+    assert _nenv("extend", tmp_path / "nb.wav", tmp_path / "wb.wav", *options).returncode == 0
+    ref, _ = sf.read(tmp_path / "wb.wav", dtype="int16")
+    np.testing.assert_array_equal(np.frombuffer(res.stdout, dtype="<i2"), ref)
+
+
 def test_stream_reassembles_samples_split_across_reads(tmp_path, call_audio):
     # A pipe may deliver any number of bytes per read: 16-bit samples split across reads (chunks of 333
     # bytes, written apart so each read sees one) must come out as if written at once.
