@@ -203,7 +203,7 @@ def test_dynamic_payload_type_is_required():
         rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=8)
 
 
-@pytest.mark.parametrize("method", ["imaging", "neural"])  # neural: the batched engine
+@pytest.mark.parametrize("method", ["imaging", "neural", "neural --low-band"])  # neural: the batched engine
 def test_relay_command_runs_and_stops_on_sigterm(arctic_refs, method):
     import signal
     import subprocess
@@ -215,13 +215,14 @@ def test_relay_command_runs_and_stops_on_sigterm(arctic_refs, method):
     probe.bind(("127.0.0.1", 0))
     listen_port = probe.getsockname()[1]
     probe.close()
-    p = subprocess.Popen([sys.executable, "-m", "nenv", "relay", "--to", f"127.0.0.1:{port}", "--listen", f"127.0.0.1:{listen_port}", "--method", method],
+    p = subprocess.Popen([sys.executable, "-m", "nenv", "relay", "--to", f"127.0.0.1:{port}", "--listen", f"127.0.0.1:{listen_port}", "--method", *method.split()],
                          stderr=subprocess.PIPE, stdout=subprocess.PIPE)
     import select
 
     ready, _, _ = select.select([p.stderr], [], [], 120)  # wait for "relaying RTP from ..." (start-up)
     assert ready, "relay did not start"
-    assert b"relaying RTP" in p.stderr.readline()
+    started = p.stderr.readline()
+    assert b"relaying RTP" in started and (b"with the low band" in started) == ("--low-band" in method)
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     for i in range(25):
         tx.sendto(rtp.build(payload_type=8, seq=i, timestamp=160 * i, ssrc=99, payload=b"\xd5" * 160), ("127.0.0.1", listen_port))
@@ -341,7 +342,8 @@ def test_relay_memory_per_stream_is_bounded(monkeypatch):
     relay.stop()
 
 
-def test_batched_relay_extends_many_streams_like_offline(arctic_refs):
+@pytest.mark.parametrize("low_band", [False, True])
+def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
     """Neural relay, all streams in one MultiCallEngine: each stream's audio equals its own offline
     extension, and its count of guard fallbacks the offline record's (a guard narrowed to 16 dB of
     level, so that it rejects some hops: the shipped one rejects none of these)."""
@@ -361,7 +363,7 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs):
     from concurrent.futures import ThreadPoolExecutor
 
     rx = _receiver()
-    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=0.5, batch_model=ck).start()
+    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=0.5, batch_model=ck, low_band=low_band).start()
     receiving = ThreadPoolExecutor(1).submit(_collect, rx, 30.0)
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     for k in range(clips[0].size // 160):  # 20 ms packets, the six streams interleaved
@@ -381,9 +383,9 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs):
         outs.append(np.concatenate([np.frombuffer(p.payload, dtype=">i2") for p in pkts]).astype(np.int64))
     for i, codes in enumerate(clips):
         played = g711.decode(codes, law="mulaw")
-        expected = to_int16(pipeline.extend(played, system=pipeline.make_system("neural", model=ck)).y).astype(np.int64)
+        expected = to_int16(pipeline.extend(played, system=pipeline.make_system("neural", model=ck, low_band=low_band)).y).astype(np.int64)
         # the stream's engine saw the call and then the tail's silence
-        offline = pipeline.make_system("neural", model=ck)
+        offline = pipeline.make_system("neural", model=ck, low_band=low_band)
         pipeline.extend(np.concatenate([played, np.zeros(rtp.TAIL_SAMPLES)]), system=offline)
         rejected = int(offline.estimator.record().rejected.sum())
         # each stream went quiet at its end: its tail came out with TAIL_SAMPLES of silence after the call

@@ -170,7 +170,7 @@ def relay(
     except OSError as e:
         raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
     host = f"[{r.address[0]}]" if ":" in r.address[0] else r.address[0]
-    _say(f"relaying RTP from {host}:{r.address[1]} to {to} (method={method}, output payload type {payload_type}{', symmetric' if symmetric else ''}); stop with Ctrl-C")
+    _say(f"relaying RTP from {host}:{r.address[1]} to {to} (method={method}{' with the low band' if low_band else ''}, output payload type {payload_type}{', symmetric' if symmetric else ''}); stop with Ctrl-C")
 
     # SIGTERM/SIGINT ask the relay to stop: it finishes the datagram at hand, flushes every stream and
     # closes; a stop never lands between sending a packet and counting it, and further signals
