@@ -67,3 +67,22 @@ def test_the_true_band_beats_no_band_on_the_set_by_both_perceptual_measures():
         gain_p.append(measures.pesq_wb(ref, top) - measures.pesq_wb(ref, base))
     assert np.mean(gain_v) > 0.3 and np.mean(np.array(gain_v) > 0) >= 0.8
     assert np.nanmean(gain_p) > 0.3
+
+
+def test_groups_follow_the_source_label_or_the_median_f0_rule():
+    """Per-group tables are only as right as the groups: a labelled speaker keeps its label (AMI ids
+    begin with F or M; ARCTIC slt is female, bdl male); the others are female above F0_SPLIT_HZ (a rule
+    of thumb), with the median F0 recorded as librosa's pYIN measures it again here (within 3 Hz)."""
+    import re
+
+    from nenv.train.heldout import F0_SPLIT_HZ, median_f0
+
+    for r in _clips():
+        if r["group_from"] == "source label":
+            label = {"F": "female", "M": "male"}.get(r["speaker"].split("/")[1][0], {"slt": "female", "bdl": "male"}.get(r["speaker"].split("/")[1]))
+            assert r["group"] == label, r
+            continue
+        recorded = float(re.fullmatch(r"median F0 (\d+) Hz", r["group_from"]).group(1))
+        y, _ = sf.read(HELDOUT / f"{r['clip']}.flac")
+        f0 = median_f0(y)
+        assert abs(f0 - recorded) <= 3 and r["group"] == ("female" if f0 > F0_SPLIT_HZ else "male"), (r["clip"], f0)
