@@ -69,6 +69,8 @@ def test_folder_mirrors_layout_reports_failures_and_skips_finished(tree, tmp_pat
     assert not (out / "south" / "broken.wav").exists()
     report = (out / batch.REPORT_NAME).read_text().splitlines()
     assert len(report) == 1 + 5 and sum(",failed," in r for r in report) == 1
+    # rows in the order of the inputs, whichever worker finished first (the broken file fails at once)
+    assert [r.split(",")[0] for r in report[1:]] == [str(j.src) for j in batch.plan([tree], out)]
     # rerun: finished outputs are skipped, failures tried again
     mtimes = {d: (out / d).stat().st_mtime_ns for d in GOOD.values()}
     res = _run("extend", tree, out, "--method", "imaging")
