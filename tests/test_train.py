@@ -108,6 +108,30 @@ def test_onnx_matches_torch_and_passes_checker(trained):
     assert np.max(np.abs(l - l_ref) / norm["y_std"][-1]) < 1e-5
 
 
+def test_an_export_that_disagrees_with_torch_is_refused_and_nothing_written(trained, tmp_path, monkeypatch):
+    # A network whose torch outputs differ from what was exported (here: +0.01 outside the export
+    # trace, in the network's units) must not produce a model file.
+    from nenv.errors import ConfigError
+    from nenv.train import export
+
+    real = export.load_torch
+
+    class Drifting(torch.nn.Module):
+        def __init__(self, inner):
+            super().__init__()
+            self.inner = inner
+
+        def forward(self, x):
+            c, lv = self.inner(x)
+            return (c, lv) if torch.onnx.is_in_onnx_export() else (c + 0.01, lv)
+
+    monkeypatch.setattr(export, "load_torch", lambda p: (lambda m, b: (Drifting(m), b))(*real(p)))
+    out = tmp_path / "model.onnx"
+    with pytest.raises(ConfigError, match="disagree"):
+        export.export(trained.out / "model.pt", out, metadata={})
+    assert not out.exists() and list(tmp_path.iterdir()) == []
+
+
 def test_runtime_refuses_other_feature_settings(trained, tmp_path):
     bad = tmp_path / "bad"
     shutil.copytree(trained.out, bad)
