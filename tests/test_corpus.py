@@ -202,3 +202,30 @@ def test_exclusion_thresholds_are_the_recipes():
     for key, bad, word in [("active_s", 0.99, "too little"), ("clipped_fraction", 1.01, "clipped"), ("snr_db", 0.99, "noisy"), ("cutoff_hz", 0.99, "band-limited")]:
         reasons = corpus.exclusions({**ok, key: ok[key] * bad}, r)
         assert len(reasons) == 1 and word in reasons[0], (key, reasons)
+
+
+def test_training_pairs_are_time_aligned():
+    # Inputs and targets of a hop describe the same 30 ms: on noise bursts of varied lengths, the
+    # narrowband energy and the wideband target's absolute high-band level (level re narrowband +
+    # narrowband energy) rise and fall together, best matched at lag 0 (a shift of even one hop
+    # between them would move the best lag off 0).
+    import numpy as np
+
+    from nenv.chain.features import FeatureSettings
+    from nenv.train import dataset
+
+    rng = np.random.default_rng(8)
+    parts = []
+    for _ in range(30):
+        parts.append(0.1 * rng.standard_normal(160 * int(rng.integers(3, 15))))
+        parts.append(1e-4 * rng.standard_normal(160 * int(rng.integers(3, 15))))
+    y = np.concatenate(parts)
+    r = recipe.load(None, overrides=["copies=1", "warp_max=1.0", "laws=['none']", "noise_probability=0", "level_min_dbov=-26", "level_max_dbov=-26", "active_range_db=1000"])
+    p = dataset.pairs_from_signal(y, recipe=r, settings=FeatureSettings(), rng=np.random.default_rng(0))
+    e_nb = p.current[:, 10]
+    e_hb = p.level + e_nb
+    assert e_nb.size == y.size // 160
+    a, b = e_nb - e_nb.mean(), e_hb - e_hb.mean()
+    n = a.size
+    corr = {lag: float(np.dot(a[max(0, lag) : n + min(0, lag)], b[max(0, -lag) : n - max(0, lag)])) for lag in range(-3, 4)}
+    assert max(corr, key=corr.get) == 0, corr
