@@ -229,3 +229,26 @@ def test_training_pairs_are_time_aligned():
     n = a.size
     corr = {lag: float(np.dot(a[max(0, lag) : n + min(0, lag)], b[max(0, -lag) : n - max(0, lag)])) for lag in range(-3, 4)}
     assert max(corr, key=corr.get) == 0, corr
+
+
+def test_augmentation_draws_what_the_recipe_says(monkeypatch):
+    # Every copy passes the channel with a law from the recipe's list, an active level in its range and,
+    # in about noise_probability of the copies, noise at an SNR in its range (seen by watching the calls).
+    from nenv.chain.features import FeatureSettings
+    from nenv.dsp import channel
+    from nenv.train import dataset
+
+    seen = []
+    real_level, real_phone = channel.set_level, channel.telephone
+    monkeypatch.setattr(dataset.channel, "set_level", lambda y, *, sr, level_dbov: (seen.append(("level", level_dbov)), real_level(y, sr=sr, level_dbov=level_dbov))[1])
+    monkeypatch.setattr(dataset.channel, "telephone", lambda y, **kw: (seen.append(("phone", kw["law"], kw["snr_db"])), real_phone(y, **kw))[1])
+    y = 0.1 * np.random.default_rng(9).standard_normal(1600)
+    r = recipe.load(None, overrides=["copies=60", "warp_max=1.0", "laws=['mulaw', 'alaw']", "noise_probability=0.25", "level_min_dbov=-30", "level_max_dbov=-20", "snr_min_db=25", "snr_max_db=35"])
+    dataset.pairs_from_signal(y, recipe=r, settings=FeatureSettings(), rng=np.random.default_rng(0))
+    levels = [s[1] for s in seen if s[0] == "level"]
+    phones = [s for s in seen if s[0] == "phone"]
+    assert len(levels) == len(phones) == 60
+    assert all(-30 <= v <= -20 for v in levels) and max(levels) - min(levels) > 5
+    assert {p[1] for p in phones} == {"mulaw", "alaw"}
+    snrs = [p[2] for p in phones if p[2] is not None]
+    assert 5 <= len(snrs) <= 25 and all(25 <= v <= 35 for v in snrs)  # 15 expected of 60
