@@ -60,6 +60,16 @@ def trained(synthetic_corpus, tmp_path_factory):
     return loop.train(r, out, cache_dir=str(tmp_path_factory.mktemp("cache")))
 
 
+def narrowed_guard(ck):
+    """A copy of checkpoint ``ck`` whose guard accepts only 16 dB of level around the middle of its
+    range, so that it rejects a good share of real speech's hops (the shipped guard rejects almost
+    none): counts of rejected hops are then worth comparing."""
+    import dataclasses
+
+    mid = 0.5 * (ck.limits.level_min_db + ck.limits.level_max_db)
+    return dataclasses.replace(ck, limits=dataclasses.replace(ck.limits, level_min_db=mid - 8.0, level_max_db=mid + 8.0))
+
+
 def perturb_predictions(ck, blocks: dict, monkeypatch) -> None:
     """Make ``ck.predict`` fail on chosen hops, one way per guard check.
 

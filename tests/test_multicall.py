@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import dataclasses
-
 import numpy as np
 import pytest
 
@@ -11,6 +9,7 @@ from nenv.dsp import channel
 from nenv.chain import checkpoint, pipeline
 from nenv.serve.multicall import MultiCallEngine
 from nenv.serve.runtime import CallEngine
+from tests.conftest import narrowed_guard
 
 
 @pytest.fixture(scope="module")
@@ -34,11 +33,8 @@ def calls(arctic_refs):
 
 @pytest.fixture(scope="module")
 def strict_model(model):
-    """The shipped model with its guard's level range narrowed to 16 dB around the middle, so that it
-    rejects a good share of these calls' hops (the shipped guard rejects none of them): the per-call
-    counts of rejected hops are then worth comparing."""
-    mid = 0.5 * (model.limits.level_min_db + model.limits.level_max_db)
-    return dataclasses.replace(model, limits=dataclasses.replace(model.limits, level_min_db=mid - 8.0, level_max_db=mid + 8.0))
+    """The shipped model with a narrowed guard: it rejects some of these calls' hops (the shipped one none)."""
+    return narrowed_guard(model)
 
 
 def _alone(model, x, chunks):

@@ -347,14 +347,11 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
     """Neural relay, all streams in one MultiCallEngine: each stream's audio equals its own offline
     extension, and its count of guard fallbacks the offline record's (a guard narrowed to 16 dB of
     level, so that it rejects some hops: the shipped one rejects none of these)."""
-    import dataclasses
-
     from nenv.chain import checkpoint
     from nenv.media.audio import to_int16
+    from tests.conftest import narrowed_guard
 
-    ck = checkpoint.load(checkpoint.default_path())
-    mid = 0.5 * (ck.limits.level_min_db + ck.limits.level_max_db)
-    ck = dataclasses.replace(ck, limits=dataclasses.replace(ck.limits, level_min_db=mid - 8.0, level_max_db=mid + 8.0))
+    ck = narrowed_guard(checkpoint.load(checkpoint.default_path()))
     clips = []
     for i in range(6):
         _, ref = arctic_refs[i % 2]
