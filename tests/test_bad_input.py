@@ -207,6 +207,9 @@ def test_f14_output_that_is_an_input(tmp_path, speech):
     _refused(_run("extend", tmp_path / "call.wav", tmp_path / "call.wav"), "same file as the input")
     (tmp_path / "link.wav").symlink_to(tmp_path / "call.wav")
     _refused(_run("extend", tmp_path / "call.wav", tmp_path / "link.wav"), "same file as the input")
+    os.link(tmp_path / "call.wav", tmp_path / "hard.wav")  # a hard link: another name, the same file
+    _refused(_run("extend", tmp_path / "call.wav", tmp_path / "hard.wav"), "same file as the input")
+    (tmp_path / "hard.wav").unlink()
     _refused(_run("degrade", tmp_path / "wide.wav", tmp_path / "wide.wav"), "same file as the input")
     _refused(_run("extend", tmp_path / "call.wav", tmp_path / "out.wav", "--record", tmp_path / "call.wav"), "same file as the input")
     _refused(_run("extend", tmp_path / "call.wav", tmp_path / "out.wav", "--record", tmp_path / "out.wav"), "same file as the output")
