@@ -170,6 +170,14 @@ def test_missing_or_corrupt_model_files(trained, tmp_path):
     (trunc / "model.onnx").write_bytes(data[: len(data) // 3])
     with pytest.raises(ConfigError, match="cannot load"):
         checkpoint.load(trunc).session()
+    # a model.onnx from another folder: its embedded feature settings (context 4) are not nenv.json's
+    mixed = tmp_path / "mixed"
+    shutil.copytree(trained.out, mixed)
+    info = json.loads((mixed / "nenv.json").read_text())
+    info["features"]["context"] = 2
+    (mixed / "nenv.json").write_text(json.dumps(info))
+    with pytest.raises(ConfigError, match="disagree on the feature settings"):
+        checkpoint.load(mixed).session()
 
 
 def _decisions(model, x):
