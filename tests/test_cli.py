@@ -63,6 +63,25 @@ def test_extend_runs_the_method_and_excitation_asked_for(nb_file, tmp_path, meth
     np.testing.assert_array_equal(got, want)
 
 
+def test_resample_on_the_fly_equals_resampling_at_once(tmp_path):
+    # --resample streams the file through soxr in blocks (two here: 12.3 s at 44.1 kHz); the result
+    # equals soxr's one-shot high-quality resampling (the reference) extended, sample for sample, at
+    # exactly round(n * 8000 / 44100) input samples.
+    import soxr
+
+    from nenv.chain import pipeline
+    from nenv.media.audio import to_int16
+
+    x = 0.1 * np.random.default_rng(0).standard_normal(int(44100 * 12.3))
+    sf.write(tmp_path / "in.wav", x, 44100, subtype="FLOAT")
+    res = _run("extend", tmp_path / "in.wav", tmp_path / "out.wav", "--resample", "--method", "unextended")
+    assert res.exit_code == 0, res.output
+    nb = soxr.resample(x, 44100, 8000, quality="HQ")
+    assert nb.size == round(x.size * 8000 / 44100)
+    got, _ = sf.read(tmp_path / "out.wav", dtype="int16")
+    np.testing.assert_array_equal(got, to_int16(pipeline.extend(nb, system=pipeline.make_system("unextended")).y))
+
+
 def test_an_existing_output_is_kept_unless_overwrite_one_file_as_in_a_batch(nb_file, tmp_path):
     out = tmp_path / "wb.wav"
     out.write_bytes(b"not audio, but mine")
