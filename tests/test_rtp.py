@@ -170,6 +170,22 @@ def test_two_senders_with_one_ssrc_never_mix_and_a_moved_sender_is_followed(monk
     relay.stop()
 
 
+def test_a_second_sender_flooding_an_ssrc_in_use_holds_bounded_memory(monkeypatch):
+    """Packets of another address are held only while the source may have moved: at most
+    MAX_NEWCOMER_PACKETS, the older ones dropped and counted as conflicts."""
+    monkeypatch.setattr(rtp, "REBIND_AFTER_S", 5.0)  # the source stays 'alive' throughout
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
+    relay.out.close()
+    relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+    relay.handle(rtp.build(payload_type=0, seq=0, timestamp=0, ssrc=3, payload=b"\x10" * 160), ("10.0.0.1", 4000))
+    for seq in range(100):
+        relay.handle(rtp.build(payload_type=0, seq=500 + seq, timestamp=160 * seq, ssrc=3, payload=b"\x90" * 160), ("10.0.0.2", 4000))
+    st = relay.streams[3]
+    assert len(st.newcomer_packets) == rtp.MAX_NEWCOMER_PACKETS and relay.counters.ssrc_conflicts == 100 - rtp.MAX_NEWCOMER_PACKETS
+    assert st.source == ("10.0.0.1", 4000) and st.counters.packets == 1
+    relay.stop()
+
+
 def test_a_sender_that_restarts_on_a_new_port_at_once_loses_nothing(monkeypatch):
     """A sender restarting on a new port within REBIND_AFTER_S of its last packet: its first packets are
     held, not dropped, and played in order once the old port has stayed quiet (by its next packet, or by
