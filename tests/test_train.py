@@ -132,14 +132,22 @@ def test_an_export_that_disagrees_with_torch_is_refused_and_nothing_written(trai
     assert not out.exists() and list(tmp_path.iterdir()) == []
 
 
+def _copy_with_features(trained, folder, **changes):
+    """A copy of the trained model folder whose nenv.json states other feature settings."""
+    shutil.copytree(trained.out, folder)
+    info = json.loads((folder / "nenv.json").read_text())
+    info["features"].update(changes)
+    (folder / "nenv.json").write_text(json.dumps(info))
+    return folder
+
+
 def test_runtime_refuses_other_feature_settings(trained, tmp_path):
-    bad = tmp_path / "bad"
-    shutil.copytree(trained.out, bad)
-    info = json.loads((bad / "nenv.json").read_text())
-    info["features"]["nb_order"] = 12
-    (bad / "nenv.json").write_text(json.dumps(info))
     with pytest.raises(ConfigError, match="nb_order=12"):
-        checkpoint.load(bad)
+        checkpoint.load(_copy_with_features(trained, tmp_path / "bad", nb_order=12))
+    # settings this nenv could run (context is the model's own choice) but not those model.onnx was
+    # made with (context 4): a model.onnx from another folder, refused at first use
+    with pytest.raises(ConfigError, match="disagree on the feature settings"):
+        checkpoint.load(_copy_with_features(trained, tmp_path / "mixed", context=2)).session()
     # an ONNX file whose embedded settings differ from nenv.json is refused at first use
     import onnx
 
@@ -170,14 +178,6 @@ def test_missing_or_corrupt_model_files(trained, tmp_path):
     (trunc / "model.onnx").write_bytes(data[: len(data) // 3])
     with pytest.raises(ConfigError, match="cannot load"):
         checkpoint.load(trunc).session()
-    # a model.onnx from another folder: its embedded feature settings (context 4) are not nenv.json's
-    mixed = tmp_path / "mixed"
-    shutil.copytree(trained.out, mixed)
-    info = json.loads((mixed / "nenv.json").read_text())
-    info["features"]["context"] = 2
-    (mixed / "nenv.json").write_text(json.dumps(info))
-    with pytest.raises(ConfigError, match="disagree on the feature settings"):
-        checkpoint.load(mixed).session()
 
 
 def _decisions(model, x):
