@@ -272,6 +272,14 @@ def test_low_band_with_a_method_that_has_none_is_refused(tmp_path, arctic_refs):
     sf.write(tmp_path / "call.wav", _nb(ref)[:8000], 8000)
     res = CliRunner().invoke(app, ["extend", str(tmp_path / "call.wav"), str(tmp_path / "wb.wav"), "--method", "imaging", "--low-band"])
     assert res.exit_code != 0 and "adds no low band" in res.output and not (tmp_path / "wb.wav").exists()
+    # the same rule for a program embedding nenv (it used to get no low band without a word)
+    from nenv.errors import InputError
+    from nenv.serve.multicall import MultiCallEngine
+    from nenv.serve.runtime import CallEngine
+
+    for make in (lambda: CallEngine(method="unextended", low_band=True), lambda: MultiCallEngine(method="imaging", low_band=True)):
+        with pytest.raises(InputError, match="adds no low band"):
+            make()
 
 
 def test_evaluate_with_the_low_band_says_so_and_scores_it():

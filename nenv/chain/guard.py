@@ -204,7 +204,6 @@ class Guard:
                            -np.inf if lim.low_min_db is None else lim.low_min_db, np.inf if lim.low_max_db is None else lim.low_max_db])
         f64 = lambda v: np.ascontiguousarray(v, dtype=np.float64)  # noqa: E731
         reasons, max_k, mismatch, k = kernels.guard_rules(f64(ceps), f64(level_db), a, f64(gain), f64(k), stable, _band_ratios(a_fin, a_nb), f64(novelty), low, params)
-        low_db = low
         dec = Decisions(
             rejected=reasons != 0,
             reasons=reasons,
@@ -213,6 +212,6 @@ class Guard:
             mismatch_db=mismatch,
             novelty=np.asarray(novelty, dtype=float),
             cell=np.asarray(cell, dtype=int),
-            low_db=np.asarray(low_db, dtype=float),
+            low_db=low,
         )
         return dec, k

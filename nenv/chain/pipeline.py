@@ -37,9 +37,9 @@ from nenv.chain.estimators.base import NarrowbandAnalysis
 from nenv.dsp.rows import ALL, RowState
 from nenv.settings import HOP_NB, HOP_WB, NB_ORDER, NB_SR, WIN_NB
 from nenv.dsp.synthesis import UPSAMPLER_DELAY, UPSAMPLER_HISTORY, isolation_sos, low_band_sos, upsample_rows
-from nenv.chain.systems import DEFAULT_EXCITATION, MODEL_SYSTEMS, REFERENCE_SYSTEMS, SYSTEMS, System, load_model, make_system
+from nenv.chain.systems import DEFAULT_EXCITATION, LOW_BAND_SYSTEMS, MODEL_SYSTEMS, REFERENCE_SYSTEMS, SYSTEMS, System, check_low_band, load_model, make_system
 
-__all__ = ["Chain", "DEFAULT_EXCITATION", "Extended", "LATENCY", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "System", "extend", "load_model", "make_system", "tail_padding"]
+__all__ = ["Chain", "DEFAULT_EXCITATION", "Extended", "LATENCY", "LOW_BAND_SYSTEMS", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "System", "check_low_band", "extend", "load_model", "make_system", "tail_padding"]
 
 LATENCY = UPSAMPLER_DELAY  # samples at 16 kHz of processing delay inside Chain.process
 

@@ -203,6 +203,14 @@ SYSTEMS: dict[str, Callable[[np.ndarray | None, Method, object, bool], System]] 
 }
 REFERENCE_SYSTEMS = ("oracle", "true-band")  # evaluation only: they read the wideband original
 MODEL_SYSTEMS = ("codebook", "neural")
+LOW_BAND_SYSTEMS = ("neural", "codebook", "oracle", "true-band")  # the systems that can add the low band
+
+
+def check_low_band(name: str, low_band: bool) -> None:
+    """InputError when ``low_band`` is asked of a system that has nothing to shape one with."""
+    name = getattr(name, "value", name)  # a command-line choice (an enum) or a plain name
+    if low_band and name not in LOW_BAND_SYSTEMS:
+        raise InputError(f"low_band (--low-band): the {name} method adds no low band ({', '.join(LOW_BAND_SYSTEMS)} do)")
 
 
 def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION, model=None, low_band: bool = False) -> System:
@@ -211,12 +219,13 @@ def make_system(name: str, *, reference: np.ndarray | None = None, excitation: M
     'unextended', 'imaging'; 'codebook' and 'neural' (need ``model``: a checkpoint
     folder or :class:`nenv.chain.checkpoint.Checkpoint`, default the shipped model);
     'oracle' and 'true-band' (need ``reference``, the time-aligned 16 kHz original).
-    ``low_band``: add the 50-300 Hz band as well (source-filter systems and the true band;
-    unextended and imaging have none).
+    ``low_band``: add the 50-300 Hz band as well (LOW_BAND_SYSTEMS; asking it of unextended or
+    imaging, which have nothing to shape one with, is an InputError).
     """
     if name not in SYSTEMS:
         raise InputError(f"method={name!r} is not known: choose one of {', '.join(SYSTEMS)}")
+    check_low_band(name, low_band)
     return SYSTEMS[name](reference, excitation, model, low_band)
 
 
-__all__ = ["DEFAULT_EXCITATION", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "load_model", "make_system"]
+__all__ = ["DEFAULT_EXCITATION", "LOW_BAND_SYSTEMS", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "check_low_band", "load_model", "make_system"]

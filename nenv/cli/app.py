@@ -11,7 +11,7 @@ from typing import Annotated, Callable, Literal, Optional, get_args
 import typer
 
 from nenv import __version__
-from nenv.errors import InputError, NenvError
+from nenv.errors import NenvError
 
 app = typer.Typer(
     help="nenv: extend telephone speech (8 kHz, 300-3400 Hz) to wideband (16 kHz), on CPU.\n\n"
@@ -89,12 +89,6 @@ def _progress():
 
 ChannelOpt = Annotated[Optional[int], typer.Option("--channel", min=0, help="Channel of a multichannel file to use (0 = first).")]
 MixOpt = Annotated[bool, typer.Option("--mix", help="Average all channels of a multichannel file.")]
-def _check_low_band(method: str, low_band: bool) -> None:
-    """--low-band asks for something only source-filter systems and the true band can add."""
-    if low_band and method in ("imaging", "unextended"):
-        raise InputError(f"--low-band: the {method} method adds no low band (neural, codebook, oracle and true-band do)")
-
-
 LowBandOpt = Annotated[bool, typer.Option("--low-band", help="Also add an estimated 50-300 Hz band (neural, codebook, oracle, true-band). Off by default: it lowers WB-PESQ (docs/2026-12-03-low-band.md).")]
 
 

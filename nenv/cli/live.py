@@ -12,7 +12,7 @@ import typer
 
 from nenv.words import count
 from nenv.serve.streamfile import watch
-from nenv.cli.app import Excitation, LowBandOpt, _check_low_band, InputFormat, LiveMethod, _default_method, _guarded, _kernels_ready, _say, app
+from nenv.cli.app import Excitation, LowBandOpt, InputFormat, LiveMethod, _default_method, _guarded, _kernels_ready, _say, app
 from nenv.errors import InputError, OutputError
 
 @app.command()
@@ -46,7 +46,7 @@ def stream(
     method = method or _default_method(model)
     if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
-    _check_low_band(method, low_band)
+    pipeline.check_low_band(method, low_band)  # before anything starts (the relay makes its systems per stream)
     if method in pipeline.MODEL_SYSTEMS:
         model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
     engine = CallEngine(system=pipeline.make_system(method, model=model, excitation=excitation, low_band=low_band))
@@ -158,7 +158,7 @@ def relay(
     method = method or _default_method(model)
     if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
-    _check_low_band(method, low_band)
+    pipeline.check_low_band(method, low_band)  # before anything starts (the relay makes its systems per stream)
     if not 96 <= payload_type <= 127:
         raise InputError(f"--payload-type {payload_type}: dynamic payload types are 96-127 (RFC 3551)")
     ck = pipeline.load_model(model, flush_denormals=True) if method in pipeline.MODEL_SYSTEMS else None

@@ -12,7 +12,7 @@ import typer
 
 from nenv.words import count
 from nenv import __version__
-from nenv.cli.app import DEMO_CLIP, LowBandOpt, _check_low_band, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
+from nenv.cli.app import DEMO_CLIP, LowBandOpt, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
 from nenv.errors import InputError
 
 @app.command()
@@ -78,10 +78,12 @@ def extend(
 ) -> None:
     """Extend 8 kHz telephone speech to 16 kHz wideband speech: one file, or whole folders in parallel."""
     _kernels_ready()
+    from nenv.chain.systems import check_low_band
     from nenv.serve import batch, streamfile
 
-    _check_low_band(method or _default_method(model), low_band)
-    opts = streamfile.Options(method=method or _default_method(model), model=None if model is None else str(model), excitation=excitation, low_band=low_band, resample=resample, channel=channel, mix=mix, group=group)
+    method = method or _default_method(model)
+    check_low_band(method, low_band)  # before any file is read
+    opts = streamfile.Options(method=method, model=None if model is None else str(model), excitation=excitation, low_band=low_band, resample=resample, channel=channel, mix=mix, group=group)
     if batch.is_batch(inputs):
         if reference is not None or figure is not None:
             raise InputError("--reference and --figure work on one input file at a time")

@@ -103,7 +103,8 @@ def run(
             nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
             outs = {}
             for s in systems:
-                system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=low_band)
+                # systems with nothing to shape a low band with run without one, as the table's labels say
+                system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=low_band and s in pipeline.LOW_BAND_SYSTEMS)
                 y = pipeline.extend(nb, system=system).y
                 outs[s] = y
                 label = f"{s} +low band" if system.low_band else s  # the table says what ran
