@@ -211,7 +211,7 @@ def test_training_pairs_are_time_aligned():
     # between them would move the best lag off 0).
     import numpy as np
 
-    from nenv.chain.features import FeatureSettings
+    from nenv.chain.features import ENERGY_COLUMN, FeatureSettings
     from nenv.train import dataset
 
     rng = np.random.default_rng(8)
@@ -222,7 +222,7 @@ def test_training_pairs_are_time_aligned():
     y = np.concatenate(parts)
     r = recipe.load(None, overrides=["copies=1", "warp_max=1.0", "laws=['none']", "noise_probability=0", "level_min_dbov=-26", "level_max_dbov=-26", "active_range_db=1000"])
     p = dataset.pairs_from_signal(y, recipe=r, settings=FeatureSettings(), rng=np.random.default_rng(0))
-    e_nb = p.current[:, 10]
+    e_nb = p.current[:, ENERGY_COLUMN]
     e_hb = p.level + e_nb
     assert e_nb.size == y.size // 160
     a, b = e_nb - e_nb.mean(), e_hb - e_hb.mean()

@@ -108,6 +108,7 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
 
 
 VOICING_COLUMN = INPUT_NAMES.index("voicing")
+ENERGY_COLUMN = INPUT_NAMES.index("energy_db")
 
 
 def voicing(frames: np.ndarray) -> np.ndarray:

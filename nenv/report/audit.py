@@ -94,8 +94,7 @@ def rerun(rec: Records, checkpoint) -> list[dict]:
     Returns one dict per reject line: source, hop, old reasons, new reasons. Records made with the
     low band on (they hold its level) are re-checked with the low band on.
     """
-    from nenv.chain.estimators.codebook import ENERGY_COLUMN
-    from nenv.chain.features import envelope_from_prediction, low_band_level
+    from nenv.chain.features import ENERGY_COLUMN, envelope_from_prediction, low_band_level
     from nenv.settings import LOW_BAND_GAIN_DB
 
     if not rec.rejects:

@@ -24,7 +24,7 @@ import numpy as np
 
 from nenv.dsp import channel, lpc
 from nenv.chain.estimators.base import NarrowbandAnalysis
-from nenv.chain.features import ContextStacker, FeatureSettings, low_band_target, narrowband_features, wideband_targets
+from nenv.chain.features import ENERGY_COLUMN, ContextStacker, FeatureSettings, low_band_target, narrowband_features, wideband_targets
 from nenv.settings import HOP_NB, HOP_WB, NB_SR, WB_SR
 from nenv.media import audio
 from nenv.train.corpus import load_native
@@ -111,9 +111,10 @@ def pairs_from_signal(y: np.ndarray, *, recipe: Recipe, settings: FeatureSetting
         feats = narrowband_features(NarrowbandAnalysis(frames, a, gain))
         stacked = ContextStacker(settings.context).push(feats)
         wb_frames = lpc.frame(wb, frame_length=settings.win_wb, hop_length=HOP_WB)
-        ceps, lev = wideband_targets(wb_frames, feats[:, 10], settings=settings)
-        keep = feats[:, 10] > feats[:, 10].max() - recipe.active_range_db
-        low = low_band_target(wb_frames, feats[:, 10])
+        energy = feats[:, ENERGY_COLUMN]
+        ceps, lev = wideband_targets(wb_frames, energy, settings=settings)
+        keep = energy > energy.max() - recipe.active_range_db
+        low = low_band_target(wb_frames, energy)
         parts.append(Pairs(stacked[keep], feats[keep], ceps[keep], lev[keep], a[keep], np.zeros(int(keep.sum()), int), nb.size / NB_SR, low[keep]))
     if not parts:
         return _empty(settings)

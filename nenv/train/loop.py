@@ -59,10 +59,10 @@ class Result:
     record: dict
 
 
-def low_band_range(low: np.ndarray, recipe) -> tuple[float, float]:
-    """The guard's low-band range: the training hops' true low-band levels (re the narrowband frame)
-    from the (100 - guard_percentile)th to the guard_percentile-th percentile, widened by level_margin_db."""
-    lo, hi = np.percentile(low, [100 - recipe.guard_percentile, recipe.guard_percentile])
+def guard_range(values: np.ndarray, recipe) -> tuple[float, float]:
+    """A guard range from the training hops' true values (high-band or low-band level re the narrowband
+    frame): the (100 - guard_percentile)th to the guard_percentile-th percentile, widened by level_margin_db."""
+    lo, hi = np.percentile(values, [100 - recipe.guard_percentile, recipe.guard_percentile])
     return float(lo - recipe.level_margin_db), float(hi + recipe.level_margin_db)
 
 
@@ -260,11 +260,11 @@ def train(
         c_cal, l_cal = _predict(model, tr.x[pick], x_mean, x_std, y_mean, y_std)
         a_cal, _ = envelope_from_prediction(c_cal, l_cal, np.zeros(pick.size))
         mismatch = telephone_band_mismatch(a_cal, tr.a_nb[pick])
-        lo, hi = np.percentile(tr.level, [100 - recipe.guard_percentile, recipe.guard_percentile])
-        low_lo, low_hi = low_band_range(tr.low, recipe)
+        level_lo, level_hi = guard_range(tr.level, recipe)
+        low_lo, low_hi = guard_range(tr.low, recipe)
         limits = GuardLimits(
-            level_min_db=float(lo - recipe.level_margin_db),
-            level_max_db=float(hi + recipe.level_margin_db),
+            level_min_db=level_lo,
+            level_max_db=level_hi,
             mismatch_max_db=float(np.percentile(mismatch, recipe.guard_percentile)),
             novelty_max=book.novelty_limit,
             stability_margin=recipe.stability_margin,

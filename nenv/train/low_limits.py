@@ -3,7 +3,7 @@
 ``python -m nenv.train.low_limits MODEL_FOLDER``: rebuilds the training pairs of the run that made
 the model (the files its ``survey.csv`` kept, minus its recorded validation speakers, with the
 recipe in its ``nenv.json``: the same augmentation), takes the range of their true 50-300 Hz
-levels as ``nenv train`` now does (:func:`nenv.train.loop.low_band_range`), and writes it into the
+levels as ``nenv train`` now does (:func:`nenv.train.loop.guard_range`), and writes it into the
 model's ``nenv.json`` (atomically). The corpus files must be where the survey found them (relative
 paths from the folder the training ran in: run this from there too).
 """
@@ -18,7 +18,7 @@ from pathlib import Path
 from nenv.chain.features import FeatureSettings
 from nenv.media.files import write_text
 from nenv.train import dataset
-from nenv.train.loop import low_band_range
+from nenv.train.loop import guard_range
 from nenv.train.recipe import Recipe
 
 
@@ -40,7 +40,7 @@ def main() -> None:
     settings = FeatureSettings.from_dict(info["features"])
     files = training_files(args.model)
     pairs, facts = dataset.build(files, recipe=recipe, settings=settings, workers=args.workers)
-    lo, hi = low_band_range(pairs.low, recipe)
+    lo, hi = guard_range(pairs.low, recipe)
     info["guard"]["low_min_db"], info["guard"]["low_max_db"] = lo, hi
     write_text(args.model / "nenv.json", json.dumps(info, indent=1) + "\n")
     print(f"{len(files)} files, {pairs.low.size} hops ({facts['wall_s']:.0f} s): low band {lo:.1f} to {hi:.1f} dB re the narrowband frame")

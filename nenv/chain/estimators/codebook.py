@@ -17,10 +17,9 @@ import numpy as np
 
 from nenv.errors import ConfigError
 from nenv.chain.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAnalysis
-from nenv.chain.features import ENERGY_FLOOR_DB, VOICING_COLUMN, envelope_from_prediction, narrowband_features
+from nenv.chain.features import ENERGY_COLUMN, ENERGY_FLOOR_DB, VOICING_COLUMN, envelope_from_prediction, narrowband_features
 from nenv.settings import WB_ORDER
 
-ENERGY_COLUMN = 10  # index of energy_db in the narrowband features
 
 
 @dataclass(frozen=True)

@@ -7,8 +7,7 @@ import numpy as np
 from nenv.dsp import lpc
 from nenv.chain.checkpoint import Checkpoint
 from nenv.chain.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAnalysis
-from nenv.chain.estimators.codebook import ENERGY_COLUMN
-from nenv.chain.features import ENERGY_FLOOR_DB, VOICING_COLUMN, envelope_from_prediction, low_band_level, narrowband_features, stack_context
+from nenv.chain.features import ENERGY_COLUMN, ENERGY_FLOOR_DB, VOICING_COLUMN, envelope_from_prediction, low_band_level, narrowband_features, stack_context
 from nenv.chain.guard import Decisions, Guard
 from nenv.dsp.rows import RowState
 from nenv.settings import HOP_NB, LOW_BAND_GAIN_DB, NB_SR
