@@ -29,7 +29,7 @@ from functools import lru_cache
 
 import numpy as np
 
-from nenv.dsp import cepstrum, lpc
+from nenv.dsp import cepstrum, kernels, lpc
 from nenv.errors import ConfigError
 from nenv.chain.estimators.base import NarrowbandAnalysis
 from nenv.settings import BAND_EDGE_HZ, HOP_NB, LOW_BAND_HZ, NB_ORDER, NB_SR, WB_ORDER, WB_SR, WIN_NB, WIN_WB
@@ -38,7 +38,8 @@ FEATURE_VERSION = 1
 ENERGY_FLOOR_DB = -100.0  # dB re full scale
 PITCH_LAGS = (20, 147)  # samples at 8 kHz: 400 Hz down to 54 Hz
 LEVEL_N_FFT = 512  # FFT size for band powers at 16 kHz
-INPUT_NAMES = [f"c{i}" for i in range(1, 11)] + ["energy_db", "prediction_gain_db", "voicing", "zcr"]
+N_CEPS_IN = 10  # narrowband cepstra c_1..c_10, the first inputs
+INPUT_NAMES = [f"c{i}" for i in range(1, N_CEPS_IN + 1)] + ["energy_db", "prediction_gain_db", "voicing", "zcr"]
 N_INPUTS = len(INPUT_NAMES)
 
 
@@ -85,51 +86,55 @@ class FeatureSettings:
 
 
 def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
-    """Per-hop input features [shape=(n, N_INPUTS)], see the module docstring."""
+    """Per-hop input features [shape=(n, N_INPUTS)], see the module docstring (compiled:
+    :func:`nenv.dsp.feature_loops.hop_measures`, the voicing's FFTs, :func:`_voicing`)."""
     frames, a, gain = analysis.frames, analysis.a, analysis.gain
     n = frames.shape[0]
     if n == 0:
         return np.zeros((0, N_INPUTS))
-    w = lpc.asymmetric_window(frames.shape[1])
-    xw = frames * w
-    power = (xw * xw).sum(axis=1) / lpc.window_energy(frames.shape[1])
-    energy_db = np.maximum(10 * np.log10(np.maximum(power, 1e-30)), ENERGY_FLOOR_DB)
-    err_db = np.maximum(10 * np.log10(np.maximum(gain * gain, 1e-30)), ENERGY_FLOOR_DB)
-    pred_gain = np.minimum(np.maximum(energy_db - err_db, 0.0), 60.0)
-    ceps = cepstrum.to_cepstrum(a, n_ceps=10)[:, 1:]
-    voicing = _voicing(xw, frames.shape[1])
-    hop = frames[:, -HOP_NB - 1 :]
-    zcr = (np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1])).sum(axis=1) / HOP_NB
+    length = frames.shape[1]
+    ceps, energy_db, pred_gain, zcr, xn = kernels.hop_measures(
+        np.ascontiguousarray(frames, dtype=np.float64), lpc.asymmetric_window(length), np.ascontiguousarray(a, dtype=np.float64),
+        np.ascontiguousarray(gain, dtype=np.float64), lpc.window_energy(length), N_CEPS_IN, HOP_NB, ENERGY_FLOOR_DB)
     out = np.empty((n, N_INPUTS))
-    m = ceps.shape[1]
-    out[:, :m] = ceps
-    out[:, m], out[:, m + 1], out[:, m + 2], out[:, m + 3] = energy_db, pred_gain, voicing, zcr
+    out[:, :N_CEPS_IN] = ceps[:, 1:]
+    out[:, ENERGY_COLUMN], out[:, PREDICTION_GAIN_COLUMN], out[:, ZCR_COLUMN] = energy_db, pred_gain, zcr
+    out[:, VOICING_COLUMN] = _voicing(xn, length)
     return out
 
 
 VOICING_COLUMN = INPUT_NAMES.index("voicing")
 ENERGY_COLUMN = INPUT_NAMES.index("energy_db")
+PREDICTION_GAIN_COLUMN = INPUT_NAMES.index("prediction_gain_db")
+ZCR_COLUMN = INPUT_NAMES.index("zcr")
 
 
 def voicing(frames: np.ndarray) -> np.ndarray:
     """The ``voicing`` input alone, per frame: frames [shape=(n, WIN_NB)] raw -> [shape=(n,)] in [0, 1]."""
     if frames.shape[0] == 0:
         return np.zeros(0)
-    return _voicing(frames * lpc.asymmetric_window(frames.shape[1]), frames.shape[1])
+    length = frames.shape[1]
+    n = frames.shape[0]
+    *_, xn = kernels.hop_measures(np.ascontiguousarray(frames, dtype=np.float64), lpc.asymmetric_window(length), np.ones((n, 1)), np.ones(n), lpc.window_energy(length), 1, HOP_NB, ENERGY_FLOOR_DB)
+    return _voicing(xn, length)
 
 
-def _voicing(xw: np.ndarray, length: int) -> np.ndarray:
+def _voicing(xn: np.ndarray, length: int) -> np.ndarray:
     # normalised autocorrelation over the pitch range, divided by the window's own normalised
     # autocorrelation to undo the window's taper (Boersma 1993, IFA Proceedings 17). Single
-    # precision is ample for a value in [0, 1] and halves the FFTs' cost; each frame is scaled
-    # to unit peak first (the ratio does not depend on scale), so nothing underflows.
-    peak = np.abs(xw).max(axis=1, keepdims=True)
-    r = lpc.autocorrelation((xw / np.where(peak > 0, peak, 1.0)).astype(np.float32), order=PITCH_LAGS[1]).astype(np.float64)
+    # precision is ample for a value in [0, 1] and halves the FFTs' cost; each windowed frame comes
+    # scaled to unit peak (xn, from hop_measures; the ratio does not depend on scale), so nothing underflows.
+    r = np.ascontiguousarray(lpc.autocorrelation(xn, order=PITCH_LAGS[1]))
+    return kernels.voicing_peak(r, _window_lag_ratio(length), PITCH_LAGS[0], PITCH_LAGS[1])
+
+
+@lru_cache(maxsize=None)
+def _window_lag_ratio(length: int) -> np.ndarray:
+    """The window's autocorrelation at the pitch lags over its lag 0 (read-only, computed once)."""
     rw = _window_autocorrelation(length)
-    r0 = r[:, 0]
-    lags = slice(PITCH_LAGS[0], PITCH_LAGS[1] + 1)
-    norm = r[:, lags] / np.where(r0 > 0, r0, 1.0)[:, None] / (rw[lags] / rw[0])[None, :]
-    return np.where(r0 > 0, np.minimum(np.maximum(norm.max(axis=1), 0.0), 1.0), 0.0)
+    out = rw[PITCH_LAGS[0] : PITCH_LAGS[1] + 1] / rw[0]
+    out.flags.writeable = False
+    return out
 
 
 @lru_cache(maxsize=None)
@@ -149,15 +154,9 @@ def stack_context(history: np.ndarray, ready: np.ndarray, feats: np.ndarray, *, 
     Returns stacked [shape=(B * H, (context + 1) * d)] and the new history and ready flags.
     Training (:class:`ContextStacker`) and the runtime estimator both stack through here.
     """
-    B, H, d = feats.shape
-    history = history.copy()
-    if not ready.all():
-        fresh = ~ready
-        history[fresh] = np.tile(feats[fresh, 0], (1, context))
-    hist = np.concatenate([history.reshape(B, context, d), feats], axis=1)
-    # row (b, h) = hist[b, h : h + context + 1] flattened: frames of (context + 1) * d values every d
-    stacked = lpc.hop_frames(hist.reshape(B, -1), frame_length=(context + 1) * d, hop_length=d, n_frames=H).reshape(B * H, -1)
-    return stacked, hist[:, H:].reshape(B, context * d), np.ones_like(ready)
+    stacked, new_history = kernels.stack_context(np.ascontiguousarray(history, dtype=np.float64), np.ascontiguousarray(ready, dtype=bool),
+                                                 np.ascontiguousarray(feats, dtype=np.float64), context)
+    return stacked, new_history, np.ones_like(ready)
 
 
 class ContextStacker:
@@ -219,16 +218,24 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
 
     Returns a [shape=(n, order+1)], gain [shape=(n,)] (may be inf/NaN for non-finite input) and,
     with ``with_reflection``, the reflection coefficients of ``a`` [shape=(n, order)] from the
-    Levinson-Durbin recursion that produced it.
+    Levinson-Durbin recursion that produced it. Compiled (:mod:`nenv.dsp.envelope_loops`); the
+    numpy route, :func:`nenv.dsp.cepstrum.from_cepstrum_stable` and
+    :func:`nenv.dsp.cepstrum.power_spectrum`, is its reference in the tests.
     """
-    c = np.concatenate([np.zeros((ceps.shape[0], 1)), ceps], axis=1)
-    a, g0, k = cepstrum.from_cepstrum_stable(np.where(np.isfinite(c), c, 0.0), order=order, with_reflection=True)
-    env = cepstrum.power_spectrum(a, gain=g0, n_fft=LEVEL_N_FFT, bins=cepstrum.band_bins(BAND_EDGE_HZ, WB_SR / 2, n_fft=LEVEL_N_FFT, sr=WB_SR))
-    model_hb = 2.0 * env.sum(axis=1) / LEVEL_N_FFT
-    target = 10 ** ((nb_energy_db + level_db) / 10)
-    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        gain = g0 * np.sqrt(target / model_hb)
+    n_fft = cepstrum.STABLE_N_FFT
+    cos, _ = cepstrum.cosine_table(ceps.shape[1] + 1, n_fft)
+    spec, top = kernels.log_spectrum(np.ascontiguousarray(ceps, dtype=np.float64), cos, cepstrum.STABLE_FLOOR_NEPERS)
+    np.exp(spec, out=spec)
+    band_cos, band_sin = cepstrum.cosine_table(order + 1, LEVEL_N_FFT, *cepstrum.band_bins(BAND_EDGE_HZ, WB_SR / 2, n_fft=LEVEL_N_FFT, sr=WB_SR))
+    a, gain, k = kernels.fit_envelope(spec, cepstrum.inverse_cosines(order + 1, n_fft), order, lpc.SILENT_ENERGY, band_cos, band_sin, top,
+                                      _per_row(nb_energy_db, top.size), _per_row(level_db, top.size), float(LEVEL_N_FFT))
     return (a, gain, k) if with_reflection else (a, gain)
+
+
+def _per_row(v, n: int) -> np.ndarray:
+    """``v`` (one value per row, or one for all) as a C-contiguous float64 array [shape=(n,)]."""
+    v = np.ascontiguousarray(v, dtype=np.float64)
+    return v if v.shape == (n,) else np.ascontiguousarray(np.broadcast_to(v, (n,)))
 
 
 def low_band_target(wb_frames: np.ndarray, nb_energy_db: np.ndarray) -> np.ndarray:

@@ -16,6 +16,8 @@ from nenv.dsp import kernels
 from nenv.dsp.lpc import levinson
 
 STABLE_FLOOR_DB = 80.0  # dB below the peak: floor of the spectrum in the always-stable route
+STABLE_FLOOR_NEPERS = -STABLE_FLOOR_DB * np.log(10) / 20  # the same floor on the natural-log magnitude
+STABLE_N_FFT = 512  # grid of the always-stable route
 
 
 @lru_cache(maxsize=None)
@@ -108,7 +110,7 @@ def log_magnitude(c: np.ndarray, *, n_fft: int) -> np.ndarray:
     return np.asarray(c, dtype=np.float64) @ cos
 
 
-def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512, with_reflection: bool = False) -> tuple[np.ndarray, ...]:
+def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = STABLE_N_FFT, with_reflection: bool = False) -> tuple[np.ndarray, ...]:
     """Always-stable route from cepstra to an all-pole model of ``order``.
 
     cepstrum -> log magnitude -> power spectrum -> autocorrelation (inverse FFT)
@@ -129,9 +131,9 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512, with_re
     # Spectrum relative to its peak, floored at -STABLE_FLOOR_DB: keeps Levinson well
     # conditioned in float64 however extreme the cepstrum.
     logmag -= top
-    np.maximum(logmag, -STABLE_FLOOR_DB * np.log(10) / 20, out=logmag)
+    np.maximum(logmag, STABLE_FLOOR_NEPERS, out=logmag)
     logmag *= 2.0
-    r = np.exp(logmag, out=logmag) @ _inverse_cosines(order + 1, n_fft)  # = irfft(...)[:order+1]
+    r = np.exp(logmag, out=logmag) @ inverse_cosines(order + 1, n_fft)  # = irfft(...)[:order+1]
     a, k, err = levinson(r, order=order)
     with np.errstate(over="ignore"):  # an absurd c_0 gives gain = inf, which the guard rejects
         gain = np.sqrt(np.maximum(err, 0.0)) * np.exp(top[..., 0])
@@ -139,7 +141,7 @@ def from_cepstrum_stable(c: np.ndarray, *, order: int, n_fft: int = 512, with_re
 
 
 @lru_cache(maxsize=None)
-def _inverse_cosines(n_lags: int, n_fft: int) -> np.ndarray:
+def inverse_cosines(n_lags: int, n_fft: int) -> np.ndarray:
     """W with ``S @ W == irfft(S, n_fft)[..., :n_lags]`` for real, even spectra S on the rfft grid."""
     cos, _ = _cosines(n_lags, n_fft)
     wt = np.full(n_fft // 2 + 1, 2.0 / n_fft)

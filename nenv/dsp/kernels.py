@@ -1,7 +1,7 @@
 """Compiled per-hop kernels: the sequential and small-array work of the chain, over a batch of rows.
 
-The kernels are plain loops (:mod:`nenv.dsp.lpc_loops`, :mod:`nenv.dsp.filter_loops`) compiled
-by numba with ``cache=True``: only the first process after an install compiles; later ones load
+The kernels are plain loops (:mod:`nenv.dsp.lpc_loops`, :mod:`nenv.dsp.filter_loops`,
+:mod:`nenv.dsp.envelope_loops`, :mod:`nenv.dsp.feature_loops`) compiled by numba with ``cache=True``: only the first process after an install compiles; later ones load
 the machine code from numba's cache (``__pycache__`` beside the loops, or numba's per-user cache
 when that folder is read-only; ``NUMBA_CACHE_DIR`` overrides both). Rows are independent signals
 or frames (one hop of one call, many hops, many calls); every kernel takes C-contiguous float64
@@ -25,12 +25,15 @@ from types import SimpleNamespace
 import numba
 import numpy as np
 
-from nenv.dsp import filter_loops, lpc_loops
+from nenv.dsp import envelope_loops, feature_loops, filter_loops, lpc_loops
 
 LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "band_ratio", "mismatch_db", "guard_rules")
 FILTER_KERNELS = ("rectify", "sosfilt", "hop_ramp", "fir", "upsample2", "synthesize")
-PUBLIC = LPC_KERNELS + FILTER_KERNELS
-loops = SimpleNamespace(**{n: getattr(lpc_loops, n) for n in LPC_KERNELS}, **{n: getattr(filter_loops, n) for n in FILTER_KERNELS})
+ENVELOPE_KERNELS = ("log_spectrum", "fit_envelope")
+FEATURE_KERNELS = ("hop_measures", "voicing_peak", "stack_context", "nearest_cell")
+PUBLIC = LPC_KERNELS + FILTER_KERNELS + ENVELOPE_KERNELS + FEATURE_KERNELS
+_MODULES = ((lpc_loops, LPC_KERNELS), (filter_loops, FILTER_KERNELS), (envelope_loops, ENVELOPE_KERNELS), (feature_loops, FEATURE_KERNELS))
+loops = SimpleNamespace(**{n: getattr(module, n) for module, names in _MODULES for n in names})
 
 
 # ---- start-up -------------------------------------------------------------------------------
@@ -46,6 +49,7 @@ def _signatures() -> dict:
     t = numba.types
     r1, r2, r3 = (t.Array(t.float64, n, "C", readonly=True) for n in (1, 2, 3))
     w1, w2, w3 = (t.Array(t.float64, n, "C") for n in (1, 2, 3))
+    r2_f32, r1_bool = t.Array(t.float32, 2, "C", readonly=True), t.Array(t.boolean, 1, "C", readonly=True)
     i, f = t.int64, t.float64
     return {
         loops.autocorrelation: (r2, i),
@@ -64,6 +68,12 @@ def _signatures() -> dict:
         loops.band_ratio: (r2, r2, r2, r2, r2, r2),
         loops.mismatch_db: (r2,),
         loops.guard_rules: (r2, r1, r2, r1, r2, r1, r2, r1, r1, r1),
+        loops.log_spectrum: (r2, r2, f),
+        loops.fit_envelope: (r2, r2, i, f, r2, r2, r1, r1, r1, f),
+        loops.hop_measures: (r2, r1, r2, r1, f, i, i, f),
+        loops.voicing_peak: (r2_f32, r1, i, i),
+        loops.stack_context: (r2, r1_bool, r3, i),
+        loops.nearest_cell: (r2, r1, r1, r2, r1),
     }
 
 
@@ -97,6 +107,12 @@ def _run_each_once() -> None:
     ratio = loops.band_ratio(a, a, np.ones((5, 3)), np.zeros((5, 3)), np.ones((5, 3)), np.zeros((5, 3)))
     loops.mismatch_db(ratio)
     loops.guard_rules(np.zeros((2, 3)), np.zeros(2), a, np.ones(2), k, np.ones(2), ratio, np.zeros(2), np.zeros(2), np.zeros(8))
+    spec, top = loops.log_spectrum(np.zeros((2, 3)), np.ones((4, 9)), -9.0)
+    loops.fit_envelope(np.exp(spec), np.ones((9, 5)), 4, 1e-280, np.ones((5, 3)), np.zeros((5, 3)), top, np.zeros(2), np.zeros(2), 16.0)
+    _, _, _, _, xn = loops.hop_measures(f, np.ones(32), a, np.ones(2), 32.0, 6, 8, -100.0)
+    loops.voicing_peak(xn, np.ones(3), 2, 4)
+    loops.stack_context(np.zeros((2, 6)), np.zeros(2, dtype=bool), np.ones((2, 2, 3)), 2)
+    loops.nearest_cell(np.zeros((2, 3)), np.zeros(3), np.ones(3), np.ones((3, 4)), np.ones(4))
 
 
 def warm(*, notice=None) -> float:

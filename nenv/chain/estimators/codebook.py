@@ -15,6 +15,7 @@ from functools import cached_property
 
 import numpy as np
 
+from nenv.dsp import kernels
 from nenv.errors import ConfigError
 from nenv.chain.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAnalysis
 from nenv.chain.features import ENERGY_COLUMN, ENERGY_FLOOR_DB, VOICING_COLUMN, envelope_from_prediction, narrowband_features
@@ -47,19 +48,16 @@ class Codebook:
         return self.centroids.shape[0]
 
     @cached_property
-    def _centroid_norms(self) -> np.ndarray:
-        """Squared norm of each centroid [shape=(1, K)], computed once per codebook."""
-        return np.sum(self.centroids**2, axis=1)[None, :]
+    def _cells(self) -> tuple[np.ndarray, np.ndarray]:
+        """The centroids one column per cell [shape=(d, K)] and their squared norms [shape=(K,)], computed once."""
+        return np.ascontiguousarray(self.centroids.T, dtype=np.float64), np.ascontiguousarray(np.sum(self.centroids**2, axis=1), dtype=np.float64)
 
     def nearest(self, feats: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Nearest cell and its RMS distance per dimension, for raw features [shape=(n, d)]."""
-        z = (feats - self.mean) / self.std
-        if not np.isfinite(z).all():
-            z = np.nan_to_num(z, nan=1e6, posinf=1e6, neginf=-1e6)
-        d2 = (z * z).sum(axis=1)[:, None] - 2 * z @ self.centroids.T + self._centroid_norms
-        cell = d2.argmin(axis=1)
-        dist = np.sqrt(np.maximum(d2[np.arange(z.shape[0]), cell], 0.0) / z.shape[1])
-        return cell, dist
+        """Nearest cell and its RMS distance per dimension, for raw features [shape=(n, d)]:
+        z = (feats - mean) / std (non-finite values as +-1e6), squared distances |z|^2 - 2 z.c + |c|^2,
+        the first smallest (compiled: :func:`nenv.dsp.feature_loops.nearest_cell`)."""
+        f64 = lambda v: np.ascontiguousarray(v, dtype=np.float64)  # noqa: E731
+        return kernels.nearest_cell(f64(feats), f64(self.mean), f64(self.std), *self._cells)
 
     @classmethod
     def fit(cls, feats: np.ndarray, ceps: np.ndarray, level_db: np.ndarray, *, size: int, seed: int) -> "Codebook":
