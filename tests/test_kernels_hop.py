@@ -154,3 +154,28 @@ def test_nearest_cell_equals_brute_force_distances(rng):
     assert cell[3] == 5
     np.testing.assert_allclose(dist, full.min(axis=1) / np.sqrt(d), rtol=1e-9, atol=1e-7)  # row 3 sits on a cell: 0 to rounding
     assert cell.dtype == np.int64 and book.nearest(np.zeros((0, d)))[0].shape == (0,)
+
+
+@pytest.mark.parametrize("hops_per_call", [1, 2, 5])  # fewer and more samples per call than the history holds
+def test_whitening_equals_lpc_analysis_and_lfilter_per_frame_in_any_pieces(rng, hops_per_call):
+    from scipy import signal
+
+    from nenv.dsp.excitation import WHITEN_ORDER, whiten_rows
+    from nenv.settings import HOP_WB, WIN_WB
+
+    u = np.stack([signal.lfilter([1.0], [1.0, -0.9], rng.standard_normal(10 * HOP_WB)), np.zeros(10 * HOP_WB)])
+    u[1, 5 * HOP_WB :] = rng.standard_normal(5 * HOP_WB)  # silence, then noise
+    hist = np.zeros((2, WIN_WB - HOP_WB))
+    parts = [whiten_rows(u[:, s : s + hops_per_call * HOP_WB], hist) for s in range(0, u.shape[1], hops_per_call * HOP_WB)]
+    w = np.concatenate([p[0] for p in parts], axis=1)
+    rms = np.concatenate([p[1].reshape(2, -1) for p in parts], axis=1)
+    padded = np.concatenate([np.zeros((2, WIN_WB - HOP_WB)), u], axis=1)
+    for b in range(2):
+        for h in range(10):
+            frame = padded[b, h * HOP_WB : h * HOP_WB + WIN_WB]
+            a, _ = lpc.analyse(frame[None], order=WHITEN_ORDER, sr=16000)
+            want = signal.lfilter(a[0], [1.0], frame)[-HOP_WB:]  # scipy.signal.lfilter: the FIR inverse filter
+            np.testing.assert_allclose(w[b, h * HOP_WB : (h + 1) * HOP_WB], want, rtol=1e-9, atol=1e-12)
+            np.testing.assert_allclose(rms[b, h], max(np.sqrt(np.mean(want**2)), 1e-9), rtol=1e-9)
+    assert np.all(rms[1, :5] == 1e-9)  # silent hops: the floor, never 0
+    np.testing.assert_array_equal(hist, u[:, -(WIN_WB - HOP_WB) :])  # the history ends where u ends

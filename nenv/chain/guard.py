@@ -165,6 +165,9 @@ class Guard:
     def __init__(self, limits: GuardLimits, *, low_band: bool = False):
         self.limits = limits
         self.low_band = low_band  # whether the low band is synthesised (and so checked)
+        lim = limits
+        self._params = np.array([lim.level_min_db, lim.level_max_db, lim.mismatch_max_db, lim.novelty_max, lim.stability_margin, float(low_band),
+                                 -np.inf if lim.low_min_db is None else lim.low_min_db, np.inf if lim.low_max_db is None else lim.low_max_db])
 
     def check(self, **kwargs) -> Decisions:
         """Verdict for each hop; see the module docstring for the checks (arguments: :meth:`assess`)."""
@@ -188,7 +191,6 @@ class Guard:
         coefficients if the caller has them (the recursion that built ``a``), else the
         step-down of ``a`` computes them. ``low_db``: the low-band level of each envelope
         (:func:`nenv.chain.features.low_band_level`), needed when the low band is on."""
-        lim = self.limits
         if self.low_band and low_db is None:
             raise ValueError("the guard checks the low band: pass low_db")
         a = np.ascontiguousarray(a, dtype=np.float64)
@@ -200,10 +202,8 @@ class Guard:
         else:
             stable = np.ones(a.shape[0])
         low = np.asarray(low_db, dtype=np.float64) if self.low_band else np.full(a.shape[0], np.nan)
-        params = np.array([lim.level_min_db, lim.level_max_db, lim.mismatch_max_db, lim.novelty_max, lim.stability_margin, float(self.low_band),
-                           -np.inf if lim.low_min_db is None else lim.low_min_db, np.inf if lim.low_max_db is None else lim.low_max_db])
         f64 = lambda v: np.ascontiguousarray(v, dtype=np.float64)  # noqa: E731
-        reasons, max_k, mismatch, k = kernels.guard_rules(f64(ceps), f64(level_db), a, f64(gain), f64(k), stable, _band_ratios(a_fin, a_nb), f64(novelty), low, params)
+        reasons, max_k, mismatch, k = kernels.guard_rules(f64(ceps), f64(level_db), a, f64(gain), f64(k), stable, _band_ratios(a_fin, a_nb), f64(novelty), low, self._params)
         dec = Decisions(
             rejected=reasons != 0,
             reasons=reasons,

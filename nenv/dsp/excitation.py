@@ -99,7 +99,7 @@ class ExcitationExtender:
     def rows(self, e: np.ndarray, sel=ALL) -> tuple[np.ndarray, np.ndarray]:
         """:meth:`process` for the rows ``sel``: e [shape=(B, H * 80)] -> u [shape=(B, H * 160)], rms [shape=(B * H,)]."""
         st = self._state
-        B, H = e.shape[0], e.shape[1] // (HOP_WB // 2)
+        B = e.shape[0]
         if self.method == "fold":
             z = np.zeros((B, 2 * e.shape[1]))
             z[:, ::2] = np.sqrt(2.0) * e
@@ -120,8 +120,10 @@ class ExcitationExtender:
         st.put("n", sel, st.get("n", sel) + u.shape[1])
         if not self.whiten:
             return u, hop_rms(u.reshape(-1))
-        w, rms = whiten_hops(st.frames("wb", sel, np.ascontiguousarray(u), hop=HOP_WB))
-        return w.reshape(B, H * HOP_WB), rms
+        hist = st.get("wb", sel)
+        w, rms = whiten_rows(u, hist)
+        st.put("wb", sel, hist)
+        return w, rms
 
 
 def rectify_hops(up: np.ndarray, dc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -137,15 +139,17 @@ def rectify_hops(up: np.ndarray, dc: np.ndarray) -> tuple[np.ndarray, np.ndarray
     return kernels.rectify(np.ascontiguousarray(up, dtype=np.float64), dc, DC_POLE, HOP_WB), dc
 
 
-def whiten_hops(frames: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Whiten extended excitation: each hop through its own order-WHITEN_ORDER LPC inverse filter.
+def whiten_rows(u: np.ndarray, history: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Whiten B rows of extended excitation: each hop through its own order-WHITEN_ORDER LPC inverse
+    filter (analysis of the WIN_WB frame ending at the hop's end, as :func:`nenv.dsp.lpc.analyse`),
+    in one compiled pass (:func:`nenv.dsp.kernels.whiten`).
 
-    frames : np.ndarray [shape=(n, WIN_WB)], 16 kHz frames ending at each hop's end
-    Returns u [shape=(n * HOP_WB,)] and each hop's RMS [shape=(n,)] (> 0).
+    u : np.ndarray [shape=(B, H * HOP_WB)]; history : [shape=(B, WIN_WB - HOP_WB)], each row's samples
+    before u, advanced in place. Returns the whitened u [shape=(B, H * HOP_WB)] and each hop's RMS
+    [shape=(B * H,)] (> 0).
     """
-    a, _ = lpc.analyse(frames, order=WHITEN_ORDER, sr=WB_SR)
-    u = residual(frames, a, hop_length=HOP_WB)
-    return u, hop_rms(u)
+    return kernels.whiten(np.ascontiguousarray(u, dtype=np.float64), history, lpc.asymmetric_window(WIN_WB), lpc.lag_window(WHITEN_ORDER + 1, WB_SR),
+                          WHITEN_ORDER, lpc.SILENT_ENERGY, lpc.window_energy(WIN_WB), HOP_WB)
 
 
 def hop_rms(u: np.ndarray) -> np.ndarray:

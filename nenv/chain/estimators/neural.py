@@ -23,6 +23,7 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
     the guard replaced).
     """
     energy = feats[:, ENERGY_COLUMN]
+    silent = energy <= ENERGY_FLOOR_DB
     ceps, level = checkpoint.predict(stacked)
     a, gain, k = envelope_from_prediction(ceps, level, energy, order=checkpoint.features.wb_order, with_reflection=True)
     dec = None
@@ -31,15 +32,15 @@ def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.
         cell, novelty = book.nearest(feats)
         low_db = low_band_level(a, gain, energy) + LOW_BAND_GAIN_DB if guard.low_band else None
         dec, k = guard.assess(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=cell, k=k, low_db=low_db)
-        silent = energy <= ENERGY_FLOOR_DB  # digital silence: nothing is added, nothing to judge
-        dec.rejected[silent] = False
-        dec.reasons[silent] = 0
-        if np.any(dec.rejected):
+        if silent.any():  # digital silence: nothing is added, nothing to judge
+            dec.rejected[silent] = False
+            dec.reasons[silent] = 0
+        if dec.rejected.any():
             a_cb, g_cb = book.envelopes(cell[dec.rejected], energy[dec.rejected])
             a[dec.rejected] = a_cb
             gain[dec.rejected] = g_cb
             k[dec.rejected] = lpc.reflection(a_cb)[0]
-    return a, np.where(energy <= ENERGY_FLOOR_DB, 0.0, gain), dec, k
+    return a, np.where(silent, 0.0, gain), dec, k
 
 
 class NeuralEstimator(EnvelopeEstimator):
