@@ -179,3 +179,33 @@ def test_whitening_equals_lpc_analysis_and_lfilter_per_frame_in_any_pieces(rng, 
             np.testing.assert_allclose(rms[b, h], max(np.sqrt(np.mean(want**2)), 1e-9), rtol=1e-9)
     assert np.all(rms[1, :5] == 1e-9)  # silent hops: the floor, never 0
     np.testing.assert_array_equal(hist, u[:, -(WIN_WB - HOP_WB) :])  # the history ends where u ends
+
+
+def test_low_band_level_equals_the_power_spectrum_summed_over_the_band(rng):
+    from nenv.settings import LOW_BAND_HZ
+
+    a = np.concatenate([np.ones((30, 1)), rng.normal(0, 0.3, (30, 16))], axis=1)
+    gain = np.exp(rng.normal(-3, 1, 30))
+    energy = rng.normal(-30, 8, 30)
+    gain[0], gain[1], gain[2] = 0.0, np.inf, np.nan
+    got = features.low_band_level(a, gain, energy)
+    first, last = cepstrum.band_bins(LOW_BAND_HZ[0], LOW_BAND_HZ[1], n_fft=512, sr=WB_SR)
+    spec = np.abs(np.fft.rfft(a, n=512, axis=1)[:, first : last + 1]) ** 2  # numpy.fft: |A|^2 on the band's bins
+    with np.errstate(divide="ignore", invalid="ignore"):
+        want = 10 * np.log10(2.0 * (gain[:, None] ** 2 / spec).sum(axis=1) / 512) - energy
+    np.testing.assert_allclose(got[3:], want[3:], atol=1e-9)
+    assert got[0] == -np.inf and got[1] == np.inf and np.isnan(got[2])
+
+
+def test_low_band_weights_ramp_with_voicing_and_vanish_without_a_gain():
+    from nenv.chain.systems import VOICING_GATE, low_band_weights
+    from nenv.settings import LOW_BAND_GAIN_DB
+
+    lo, hi = VOICING_GATE
+    v = np.array([0.0, lo, (lo + hi) / 2, hi, 1.0, 0.9, 0.9, 0.9, np.nan])
+    g = np.array([1.0, 1.0, 1.0, 1.0, 1.0, 0.0, np.inf, np.nan, 1.0])
+    got = low_band_weights(v, g)
+    top = 10 ** (LOW_BAND_GAIN_DB / 20)
+    np.testing.assert_allclose(got[:8], [0.0, 0.0, 0.5 * top, top, top, 0.0, 0.0, 0.0], rtol=1e-12, atol=1e-15)
+    want = np.where(np.isfinite(g) & (g > 0), np.clip((v - lo) / (hi - lo), 0.0, 1.0) * top, 0.0)  # the numpy formula
+    np.testing.assert_array_equal(got, want)

@@ -331,16 +331,19 @@ def test_the_network_runs_through_bound_buffers_exactly_as_a_plain_session_run(r
     sequence of batch sizes and threads, its results are onnxruntime's plain ``run``, bit for bit."""
     import threading
 
+    from nenv.chain import checkpoint
+
     model = pipeline.load_model(None)
-    x = rng.normal(0, 3, (40, model.features.input_dim))
-    want_c, want_l = model.session().run(None, {"features": x.astype(np.float32)})
     start = 0
-    for n in (1, 1, 2, 5, 1, 31):  # new sizes rebind, repeated ones reuse the buffers
+    x = rng.normal(0, 3, (300, model.features.input_dim))
+    want_c, want_l = model.session().run(None, {"features": x.astype(np.float32)})
+    for n in (1, 1, 2, 5, 1, 31, 100, 100, 1):  # new sizes rebind, repeated ones reuse the buffers (large ones are not kept)
         c, lv = model.predict(x[start : start + n])
         np.testing.assert_array_equal(c, want_c[start : start + n].astype(np.float64))
         np.testing.assert_array_equal(lv, want_l[start : start + n, 0].astype(np.float64))
         assert c.dtype == lv.dtype == np.float64 and c.flags.owndata  # a copy: the next run cannot change it
         start += n
+        assert ("shape" in model._bound.__dict__) == (n <= checkpoint.KEEP_BOUND_ROWS)
     got: dict[int, list] = {}
 
     def worker(i: int) -> None:

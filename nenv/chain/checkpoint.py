@@ -33,6 +33,7 @@ META_FEATURES = "nenv_features"  # ONNX metadata key holding the feature setting
 MODEL_FILE = "model.onnx"
 CODEBOOK_FILE = "codebook.npz"
 SETTINGS_FILE = "nenv.json"
+KEEP_BOUND_ROWS = 64  # Checkpoint.predict keeps its bound buffers between runs of at most this many rows
 
 
 def session_options(*, flush_denormals: bool = False):
@@ -96,18 +97,23 @@ class Checkpoint:
             return np.zeros((0, self.features.n_wb_ceps)), np.zeros(0)
         run = self._bound.__dict__
         if run.get("shape") != x.shape:
+            run.clear()
             run.update(_binding(self.session(), x.shape), shape=x.shape)
         np.copyto(run["input"], x, casting="same_kind")  # rounded to float32 as astype would
         self.session().run_with_iobinding(run["binding"])
         ceps, level = run["outputs"]
-        return ceps.astype(np.float64), level[:, 0].astype(np.float64)
+        ceps, level = ceps.astype(np.float64), level[:, 0].astype(np.float64)
+        if x.shape[0] > KEEP_BOUND_ROWS:
+            run.clear()  # a large batch's buffers are not kept: allocating them costs little beside its run
+        return ceps, level
 
 
 def _binding(session, shape: tuple[int, int]) -> dict:
     """An onnxruntime IOBinding of ``session`` to float32 buffers for ``shape`` rows of input: a run
     then neither allocates nor converts its inputs and outputs (a one-row run of the shipped model
-    costs some 10 us instead of 15, its 99th percentile 18 instead of 40). Kept per thread and batch
-    size by :meth:`Checkpoint.predict`; the results are those of ``session.run``, bit for bit."""
+    costs some 10 us instead of 15, its 99th percentile 18 instead of 40). Kept per thread for the last
+    batch size up to KEEP_BOUND_ROWS rows by :meth:`Checkpoint.predict`; the results are those of
+    ``session.run``, bit for bit."""
     n = shape[0]
     inp = np.empty(shape, dtype=np.float32)
     binding = session.io_binding()

@@ -247,7 +247,9 @@ def low_band_target(wb_frames: np.ndarray, nb_energy_db: np.ndarray) -> np.ndarr
 
 def low_band_level(a: np.ndarray, gain: np.ndarray, nb_energy_db: np.ndarray) -> np.ndarray:
     """Power in 50-300 Hz of a unit-power white excitation through each envelope ``gain / A``, re the
-    narrowband frame power, dB [shape=(n,)] (the level the low band is synthesised at; NaN/inf pass through)."""
-    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        env = cepstrum.power_spectrum(a, gain=gain, n_fft=LEVEL_N_FFT, bins=cepstrum.band_bins(LOW_BAND_HZ[0], LOW_BAND_HZ[1], n_fft=LEVEL_N_FFT, sr=WB_SR))
-        return 10 * np.log10(2.0 * env.sum(axis=1) / LEVEL_N_FFT) - nb_energy_db
+    narrowband frame power, dB [shape=(n,)] (the level the low band is synthesised at; NaN/inf pass through;
+    compiled, :func:`nenv.dsp.envelope_loops.band_level_db`; :func:`nenv.dsp.cepstrum.power_spectrum`
+    summed over the band is its reference in the tests)."""
+    a = np.ascontiguousarray(a, dtype=np.float64)
+    band_cos, band_sin = cepstrum.cosine_table(a.shape[1], LEVEL_N_FFT, *cepstrum.band_bins(LOW_BAND_HZ[0], LOW_BAND_HZ[1], n_fft=LEVEL_N_FFT, sr=WB_SR))
+    return kernels.band_level_db(a, _per_row(gain, a.shape[0]), band_cos, band_sin, _per_row(nb_energy_db, a.shape[0]), float(LEVEL_N_FFT))

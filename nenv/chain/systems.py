@@ -21,7 +21,7 @@ from typing import Callable, Protocol
 
 import numpy as np
 
-from nenv.dsp import lpc
+from nenv.dsp import kernels, lpc
 from nenv.errors import InputError
 from nenv.chain.estimators.base import EnvelopeEstimator, NarrowbandAnalysis, ReferenceReader
 from nenv.chain.estimators.imaging import ImagingSystem
@@ -108,8 +108,8 @@ def low_band_weights(voicing: np.ndarray, gain: np.ndarray) -> np.ndarray:
     rising linearly to the LOW_BAND_GAIN_DB trim at VOICING_GATE[1]; 0 where the envelope's gain is 0
     (digital silence) or not finite."""
     lo, hi = VOICING_GATE
-    w = np.clip((voicing - lo) / (hi - lo), 0.0, 1.0) * 10 ** (LOW_BAND_GAIN_DB / 20)
-    return np.where(np.isfinite(gain) & (gain > 0), w, 0.0)
+    f64 = lambda v: np.ascontiguousarray(v, dtype=np.float64)  # noqa: E731
+    return kernels.ramp_weights(f64(voicing), f64(gain), lo, hi, 10 ** (LOW_BAND_GAIN_DB / 20))
 
 
 class SourceFilterSystem:

@@ -77,3 +77,23 @@ def fit_envelope(power, inv_cos, order, silent_energy, band_cos, band_sin, top, 
         target = 10.0 ** ((energy_db[b] + level_db[b]) / 10.0)
         gain[b] = g0 * math.sqrt(target / model)
     return a, gain, k
+
+
+@jit.plain
+def band_level_db(a, gain, band_cos, band_sin, energy_db, n_fft):
+    """Power of each envelope ``gain / A`` for a unit-power white input over a band, in dB re the
+    frame power ``energy_db``: 10 log10(2 sum_band gain^2 / |A|^2 / n_fft) - energy_db, per row.
+
+    a [shape=(B, p + 1)]; band_cos/band_sin [shape=(p + 1, band bins)] on the n_fft grid. NaN and
+    inf pass through (a zero gain gives -inf). Returns [shape=(B,)].
+    """
+    re = a @ band_cos
+    im = a @ band_sin
+    out = np.empty(a.shape[0])
+    for b in range(a.shape[0]):
+        g2 = gain[b] * gain[b]
+        acc = 0.0
+        for f in range(re.shape[1]):
+            acc += g2 / _nan_max(re[b, f] * re[b, f] + im[b, f] * im[b, f], 1e-300)
+        out[b] = 10.0 * np.log10(2.0 * acc / n_fft) - energy_db[b]
+    return out

@@ -153,3 +153,20 @@ def nearest_cell(feats, mean, std, centroids_t, centroid_norms):
                 cell[b] = c
         dist[b] = math.sqrt((best if best > 0.0 else 0.0) / d)
     return cell, dist
+
+
+@jit.plain
+def ramp_weights(value, gain, lo, hi, scale):
+    """scale x (value - lo) / (hi - lo) clamped to [0, 1], per row; 0 where ``gain`` is not finite
+    and positive (numpy.clip semantics: NaN stays NaN). value, gain [shape=(B,)] -> [shape=(B,)]."""
+    out = np.empty(value.shape[0])
+    for b in range(value.shape[0]):
+        g = gain[b]
+        if not (np.isfinite(g) and g > 0):
+            out[b] = 0.0
+            continue
+        w = (value[b] - lo) / (hi - lo)
+        w = w if not w < 0.0 else 0.0
+        w = w if not w > 1.0 else 1.0
+        out[b] = w * scale
+    return out

@@ -29,8 +29,8 @@ from nenv.dsp import envelope_loops, feature_loops, filter_loops, lpc_loops
 
 LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "whiten", "band_ratio", "mismatch_db", "guard_rules")
 FILTER_KERNELS = ("rectify", "sosfilt", "hop_ramp", "fir", "upsample2", "synthesize")
-ENVELOPE_KERNELS = ("log_spectrum", "fit_envelope")
-FEATURE_KERNELS = ("hop_measures", "voicing_peak", "stack_context", "nearest_cell")
+ENVELOPE_KERNELS = ("log_spectrum", "fit_envelope", "band_level_db")
+FEATURE_KERNELS = ("hop_measures", "voicing_peak", "stack_context", "nearest_cell", "ramp_weights")
 PUBLIC = LPC_KERNELS + FILTER_KERNELS + ENVELOPE_KERNELS + FEATURE_KERNELS
 _MODULES = ((lpc_loops, LPC_KERNELS), (filter_loops, FILTER_KERNELS), (envelope_loops, ENVELOPE_KERNELS), (feature_loops, FEATURE_KERNELS))
 loops = SimpleNamespace(**{n: getattr(module, n) for module, names in _MODULES for n in names})
@@ -75,6 +75,8 @@ def _signatures() -> dict:
         loops.voicing_peak: (r2_f32, r1, i, i),
         loops.stack_context: (r2, r1_bool, r3, i),
         loops.nearest_cell: (r2, r1, r1, r2, r1),
+        loops.band_level_db: (r2, r1, r2, r2, r1, f),
+        loops.ramp_weights: (r1, r1, f, f, f),
     }
 
 
@@ -115,6 +117,8 @@ def _run_each_once() -> None:
     loops.voicing_peak(xn, np.ones(3), 2, 4)
     loops.stack_context(np.zeros((2, 6)), np.zeros(2, dtype=bool), np.ones((2, 2, 3)), 2)
     loops.nearest_cell(np.zeros((2, 3)), np.zeros(3), np.ones(3), np.ones((3, 4)), np.ones(4))
+    loops.band_level_db(a, np.ones(2), np.ones((5, 3)), np.zeros((5, 3)), np.zeros(2), 16.0)
+    loops.ramp_weights(np.ones(2), np.ones(2), 0.4, 0.7, 1.0)
 
 
 def warm(*, notice=None) -> float:
