@@ -157,28 +157,24 @@ def test_nearest_cell_equals_brute_force_distances(rng):
 
 
 @pytest.mark.parametrize("hops_per_call", [1, 2, 5])  # fewer and more samples per call than the history holds
-def test_whitening_equals_lpc_analysis_and_lfilter_per_frame_in_any_pieces(rng, hops_per_call):
-    from scipy import signal
+def test_frames_after_history_equal_numpy_framing_in_any_pieces(rng, hops_per_call):
+    from nenv.dsp.rows import RowState
 
-    from nenv.dsp.excitation import WHITEN_ORDER, whiten_rows
-    from nenv.settings import HOP_WB, WIN_WB
-
-    u = np.stack([signal.lfilter([1.0], [1.0, -0.9], rng.standard_normal(10 * HOP_WB)), np.zeros(10 * HOP_WB)])
-    u[1, 5 * HOP_WB :] = rng.standard_normal(5 * HOP_WB)  # silence, then noise
-    hist = np.zeros((2, WIN_WB - HOP_WB))
-    parts = [whiten_rows(u[:, s : s + hops_per_call * HOP_WB], hist) for s in range(0, u.shape[1], hops_per_call * HOP_WB)]
-    w = np.concatenate([p[0] for p in parts], axis=1)
-    rms = np.concatenate([p[1].reshape(2, -1) for p in parts], axis=1)
-    padded = np.concatenate([np.zeros((2, WIN_WB - HOP_WB)), u], axis=1)
-    for b in range(2):
-        for h in range(10):
-            frame = padded[b, h * HOP_WB : h * HOP_WB + WIN_WB]
-            a, _ = lpc.analyse(frame[None], order=WHITEN_ORDER, sr=16000)
-            want = signal.lfilter(a[0], [1.0], frame)[-HOP_WB:]  # scipy.signal.lfilter: the FIR inverse filter
-            np.testing.assert_allclose(w[b, h * HOP_WB : (h + 1) * HOP_WB], want, rtol=1e-9, atol=1e-12)
-            np.testing.assert_allclose(rms[b, h], max(np.sqrt(np.mean(want**2)), 1e-9), rtol=1e-9)
-    assert np.all(rms[1, :5] == 1e-9)  # silent hops: the floor, never 0
-    np.testing.assert_array_equal(hist, u[:, -(WIN_WB - HOP_WB) :])  # the history ends where u ends
+    hop, keep = 160, 320
+    x = rng.standard_normal((3, 10 * hop))
+    state = RowState(h=np.zeros(keep))
+    state.add(3)
+    step = hops_per_call * hop
+    got = [state.frames("h", slice(None), x[:, s : s + step], hop=hop).reshape(3, hops_per_call, -1) for s in range(0, x.shape[1], step)]
+    got = np.concatenate(got, axis=1)
+    padded = np.concatenate([np.zeros((3, keep)), x], axis=1)
+    want = np.stack([np.stack([padded[b, h * hop : h * hop + keep + hop] for h in range(10)]) for b in range(3)])  # numpy slicing
+    np.testing.assert_array_equal(got, want)
+    np.testing.assert_array_equal(state.get("h"), x[:, -keep:])  # the history ends where x ends
+    picked = state.frames("h", np.array([2, 0]), x[[2, 0], :hop], hop=hop)  # some rows: the others keep their history
+    np.testing.assert_array_equal(picked, np.stack([np.concatenate([x[2, -keep:], x[2, :hop]]), np.concatenate([x[0, -keep:], x[0, :hop]])]))
+    np.testing.assert_array_equal(state.get("h")[1], x[1, -keep:])
+    np.testing.assert_array_equal(state.get("h")[0], np.concatenate([x[0, -keep + hop :], x[0, :hop]]))
 
 
 def test_low_band_level_equals_the_power_spectrum_summed_over_the_band(rng):

@@ -120,10 +120,8 @@ class ExcitationExtender:
         st.put("n", sel, st.get("n", sel) + u.shape[1])
         if not self.whiten:
             return u, hop_rms(u.reshape(-1))
-        hist = st.get("wb", sel)
-        w, rms = whiten_rows(u, hist)
-        st.put("wb", sel, hist)
-        return w, rms
+        w, rms = whiten_hops(st.frames("wb", sel, u, hop=HOP_WB))
+        return w.reshape(B, -1), rms
 
 
 def rectify_hops(up: np.ndarray, dc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -139,17 +137,15 @@ def rectify_hops(up: np.ndarray, dc: np.ndarray) -> tuple[np.ndarray, np.ndarray
     return kernels.rectify(np.ascontiguousarray(up, dtype=np.float64), dc, DC_POLE, HOP_WB), dc
 
 
-def whiten_rows(u: np.ndarray, history: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Whiten B rows of extended excitation: each hop through its own order-WHITEN_ORDER LPC inverse
-    filter (analysis of the WIN_WB frame ending at the hop's end, as :func:`nenv.dsp.lpc.analyse`),
-    in one compiled pass (:func:`nenv.dsp.kernels.whiten`).
+def whiten_hops(frames: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Whiten extended excitation: each hop through its own order-WHITEN_ORDER LPC inverse filter.
 
-    u : np.ndarray [shape=(B, H * HOP_WB)]; history : [shape=(B, WIN_WB - HOP_WB)], each row's samples
-    before u, advanced in place. Returns the whitened u [shape=(B, H * HOP_WB)] and each hop's RMS
-    [shape=(B * H,)] (> 0).
+    frames : np.ndarray [shape=(n, WIN_WB)], 16 kHz frames ending at each hop's end
+    Returns u [shape=(n * HOP_WB,)] and each hop's RMS [shape=(n,)] (> 0).
     """
-    return kernels.whiten(np.ascontiguousarray(u, dtype=np.float64), history, lpc.asymmetric_window(WIN_WB), lpc.lag_window(WHITEN_ORDER + 1, WB_SR),
-                          WHITEN_ORDER, lpc.SILENT_ENERGY, lpc.window_energy(WIN_WB), HOP_WB)
+    a, _ = lpc.analyse(frames, order=WHITEN_ORDER, sr=WB_SR)
+    u = residual(frames, a, hop_length=HOP_WB)
+    return u, hop_rms(u)
 
 
 def hop_rms(u: np.ndarray) -> np.ndarray:

@@ -27,7 +27,7 @@ import numpy as np
 
 from nenv.dsp import envelope_loops, feature_loops, filter_loops, lpc_loops
 
-LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "whiten", "band_ratio", "mismatch_db", "guard_rules")
+LPC_KERNELS = ("autocorrelation", "levinson", "lpc_analyse", "reflection", "from_reflection", "to_cepstrum", "residual", "frames_after", "band_ratio", "mismatch_db", "guard_rules")
 FILTER_KERNELS = ("rectify", "sosfilt", "hop_ramp", "fir", "upsample2", "synthesize")
 ENVELOPE_KERNELS = ("log_spectrum", "fit_envelope", "band_level_db")
 FEATURE_KERNELS = ("hop_measures", "voicing_peak", "stack_context", "nearest_cell", "ramp_weights")
@@ -59,7 +59,7 @@ def _signatures() -> dict:
         loops.from_reflection: (r2,),
         loops.to_cepstrum: (r2, i),
         loops.residual: (r2, r2, i),
-        loops.whiten: (r2, w2, r1, r1, i, f, f, i),
+        loops.frames_after: (r2, w2, i),
         loops.rectify: (r2, w1, f, i),
         loops.sosfilt: (r2, r2, w3),
         loops.hop_ramp: (r2, r2, w1, i),
@@ -101,7 +101,7 @@ def _run_each_once() -> None:
     loops.from_reflection(k)
     loops.to_cepstrum(a, 6)
     loops.residual(f, a, 8)
-    loops.whiten(f, np.zeros((2, 16)), np.ones(24), np.ones(5), 4, 1e-280, 24.0, 8)
+    loops.frames_after(f, np.zeros((2, 16)), 8)
     loops.rectify(f, np.zeros(2), 0.99, 16)
     loops.sosfilt(np.array([[1.0, 0.0, 0.0, 1.0, 0.1, 0.0]]), f, np.zeros((2, 1, 2)))
     loops.hop_ramp(f, np.ones((2, 2)), np.zeros(2), 16)

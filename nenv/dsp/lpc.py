@@ -147,11 +147,6 @@ def condition(r: np.ndarray, *, sr: int, lag_window_hz: float = LAG_WINDOW_HZ, w
     return r * _lag_window(r.shape[-1], sr, lag_window_hz, white_noise)
 
 
-def lag_window(n_lags: int, sr: int) -> np.ndarray:
-    """The lag window (lag 0: the white-noise factor) that :func:`analyse` applies (read-only, cached)."""
-    return _lag_window(n_lags, sr, LAG_WINDOW_HZ, WHITE_NOISE_CORRECTION)
-
-
 @lru_cache(maxsize=None)
 def _lag_window(n_lags: int, sr: int, lag_window_hz: float, white_noise: float) -> np.ndarray:
     lags = np.arange(n_lags)

@@ -293,39 +293,31 @@ def guard_rules(ceps, level, a, gain, k, stable, ratio, novelty, low_db, limits)
     return reasons, max_k, mismatch, k_out
 
 
-@jit.sums
-def whiten(u, history, window, lag_window, order, silent_energy, window_energy, hop):
-    """Each hop of each row through its own LPC inverse filter: frames ending at every hop (the row's
-    ``history`` of the samples before ``u`` first), :func:`lpc_analyse`, :func:`residual`.
 
-    u [shape=(B, H * hop)]; history [shape=(B, K)] (frames are K + hop long), advanced in place to
-    the last K samples. Returns the residual [shape=(B, H * hop)] and each hop's RMS floored at 1e-9
-    [shape=(B * H,)].
+@jit.plain
+def frames_after(x, history, hop):
+    """Frames ending at each hop of each row of ``x``, each preceded by the row's ``history``.
+
+    x [shape=(B, H * hop)]; history [shape=(B, K)] the K samples before x, advanced in place to the
+    last K samples of history + x. Returns frames [shape=(B * H, K + hop)], row-major by row then hop
+    (frame h of row b is (history + x)[b, h * hop : h * hop + K + hop]).
     """
-    n_rows, n = u.shape
+    n_rows, n = x.shape
     hops = n // hop
     keep = history.shape[1]
     length = keep + hop
     frames = np.empty((n_rows * hops, length))
     for b in range(n_rows):
         for h in range(hops):
-            for i in range(length):
-                j = h * hop + i - keep  # index into u; before 0 it is the history
-                frames[b * hops + h, i] = history[b, j + keep] if j < 0 else u[b, j]
+            start = h * hop - keep  # where the frame starts in x; before 0 it is the history
+            if start >= 0:
+                frames[b * hops + h, :] = x[b, start : start + length]
+            else:
+                frames[b * hops + h, : -start] = history[b, keep + start :]
+                frames[b * hops + h, -start :] = x[b, : length + start]
         if hops * hop >= keep:
-            for i in range(keep):
-                history[b, i] = u[b, n - keep + i]
+            history[b, :] = x[b, n - keep :]
         else:
-            old = history[b].copy()
-            for i in range(keep):
-                j = i + hops * hop
-                history[b, i] = old[j] if j < keep else u[b, j - keep]
-    a, _, _ = lpc_analyse(frames, window, lag_window, order, silent_energy, window_energy)
-    e = residual(frames, a, hop)
-    rms = np.empty(n_rows * hops)
-    for r in range(n_rows * hops):
-        s = 0.0
-        for t in range(hop):
-            s += e[r, t] * e[r, t]
-        rms[r] = max(math.sqrt(s / hop), 1e-9)
-    return e.reshape(n_rows, n), rms
+            history[b, : keep - n] = history[b, n:].copy()
+            history[b, keep - n :] = x[b, :]
+    return frames

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from nenv.dsp.lpc import hop_frames
+from nenv.dsp import kernels
 
 ALL = slice(None)
 
@@ -48,11 +48,10 @@ class RowState:
         """Frames ending at each of the ``H`` hops in ``x`` [shape=(B, H * hop)], each preceded by
         the row's history ``key`` (the last frame_length - hop samples), which is then advanced.
         Returns a C-contiguous [shape=(B * H, frame_length)], row-major by call then hop."""
-        B, H = x.shape[0], x.shape[1] // hop
-        buf = np.concatenate([self.get(key, sel), x], axis=1)
-        self.put(key, sel, buf[:, H * hop :])
-        length = buf.shape[1] - (H - 1) * hop
-        return np.ascontiguousarray(hop_frames(buf, frame_length=length, hop_length=hop, n_frames=H)).reshape(B * H, length)
+        history = self.get(key, sel)
+        frames = kernels.frames_after(np.ascontiguousarray(x, dtype=np.float64), history, hop)
+        self.put(key, sel, history)
+        return frames
 
     def put(self, key: str, sel, value: np.ndarray) -> None:
         """Store the rows ``sel`` of ``key`` (nothing to do when ``value`` is the view :meth:`get` gave)."""
