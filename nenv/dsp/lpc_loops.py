@@ -309,15 +309,19 @@ def frames_after(x, history, hop):
     frames = np.empty((n_rows * hops, length))
     for b in range(n_rows):
         for h in range(hops):
+            r = b * hops + h
             start = h * hop - keep  # where the frame starts in x; before 0 it is the history
-            if start >= 0:
-                frames[b * hops + h, :] = x[b, start : start + length]
-            else:
-                frames[b * hops + h, : -start] = history[b, keep + start :]
-                frames[b * hops + h, -start :] = x[b, : length + start]
-        if hops * hop >= keep:
-            history[b, :] = x[b, n - keep :]
+            split = min(max(-start, 0), length)  # samples taken from the history
+            for i in range(split):
+                frames[r, i] = history[b, keep + start + i]
+            for i in range(split, length):
+                frames[r, i] = x[b, start + i]
+        if n >= keep:
+            for i in range(keep):
+                history[b, i] = x[b, n - keep + i]
         else:
-            history[b, : keep - n] = history[b, n:].copy()
-            history[b, keep - n :] = x[b, :]
+            for i in range(keep - n):  # forwards: each value moves to a lower index
+                history[b, i] = history[b, i + n]
+            for i in range(n):
+                history[b, keep - n + i] = x[b, i]
     return frames
