@@ -69,14 +69,14 @@ def lpc_analyse(frames, window, lag_window, order, silent_energy, window_energy)
     k [shape=(B, order)], gain [shape=(B,)] = sqrt(max(err, 0) / window_energy).
     """
     n_rows, length = frames.shape
-    xw = np.empty((n_rows, length))
+    xw = np.empty((1, length))  # one windowed row at a time: no frame-sized temporary per call
+    r = np.empty((n_rows, order + 1))
     for b in range(n_rows):
         for i in range(length):
-            xw[b, i] = frames[b, i] * window[i]
-    r = autocorrelation(xw, order)
-    for b in range(n_rows):
+            xw[0, i] = frames[b, i] * window[i]
+        rb = autocorrelation(xw, order)
         for i in range(order + 1):
-            r[b, i] *= lag_window[i]
+            r[b, i] = rb[0, i] * lag_window[i]
     a, k, err = levinson(r, order, silent_energy)
     gain = np.empty(n_rows)
     for b in range(n_rows):
