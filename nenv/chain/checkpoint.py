@@ -71,7 +71,7 @@ class Checkpoint:
     info: dict
     flush_denormals: bool = False
     _session: object = field(default=None, repr=False)
-    _bound: threading.local = field(default_factory=threading.local, repr=False)
+    _bound: threading.local = field(default_factory=threading.local, repr=False, compare=False)  # per thread: IOBinding buffers (predict)
 
     def session(self):
         """The onnxruntime session (created on first use)."""

@@ -165,9 +165,8 @@ class Guard:
     def __init__(self, limits: GuardLimits, *, low_band: bool = False):
         self.limits = limits
         self.low_band = low_band  # whether the low band is synthesised (and so checked)
-        lim = limits
-        self._params = np.array([lim.level_min_db, lim.level_max_db, lim.mismatch_max_db, lim.novelty_max, lim.stability_margin, float(low_band),
-                                 -np.inf if lim.low_min_db is None else lim.low_min_db, np.inf if lim.low_max_db is None else lim.low_max_db])
+        self._params = np.array([limits.level_min_db, limits.level_max_db, limits.mismatch_max_db, limits.novelty_max, limits.stability_margin, float(low_band),
+                                 -np.inf if limits.low_min_db is None else limits.low_min_db, np.inf if limits.low_max_db is None else limits.low_max_db])
 
     def check(self, **kwargs) -> Decisions:
         """Verdict for each hop; see the module docstring for the checks (arguments: :meth:`assess`)."""

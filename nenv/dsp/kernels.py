@@ -1,18 +1,21 @@
 """Compiled per-hop kernels: the sequential and small-array work of the chain, over a batch of rows.
 
 The kernels are plain loops (:mod:`nenv.dsp.lpc_loops`, :mod:`nenv.dsp.filter_loops`,
-:mod:`nenv.dsp.envelope_loops`, :mod:`nenv.dsp.feature_loops`) compiled by numba with ``cache=True``: only the first process after an install compiles; later ones load
-the machine code from numba's cache (``__pycache__`` beside the loops, or numba's per-user cache
+:mod:`nenv.dsp.envelope_loops`, :mod:`nenv.dsp.feature_loops`) compiled by numba with
+``cache=True``: only the first process after an install compiles; later ones load the machine
+code from numba's cache (``__pycache__`` beside the loops, or numba's per-user cache
 when that folder is read-only; ``NUMBA_CACHE_DIR`` overrides both). Rows are independent signals
-or frames (one hop of one call, many hops, many calls); every kernel takes C-contiguous float64
-arrays whose first axis is the row.
+or frames (one hop of one call, many hops, many calls); every kernel takes C-contiguous arrays
+whose first axis is the row (float64, but for the voicing's single-precision autocorrelations and
+a flag array).
 
 Callers use ``kernels.NAME``: :func:`warm` compiles every kernel for its one signature and runs
 it once, before the first hop; until then ``kernels.NAME`` warms up first.
 
 The plain numpy/scipy formulations these replace are the references in ``tests/test_kernels.py``
 (scipy ``solve_toeplitz``, ``lfilter`` with ``lfiltic``, ``sosfilt``, ``upfirdn``, ``freqz``,
-``numpy.roots``, the FFT definition of the cepstrum).
+``numpy.roots``, the FFT definition of the cepstrum) and ``tests/test_kernels_hop.py`` (numpy.fft
+band powers, ``numpy.correlate``, brute-force distances, numpy slicing).
 """
 
 from __future__ import annotations
