@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import socket
 import time
 
@@ -407,3 +408,26 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
         c = relay.closed[100 + i]
         assert c.packets == clips[0].size // 160 and c.packets_out > 0
         assert 0 < c.guard_fallbacks == rejected, (i, c.guard_fallbacks, rejected)
+
+
+def test_packets_arriving_while_the_relay_is_busy_wait_in_its_socket_not_dropped():
+    """A batched step of a few hundred calls takes 10-20 ms; the packets that arrive meanwhile wait in
+    the listening socket. The system's default buffer (about 200 KB on Linux) holds some 20 ms of 200
+    streams and dropped packets at that load; the relay asks for RECEIVE_BUFFER_BYTES. Here 1,200
+    datagrams arrive before the relay reads at all, and every one is handled."""
+    rmem_max = int(open("/proc/sys/net/core/rmem_max").read()) if os.path.exists("/proc/sys/net/core/rmem_max") else 0
+    if rmem_max < rtp.RECEIVE_BUFFER_BYTES:
+        pytest.skip(f"this system caps socket buffers at {rmem_max} bytes (net.core.rmem_max)")
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    try:
+        for _ in range(1200):  # 172 bytes each, like a 20 ms PCMU packet; not RTP, so each is counted as malformed
+            tx.sendto(b"\x00" * 172, relay.address)
+        relay.start()
+        deadline = time.time() + 10
+        while relay.counters.malformed < 1200 and time.time() < deadline:
+            time.sleep(0.05)
+    finally:
+        relay.stop()
+        tx.close()
+    assert relay.counters.malformed == 1200
