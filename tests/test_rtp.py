@@ -431,3 +431,21 @@ def test_packets_arriving_while_the_relay_is_busy_wait_in_its_socket_not_dropped
         relay.stop()
         tx.close()
     assert relay.counters.malformed == 1200
+
+
+def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch):
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+
+    monkeypatch.setattr(rtp.Relay, "serve", lambda self: self._shutdown())  # start, report, stop at once
+    run = lambda: CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging"], catch_exceptions=False)  # noqa: E731
+    rmem_max = int(open("/proc/sys/net/core/rmem_max").read()) if os.path.exists("/proc/sys/net/core/rmem_max") else 0
+    if rmem_max >= rtp.RECEIVE_BUFFER_BYTES:
+        res = run()
+        assert res.exit_code == 0 and "relaying RTP" in res.output and "receive buffer" not in res.output
+    if rmem_max >= 2**29:
+        pytest.skip("this system grants even a 1 GiB receive buffer")
+    monkeypatch.setattr(rtp, "RECEIVE_BUFFER_BYTES", 2**30)  # more than net.core.rmem_max allows (4 MiB on the development machines)
+    res = run()
+    assert res.exit_code == 0 and "note: the system allows a receive buffer of only" in res.output and "net.core.rmem_max" in res.output

@@ -152,6 +152,8 @@ class Relay:
             raise InputError("symmetric RTP sends from the listening socket: give the listen and destination addresses in one family (both IPv4 or both IPv6)")
         self.sock = socket.socket(family, socket.SOCK_DGRAM)
         self.sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, RECEIVE_BUFFER_BYTES)
+        # what the system granted, as it reports it (Linux counts its bookkeeping: twice the size asked for)
+        self.receive_buffer = self.sock.getsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF)
         self.sock.bind(listen_at)
         self.sock.setblocking(False)  # serve() waits in select and then reads every datagram waiting
         self.address = self.sock.getsockname()
