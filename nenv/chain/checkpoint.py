@@ -95,12 +95,13 @@ class Checkpoint:
         """Run the network on stacked raw features [shape=(n, input_dim)] -> (ceps (n, 20), level_db (n,))."""
         if x.shape[0] == 0:
             return np.zeros((0, self.features.n_wb_ceps)), np.zeros(0)
+        session = self.session()
         run = self._bound.__dict__
         if run.get("shape") != x.shape:
             run.clear()
-            run.update(_binding(self.session(), x.shape), shape=x.shape)
+            run.update(_binding(session, x.shape), shape=x.shape)
         np.copyto(run["input"], x, casting="same_kind")  # rounded to float32 as astype would
-        self.session().run_with_iobinding(run["binding"])
+        session.run_with_iobinding(run["binding"])
         ceps, level = run["outputs"]
         ceps, level = ceps.astype(np.float64), level[:, 0].astype(np.float64)
         if x.shape[0] > KEEP_BOUND_ROWS:

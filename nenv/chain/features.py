@@ -93,9 +93,8 @@ def narrowband_features(analysis: NarrowbandAnalysis) -> np.ndarray:
     if n == 0:
         return np.zeros((0, N_INPUTS))
     length = frames.shape[1]
-    ceps, energy_db, pred_gain, zcr, xn = kernels.hop_measures(
-        np.ascontiguousarray(frames, dtype=np.float64), lpc.asymmetric_window(length), np.ascontiguousarray(a, dtype=np.float64),
-        np.ascontiguousarray(gain, dtype=np.float64), lpc.window_energy(length), N_CEPS_IN, HOP_NB, ENERGY_FLOOR_DB)
+    ceps, energy_db, pred_gain, zcr, xn = kernels.hop_measures(kernels.f64(frames), lpc.asymmetric_window(length), kernels.f64(a), kernels.f64(gain), lpc.window_energy(length),
+                                                               N_CEPS_IN, HOP_NB, ENERGY_FLOOR_DB)
     out = np.empty((n, N_INPUTS))
     out[:, :N_CEPS_IN] = ceps[:, 1:]
     out[:, ENERGY_COLUMN], out[:, PREDICTION_GAIN_COLUMN], out[:, ZCR_COLUMN] = energy_db, pred_gain, zcr
@@ -115,7 +114,7 @@ def voicing(frames: np.ndarray) -> np.ndarray:
         return np.zeros(0)
     length = frames.shape[1]
     n = frames.shape[0]
-    *_, xn = kernels.hop_measures(np.ascontiguousarray(frames, dtype=np.float64), lpc.asymmetric_window(length), np.ones((n, 1)), np.ones(n), lpc.window_energy(length), 1, HOP_NB, ENERGY_FLOOR_DB)
+    *_, xn = kernels.hop_measures(kernels.f64(frames), lpc.asymmetric_window(length), np.ones((n, 1)), np.ones(n), lpc.window_energy(length), 1, HOP_NB, ENERGY_FLOOR_DB)
     return _voicing(xn, length)
 
 
@@ -154,8 +153,7 @@ def stack_context(history: np.ndarray, ready: np.ndarray, feats: np.ndarray, *, 
     Returns stacked [shape=(B * H, (context + 1) * d)] and the new history and ready flags.
     Training (:class:`ContextStacker`) and the runtime estimator both stack through here.
     """
-    stacked, new_history = kernels.stack_context(np.ascontiguousarray(history, dtype=np.float64), np.ascontiguousarray(ready, dtype=bool),
-                                                 np.ascontiguousarray(feats, dtype=np.float64), context)
+    stacked, new_history = kernels.stack_context(kernels.f64(history), np.ascontiguousarray(ready, dtype=bool), kernels.f64(feats), context)
     return stacked, new_history, np.ones_like(ready)
 
 
@@ -224,7 +222,7 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
     """
     n_fft = cepstrum.STABLE_N_FFT
     cos, _ = cepstrum.cosine_table(ceps.shape[1] + 1, n_fft)
-    spec, top = kernels.log_spectrum(np.ascontiguousarray(ceps, dtype=np.float64), cos, cepstrum.STABLE_FLOOR_NEPERS)
+    spec, top = kernels.log_spectrum(kernels.f64(ceps), cos, cepstrum.STABLE_FLOOR_NEPERS)
     np.exp(spec, out=spec)
     band_cos, band_sin = cepstrum.cosine_table(order + 1, LEVEL_N_FFT, *cepstrum.band_bins(BAND_EDGE_HZ, WB_SR / 2, n_fft=LEVEL_N_FFT, sr=WB_SR))
     a, gain, k = kernels.fit_envelope(spec, cepstrum.inverse_cosines(order + 1, n_fft), order, lpc.SILENT_ENERGY, band_cos, band_sin, top,
@@ -234,7 +232,7 @@ def envelope_from_prediction(ceps: np.ndarray, level_db: np.ndarray, nb_energy_d
 
 def _per_row(v, n: int) -> np.ndarray:
     """``v`` (one value per row, or one for all) as a C-contiguous float64 array [shape=(n,)]."""
-    v = np.ascontiguousarray(v, dtype=np.float64)
+    v = kernels.f64(v)
     return v if v.shape == (n,) else np.ascontiguousarray(np.broadcast_to(v, (n,)))
 
 
@@ -250,6 +248,6 @@ def low_band_level(a: np.ndarray, gain: np.ndarray, nb_energy_db: np.ndarray) ->
     narrowband frame power, dB [shape=(n,)] (the level the low band is synthesised at; NaN/inf pass through;
     compiled, :func:`nenv.dsp.envelope_loops.band_level_db`; :func:`nenv.dsp.cepstrum.power_spectrum`
     summed over the band is its reference in the tests)."""
-    a = np.ascontiguousarray(a, dtype=np.float64)
+    a = kernels.f64(a)
     band_cos, band_sin = cepstrum.cosine_table(a.shape[1], LEVEL_N_FFT, *cepstrum.band_bins(LOW_BAND_HZ[0], LOW_BAND_HZ[1], n_fft=LEVEL_N_FFT, sr=WB_SR))
     return kernels.band_level_db(a, _per_row(gain, a.shape[0]), band_cos, band_sin, _per_row(nb_energy_db, a.shape[0]), float(LEVEL_N_FFT))

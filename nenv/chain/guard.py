@@ -201,7 +201,7 @@ class Guard:
         else:
             stable = np.ones(a.shape[0])
         low = np.asarray(low_db, dtype=np.float64) if self.low_band else np.full(a.shape[0], np.nan)
-        f64 = lambda v: np.ascontiguousarray(v, dtype=np.float64)  # noqa: E731
+        f64 = kernels.f64
         reasons, max_k, mismatch, k = kernels.guard_rules(f64(ceps), f64(level_db), a, f64(gain), f64(k), stable, _band_ratios(a_fin, a_nb), f64(novelty), low, self._params)
         dec = Decisions(
             rejected=reasons != 0,

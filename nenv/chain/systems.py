@@ -108,8 +108,7 @@ def low_band_weights(voicing: np.ndarray, gain: np.ndarray) -> np.ndarray:
     rising linearly to the LOW_BAND_GAIN_DB trim at VOICING_GATE[1]; 0 where the envelope's gain is 0
     (digital silence) or not finite."""
     lo, hi = VOICING_GATE
-    f64 = lambda v: np.ascontiguousarray(v, dtype=np.float64)  # noqa: E731
-    return kernels.ramp_weights(f64(voicing), f64(gain), lo, hi, 10 ** (LOW_BAND_GAIN_DB / 20))
+    return kernels.ramp_weights(kernels.f64(voicing), kernels.f64(gain), lo, hi, 10 ** (LOW_BAND_GAIN_DB / 20))
 
 
 class SourceFilterSystem:

@@ -157,6 +157,11 @@ def warm(*, notice=None) -> float:
     return took
 
 
+def f64(values) -> np.ndarray:
+    """``values`` as the kernels take an input: a C-contiguous float64 array (no copy when it is one already)."""
+    return np.ascontiguousarray(values, dtype=np.float64)
+
+
 def stderr_notice(text: str) -> None:
     """Default ``notice`` of the command line: one line on stderr."""
     print(f"nenv: {text}", file=sys.stderr, flush=True)

@@ -49,7 +49,7 @@ class RowState:
         the row's history ``key`` (the last frame_length - hop samples), which is then advanced.
         Returns a C-contiguous [shape=(B * H, frame_length)], row-major by call then hop."""
         history = self.get(key, sel)
-        frames = kernels.frames_after(np.ascontiguousarray(x, dtype=np.float64), history, hop)
+        frames = kernels.frames_after(kernels.f64(x), history, hop)
         self.put(key, sel, history)
         return frames
 

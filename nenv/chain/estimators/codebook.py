@@ -56,7 +56,7 @@ class Codebook:
         """Nearest cell and its RMS distance per dimension, for raw features [shape=(n, d)]:
         z = (feats - mean) / std (non-finite values as +-1e6), squared distances |z|^2 - 2 z.c + |c|^2,
         the first smallest (compiled: :func:`nenv.dsp.feature_loops.nearest_cell`)."""
-        f64 = lambda v: np.ascontiguousarray(v, dtype=np.float64)  # noqa: E731
+        f64 = kernels.f64
         return kernels.nearest_cell(f64(feats), f64(self.mean), f64(self.std), *self._cells)
 
     @classmethod
