@@ -170,6 +170,21 @@ def test_sosfilt_and_fir_with_state_equal_scipy_in_one_go(rng, chunks):
     np.testing.assert_allclose(np.hstack(yf), signal.lfilter(taps, [1.0], x, axis=1), rtol=1e-12, atol=1e-13)
 
 
+@pytest.mark.parametrize("n_sections", range(1, 8))
+def test_sosfilt_any_number_of_sections_equals_scipy(rng, n_sections):
+    """The kernel runs sections three at a time: every remainder (1, 2) and count (1..7 sections),
+    fed in chunks of 1, 2 and more samples, against scipy.signal.sosfilt (reference)."""
+    sos = np.ascontiguousarray(signal.butter(2 * n_sections, 1000, btype="highpass", fs=16000, output="sos"))
+    x = rng.standard_normal((3, 200))
+    zs, ys, pos = np.zeros((3, n_sections, 2)), [], 0
+    for n in (1, 2, 0, 197):
+        ys.append(kernels.sosfilt(sos, np.ascontiguousarray(x[:, pos : pos + n]), zs))
+        pos += n
+    want, zf = signal.sosfilt(sos, x, axis=1, zi=np.zeros((n_sections, 3, 2)))
+    np.testing.assert_allclose(np.hstack(ys), want, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(zs, zf.transpose(1, 0, 2), rtol=1e-10, atol=1e-12)
+
+
 def test_upsample2_equals_zero_insertion_and_the_fir_by_upfirdn(rng):
     taps = signal.firwin(47, 0.45) * 2
     even, odd = np.ascontiguousarray(taps[0::2][::-1]), np.ascontiguousarray(taps[1::2][::-1])

@@ -52,49 +52,54 @@ def sosfilt(sos, x, state):
     n_sec = sos.shape[0]
     y = np.empty((n_rows, n))
     for b in range(n_rows):
-        # sections over the whole row, two at a time (the second one sample behind the first, so
-        # their two chains of dependent steps overlap), states in locals: the same operations in the
+        # sections over the whole row up to three at a time, each one sample behind the one before
+        # it (their chains of dependent steps overlap), states in locals: the same operations in the
         # same order per sample as sample by sample through every section
         for i in range(n):
             y[b, i] = x[b, i]
-        for s in range(0, n_sec - 1, 2):
-            p0, p1, p2, p4, p5 = sos[s, 0], sos[s, 1], sos[s, 2], sos[s, 4], sos[s, 5]
-            q0, q1, q2, q4, q5 = sos[s + 1, 0], sos[s + 1, 1], sos[s + 1, 2], sos[s + 1, 4], sos[s + 1, 5]
-            z0, z1 = state[b, s, 0], state[b, s, 1]
-            w0, w1 = state[b, s + 1, 0], state[b, s + 1, 1]
-            if n == 0:
-                continue
-            v = y[b, 0]
-            prev = p0 * v + z0
-            z0 = p1 * v - p4 * prev + z1
-            z1 = p2 * v - p5 * prev
-            for i in range(1, n):
-                v = y[b, i]
-                out = p0 * v + z0
-                z0 = p1 * v - p4 * out + z1
-                z1 = p2 * v - p5 * out
-                o2 = q0 * prev + w0
-                w0 = q1 * prev - q4 * o2 + w1
-                w1 = q2 * prev - q5 * o2
-                y[b, i - 1] = o2
-                prev = out
-            o2 = q0 * prev + w0
-            w0 = q1 * prev - q4 * o2 + w1
-            w1 = q2 * prev - q5 * o2
-            y[b, n - 1] = o2
-            state[b, s, 0], state[b, s, 1] = z0, z1
-            state[b, s + 1, 0], state[b, s + 1, 1] = w0, w1
-        if n_sec % 2:
-            s = n_sec - 1
+        s = 0
+        while s < n_sec:
+            g = min(3, n_sec - s)
             p0, p1, p2, p4, p5 = sos[s, 0], sos[s, 1], sos[s, 2], sos[s, 4], sos[s, 5]
             z0, z1 = state[b, s, 0], state[b, s, 1]
-            for i in range(n):
-                v = y[b, i]
-                out = p0 * v + z0
-                z0 = p1 * v - p4 * out + z1
-                z1 = p2 * v - p5 * out
-                y[b, i] = out
+            q0 = q1 = q2 = q4 = q5 = w0 = w1 = 0.0
+            r0 = r1 = r2 = r4 = r5 = v0 = v1 = 0.0
+            if g > 1:
+                q0, q1, q2, q4, q5 = sos[s + 1, 0], sos[s + 1, 1], sos[s + 1, 2], sos[s + 1, 4], sos[s + 1, 5]
+                w0, w1 = state[b, s + 1, 0], state[b, s + 1, 1]
+            if g > 2:
+                r0, r1, r2, r4, r5 = sos[s + 2, 0], sos[s + 2, 1], sos[s + 2, 2], sos[s + 2, 4], sos[s + 2, 5]
+                v0, v1 = state[b, s + 2, 0], state[b, s + 2, 1]
+            o1 = 0.0  # the first section's output at the previous sample
+            o2 = 0.0  # the second section's output at the sample before that
+            for i in range(n + g - 1):
+                # at step i: the third section on sample i - 2, the second on i - 1, the first on i
+                if g > 2 and i >= 2:
+                    out = r0 * o2 + v0
+                    v0 = r1 * o2 - r4 * out + v1
+                    v1 = r2 * o2 - r5 * out
+                    y[b, i - 2] = out
+                if g > 1 and i >= 1 and i - 1 < n:
+                    out = q0 * o1 + w0
+                    w0 = q1 * o1 - q4 * out + w1
+                    w1 = q2 * o1 - q5 * out
+                    if g == 2:
+                        y[b, i - 1] = out
+                    o2 = out
+                if i < n:
+                    v = y[b, i]
+                    out = p0 * v + z0
+                    z0 = p1 * v - p4 * out + z1
+                    z1 = p2 * v - p5 * out
+                    if g == 1:
+                        y[b, i] = out
+                    o1 = out
             state[b, s, 0], state[b, s, 1] = z0, z1
+            if g > 1:
+                state[b, s + 1, 0], state[b, s + 1, 1] = w0, w1
+            if g > 2:
+                state[b, s + 2, 0], state[b, s + 2, 1] = v0, v1
+            s += g
     return y
 
 
@@ -172,7 +177,7 @@ def upsample2(x, history, even, odd):
     return y
 
 
-@jit.sums
+@jit.plain  # not reordered: the recursion's dot product runs faster in order (2.15 -> 1.70 us per hop)
 def synthesize(u, k, log_g, k_prev, log_g_prev, past, n_sub, max_reflection):
     """All-pole synthesis G/A(z) with sub-frame interpolation, per row (one call or stream).
 
