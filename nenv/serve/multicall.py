@@ -22,6 +22,12 @@ from nenv.serve.runtime import OutputGate, as_samples
 from nenv.settings import HOP_NB
 
 MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
+# calls per pass through the chain: a step over many calls runs in passes of at most this many rows,
+# so each pass's arrays stay near a megabyte and are reused from the heap instead of being mapped
+# and page-faulted afresh (measured: 500 calls per 20 ms step, glibc's default heap, 26.9 -> 23.0 ms
+# per step; same outputs, since every row is computed alone)
+TILE_ROWS = 256
+_NOTHING = np.zeros(0)  # an empty queue (never written to: a queue is replaced, not changed in place)
 
 
 @dataclass
@@ -53,6 +59,7 @@ class MultiCallEngine:
         self._chain = Chain(system, rows=0)
         self._ids: list[str] = []
         self._calls: dict[str, _Call] = {}
+        self._order: list[_Call] = []  # the calls in row order (as _ids)
 
     # ---- calls joining and leaving -------------------------------------------------
     def open(self, call_id: str) -> None:
@@ -60,7 +67,8 @@ class MultiCallEngine:
         if call_id in self._calls:
             raise ValueError(f"call {call_id!r} is already open")
         self._ids.append(call_id)
-        self._calls[call_id] = _Call()
+        self._calls[call_id] = call = _Call()
+        self._order.append(call)
         self._chain.add_rows(1)
 
     def close(self, call_id: str, *, stats: dict | None = None) -> np.ndarray:
@@ -79,6 +87,7 @@ class MultiCallEngine:
         i = self._ids.index(call_id)
         self._chain.keep_rows(np.arange(len(self._ids)) != i)
         self._ids.pop(i)
+        self._order.pop(i)
         del self._calls[call_id]
         return y
 
@@ -119,28 +128,28 @@ class MultiCallEngine:
     def _run(self, only: str | None = None) -> None:
         """Process queued whole hops: each round takes every call with a hop queued, as many hops
         as all of them have (H), and runs them as one batch of B calls x H hops."""
+        order = self._order
         while True:
-            ready = [(i, self._calls[cid]) for i, cid in enumerate(self._ids) if (only is None or cid == only) and self._calls[cid].pending.size >= HOP_NB]
-            if not ready:
+            if only is None:
+                sizes = [c.pending.size for c in order]
+                rows = [i for i, size in enumerate(sizes) if size >= HOP_NB]
+            else:
+                i = self._ids.index(only)
+                sizes, rows = {i: order[i].pending.size}, [i] if order[i].pending.size >= HOP_NB else []
+            if not rows:
                 return
-            rows = [i for i, _ in ready]
-            calls = [c for _, c in ready]
-            n_hops = min(MAX_HOPS_PER_BATCH, min(c.pending.size for c in calls) // HOP_NB)
+            calls = order if len(rows) == len(order) else [order[i] for i in rows]
+            n_hops = min(MAX_HOPS_PER_BATCH, min(sizes[i] for i in rows) // HOP_NB)
             n = n_hops * HOP_NB
             x = np.concatenate([c.pending[:n] for c in calls]).reshape(len(calls), n)
             for c in calls:
-                c.pending = c.pending[n:]
+                c.pending = c.pending[n:] if c.pending.size > n else _NOTHING
             finite = np.isfinite(x)
             if not finite.all():  # one corrupt packet must not poison a call's filter state
                 for r in np.flatnonzero(~finite.all(axis=1)):
                     calls[r].bad_samples += int(np.count_nonzero(~finite[r]))
                 x = np.where(finite, x, 0.0)
-            # rows are in call order, so a batch of every call is the whole state: views, not gathers
-            y = self._chain.process(x, slice(None) if len(rows) == len(self._ids) else np.array(rows))
-            dec = getattr(getattr(self.system, "estimator", None), "last", None)
-            if dec is not None and dec.rejected.any():
-                for c, n_rej in zip(calls, dec.rejected.reshape(len(calls), n_hops).sum(axis=1)):
-                    c.rejected_hops += int(n_rej)
+            y = np.concatenate([self._pass(x, rows, calls, i, n_hops) for i in range(0, len(calls), TILE_ROWS)])
             # the output gate, batched: limit every row at once, then each call's own bookkeeping
             over = np.abs(y) > CEILING
             if over.any():
@@ -150,3 +159,15 @@ class MultiCallEngine:
             for c, row, row_lim, n_lim in zip(calls, y, y_lim, n_over):
                 c.hops += n_hops
                 c.out.append(c.gate.emit(row) if c.gate.skip else c.gate.emit_limited(row_lim, n_lim))
+
+    def _pass(self, x: np.ndarray, rows: list[int], calls: list[_Call], start: int, n_hops: int) -> np.ndarray:
+        """One pass of the chain over the calls ``start .. start + TILE_ROWS`` of a round."""
+        stop = min(start + TILE_ROWS, len(calls))
+        # rows are in call order, so a round of every call reads its state as views (slices), not gathers
+        sel = slice(start, stop) if len(rows) == len(self._ids) else np.array(rows[start:stop])
+        y = self._chain.process(x[start:stop], sel)
+        dec = getattr(getattr(self.system, "estimator", None), "last", None)
+        if dec is not None and dec.rejected.any():
+            for c, n_rej in zip(calls[start:stop], dec.rejected.reshape(stop - start, n_hops).sum(axis=1)):
+                c.rejected_hops += int(n_rej)
+        return y
