@@ -7,7 +7,6 @@ import pytest
 
 from nenv.dsp import channel
 from nenv.chain import checkpoint, pipeline
-from nenv.serve import multicall
 from nenv.serve.multicall import MultiCallEngine
 from nenv.serve.runtime import CallEngine
 from tests.conftest import narrowed_guard
@@ -49,17 +48,8 @@ def _alone(model, x, chunks):
     return np.concatenate(out), eng.system.estimator.record()
 
 
-@pytest.fixture(params=["one pass", "passes of 3 calls"])
-def passes(request, monkeypatch):
-    """A step's calls in one pass through the chain, or in passes of 3 (slices of the state, and
-    index arrays when only some calls have hops queued)."""
-    if request.param != "one pass":
-        monkeypatch.setattr(multicall, "TILE_ROWS", 3)
-    return request.param
-
-
 @pytest.mark.parametrize("guard", ["shipped", "strict"])
-def test_batched_calls_equal_their_own_engines(model, strict_model, calls, guard, passes):
+def test_batched_calls_equal_their_own_engines(model, strict_model, calls, guard):
     model = strict_model if guard == "strict" else model
     rng = np.random.default_rng(0)
     engine = MultiCallEngine(model)
@@ -116,7 +106,7 @@ def test_one_bad_call_does_not_disturb_another(model, calls):
     assert engine.step()["bad"].size == 2 * good.size
 
 
-def test_calls_of_different_lengths_stay_exact_while_others_idle(model, calls, passes):
+def test_calls_of_different_lengths_stay_exact_while_others_idle(model, calls):
     """Calls that end at different times: steps where only some calls have hops queued update only
     their rows of the shared state; every call still equals its own engine."""
     n_calls = 11

@@ -138,7 +138,7 @@ class Extended:
     n_limited: int
 
 
-CHUNK_HOPS = 250  # hops per processing step in extend() = 2.5 s of input (working arrays near a megabyte)
+CHUNK_HOPS = 1000  # hops per processing step in extend() = 10 s of input
 
 
 def tail_padding(pending: int) -> int:

@@ -3,7 +3,7 @@
 Every stage of the chain keeps what it carries from hop to hop in one :class:`RowState`:
 arrays whose first axis is the row (call). A call that joins gets a fresh row, a call that
 leaves has its row dropped, and a step that processes some of the rows reads and writes
-only those (``sel``: a slice of rows, ``slice(None)`` for all, which reads views; or an index array).
+only those (``sel``: ``slice(None)`` for all rows, which reads views, or an index array).
 """
 
 from __future__ import annotations
@@ -40,7 +40,7 @@ class RowState:
             self._arrays[k] = np.ascontiguousarray(self._arrays[k][mask])
 
     def get(self, key: str, sel=ALL) -> np.ndarray:
-        """The rows ``sel`` of ``key``: a C-contiguous view for a slice of rows, a copy for an index array
+        """The rows ``sel`` of ``key``: a C-contiguous view for all rows, a copy for an index array
         (write it back with :meth:`put` after changing it in place)."""
         return self._arrays[key][sel]
 
@@ -54,14 +54,8 @@ class RowState:
         return frames
 
     def put(self, key: str, sel, value: np.ndarray) -> None:
-        """Store the rows ``sel`` of ``key`` (nothing to do when ``value`` is the view :meth:`get` gave
-        for a slice of rows)."""
+        """Store the rows ``sel`` of ``key`` (nothing to do when ``value`` is the view :meth:`get` gave)."""
         target = self._arrays[key]
-        if sel is ALL:
-            if (value is target or value.base is target) and value.shape == target.shape:
-                return
-        elif isinstance(sel, slice) and value.base is target:  # (a slower test, once per pass of many rows)
-            rows = target[sel]
-            if value.shape == rows.shape and value.__array_interface__["data"] == rows.__array_interface__["data"]:
-                return
+        if sel is ALL and (value is target or value.base is target) and value.shape == target.shape:
+            return
         target[sel] = value

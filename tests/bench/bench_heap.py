@@ -19,7 +19,7 @@ import statistics
 import subprocess
 import sys
 
-KEEP_FREED = "glibc.malloc.trim_threshold=268435456:glibc.malloc.mmap_threshold=67108864"
+KEEP_FREED = "glibc.malloc.trim_threshold=268435456:glibc.malloc.mmap_threshold=33554432"
 
 CHILD = r"""
 import json, os, resource, sys, time
