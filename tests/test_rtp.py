@@ -220,7 +220,7 @@ def test_dynamic_payload_type_is_required():
         rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=8)
 
 
-@pytest.mark.parametrize("method", ["imaging", "neural", "neural --low-band"])  # neural: the batched engine
+@pytest.mark.parametrize("method", ["imaging", "neural", "neural --low-band", "neural --hold-freed-memory"])  # neural: the batched engine
 def test_relay_command_runs_and_stops_on_sigterm(arctic_refs, method):
     import signal
     import subprocess

@@ -147,9 +147,14 @@ def relay(
     step_ms: Annotated[float, typer.Option(min=5.0, max=100.0, help="Neural method: all streams are extended together every this many ms (a packet waits at most one step; 10 halves the wait for more CPU per call).")] = 20.0,
     symmetric: Annotated[bool, typer.Option("--symmetric", help="Send from the listening port (symmetric RTP, which many gateways and NATs expect).")] = False,
     low_band: LowBandOpt = False,
+    hold_freed_memory: Annotated[bool, typer.Option("--hold-freed-memory", help="Let this process keep the memory a batched step frees (glibc raises its own heap thresholds once): a fifth less time per step with many streams.")] = False,
 ) -> None:
     """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one call per SSRC. Stops on SIGTERM/Ctrl-C."""
     _kernels_ready()
+    if hold_freed_memory:
+        from nenv.serve.memory import hold_freed_memory as hold
+
+        hold()
     import signal as sig
 
     from nenv.chain import pipeline

@@ -1,15 +1,17 @@
-"""MultiCallEngine step time with glibc's default heap policy beside one that keeps freed memory,
+"""MultiCallEngine step time with glibc's default heap policy beside two ways of keeping freed memory,
 measured side by side in one run (not a test; nothing is asserted).
 
 Run: python tests/bench/bench_heap.py [--calls 300 400 500] [--rounds 3]
 
-Prints, per number of calls, the median over rounds of each policy's mean and p99 step time.
+Prints, per number of calls, the median over rounds of each policy's mean and p99 step time and its
+minor page faults per step.
 
 A batched step allocates a few MB of temporaries; with glibc's defaults the heap hands them back to
 the system after every step and takes them again on the next, page by page (thousands of minor page
-faults per step). GLIBC_TUNABLES (read by glibc when a process starts, so each measurement runs in
-its own child process, alternating) can keep that memory: the trim threshold and the mmap threshold
-below. nenv never changes the heap policy of a process itself; a gateway's start script may.
+faults per step). Two ways keep that memory: :func:`nenv.serve.memory.hold_freed_memory`, called once
+in the process (glibc raises its own thresholds; ``nenv relay --hold-freed-memory``), and
+GLIBC_TUNABLES set before the process starts (the trim and mmap thresholds below). A heap policy
+lasts for a process, so each measurement runs in its own child process, the policies alternating.
 """
 
 from __future__ import annotations
@@ -39,6 +41,9 @@ n_calls, packet = int(sys.argv[2]), 160  # 20 ms of 8 kHz input per call per ste
 model = checkpoint.load(checkpoint.default_path())
 ref = np.concatenate([prepare_reference(data / n) for n in ("arctic_a0007.wav", "arctic_a0009.wav")])
 x = np.tile(channel.telephone(ref, sr=16000, law="mulaw"), 4)
+if sys.argv[3] == "hold":
+    from nenv.serve.memory import hold_freed_memory
+    hold_freed_memory()
 engine = MultiCallEngine(model)
 for c in range(n_calls):
     engine.open(c)
@@ -62,13 +67,17 @@ print(json.dumps({"mean_ms": 1000 * sum(times) / len(times), "p99_ms": 1000 * fl
 """
 
 
-def run(n_calls: int, tunables: str | None) -> dict:
+POLICIES = {"glibc's defaults": (None, ""), "hold_freed_memory()": (None, "hold"), "GLIBC_TUNABLES": (KEEP_FREED, "")}
+
+
+def run(n_calls: int, policy: str) -> dict:
+    tunables, mode = POLICIES[policy]
     env = dict(os.environ)
     env.pop("GLIBC_TUNABLES", None)
     if tunables:
         env["GLIBC_TUNABLES"] = tunables
     data = os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "data")
-    out = subprocess.run([sys.executable, "-c", CHILD, data, str(n_calls)], env=env, capture_output=True, text=True, check=True)
+    out = subprocess.run([sys.executable, "-c", CHILD, data, str(n_calls), mode], env=env, capture_output=True, text=True, check=True)
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
@@ -78,17 +87,17 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=3)
     args = ap.parse_args()
     print(f"MultiCallEngine, 20 ms packets, one thread; {args.rounds} alternating rounds of 60 steps per policy")
-    print(f"keeping freed memory: GLIBC_TUNABLES={KEEP_FREED}")
+    print(f"GLIBC_TUNABLES={KEEP_FREED}")
     for n in args.calls:
-        plain, kept = [], []
+        results: dict[str, list[dict]] = {p: [] for p in POLICIES}
         for _ in range(args.rounds):
-            plain.append(run(n, None))
-            kept.append(run(n, KEEP_FREED))
-        p = statistics.median(r["mean_ms"] for r in plain)
-        k = statistics.median(r["mean_ms"] for r in kept)
-        p99p, p99k = (statistics.median(r["p99_ms"] for r in rs) for rs in (plain, kept))
-        print(f"  {n:4d} calls: mean step {p:6.2f} ms (p99 {p99p:6.2f}) with the defaults ({statistics.median(r['faults'] for r in plain):5.0f} page faults per step), "
-              f"{k:6.2f} ms (p99 {p99k:6.2f}) keeping freed memory ({statistics.median(r['faults'] for r in kept):5.0f}): ratio {k / p:4.2f}; real time needs both under 20 ms")
+            for p in POLICIES:
+                results[p].append(run(n, p))
+        base = statistics.median(r["mean_ms"] for r in results["glibc's defaults"])
+        print(f"  {n} calls (real time needs mean and p99 under 20 ms):")
+        for p, rs in results.items():
+            mean, p99, faults = (statistics.median(r[k] for r in rs) for k in ("mean_ms", "p99_ms", "faults"))
+            print(f"    {p:20s} mean step {mean:6.2f} ms, p99 {p99:6.2f} ms, {faults:5.0f} page faults per step; {mean / base:4.2f} of the defaults' time")
 
 
 if __name__ == "__main__":

@@ -1,6 +1,6 @@
 """Relay capacity over real sockets (a benchmark, not a test; nothing is asserted).
 
-Run: python tests/bench/bench_relay.py [--streams 25 50 100] [--seconds 10] [--model DIR]
+Run: python tests/bench/bench_relay.py [--streams 25 50 100] [--seconds 10] [--model DIR] [--hold-freed-memory]
 
 For each number of streams N, starts ``nenv relay`` (neural, the shipped model) as its own
 process on loopback, sends N PCMU streams of 20 ms packets paced in real time (streams staggered
@@ -74,7 +74,7 @@ class _Receiver(threading.Thread):
                 self.last = time.monotonic()
 
 
-def run(n: int, seconds: float, payload: list[bytes], model: str | None) -> str:
+def run(n: int, seconds: float, payload: list[bytes], model: str | None, hold: bool = False) -> str:
     port_in, port_out = _free_port(), _free_port()
     rx = _Receiver(port_out)
     rx.start()
@@ -82,6 +82,8 @@ def run(n: int, seconds: float, payload: list[bytes], model: str | None) -> str:
            "--max-streams", str(n + 8), "--idle-timeout", "1.0", "--method", "neural"]
     if model:
         cmd += ["--model", model]
+    if hold:
+        cmd.append("--hold-freed-memory")
     env = {**os.environ, "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1"}
     proc = subprocess.Popen(cmd, stderr=subprocess.PIPE, text=True, env=env)
     try:
@@ -131,13 +133,14 @@ def main() -> None:
     ap.add_argument("--streams", type=int, nargs="+", default=[25, 50, 100])
     ap.add_argument("--seconds", type=float, default=10.0)
     ap.add_argument("--model", default=None)
+    ap.add_argument("--hold-freed-memory", action="store_true", help="start the relay with --hold-freed-memory")
     args = ap.parse_args()
     ref = np.concatenate([prepare_reference(DATA / n) for n in ("arctic_a0007.wav", "arctic_a0009.wav")])
     codes = g711.encode(channel.telephone(ref, sr=16000, law="mulaw"), law="mulaw")
     payload = [codes[s : s + PACKET].astype(np.uint8).tobytes() for s in range(0, codes.size - PACKET, PACKET)]
-    print(f"relay on loopback, neural, PCMU 20 ms packets paced in real time for {args.seconds:.0f} s per run")
+    print(f"relay on loopback, neural, PCMU 20 ms packets paced in real time for {args.seconds:.0f} s per run" + (", relay started with --hold-freed-memory" if args.hold_freed_memory else ""))
     for n in args.streams:
-        print(run(n, args.seconds, payload, args.model), flush=True)
+        print(run(n, args.seconds, payload, args.model, args.hold_freed_memory), flush=True)
 
 
 if __name__ == "__main__":
