@@ -7,12 +7,13 @@ per 500-call step, and a fifth to a quarter of the step's time: ``tests/bench/be
 
 glibc adapts its thresholds by itself: when a block that was served by ``mmap`` is freed, the mmap
 threshold rises to that block's size and the trim threshold to twice that, up to a 32 MB mmap
-threshold on 64-bit systems (the "dynamic mmap threshold" of mallopt(3)). :func:`hold_freed_memory`
-uses that adaptation once: it allocates and frees one block just under the cap, after which the
-heap keeps up to about 60 MB of freed memory for reuse. Nothing is configured (no ``mallopt``, no
-environment variable); the thresholds stay glibc's own, and a process whose thresholds were set
-explicitly (``mallopt``, ``GLIBC_TUNABLES``, the ``MALLOC_*_`` variables, which also switch glibc's
-adaptation off) keeps them. With another C library it is an allocation and nothing more.
+threshold on 64-bit systems (the dynamic mmap threshold: M_MMAP_THRESHOLD in glibc's manual page on
+malloc tuning). :func:`hold_freed_memory` uses that adaptation once: it allocates and frees one block
+just under the cap, after which the heap keeps up to about 60 MB of freed memory for reuse. Nothing
+is configured (no tuning call, no environment variable): the thresholds stay glibc's own, and a
+process whose thresholds were set explicitly (a tuning call, ``GLIBC_TUNABLES``, the ``MALLOC_*_``
+variables, any of which also switches the adaptation off) keeps them. With another C library it is
+an allocation and nothing more.
 
 The raised thresholds hold for the whole process, so nenv never does this on import or when an
 engine is made: a serving process asks for it (``nenv relay --hold-freed-memory``, or a gateway's
