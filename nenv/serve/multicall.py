@@ -126,16 +126,12 @@ class MultiCallEngine:
         as all of them have (H), and runs them as one batch of B calls x H hops."""
         order = self._order
         while True:
-            if only is None:
-                sizes = [c.pending.size for c in order]
-                rows = [i for i, size in enumerate(sizes) if size >= HOP_NB]
-            else:
-                i = self._ids.index(only)
-                sizes, rows = {i: order[i].pending.size}, [i] if order[i].pending.size >= HOP_NB else []
+            candidates = range(len(order)) if only is None else (self._ids.index(only),)
+            rows = [i for i in candidates if order[i].pending.size >= HOP_NB]
             if not rows:
                 return
             calls = order if len(rows) == len(order) else [order[i] for i in rows]
-            n_hops = min(MAX_HOPS_PER_BATCH, min(sizes[i] for i in rows) // HOP_NB)
+            n_hops = min(MAX_HOPS_PER_BATCH, min(c.pending.size for c in calls) // HOP_NB)
             n = n_hops * HOP_NB
             x = np.concatenate([c.pending[:n] for c in calls]).reshape(len(calls), n)
             for c in calls:
