@@ -118,6 +118,22 @@ def test_evaluate_prints_every_system_and_measure(tmp_path):
     assert "estimated, not recorded" in (tmp_path / "ev" / "table.md").read_text()
 
 
+def test_evaluate_means_per_speaker_group(tmp_path):
+    # groups as tests/data/heldout/clips.csv gives them: ARCTIC bdl (a0007) male, slt (a0009) female
+    import csv
+
+    (tmp_path / "g.csv").write_text("clip,group\narctic_a0007,male\narctic_a0009,female\n")
+    res = _run("evaluate", *ARCTIC, "--out", tmp_path / "ev", "--method", "unextended", "--method", "imaging", "--groups", tmp_path / "g.csv")
+    assert res.exit_code == 0, res.output
+    rows = {(r["clip"], r["system"]): r for r in csv.DictReader(open(tmp_path / "ev" / "table.csv"))}
+    for system in ("unextended", "imaging"):
+        for group, clip in (("male", "arctic_a0007"), ("female", "arctic_a0009")):
+            assert rows[f"mean {group}", system]["lsd_high"] == rows[clip, system]["lsd_high"]  # one clip per group
+        both = (float(rows["arctic_a0007", system]["visqol"]) + float(rows["arctic_a0009", system]["visqol"])) / 2
+        assert float(rows["mean", system]["visqol"]) == pytest.approx(both, abs=1e-4)
+    assert "**mean female**" in res.stdout
+
+
 def test_evaluate_says_why_a_value_is_blank(tmp_path):
     import soundfile as sf
 

@@ -1,4 +1,4 @@
-"""Commands on files: degrade, extend, evaluate, demo, version, audit (each docstring is its help)."""
+"""Commands on files: degrade, extend, evaluate, measures, demo, version, audit (each docstring is its help)."""
 
 from __future__ import annotations
 
@@ -190,6 +190,7 @@ def evaluate(
     excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
     model: Annotated[Optional[Path], typer.Option(help="Model folder for the neural and codebook systems (default: the shipped model, if any).")] = None,
     low_band: LowBandOpt = False,
+    groups: Annotated[Optional[Path], typer.Option(help="CSV with the columns clip and group (e.g. female/male; clip = a reference's file name without suffix): adds a mean per group.")] = None,
 ) -> None:
     """Score every system against wideband references passed through the telephone channel."""
     _kernels_ready()
@@ -198,6 +199,7 @@ def evaluate(
     from nenv.media.files import output_folder, write_text
 
     output_folder(out, create=False)
+    group_table = ev.read_groups(groups) if groups is not None else None
     law = [lw.value for lw in law]
     if method:
         systems = tuple(m.value for m in method)
@@ -208,7 +210,8 @@ def evaluate(
     with _progress() as bar:
         task = bar.add_task("evaluating", total=len(references) * len(law) * len(systems))
         rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task), low_band=low_band)
-    table = rows + ev.means(rows)
+    table = rows + ev.means(rows, group_table)
+    _unknown_clips({r.clip for r in rows}, group_table, groups)
     output_folder(out)
     md = ev.to_markdown(table)
     blanks = ev.blank_notes(rows)
@@ -221,6 +224,64 @@ def evaluate(
     for b in blanks:
         _say(f"nenv: note: {b}")
     _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}, {out / 'spectrograms.png'}")
+
+
+@app.command()
+@_guarded
+def measures(
+    outputs: Annotated[list[Path], typer.Argument(help="Recordings to score (16 kHz; an 8 kHz file is scored as the unextended input): files, or folders whose files pair with a reference folder's by relative path.", show_default=False)],
+    reference: Annotated[Path, typer.Option(help="The wideband original (16 kHz or more): one file for every output, or a folder of them.", show_default=False)],
+    out: Annotated[Optional[Path], typer.Option(help="Also write table.csv and table.md to this folder (created if missing).")] = None,
+    groups: Annotated[Optional[Path], typer.Option(help="CSV with the columns clip and group (e.g. female/male): adds a mean per group.")] = None,
+    max_offset_s: Annotated[float, typer.Option(min=0.01, max=60.0, help="Search an output's offset against its reference within this many seconds either way.")] = 2.0,
+    channel: Annotated[Optional[int], typer.Option("--channel", min=0, help="Channel of multichannel files to use (0 = first); mono files are read as they are.")] = None,
+    mix: Annotated[bool, typer.Option("--mix", help="Average the channels of multichannel files.")] = False,
+) -> None:
+    """Score recordings you already have (from nenv or any other system) against wideband originals, after aligning them in time and level."""
+    from nenv.report import evaluate as ev, pairs
+    from nenv.media.files import output_folder, write_text
+
+    if out is not None:
+        output_folder(out, create=False)
+    group_table = ev.read_groups(groups) if groups is not None else None
+    work, notes = pairs.plan(outputs, reference)
+    for n in notes:
+        _say(f"nenv: note: {n}")
+    with _progress() as bar:
+        task = bar.add_task("scoring", total=len(work))
+        rows = pairs.run(work, max_offset_s=max_offset_s, channel_index=channel, mix=mix, on_step=lambda s: bar.advance(task))
+    failed = [r for r in rows if r.error]
+    for r in rows:
+        for n in r.notes:
+            _say(f"nenv: note: {r.pair.output}: {n}")
+    for r in failed:
+        _say(f"nenv: failed: {r.pair.output}: {r.error}")
+    if len(failed) == len(rows):
+        raise InputError("the output could not be scored" if len(rows) == 1 else f"none of the {len(rows)} outputs could be scored")
+    avg = pairs.means(rows, group_table)
+    _unknown_clips({r.pair.clip for r in rows if r.scores is not None}, group_table, groups)
+    md = pairs.to_markdown(rows, avg)
+    blanks = pairs.blank_notes(rows)
+    typer.echo(md)
+    typer.echo(pairs.ALIGN_NOTE)
+    typer.echo(ev.MEASURES_NOTE)
+    for b in blanks:
+        _say(f"nenv: note: {b}")
+    if out is not None:
+        output_folder(out)
+        write_text(out / "table.csv", pairs.to_csv(rows, avg, group_table))
+        write_text(out / "table.md", md + "\n" + pairs.ALIGN_NOTE + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks))
+        _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}")
+    if failed:
+        raise typer.Exit(1)
+
+
+def _unknown_clips(clips: set[str], group_table: Optional[dict], groups: Optional[Path]) -> None:
+    from nenv.report.evaluate import group_of
+
+    unknown = sorted(c for c in clips if group_table is not None and group_of(c, group_table) is None)
+    if unknown:
+        _say(f"nenv: note: {count(len(unknown), 'clip')} not in {groups} (first: {unknown[0]}) {'counts' if len(unknown) == 1 else 'count'} under '(no group)'")
 
 
 @app.command()
@@ -284,3 +345,4 @@ def audit(
     if rec.skipped_lines:
         _say(f"nenv: note: skipped {count(rec.skipped_lines, 'incomplete or unreadable line')}")
     _say(f"wrote {out / 'audit.html'}, {out / 'by_source.csv'}, {out / 'by_group.csv'}")
+

@@ -115,15 +115,54 @@ def run(
     return rows, clips
 
 
-def means(rows: Sequence[Row]) -> list[Row]:
-    """Mean of every measure per (law, system) over clips (NaN-aware)."""
+def read_groups(path: str | os.PathLike) -> dict[str, str]:
+    """Speaker groups from a CSV file with a header naming (at least) ``clip`` and ``group`` columns.
+
+    ``clip`` is a reference's name as the table shows it (its stem, or its relative path without suffix)."""
+    p = Path(path)
+    try:
+        with open(p, newline="", encoding="utf-8") as fh:
+            rows = list(csv.DictReader(fh))
+    except (OSError, UnicodeDecodeError, csv.Error) as e:
+        raise InputError(f"cannot read the groups file '{p}': {e}") from e
+    if not rows or not {"clip", "group"} <= set(rows[0]):
+        raise InputError(f"the groups file '{p}' needs a header with the columns clip and group (and a row per clip)")
+    return {r["clip"].strip(): r["group"].strip() for r in rows if r.get("clip") and r.get("group")}
+
+
+def group_of(clip: str, groups: dict[str, str] | None) -> str | None:
+    if not groups:
+        return None
+    return groups.get(clip, groups.get(Path(clip).name))
+
+
+def mean_scores(scores: Sequence[Scores]) -> Scores:
+    """Mean of every measure, leaving out NaN values (NaN where every value is)."""
+    sel = [asdict(s) for s in scores]
+    return Scores(**{m: float(np.nanmean([s[m] for s in sel])) if any(np.isfinite(s[m]) for s in sel) else float("nan") for m in MEASURE_NAMES})
+
+
+def group_means(items: Sequence[tuple[object, str, Scores]], groups: dict[str, str] | None = None) -> list[tuple[object, str | None, int, Scores]]:
+    """Means of ``(key, clip, scores)`` items per key, in first-seen order: over all its clips (group
+    None), then with ``groups`` (clip -> group, :func:`read_groups`) over each group's. Each mean comes
+    as ``(key, group, number of clips, scores)``."""
     out = []
-    keys = list(dict.fromkeys((r.law, r.system) for r in rows))
-    for law, system in keys:
-        sel = [asdict(r.scores) for r in rows if r.law == law and r.system == system]
-        avg = {m: float(np.nanmean([s[m] for s in sel])) if any(np.isfinite(s[m]) for s in sel) else float("nan") for m in MEASURE_NAMES}
-        out.append(Row("mean", law, system, Scores(**avg)))
+    for key in dict.fromkeys(k for k, _, _ in items):
+        mine = [(clip, sc) for k, clip, sc in items if k == key]
+        out.append((key, None, len(mine), mean_scores([sc for _, sc in mine])))
+        if groups:
+            label = {clip: group_of(clip, groups) or "(no group)" for clip, _ in mine}
+            for g in sorted(set(label.values())):
+                sel = [sc for clip, sc in mine if label[clip] == g]
+                out.append((key, g, len(sel), mean_scores(sel)))
     return out
+
+
+def means(rows: Sequence[Row], groups: dict[str, str] | None = None) -> list[Row]:
+    """Mean of every measure per (law, system) over clips (NaN-aware); with ``groups`` also per group,
+    as rows named "mean GROUP"."""
+    avg = group_means([((r.law, r.system), r.clip, r.scores) for r in rows], groups)
+    return [Row("mean" if g is None else f"mean {g}", law, system, sc) for (law, system), g, _, sc in avg]
 
 
 BLANK_REASONS = {
@@ -158,7 +197,7 @@ def to_markdown(rows: Sequence[Row]) -> str:
     lines = ["| " + " | ".join(head) + " |", "|" + "|".join(["---"] * 3 + ["---:"] * len(MEASURE_NAMES)) + "|"]
     for r in rows:
         vals = [f"{getattr(r.scores, m):.2f}" for m in MEASURE_NAMES]
-        clip = f"**{r.clip}**" if r.clip == "mean" else r.clip
+        clip = f"**{r.clip}**" if r.clip == "mean" or r.clip.startswith("mean ") else r.clip
         lines.append("| " + " | ".join([clip, r.law, r.system, *vals]) + " |")
     return "\n".join(lines) + "\n"
 

@@ -1,0 +1,385 @@
+"""Score recordings that already exist (extended by nenv or by anything else) against wideband references.
+
+``nenv evaluate`` makes its own telephone version of each reference, so its outputs line up with
+the references sample for sample and at the same level. Recordings from a real gateway do not: the
+narrowband side went through a network (delay, level plan, automatic gain), and the output may
+come from any system. Here each output file is paired with its reference, the pair is aligned in
+time (cross-correlation of the telephone band) and in level, and the aligned pair is scored with
+:class:`nenv.report.measures.Scores` at the level ``nenv evaluate`` uses: the reference at -26 dBov
+active level, the output scaled by the same factor and by the level difference of the two
+telephone bands. Only the output's overall level is changed, never the balance of its bands, which
+is what is judged.
+
+An 8 kHz file among the outputs is the unextended input: it is resampled to 16 kHz and scored as
+such, so one table shows whether an extension beats no extension on the user's own calls.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Sequence
+
+import numpy as np
+from scipy import signal
+
+from nenv.dsp import channel
+from nenv.media import audio
+from nenv.errors import InputError, NenvError
+from nenv.report import evaluate as ev
+from nenv.report.measures import Scores
+from nenv.settings import NB_SR, WB_SR
+from nenv.words import count
+
+ALIGN_BAND_HZ = (500.0, 3000.0)  # Hz: inside the pass band of any telephone channel (ITU-T G.712: 300-3400 Hz)
+MAX_OFFSET_S = 2.0  # s: default search range of the offset, either way
+ENVELOPE_BLOCK = 160  # samples at 16 kHz (10 ms): blocks of the band envelopes that find the coarse offset (longer
+# than a pitch period, whose pulses would otherwise give peaks one period off)
+SEGMENT = WB_SR  # samples (1 s): segments whose waveform correlation says whether two recordings hold the same speech
+MIN_CORRELATION = 0.5  # median segment correlation below which a pair is refused (our rule; measured in tests/test_pairs.py)
+MIN_OVERLAP_S = 0.5  # s: shortest aligned overlap scored (ViSQOL needs about this much)
+MIN_SHARED = 0.5  # offsets at which the two share less than this part of the shorter one are not considered
+LEVEL_BLOCK = 320  # samples at 16 kHz (20 ms): blocks for the level match
+LEVEL_ACTIVE_DB = 30.0  # dB: blocks of the reference's band within this of its loudest block set the gain
+DRIFT_MIN_S = 6.0  # s: an overlap at least this long is also checked for drift (offset of its first vs last third)
+DRIFT_NOTE_MS = 1.0  # ms: a drift larger than this is reported (two clocks that differ)
+
+
+@dataclass(frozen=True)
+class Alignment:
+    """How an output lines up with its reference.
+
+    offset : int, samples at 16 kHz; positive when the output lags the reference
+    gain_db : float, dB, the output's telephone band re the reference's
+    correlation : float, median over one-second segments of the two telephone bands' best waveform correlation (1 = same)
+    drift_ms : float or None, offset over the last third minus over the first third (None: overlap too short to tell)
+    """
+
+    offset: int
+    gain_db: float
+    correlation: float
+    drift_ms: float | None = None
+
+
+def _band(y: np.ndarray) -> np.ndarray:
+    sos = signal.butter(4, ALIGN_BAND_HZ, btype="bandpass", fs=WB_SR, output="sos")
+    return signal.sosfiltfilt(sos, y)
+
+
+def _lag(c: np.ndarray, lags: np.ndarray, lo: int, hi: int) -> tuple[int, float]:
+    """The lag in [lo, hi] of the largest value of the correlation ``c`` (at ``lags``), and that value."""
+    inside = (lags >= lo) & (lags <= hi)
+    if not np.any(inside):
+        return 0, 0.0
+    i = int(np.argmax(np.where(inside, c, -np.inf)))
+    return int(lags[i]), float(c[i])
+
+
+def _xcorr(ref: np.ndarray, out: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Cross-correlation of ``out`` against ``ref`` at every lag (positive: ``out`` late), normalised
+    by the two signals' energies."""
+    norm = np.sqrt(np.sum(out * out) * np.sum(ref * ref))
+    c = signal.correlate(out, ref, mode="full", method="fft") / (norm if norm > 0 else 1.0)
+    return c, signal.correlation_lags(out.size, ref.size, mode="full")
+
+
+def _envelope(band: np.ndarray) -> np.ndarray:
+    n = band.size // ENVELOPE_BLOCK * ENVELOPE_BLOCK
+    e = np.sqrt(np.mean(band[:n].reshape(-1, ENVELOPE_BLOCK) ** 2, axis=1))
+    return e - e.mean() if e.size else e
+
+
+def _envelope_lag(er: np.ndarray, eo: np.ndarray, reach: int) -> tuple[int, float]:
+    """The lag within +-reach (in blocks) of the largest correlation of the envelopes, each lag's
+    correlation normalised by the energies of the blocks the two share there (so a recording whose
+    start or end is missing is not marked down), where they share at least half the shorter one
+    (fewer shared blocks match other speech by chance)."""
+    c = signal.correlate(eo, er, mode="full", method="fft")
+    lags = signal.correlation_lags(eo.size, er.size, mode="full")
+    cr = np.concatenate([[0.0], np.cumsum(er * er)])
+    co = np.concatenate([[0.0], np.cumsum(eo * eo)])
+    start = np.maximum(0, -lags)  # first reference block shared at each lag
+    stop = np.minimum(er.size, eo.size - lags)  # one past the last
+    shared = stop - start
+    ok = (np.abs(lags) <= reach) & (shared >= max(MIN_OVERLAP_S * WB_SR / ENVELOPE_BLOCK, MIN_SHARED * min(er.size, eo.size)))
+    if not np.any(ok):
+        return 0, 0.0
+    s0, s1, lg = start[ok], stop[ok], lags[ok]
+    norm = np.sqrt((cr[s1] - cr[s0]) * (co[s1 + lg] - co[s0 + lg]))
+    r = np.where(norm > 0, c[ok] / np.where(norm > 0, norm, 1.0), 0.0)
+    i = int(np.argmax(r))
+    return int(lg[i]), float(r[i])
+
+
+def _fine_lag(ref_b: np.ndarray, out_b: np.ndarray, around: int, reach: int) -> int:
+    c, lags = _xcorr(ref_b, out_b)
+    return _lag(c, lags, around - reach, around + reach)[0]
+
+
+def overlap(ref: np.ndarray, out: np.ndarray, offset: int) -> tuple[np.ndarray, np.ndarray]:
+    """The parts of ``ref`` and ``out`` that cover the same time, given the output's offset."""
+    if offset >= 0:
+        out = out[offset:]
+    else:
+        ref = ref[-offset:]
+    n = min(ref.size, out.size)
+    return ref[:n], out[:n]
+
+
+def _segment_lags(r: np.ndarray, o: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """For each SEGMENT of the aligned bands ``r`` and ``o`` that holds speech (within 30 dB of the
+    loudest segment): the lag, within +-20 ms, of the largest normalised waveform correlation, and that
+    correlation. Short segments keep it near 1 for the same speech even when two clocks drift."""
+    n = r.size // SEGMENT
+    if n == 0:
+        return np.zeros(0, int), np.zeros(0)
+    e = np.sum(r[: n * SEGMENT].reshape(n, SEGMENT) ** 2, axis=1)
+    reach = int(0.02 * WB_SR)
+    lags, corrs = [], []
+    for k in np.flatnonzero(e >= e.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)) if e.max() > 0 else []:
+        seg = slice(k * SEGMENT, (k + 1) * SEGMENT)
+        c, lg = _xcorr(r[seg], o[seg])
+        lag, val = _lag(c, lg, -reach, reach)
+        lags.append(lag)
+        corrs.append(val)
+    return np.array(lags, int), np.array(corrs)
+
+
+def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_S) -> Alignment:
+    """Offset, level difference and drift of ``out`` against ``ref`` (both 16 kHz, mono).
+
+    Both are band-passed to 500-3000 Hz. The offset is found coarsely from the bands' envelopes (RMS in
+    10 ms blocks, whose correlation survives noise, coding and clock drift), then to the sample from
+    the waveforms within 15 ms of it. Whether the two hold the same speech is judged on the waveforms
+    of one-second segments (median of their best correlations within +-20 ms); their lags also give
+    the drift. The gain is the ratio of the bands' powers over the blocks where the reference's band
+    is within 30 dB of its loudest block.
+    """
+    ref_b, out_b = _band(ref), _band(out)
+    coarse, _ = _envelope_lag(_envelope(ref_b), _envelope(out_b), int(round(max_offset_s * WB_SR / ENVELOPE_BLOCK)))
+    offset = _fine_lag(ref_b, out_b, coarse * ENVELOPE_BLOCK, int(1.5 * ENVELOPE_BLOCK))
+    r, o = overlap(ref_b, out_b, offset)
+    n = r.size // LEVEL_BLOCK * LEVEL_BLOCK
+    if n == 0:
+        return Alignment(offset, 0.0, 0.0)
+    e_ref = np.sum(r[:n].reshape(-1, LEVEL_BLOCK) ** 2, axis=1)
+    e_out = np.sum(o[:n].reshape(-1, LEVEL_BLOCK) ** 2, axis=1)
+    active = e_ref >= e_ref.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)
+    gain_db = 10 * np.log10(max(e_out[active].sum(), 1e-300) / max(e_ref[active].sum(), 1e-300)) if e_ref.max() > 0 else 0.0
+    lags, corrs = _segment_lags(r, o)
+    similarity = float(np.median(corrs)) if corrs.size else 0.0
+    drift = None
+    if r.size >= DRIFT_MIN_S * WB_SR and lags.size >= 3:
+        third = max(1, lags.size // 3)
+        drift = 1000.0 * (np.median(lags[-third:]) - np.median(lags[:third])) / WB_SR
+    return Alignment(offset, float(gain_db), similarity, drift)
+
+
+@dataclass(frozen=True)
+class Pair:
+    """An output file and the reference it is scored against."""
+
+    clip: str  # the reference's name: its stem, or its path inside the reference folder without suffix
+    system: str  # the output as the user named it (a file, or the folder it was found in)
+    output: Path
+    reference: Path
+
+
+def _audio_files(folder: Path) -> list[Path]:
+    return [p for p in sorted(folder.rglob("*")) if p.is_file() and p.suffix.lower() in audio.READ_SUFFIXES and not any(part.startswith(".") for part in p.relative_to(folder).parts)]
+
+
+def _key(path: Path, folder: Path) -> str:
+    return path.relative_to(folder).with_suffix("").as_posix()
+
+
+def plan(outputs: Sequence[str | os.PathLike], reference: str | os.PathLike) -> tuple[list[Pair], list[str]]:
+    """Pairs of (output, reference) and notes on what could not be paired.
+
+    A reference file: every output file (and every audio file inside an output folder) is scored
+    against it. A reference folder: every output must be a folder, and its files pair with the
+    reference files at the same relative path (any audio suffix on either side).
+    """
+    ref = Path(reference)
+    outs = [Path(p) for p in outputs]
+    if not outs:
+        raise InputError("name at least one output file or folder to score")
+    for what, p in [("reference", ref), *(("output", o) for o in outs)]:
+        if not p.exists():
+            raise InputError(f"the {what} '{p}' does not exist")
+    pairs: list[Pair] = []
+    notes: list[str] = []
+    if ref.is_file():
+        for o in outs:
+            files = _audio_files(o) if o.is_dir() else [o]
+            if not files:
+                raise InputError(f"the folder '{o}' holds no audio files ({', '.join(audio.READ_SUFFIXES)})")
+            pairs += [Pair(ref.stem, str(f), f, ref) for f in files]
+        return pairs, notes
+    refs = {_key(p, ref): p for p in _audio_files(ref)}
+    if not refs:
+        raise InputError(f"the reference folder '{ref}' holds no audio files ({', '.join(audio.READ_SUFFIXES)})")
+    for o in outs:
+        if not o.is_dir():
+            raise InputError(f"'{o}' is a file, but the reference '{ref}' is a folder: a reference folder pairs with output folders (files at the same relative paths)")
+        found = {_key(p, o): p for p in _audio_files(o)}
+        matched = [k for k in found if k in refs]
+        if not matched:
+            raise InputError(f"no file in '{o}' has a counterpart in '{ref}' (pairs need the same relative path, e.g. {next(iter(refs))}.wav)")
+        unmatched = [k for k in found if k not in refs]
+        if unmatched:
+            notes.append(f"{count(len(unmatched), 'file')} in '{o}' {'has' if len(unmatched) == 1 else 'have'} no reference and {'is' if len(unmatched) == 1 else 'are'} not scored (first: {unmatched[0]})")
+        missing = [k for k in refs if k not in found]
+        if missing:
+            notes.append(f"'{o}' lacks {count(len(missing), 'reference clip')} (first: {missing[0]}): its means cover fewer clips than the references hold")
+        pairs += [Pair(k, str(o), found[k], refs[k]) for k in matched]
+    return pairs, notes
+
+
+def _load(path: str | os.PathLike, channel_index: int | None, mix: bool) -> audio.Audio:
+    """A file as mono; the channel choice applies to multichannel files only (a mono output beside
+    stereo references is read as it is)."""
+    import soundfile as sf
+
+    try:
+        mono = sf.info(str(path)).channels == 1
+    except Exception:  # unreadable: audio.load says why
+        mono = False
+    return audio.load(path) if mono else audio.load(path, channel=channel_index, mix=mix)
+
+
+def load_reference(path: str | os.PathLike, *, channel_index: int | None = None, mix: bool = False) -> np.ndarray:
+    """A wideband reference at 16 kHz; refuses narrowband or silent files."""
+    a = _load(path, channel_index, mix)
+    if a.sr < WB_SR:
+        raise InputError(f"'{path}' is sampled at {a.sr} Hz: a reference must be wideband (16 kHz or more)")
+    if audio.is_silent(a.y):
+        raise InputError(f"'{path}' is digital silence: nothing to compare against")
+    return audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR)
+
+
+def load_output(path: str | os.PathLike, *, channel_index: int | None = None, mix: bool = False) -> tuple[np.ndarray, str | None]:
+    """An output at 16 kHz, and a note when it had to be resampled (8 kHz: the unextended input)."""
+    a = _load(path, channel_index, mix)
+    if audio.is_silent(a.y):
+        raise InputError(f"'{path}' is digital silence: there is nothing to score")
+    if a.sr == WB_SR:
+        return a.y, None
+    note = "8 kHz: scored as the unextended input, resampled to 16 kHz" if a.sr == NB_SR else f"{a.sr} Hz, resampled to 16 kHz"
+    return audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR), note
+
+
+@dataclass(frozen=True)
+class Scored:
+    """One output scored against its reference, or the reason it could not be."""
+
+    pair: Pair
+    scores: Scores | None
+    alignment: Alignment | None = None
+    notes: tuple[str, ...] = ()
+    error: str | None = None
+
+
+def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int | None = None, mix: bool = False) -> Scored:
+    """Load, align and score one pair; nenv's own errors come back as ``error`` (the others go on)."""
+    try:
+        ref = load_reference(pair.reference, channel_index=channel_index, mix=mix)
+        out, note = load_output(pair.output, channel_index=channel_index, mix=mix)
+        a = align(ref, out, max_offset_s=max_offset_s)
+        if a.correlation < MIN_CORRELATION:
+            raise InputError(
+                f"no common speech found within +-{max_offset_s:g} s (telephone-band correlation {a.correlation:.2f}, "
+                f"below {MIN_CORRELATION}): not the same recording, or offset further (raise --max-offset-s)"
+            )
+        r, o = overlap(ref, out, a.offset)
+        if r.size < MIN_OVERLAP_S * WB_SR:
+            raise InputError(f"the aligned overlap is {r.size / WB_SR:.2f} s: at least {MIN_OVERLAP_S} s is needed")
+        # both at the level evaluate uses: the reference at its nominal active level, the output scaled
+        # with it so that their telephone bands match (ViSQOL's verdict depends on the absolute level:
+        # its spectrograms have an absolute floor, so the same pair scores differently louder or softer)
+        k = 10 ** ((ev.EVAL_LEVEL_DBOV - channel.active_level_dbov(r, sr=WB_SR)) / 20)
+        r, o = r * k, o * (k / 10 ** (a.gain_db / 20))
+        notes = [note] if note else []
+        if a.drift_ms is not None and abs(a.drift_ms) > DRIFT_NOTE_MS:
+            notes.append(f"the offset drifts by {a.drift_ms:+.1f} ms from the first to the last third (the recorders' clocks differ?): the spectral measures are less reliable")
+        return Scored(pair, Scores.compute(r, o), a, tuple(notes))
+    except NenvError as e:
+        return Scored(pair, None, error=str(e))
+
+
+def run(pairs: Sequence[Pair], *, max_offset_s: float = MAX_OFFSET_S, channel_index: int | None = None, mix: bool = False, on_step: Callable[[Scored], None] | None = None) -> list[Scored]:
+    """Score every pair in turn (``on_step`` after each)."""
+    out = []
+    for p in pairs:
+        s = score(p, max_offset_s=max_offset_s, channel_index=channel_index, mix=mix)
+        out.append(s)
+        if on_step:
+            on_step(s)
+    return out
+
+
+@dataclass(frozen=True)
+class Mean:
+    """Mean scores of one output (system) over the clips of one group (``group`` None: all its clips)."""
+
+    system: str
+    group: str | None
+    clips: int
+    scores: Scores
+
+
+def means(rows: Sequence[Scored], groups: dict[str, str] | None = None) -> list[Mean]:
+    """Per output: the mean over all its scored clips, then (with ``groups``) over each group's."""
+    return [Mean(*m) for m in ev.group_means([(r.pair.system, r.pair.clip, r.scores) for r in rows if r.scores is not None], groups)]
+
+
+def to_markdown(rows: Sequence[Scored], avg: Sequence[Mean]) -> str:
+    head = ["clip", "output", "offset [ms]", "gain [dB]", *(ev.MEASURE_LABELS[m] for m in ev.MEASURE_NAMES)]
+    lines = ["| " + " | ".join(head) + " |", "|" + "|".join(["---"] * 2 + ["---:"] * (len(head) - 2)) + "|"]
+    for r in rows:
+        if r.scores is None:
+            continue
+        vals = [f"{getattr(r.scores, m):.2f}" for m in ev.MEASURE_NAMES]
+        lines.append("| " + " | ".join([r.pair.clip, r.pair.system, f"{1000 * r.alignment.offset / WB_SR:.1f}", f"{r.alignment.gain_db:+.1f}", *vals]) + " |")
+    for m in avg:
+        label = f"**mean** ({count(m.clips, 'clip')})" if m.group is None else f"**mean {m.group}** ({count(m.clips, 'clip')})"
+        vals = [f"{getattr(m.scores, k):.2f}" for k in ev.MEASURE_NAMES]
+        lines.append("| " + " | ".join([label, m.system, "", "", *vals]) + " |")
+    return "\n".join(lines) + "\n"
+
+
+def to_csv(rows: Sequence[Scored], avg: Sequence[Mean], groups: dict[str, str] | None = None) -> str:
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["clip", "group", "output", "offset_ms", "gain_db", "correlation", *ev.MEASURE_NAMES, "error"])
+    for r in rows:
+        if r.scores is None:
+            w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, "", "", "", *([""] * len(ev.MEASURE_NAMES)), r.error])
+            continue
+        a = r.alignment
+        w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, f"{1000 * a.offset / WB_SR:.4f}", f"{a.gain_db:.3f}", f"{a.correlation:.3f}", *(f"{getattr(r.scores, m):.4f}" for m in ev.MEASURE_NAMES), ""])
+    for m in avg:
+        w.writerow([f"mean ({m.clips})", m.group or "", m.system, "", "", "", *(f"{getattr(m.scores, k):.4f}" for k in ev.MEASURE_NAMES), ""])
+    return buf.getvalue()
+
+
+def blank_notes(rows: Sequence[Scored]) -> list[str]:
+    """One line per measure whose value is NaN (not measurable) somewhere, saying where and why."""
+    notes = []
+    for m in ev.MEASURE_NAMES:
+        where = list(dict.fromkeys(f"{r.pair.clip} ({r.pair.system})" for r in rows if r.scores is not None and not np.isfinite(getattr(r.scores, m))))
+        if where:
+            notes.append(f"{ev.MEASURE_LABELS[m]} is blank (nan) for {', '.join(where)}: {ev.BLANK_REASONS.get(m, ev.BLANK_DEFAULT)}; the means leave it out")
+    return notes
+
+
+ALIGN_NOTE = """\
+Alignment (nenv.report.pairs): each output is shifted by "offset", the lag of the largest
+cross-correlation of the two signals' 500-3000 Hz bands (positive: the output is late), and both are
+cut to the time they share. "gain" is the output's 500-3000 Hz level re the reference's; the pair
+is scored with the reference at -26 dBov and the output scaled to match it there (the balance of the
+output's bands is untouched). ViSQOL needs this: its score depends on the absolute level.
+"""

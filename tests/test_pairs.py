@@ -1,0 +1,213 @@
+"""Scoring recordings that already exist (``nenv measures``): pairing, alignment in time and level, and
+agreement with ``nenv evaluate`` where both apply."""
+
+from __future__ import annotations
+
+import csv
+
+import numpy as np
+import pytest
+import soundfile as sf
+from typer.testing import CliRunner
+
+from nenv.cli import app
+from nenv.report import pairs
+from tests.conftest import ARCTIC
+
+runner = CliRunner()
+
+
+def _run(*args):
+    return runner.invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+@pytest.fixture(scope="module")
+def extended():
+    """The first ARCTIC sentence at -26 dBov, and the shipped model's output for it through G.711 mu-law,
+    as ``nenv evaluate`` makes them (aligned with the reference by construction)."""
+    from nenv.chain import pipeline
+    from nenv.dsp import channel
+    from nenv.report.evaluate import prepare_reference
+
+    ref = prepare_reference(ARCTIC[0])
+    nb = channel.telephone(ref, sr=16000, law="mulaw", level_dbov=None)
+    y = pipeline.extend(nb, system=pipeline.make_system("neural", model=pipeline.load_model(None))).y
+    return ref, nb, y
+
+
+def _shifted(y, offset, gain_db):
+    """``y`` made ``offset`` samples late (negative: its start cut off) and ``gain_db`` louder."""
+    y = np.concatenate([np.zeros(offset), y]) if offset >= 0 else y[-offset:]
+    return y * 10 ** (gain_db / 20)
+
+
+@pytest.mark.parametrize(("offset", "gain_db"), [(0, 0.0), (600, -12.0), (-300, 6.0), (16000, -3.0), (-8000, -20.0)])
+def test_alignment_finds_a_known_offset_and_level(extended, offset, gain_db):
+    # The truth is made here: the same output, delayed (or cut) by a known number of samples and scaled.
+    ref, _, y = extended
+    base = pairs.align(ref, y)
+    assert base.offset == 0 and abs(base.gain_db) < 0.1 and base.correlation > 0.99  # G.711 and the added band change little
+    a = pairs.align(ref, _shifted(y, offset, gain_db))
+    assert a.offset == offset
+    assert a.gain_db == pytest.approx(base.gain_db + gain_db, abs=0.02)
+    assert a.correlation > 0.9  # normalised by the whole signals' energies: a cut start lowers it a little
+
+
+def test_an_offset_outside_the_search_range_is_not_found(extended):
+    ref, _, y = extended
+    a = pairs.align(ref, _shifted(y, 16000, 0.0), max_offset_s=0.5)
+    assert a.offset != 16000 and a.correlation < pairs.MIN_CORRELATION  # refused, not misaligned quietly
+
+
+@pytest.mark.parametrize(("offset", "gain_db", "ref_gain_db"), [(600, -12.0, 0.0), (16000, -3.0, 9.0)])
+def test_an_aligned_pair_scores_as_evaluate_scores_it(extended, tmp_path, offset, gain_db, ref_gain_db):
+    """Late, softer or louder files give the scores ``nenv evaluate`` gives the aligned pair at its level
+    (ViSQOL included, whose verdict depends on the absolute level: the pair is brought to -26 dBov)."""
+    from nenv.report.measures import Scores
+
+    ref, _, y = extended
+    want = Scores.compute(ref, y)
+    sf.write(tmp_path / "ref.wav", ref * 10 ** (ref_gain_db / 20), 16000, subtype="FLOAT")
+    sf.write(tmp_path / "out.wav", _shifted(y, offset, gain_db), 16000, subtype="FLOAT")
+    got = pairs.score(pairs.Pair("ref", "out", tmp_path / "out.wav", tmp_path / "ref.wav"))
+    assert got.error is None and got.alignment.offset == offset
+    for m in ("lsd_high", "lsd_full", "lsd_env_high", "level_error_high", "lsd_low"):  # within the unshifted pair's own gain (0.03 dB)
+        assert getattr(got.scores, m) == pytest.approx(getattr(want, m), abs=0.05), m
+    assert got.scores.pesq_wb == pytest.approx(want.pesq_wb, abs=0.02)
+    assert got.scores.visqol == pytest.approx(want.visqol, abs=0.02)
+
+
+def test_visqol_depends_on_the_absolute_level_so_pairs_are_scored_at_one():
+    """Why the pair is brought to -26 dBov: ViSQOL's gammatone spectrograms have an absolute floor
+    (-45 dB in visqol-python's gammatone.py, as in the reference implementation), so the same pair
+    scores differently when both signals are 9 dB louder. WB-PESQ aligns the level itself
+    (ITU-T P.862) and does not move."""
+    from nenv.chain import pipeline
+    from nenv.dsp import channel
+    from nenv.report import measures
+    from nenv.report.evaluate import prepare_reference
+
+    ref = prepare_reference(ARCTIC[1])
+    y = pipeline.extend(channel.telephone(ref, sr=16000, law="mulaw", level_dbov=None), system=pipeline.make_system("imaging")).y
+    k = 10 ** (9 / 20)
+    assert abs(measures.visqol_speech(ref * k, y * k) - measures.visqol_speech(ref, y)) > 0.1
+    assert measures.pesq_wb(ref * k, y * k) == pytest.approx(measures.pesq_wb(ref, y), abs=0.01)
+
+
+def test_other_speech_is_refused_with_the_reason(extended, tmp_path):
+    from nenv.report.evaluate import prepare_reference
+
+    _, _, y = extended
+    sf.write(tmp_path / "other.wav", prepare_reference(ARCTIC[1]), 16000)
+    sf.write(tmp_path / "out.wav", y, 16000)
+    got = pairs.score(pairs.Pair("other", "out", tmp_path / "out.wav", tmp_path / "other.wav"))
+    assert got.scores is None and "no common speech" in got.error
+
+
+def test_clock_drift_is_measured_and_reported(extended, tmp_path):
+    # Two recorders whose clocks differ by 400 ppm: over 8 s the output slips by about 3 ms.
+    from scipy import signal
+
+    ref, _, y = extended
+    ref2, y2 = np.concatenate([ref, ref]), np.concatenate([y, y])
+    drifted = signal.resample_poly(y2, 2501, 2500)  # 400 ppm more samples: the output runs late, more and more
+    a = pairs.align(ref2, drifted)
+    assert a.correlation > 0.9  # one-second segments still match
+    assert 1.5 < a.drift_ms < 3.3  # 400 ppm between the first and last thirds' segments, 4-7 s apart
+    assert abs(pairs.align(ref2, np.concatenate([y, y])).drift_ms) < 0.2
+    sf.write(tmp_path / "ref.wav", ref2, 16000)
+    sf.write(tmp_path / "out.wav", drifted, 16000)
+    got = pairs.score(pairs.Pair("ref", "out", tmp_path / "out.wav", tmp_path / "ref.wav"))
+    assert got.error is None and any("drifts" in n for n in got.notes), got
+    assert not any("drifts" in n for n in pairs.score(pairs.Pair("ref", "y", tmp_path / "ref.wav", tmp_path / "ref.wav")).notes)
+
+
+@pytest.fixture
+def folders(extended, tmp_path):
+    """A reference folder with groups, the narrowband input (8 kHz) and an output folder with one clip
+    missing and one file without a reference."""
+    from nenv.report.evaluate import prepare_reference
+
+    ref, nb, y = extended
+    ref2 = prepare_reference(ARCTIC[1])
+    for sub in ("ref/m", "ref/f", "nb/m", "sys/m", "sys/f"):
+        (tmp_path / sub).mkdir(parents=True)
+    sf.write(tmp_path / "ref/m/a0007.flac", ref, 16000)
+    sf.write(tmp_path / "ref/f/a0009.flac", ref2, 16000)
+    sf.write(tmp_path / "nb/m/a0007.wav", nb, 8000)
+    sf.write(tmp_path / "sys/m/a0007.wav", _shifted(y, 400, -6.0), 16000)
+    sf.write(tmp_path / "sys/f/extra.wav", y, 16000)
+    (tmp_path / "groups.csv").write_text("clip,group\nm/a0007,male\nf/a0009,female\n")
+    return tmp_path
+
+
+def test_measures_command_pairs_folders_and_reports_groups(folders):
+    res = _run("measures", folders / "nb", folders / "sys", "--reference", folders / "ref", "--groups", folders / "groups.csv", "--out", folders / "t")
+    assert res.exit_code == 0, res.output
+    assert "8 kHz: scored as the unextended input" in res.stderr
+    assert "1 file in" in res.stderr and "has no reference" in res.stderr  # sys/f/extra
+    assert "lacks 1 reference clip" in res.stderr  # nb/ and sys/ have no f/a0009
+    rows = list(csv.DictReader(open(folders / "t" / "table.csv")))
+    scored = {(r["clip"], r["output"]): r for r in rows if not r["clip"].startswith("mean")}
+    assert set(scored) == {("m/a0007", str(folders / "nb")), ("m/a0007", str(folders / "sys"))}
+    assert float(scored["m/a0007", str(folders / "sys")]["offset_ms"]) == pytest.approx(25.0)  # 400 samples at 16 kHz
+    assert float(scored["m/a0007", str(folders / "sys")]["gain_db"]) == pytest.approx(-6.0, abs=0.1)
+    assert all(r["group"] == "male" for r in scored.values())
+    means = [(r["output"], r["group"]) for r in rows if r["clip"].startswith("mean")]
+    assert means == [(str(folders / "nb"), ""), (str(folders / "nb"), "male"), (str(folders / "sys"), ""), (str(folders / "sys"), "male")]
+    # the extension adds a band the unextended input lacks: its high-band level is far nearer the reference's
+    hb = {o: float(r["level_error_high"]) for (_, o), r in scored.items()}
+    assert hb[str(folders / "nb")] < hb[str(folders / "sys")] - 6
+    assert (folders / "t" / "table.md").read_text().count("**mean") == 4
+
+
+def test_measures_command_goes_on_past_a_pair_it_cannot_score(folders):
+    sf.write(folders / "sys/m/a0007.wav", np.zeros(16000), 16000)  # silence: nothing to score
+    res = _run("measures", folders / "nb", folders / "sys", "--reference", folders / "ref")
+    assert res.exit_code == 1
+    assert "nenv: failed:" in res.stderr and "digital silence" in res.stderr
+    assert "| m/a0007 |" in res.stdout  # the input was still scored
+
+
+@pytest.mark.parametrize(
+    ("args", "needle"),
+    [
+        (["sys/m/a0007.wav", "--reference", "ref"], "a reference folder pairs with output folders"),
+        (["sys", "--reference", "missing"], "does not exist"),
+        (["sys/f", "--reference", "ref"], "has a counterpart"),
+        (["sys", "--reference", "ref", "--groups", "ref/m/a0007.flac"], "groups file"),
+        (["sys", "--reference", "ref", "--max-offset-s", "0"], "0.01"),
+    ],
+)
+def test_measures_command_refuses_what_it_cannot_pair(folders, monkeypatch, args, needle):
+    monkeypatch.chdir(folders)
+    res = _run("measures", *args)
+    assert res.exit_code == 2 and needle in res.output, res.output
+
+
+def test_same_speech_is_told_from_other_speech_on_the_heldout_set():
+    """The refusal threshold, checked on real recordings (tests/data/heldout, 13 clips, 12 speakers):
+    each clip through a noisy A-law channel (20 dB SNR) matches its own reference well above
+    MIN_CORRELATION, and every other clip stays well below it."""
+    from pathlib import Path
+
+    from nenv.dsp import channel
+    from nenv.media import audio
+    from nenv.report.evaluate import prepare_reference
+
+    clips = sorted((Path(__file__).parent / "data" / "heldout").glob("*.flac"))
+    refs = [prepare_reference(p) for p in clips]
+    outs = [audio.resample(channel.telephone(r, sr=16000, law="alaw", level_dbov=None, snr_db=20, seed=i), orig_sr=8000, target_sr=16000) for i, r in enumerate(refs)]
+    same = [pairs.align(r, o).correlation for r, o in zip(refs, outs)]
+    other = [pairs.align(refs[i], outs[j]).correlation for i in range(len(refs)) for j in range(len(refs)) if i != j]
+    assert min(same) > pairs.MIN_CORRELATION + 0.15, same  # measured: 0.69-0.99
+    assert max(other) < pairs.MIN_CORRELATION - 0.1, max(other)  # measured: at most 0.3
+
+
+@pytest.mark.parametrize("offset", [0, 5, -7])
+def test_overlap_cuts_both_to_the_same_time(offset):
+    ref = np.arange(100.0)
+    out = np.concatenate([np.full(offset, -1.0), ref]) if offset >= 0 else ref[-offset:]  # sample i of the reference at i + offset
+    r, o = pairs.overlap(ref, out, offset)
+    np.testing.assert_array_equal(r, o)
+    assert r.size == 100 - max(0, -offset)
