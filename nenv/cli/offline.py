@@ -345,4 +345,3 @@ def audit(
     if rec.skipped_lines:
         _say(f"nenv: note: skipped {count(rec.skipped_lines, 'incomplete or unreadable line')}")
     _say(f"wrote {out / 'audit.html'}, {out / 'by_source.csv'}, {out / 'by_group.csv'}")
-

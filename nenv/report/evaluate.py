@@ -131,6 +131,7 @@ def read_groups(path: str | os.PathLike) -> dict[str, str]:
 
 
 def group_of(clip: str, groups: dict[str, str] | None) -> str | None:
+    """The group of ``clip`` (its name as the table shows it, else its last path part), or None."""
     if not groups:
         return None
     return groups.get(clip, groups.get(Path(clip).name))

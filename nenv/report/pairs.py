@@ -115,8 +115,18 @@ def _envelope_lag(er: np.ndarray, eo: np.ndarray, reach: int) -> tuple[int, floa
 
 
 def _fine_lag(ref_b: np.ndarray, out_b: np.ndarray, around: int, reach: int) -> int:
-    c, lags = _xcorr(ref_b, out_b)
-    return _lag(c, lags, around - reach, around + reach)[0]
+    """The lag in around +- reach of the largest cross-correlation of the waveforms, summed segment by
+    segment (the same sums as one correlation of the whole signals, in memory of one segment)."""
+    acc = np.zeros(2 * reach + 1)
+    for start in range(0, ref_b.size, SEGMENT):
+        r = ref_b[start : start + SEGMENT]
+        lo = start + around - reach  # out[lo + k + n] meets r[n] at lag around - reach + k
+        o = np.zeros(r.size + 2 * reach)
+        a, b = max(lo, 0), min(lo + o.size, out_b.size)
+        if b > a:
+            o[a - lo : b - lo] = out_b[a:b]
+            acc += signal.correlate(o, r, mode="valid")
+    return around - reach + int(np.argmax(acc))
 
 
 def overlap(ref: np.ndarray, out: np.ndarray, offset: int) -> tuple[np.ndarray, np.ndarray]:
@@ -174,7 +184,7 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     drift = None
     if r.size >= DRIFT_MIN_S * WB_SR and lags.size >= 3:
         third = max(1, lags.size // 3)
-        drift = 1000.0 * (np.median(lags[-third:]) - np.median(lags[:third])) / WB_SR
+        drift = float(1000.0 * (np.median(lags[-third:]) - np.median(lags[:third])) / WB_SR)
     return Alignment(offset, float(gain_db), similarity, drift)
 
 
