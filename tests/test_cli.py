@@ -118,6 +118,15 @@ def test_evaluate_prints_every_system_and_measure(tmp_path):
     assert "estimated, not recorded" in (tmp_path / "ev" / "table.md").read_text()
 
 
+def test_extend_reports_a_short_input_in_milliseconds_and_no_speed(tmp_path):
+    y, _ = sf.read(ARCTIC[0])
+    sf.write(tmp_path / "short.wav", y[16000:16060:2], 8000)  # 30 samples at 8 kHz
+    res = _run("extend", tmp_path / "short.wav", tmp_path / "out.wav", "--method", "imaging")
+    assert res.exit_code == 0, res.output
+    assert "(16 kHz, 3.8 ms, method=imaging)" in res.stderr and "real time" not in res.stderr
+    assert sf.info(tmp_path / "out.wav").frames == 60
+
+
 def test_evaluate_means_per_speaker_group(tmp_path):
     # groups as tests/data/heldout/clips.csv gives them: ARCTIC bdl (a0007) male, slt (a0009) female
     import csv

@@ -117,7 +117,9 @@ def _extend_one(src: Path, dst: Path, opts, *, reference=None, figure=None, reco
         _say(f"nenv: note: {note}")
     if record is not None:
         _say(f"appended the guard record to {record}")
-    _say(f"wrote {dst} (16 kHz, {res.seconds:.2f} s, method={opts.method}, {res.seconds / max(res.wall_s, 1e-9):.0f}x real time)")
+    length = f"{res.seconds:.2f} s" if res.seconds >= 1 else f"{1000 * res.seconds:.1f} ms"
+    speed = f", {res.seconds / max(res.wall_s, 1e-9):.0f}x real time" if res.seconds >= 1 else ""  # under a second the start-up is all there is to time
+    _say(f"wrote {dst} (16 kHz, {length}, method={opts.method}{speed})")
     if res.limited:
         _say(f"nenv: warning: {count(res.limited, 'sample')} of the output (telephone band plus added band) exceeded -0.1 dBFS and were limited: lower the input level; if the input peaks well below full scale, the added band caused it (try --method unextended, or another model)")
     if res.hops:
