@@ -252,6 +252,13 @@ AUDIO_SUFFIXES = tuple(_SUBTYPES)
 READ_SUFFIXES = (".wav", ".flac", ".ogg", ".oga", ".aif", ".aiff", ".au", ".caf", ".w64", ".rf64", ".mp3")  # audio files nenv looks for in folders
 
 
+def find_audio(folder: str | os.PathLike) -> list[Path]:
+    """The audio files below ``folder`` (``READ_SUFFIXES``, any case), sorted; hidden files and
+    folders (names starting with a dot) are skipped."""
+    root = Path(folder)
+    return [p for p in sorted(root.rglob("*")) if p.is_file() and p.suffix.lower() in READ_SUFFIXES and not any(part.startswith(".") for part in p.relative_to(root).parts)]
+
+
 def write(path: str | os.PathLike, y: np.ndarray, *, sr: int, subtype: str | None = None) -> None:
     """Write ``y`` atomically (see :mod:`nenv.media.files`).
 

@@ -63,14 +63,18 @@ class Clip:
     outputs: dict[str, np.ndarray]  # system -> 16 kHz output
 
 
-def prepare_reference(path: str | os.PathLike, *, channel_index: int | None = None, mix: bool = False) -> np.ndarray:
-    """Load a wideband reference at 16 kHz (an odd last sample dropped) and nominal level; refuse narrowband or silent files."""
-    a = audio.load(path, channel=channel_index, mix=mix)
+def reference_at_16k(a: audio.Audio, path: str | os.PathLike) -> np.ndarray:
+    """A loaded reference resampled to 16 kHz; refuses narrowband or silent ones (``path`` names it in the error)."""
     if a.sr < WB_SR:
         raise InputError(f"'{path}' is sampled at {a.sr} Hz: a reference must be wideband (16 kHz or more)")
     if audio.is_silent(a.y):
         raise InputError(f"'{path}' is digital silence: nothing to compare against")
-    y = audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR)
+    return audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR)
+
+
+def prepare_reference(path: str | os.PathLike, *, channel_index: int | None = None, mix: bool = False) -> np.ndarray:
+    """Load a wideband reference at 16 kHz (an odd last sample dropped) and nominal level; refuse narrowband or silent files."""
+    y = reference_at_16k(audio.load(path, channel=channel_index, mix=mix), path)
     y = y[: y.size // 2 * 2]  # an even length: every output is twice its 8 kHz input's
     return channel.set_level(y, sr=WB_SR, level_dbov=EVAL_LEVEL_DBOV)
 

@@ -198,10 +198,6 @@ class Pair:
     reference: Path
 
 
-def _audio_files(folder: Path) -> list[Path]:
-    return [p for p in sorted(folder.rglob("*")) if p.is_file() and p.suffix.lower() in audio.READ_SUFFIXES and not any(part.startswith(".") for part in p.relative_to(folder).parts)]
-
-
 def _key(path: Path, folder: Path) -> str:
     return path.relative_to(folder).with_suffix("").as_posix()
 
@@ -224,18 +220,18 @@ def plan(outputs: Sequence[str | os.PathLike], reference: str | os.PathLike) -> 
     notes: list[str] = []
     if ref.is_file():
         for o in outs:
-            files = _audio_files(o) if o.is_dir() else [o]
+            files = audio.find_audio(o) if o.is_dir() else [o]
             if not files:
                 raise InputError(f"the folder '{o}' holds no audio files ({', '.join(audio.READ_SUFFIXES)})")
             pairs += [Pair(ref.stem, str(f), f, ref) for f in files]
         return pairs, notes
-    refs = {_key(p, ref): p for p in _audio_files(ref)}
+    refs = {_key(p, ref): p for p in audio.find_audio(ref)}
     if not refs:
         raise InputError(f"the reference folder '{ref}' holds no audio files ({', '.join(audio.READ_SUFFIXES)})")
     for o in outs:
         if not o.is_dir():
             raise InputError(f"'{o}' is a file, but the reference '{ref}' is a folder: a reference folder pairs with output folders (files at the same relative paths)")
-        found = {_key(p, o): p for p in _audio_files(o)}
+        found = {_key(p, o): p for p in audio.find_audio(o)}
         matched = [k for k in found if k in refs]
         if not matched:
             raise InputError(f"no file in '{o}' has a counterpart in '{ref}' (pairs need the same relative path, e.g. {next(iter(refs))}.wav)")
@@ -262,13 +258,8 @@ def _load(path: str | os.PathLike, channel_index: int | None, mix: bool) -> audi
 
 
 def load_reference(path: str | os.PathLike, *, channel_index: int | None = None, mix: bool = False) -> np.ndarray:
-    """A wideband reference at 16 kHz; refuses narrowband or silent files."""
-    a = _load(path, channel_index, mix)
-    if a.sr < WB_SR:
-        raise InputError(f"'{path}' is sampled at {a.sr} Hz: a reference must be wideband (16 kHz or more)")
-    if audio.is_silent(a.y):
-        raise InputError(f"'{path}' is digital silence: nothing to compare against")
-    return audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR)
+    """A wideband reference at 16 kHz, as it is recorded (level and length untouched)."""
+    return ev.reference_at_16k(_load(path, channel_index, mix), path)
 
 
 def load_output(path: str | os.PathLike, *, channel_index: int | None = None, mix: bool = False) -> tuple[np.ndarray, str | None]:

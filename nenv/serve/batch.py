@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterable, Optional
 
-from nenv.media.audio import READ_SUFFIXES
+from nenv.media.audio import READ_SUFFIXES, find_audio
 from nenv.errors import InputError, NenvError
 from nenv.media.files import is_within, same_path
 from nenv.serve.streamfile import OUTPUT_SUFFIXES, FileResult, Options, extend_file, load_checkpoint
@@ -44,14 +44,7 @@ def is_batch(inputs: list[Path]) -> bool:
 
 
 def _audio_files(folder: Path, exclude: Path) -> list[Path]:
-    found = []
-    for p in sorted(folder.rglob("*")):
-        if not p.is_file() or p.suffix.lower() not in INPUT_SUFFIXES or any(part.startswith(".") for part in p.relative_to(folder).parts):
-            continue
-        if is_within(p, exclude):
-            continue  # never treat earlier outputs as inputs
-        found.append(p)
-    return found
+    return [p for p in find_audio(folder) if not is_within(p, exclude)]  # never treat earlier outputs as inputs
 
 
 def _read_list(path: Path) -> list[Path]:

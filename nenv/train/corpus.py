@@ -85,7 +85,7 @@ def scan(root: str | os.PathLike, *, speaker_rule: str = "parent", manifest: str
             p = Path(row["path"])
             out.append(CorpusFile(str(p if p.is_absolute() else r / p), row["speaker"]))
         return out
-    files = sorted(p for p in r.rglob("*") if p.is_file() and p.suffix.lower() in AUDIO_SUFFIXES and not any(part.startswith(".") for part in p.relative_to(r).parts))
+    files = audio.find_audio(r)
     if not files:
         raise InputError(f"corpus folder '{r}' holds no audio files ({', '.join(AUDIO_SUFFIXES)})")
     return [CorpusFile(str(p), _speaker(p, r, speaker_rule)) for p in files]
