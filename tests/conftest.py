@@ -108,3 +108,20 @@ def missing_tool(msg: str) -> None:
     if os.environ.get("NENV_INTEROP") == "required":
         pytest.fail(msg)
     pytest.skip(msg)
+
+
+def run_bounded(cmd: list[str], *, timeout: float = 300, cwd=None):
+    """``subprocess.run(cmd)`` capturing text, in its own process group, which is killed whole if it
+    runs longer than ``timeout`` seconds (then the test fails, leaving no worker behind): for
+    commands whose failure mode is never to end."""
+    import signal
+    import subprocess
+
+    p = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+    try:
+        out, err = p.communicate(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        os.killpg(p.pid, signal.SIGKILL)
+        out, err = p.communicate()
+        pytest.fail(f"{' '.join(cmd[:4])} ... did not end within {timeout:g} s:\n{err[-3000:]}")
+    return subprocess.CompletedProcess(cmd, p.returncode, out, err)

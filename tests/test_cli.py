@@ -143,6 +143,22 @@ def test_evaluate_means_per_speaker_group(tmp_path):
     assert "**mean female**" in res.stdout
 
 
+def test_evaluate_in_worker_processes_writes_the_same_table(tmp_path):
+    """``--jobs 2`` scores the references in two processes: the same table, rows in the same order. Run
+    as a command with a time limit: the failure this guards against was a worker that never ended."""
+    import sys
+
+    from tests.conftest import run_bounded
+
+    args = ["evaluate", *map(str, ARCTIC), "--method", "unextended", "--method", "imaging", "--law", "mulaw"]
+    res = _run(*args, "--out", tmp_path / "one", "--jobs", "1")
+    assert res.exit_code == 0, res.output
+    two = run_bounded([sys.executable, "-m", "nenv", *args, "--out", str(tmp_path / "two"), "--jobs", "2"])
+    assert two.returncode == 0, two.stderr[-3000:]
+    one_table = (tmp_path / "one" / "table.csv").read_text()
+    assert (tmp_path / "two" / "table.csv").read_text() == one_table and one_table.count("arctic_a0007") == 2
+
+
 def test_evaluate_says_why_a_value_is_blank(tmp_path):
     import soundfile as sf
 

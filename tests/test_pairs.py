@@ -211,3 +211,34 @@ def test_overlap_cuts_both_to_the_same_time(offset):
     r, o = pairs.overlap(ref, out, offset)
     np.testing.assert_array_equal(r, o)
     assert r.size == 100 - max(0, -offset)
+
+
+
+PARALLEL_SCRIPT = """
+import sys
+from pathlib import Path
+from nenv.report import pairs
+root = Path(sys.argv[1])
+work, _ = pairs.plan([root / "nb", root / "sys"], root / "ref")
+first = pairs.score(work[0])  # this process starts its PESQ worker and ViSQOL before the pool forks
+assert first.error is None, first
+in_turn = pairs.run(work, workers=1)
+apart = pairs.run(work, workers=2)
+assert [r.pair for r in apart] == [r.pair for r in in_turn] == list(work)
+assert [r.scores for r in apart] == [r.scores for r in in_turn], (apart, in_turn)
+assert apart[0].scores == first.scores
+print("same", len(work))
+"""
+
+
+def test_pairs_scored_in_worker_processes_match_those_scored_in_turn(folders):
+    """``--jobs``: the same scores in the same order, also when this process scored before the workers
+    were forked (each makes its own PESQ worker and ViSQOL). Run in a child interpreter with a time
+    limit: the failure this guards against was a worker process that never ended."""
+    import sys
+    from pathlib import Path
+
+    from tests.conftest import run_bounded
+
+    res = run_bounded([sys.executable, "-c", PARALLEL_SCRIPT, str(folders)], cwd=Path(__file__).resolve().parents[1])
+    assert res.returncode == 0 and "same 2" in res.stdout, res.stderr[-3000:]

@@ -88,34 +88,61 @@ def run(
     model=None,
     on_step: Callable[[str], None] | None = None,
     low_band: bool = False,
+    workers: int = 1,
 ) -> tuple[list[Row], list[Clip]]:
     """Score every system on every reference and channel law (``low_band``: systems that can add
-    the 50-300 Hz band do, the true band adds the reference's own).
+    the 50-300 Hz band do, the true band adds the reference's own). ``workers``: references scored
+    in that many processes (0 = one per core; each loads the model itself); ``on_step(label)`` once
+    per system, clip and law, as each is scored (in this process) or as each reference is done.
 
-    Returns the rows of the table and the signals (for figures).
+    Returns the rows of the table and the signals (for figures), in the order of ``references``.
     """
     for s in systems:
         if s not in pipeline.SYSTEMS:
             raise InputError(f"system {s!r} is not known: choose from {', '.join(pipeline.SYSTEMS)}")
-    if any(s in pipeline.MODEL_SYSTEMS for s in systems):
-        model = pipeline.load_model(model)  # load once, fail early
+    # loaded once, failing early; None when no system needs one
+    model = pipeline.load_model(model) if any(s in pipeline.MODEL_SYSTEMS for s in systems) else None
     refs = [(Path(p).stem, prepare_reference(p)) for p in references]  # fail early, before any scoring
+    tasks = [(name, ref, tuple(systems), tuple(laws), excitation, model, low_band) for name, ref in refs]
+    if workers != 1 and len(tasks) > 1:
+        from nenv.serve import parallel
+
+        # a worker (a new interpreter) gets the model's folder, not the loaded model, and reads it once
+        tasks = [t[:5] + (None if model is None else str(model.path),) + t[6:] for t in tasks]
+        done: list = [None] * len(tasks)
+        for i, (rows, clips) in parallel.as_done(score_reference, tasks, workers=workers, fresh=True):
+            done[i] = (rows, clips)
+            for r in rows:
+                if on_step:
+                    on_step(f"{r.clip} / {r.law} / {r.system}")
+    else:
+        done = [score_reference(*t, on_step=on_step) for t in tasks]
+    return [r for rows, _ in done for r in rows], [c for _, clips in done for c in clips]
+
+
+_models: dict = {}  # in a worker process: model folder -> loaded model, read on first use
+
+
+def score_reference(name: str, ref: np.ndarray, systems: Sequence[str], laws: Sequence[str], excitation: str, model, low_band: bool, on_step: Callable[[str], None] | None = None) -> tuple[list[Row], list[Clip]]:
+    """Every system through every law on one prepared reference (:func:`prepare_reference`); ``model``:
+    a loaded model, its folder, or None when no system needs one."""
+    if isinstance(model, str):
+        model = _models.get(model) or _models.setdefault(model, pipeline.load_model(model))
     rows: list[Row] = []
     clips: list[Clip] = []
-    for name, ref in refs:
-        for law in laws:
-            nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
-            outs = {}
-            for s in systems:
-                # systems with nothing to shape a low band with run without one, as the table's labels say
-                system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=low_band and s in pipeline.LOW_BAND_SYSTEMS)
-                y = pipeline.extend(nb, system=system).y
-                outs[s] = y
-                label = f"{s} +low band" if system.low_band else s  # the table says what ran
-                rows.append(Row(name, law, label, Scores.compute(ref, y)))
-                if on_step:
-                    on_step(f"{name} / {law} / {s}")
-            clips.append(Clip(name, law, ref, nb, outs))
+    for law in laws:
+        nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
+        outs = {}
+        for s in systems:
+            # systems with nothing to shape a low band with run without one, as the table's labels say
+            system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=low_band and s in pipeline.LOW_BAND_SYSTEMS)
+            y = pipeline.extend(nb, system=system).y
+            outs[s] = y
+            label = f"{s} +low band" if system.low_band else s  # the table says what ran
+            rows.append(Row(name, law, label, Scores.compute(ref, y)))
+            if on_step:
+                on_step(f"{name} / {law} / {s}")
+        clips.append(Clip(name, law, ref, nb, outs))
     return rows, clips
 
 

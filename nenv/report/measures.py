@@ -184,8 +184,14 @@ def isolated(fn, *args) -> float:
     if not _worker:
         import atexit
 
+        from multiprocessing.util import Finalize
+
         pool = concurrent.futures.ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"))
         atexit.register(pool.shutdown)  # stopped while the interpreter is whole, not from a finaliser at teardown
+        # and in a worker process of nenv's own pools, which ends without atexit but joins its
+        # children first: stop this one before that join, or the worker never ends; before the
+        # pool's own queue finalisers (priority 10) too, which would stop its sentinels reaching it
+        Finalize(None, pool.shutdown, exitpriority=100)
         _worker.append(pool)
     try:
         return _worker[0].submit(fn, *args).result()

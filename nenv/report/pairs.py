@@ -311,12 +311,19 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
         return Scored(pair, None, error=str(e))
 
 
-def run(pairs: Sequence[Pair], *, max_offset_s: float = MAX_OFFSET_S, channel_index: int | None = None, mix: bool = False, on_step: Callable[[Scored], None] | None = None) -> list[Scored]:
-    """Score every pair in turn (``on_step`` after each)."""
-    out = []
-    for p in pairs:
-        s = score(p, max_offset_s=max_offset_s, channel_index=channel_index, mix=mix)
-        out.append(s)
+def run(
+    pairs: Sequence[Pair], *, max_offset_s: float = MAX_OFFSET_S, channel_index: int | None = None, mix: bool = False, workers: int = 1, on_step: Callable[[Scored], None] | None = None
+) -> list[Scored]:
+    """Score every pair (``workers`` processes, 0 = one per core; ``on_step`` after each); results in
+    the order of ``pairs`` whichever way they ran."""
+    from functools import partial
+
+    from nenv.serve import parallel
+
+    fn = partial(score, max_offset_s=max_offset_s, channel_index=channel_index, mix=mix)
+    out: list = [None] * len(pairs)
+    for i, s in parallel.as_done(fn, [(p,) for p in pairs], workers=workers, fresh=True):
+        out[i] = s
         if on_step:
             on_step(s)
     return out

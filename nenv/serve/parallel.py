@@ -22,19 +22,24 @@ from typing import Callable, Iterator, Optional, Sequence
 from nenv.errors import InputError
 
 
-def _fork_context():
-    """Worker processes by fork (Linux default; cheap), spawn elsewhere."""
+def _context(fresh: bool):
+    """Worker processes by fork (Linux default; cheap), or spawned (fresh interpreters) where asked or
+    where fork is not available."""
     import multiprocessing
 
-    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() and not fresh else "spawn"
     return multiprocessing.get_context(method)
 
 
-def as_done(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, scheduler: Optional[str] = None) -> Iterator[tuple[int, object]]:
+def as_done(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, scheduler: Optional[str] = None, fresh: bool = False) -> Iterator[tuple[int, object]]:
     """Yield ``(i, fn(*arg_tuples[i]))`` as each call finishes.
 
     workers : local processes (0 = one per core, 1 = in this process); ignored with ``scheduler``
     scheduler : a dask.distributed scheduler address
+    fresh : start the workers as new interpreters (spawn) instead of copies of this process (fork),
+        each running numba's parallel loops on one thread: for work whose libraries cannot be forked
+        once used (the perceptual measures: ViSQOL's parallel loops run on GNU OpenMP, which ends a
+        forked child that uses it again)
     """
     if scheduler:
         yield from _dask(fn, arg_tuples, scheduler)
@@ -46,9 +51,9 @@ def as_done(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, sche
         return
     from concurrent.futures import ProcessPoolExecutor, as_completed
 
-    ctx = _fork_context()
+    ctx = _context(fresh)
     started = ctx.SimpleQueue()  # each worker puts its process id here as it starts
-    pool = ProcessPoolExecutor(max_workers=min(workers, len(arg_tuples)), mp_context=ctx, initializer=_worker_signals, initargs=(started,))
+    pool = ProcessPoolExecutor(max_workers=min(workers, len(arg_tuples)), mp_context=ctx, initializer=_worker_signals, initargs=(started, fresh))
     try:
         index = {pool.submit(_task, fn, args): i for i, args in enumerate(arg_tuples)}
         for fut in as_completed(index):
@@ -112,14 +117,20 @@ def _task(fn: Callable, args: tuple):
             signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
-def _worker_signals(started) -> None:
+def _worker_signals(started, one_thread: bool = False) -> None:
     """In each worker: say its process id, ignore Ctrl-C (the parent decides), turn SIGTERM into an
-    exception that unwinds cleanly."""
+    exception that unwinds cleanly; with ``one_thread``, run numba's parallel loops (ViSQOL's) on one
+    thread, since the workers are the parallelism (two workers of two threads on two cores took 27%
+    longer than one process)."""
     import signal
 
     started.put(os.getpid())
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, _stop_worker)
+    if one_thread:
+        import numba
+
+        numba.set_num_threads(1)
 
 
 def in_order(fn: Callable, arg_tuples: Sequence[tuple], *, workers: int = 1, scheduler: Optional[str] = None, on_done: Optional[Callable[[], None]] = None) -> list:
