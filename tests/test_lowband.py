@@ -292,3 +292,37 @@ def test_evaluate_with_the_low_band_says_so_and_scores_it():
     # the reference's own low band brings the low band's level and spectrum back (unextended: 5-6 dB short)
     assert by["unextended"].level_error_low < -3 and abs(by["true-band +low band"].level_error_low) < 1
     assert by["true-band +low band"].lsd_low < by["unextended"].lsd_low - 10
+
+
+def test_evaluate_compares_with_and_without_the_low_band_in_one_table(tmp_path):
+    """``--compare-low-band``: each system that can add the band runs without and then with it, and
+    each row equals what a run with or without ``--low-band`` gives."""
+    import csv
+
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+    from tests.conftest import ARCTIC
+
+    def table(*extra):
+        out = tmp_path / "_".join(extra or ("plain",))
+        res = CliRunner().invoke(app, ["evaluate", str(ARCTIC[0]), "--out", str(out), "--law", "mulaw", "--method", "unextended", "--method", "true-band", *extra])
+        assert res.exit_code == 0, res.output
+        return [(r["system"], r["lsd_low"], r["visqol"]) for r in csv.DictReader(open(out / "table.csv")) if r["clip"] == "arctic_a0007"]
+
+    both = table("--compare-low-band")
+    assert [s for s, *_ in both] == ["unextended", "true-band", "true-band +low band"]
+    assert both == table() + table("--low-band")[1:]
+    res = CliRunner().invoke(app, ["evaluate", str(ARCTIC[0]), "--out", str(tmp_path / "x"), "--low-band", "--compare-low-band"])
+    assert res.exit_code == 2 and "exclude each other" in res.output
+
+
+def test_low_band_variants_follow_the_systems_order():
+    from nenv.report.evaluate import variants
+
+    systems = ("unextended", "imaging", "neural", "oracle")
+    assert variants(systems, False) == [(s, False) for s in systems]
+    assert variants(systems, True) == [("unextended", False), ("imaging", False), ("neural", True), ("oracle", True)]
+    assert variants(systems, "both") == [("unextended", False), ("imaging", False), ("neural", False), ("neural", True), ("oracle", False), ("oracle", True)]
+    with pytest.raises(ValueError):
+        variants(systems, "on")

@@ -196,6 +196,7 @@ def evaluate(
     model: Annotated[Optional[Path], typer.Option(help="Model folder for the neural and codebook systems (default: the shipped model, if any).")] = None,
     low_band: LowBandOpt = False,
     groups: Annotated[Optional[Path], typer.Option(help="CSV with the columns clip and group (e.g. female/male; clip = a reference's file name without suffix): adds a mean per group.")] = None,
+    compare_low_band: Annotated[bool, typer.Option("--compare-low-band", help="Run each system that can add the 50-300 Hz band twice, without and with it, side by side.")] = False,
     jobs: JobsOpt = 1,
 ) -> None:
     """Score every system against wideband references passed through the telephone channel."""
@@ -213,9 +214,12 @@ def evaluate(
         systems = ev.ALL_SYSTEMS
     else:
         systems = ev.DEFAULT_SYSTEMS
+    if low_band and compare_low_band:
+        raise InputError("--low-band and --compare-low-band exclude each other: --compare-low-band already runs with and without it")
+    low = "both" if compare_low_band else low_band
     with _progress() as bar:
-        task = bar.add_task("evaluating", total=len(references) * len(law) * len(systems))
-        rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task), low_band=low_band, workers=jobs)
+        task = bar.add_task("evaluating", total=len(references) * len(law) * len(ev.variants(systems, low)))
+        rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task), low_band=low, workers=jobs)
     table = rows + ev.means(rows, group_table)
     _unknown_clips({r.clip for r in rows}, group_table, groups)
     output_folder(out)
@@ -223,7 +227,7 @@ def evaluate(
     blanks = ev.blank_notes(rows)
     write_text(out / "table.csv", ev.to_csv(table))
     write_text(out / "table.md", md + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks))
-    panels = [[("reference", c.reference)] + [(s, c.outputs[s]) for s in systems] for c in clips[:4]]
+    panels = [[("reference", c.reference)] + list(c.outputs.items()) for c in clips[:4]]
     spectrogram_grid(panels, out / "spectrograms.png", title="  |  ".join(f"{c.name} ({c.law})" for c in clips[:4]))
     typer.echo(md)
     typer.echo(ev.MEASURES_NOTE)

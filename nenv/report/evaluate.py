@@ -87,11 +87,12 @@ def run(
     excitation: str = pipeline.DEFAULT_EXCITATION,
     model=None,
     on_step: Callable[[str], None] | None = None,
-    low_band: bool = False,
+    low_band: bool | str = False,
     workers: int = 1,
 ) -> tuple[list[Row], list[Clip]]:
     """Score every system on every reference and channel law (``low_band``: systems that can add
-    the 50-300 Hz band do, the true band adds the reference's own). ``workers``: references scored
+    the 50-300 Hz band do, the true band adds the reference's own; ``"both"``: those systems run
+    without and with it, side by side). ``workers``: references scored
     in that many processes (0 = one per core; each loads the model itself); ``on_step(label)`` once
     per system, clip and law, as each is scored (in this process) or as each reference is done.
 
@@ -120,12 +121,25 @@ def run(
     return [r for rows, _ in done for r in rows], [c for _, clips in done for c in clips]
 
 
+def variants(systems: Sequence[str], low_band: bool | str) -> list[tuple[str, bool]]:
+    """``(system, with the low band)`` in the table's order for ``low_band`` False, True or ``"both"``
+    (see :func:`run`); systems with nothing to shape a low band with run without one."""
+    if low_band not in (False, True, "both"):
+        raise ValueError(f"low_band must be False, True or 'both', not {low_band!r}")
+    out = []
+    for s in systems:
+        can = s in pipeline.LOW_BAND_SYSTEMS
+        out += [(s, False), (s, True)] if low_band == "both" and can else [(s, bool(low_band) and can)]
+    return out
+
+
 _models: dict = {}  # in a worker process: model folder -> loaded model, read on first use
 
 
 def score_reference(name: str, ref: np.ndarray, systems: Sequence[str], laws: Sequence[str], excitation: str, model, low_band: bool, on_step: Callable[[str], None] | None = None) -> tuple[list[Row], list[Clip]]:
     """Every system through every law on one prepared reference (:func:`prepare_reference`); ``model``:
-    a loaded model, its folder, or None when no system needs one."""
+    a loaded model, its folder, or None when no system needs one; ``low_band`` as for :func:`run`.
+    The clips' outputs are keyed by the table's system labels."""
     if isinstance(model, str):
         model = _models.get(model) or _models.setdefault(model, pipeline.load_model(model))
     rows: list[Row] = []
@@ -133,15 +147,14 @@ def score_reference(name: str, ref: np.ndarray, systems: Sequence[str], laws: Se
     for law in laws:
         nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
         outs = {}
-        for s in systems:
-            # systems with nothing to shape a low band with run without one, as the table's labels say
-            system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=low_band and s in pipeline.LOW_BAND_SYSTEMS)
+        for s, with_low in variants(systems, low_band):
+            system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=with_low)
             y = pipeline.extend(nb, system=system).y
-            outs[s] = y
-            label = f"{s} +low band" if system.low_band else s  # the table says what ran
+            label = f"{s} +low band" if with_low else s  # the table says what ran
+            outs[label] = y
             rows.append(Row(name, law, label, Scores.compute(ref, y)))
             if on_step:
-                on_step(f"{name} / {law} / {s}")
+                on_step(f"{name} / {law} / {label}")
         clips.append(Clip(name, law, ref, nb, outs))
     return rows, clips
 
