@@ -212,7 +212,7 @@ def means(rows: Sequence[Row], groups: dict[str, str] | None = None) -> list[Row
 
 BLANK_REASONS = {
     "visqol": "the visqol package found nothing to align (a clip shorter than about half a second, or without speech)",
-    "pesq_wb": "the pesq package scores nothing shorter than a quarter of a second (beyond its alignment margins), without speech it can find, or with more than 50 utterances (its reference code's limit: split long recordings into clips of a minute or two)",
+    "pesq_wb": "the pesq package scores nothing shorter than a quarter of a second (beyond its alignment margins), without speech it can find, or with more than 50 utterances in one window (its reference code's limit; recordings over 30 s are scored in windows of about 12 s)",
 }
 BLANK_DEFAULT = "the reference has no active frames (none within 40 dB of its loudest)"
 
@@ -254,7 +254,8 @@ floored 80 dB below the reference's loudest bin, mean over frames within 40 dB o
 3.4-8 kHz energy ratio, output / reference (positive = too loud); LSD 50-300 and LB level err: the
 same for the low band, the level over frames where the reference holds a low band; WB-PESQ = ITU-T P.862.2 via the
 `pesq` package; ViSQOL = ViSQOL v3 speech mode with its lattice model (Chinen et al. 2020) via
-the `visqol-python` package. Lower is better except WB-PESQ and ViSQOL. "true-band" adds the
+the `visqol-python` package; a recording over 30 s gets both as the mean over windows of about
+12 s cut at pauses, weighted by active speech. Lower is better except WB-PESQ and ViSQOL. "true-band" adds the
 reference's own band above 3.4 kHz (with --low-band, also its own 50-300 Hz) to the unextended signal: the
 ceiling of any extension. The added band is estimated, not recorded.
 """

@@ -8,6 +8,9 @@ Spectral analysis (both signals alike): frames of 512 samples (32 ms) every
 within 40 dB of the reference's loudest frame. Power below a floor of 80 dB
 under the loudest reference bin of the file is raised to that floor in both
 signals, so empty bands compare at the floor instead of at -infinity.
+
+The perceptual measures (WB-PESQ, ViSQOL) take a pair of up to 30 s whole, a longer one window by
+window (:func:`perceptual_windows`, :func:`perceptual`).
 """
 
 from __future__ import annotations
@@ -32,6 +35,10 @@ HIGH_BAND = (BAND_EDGE_HZ, WB_SR / 2)  # Hz
 FULL_BAND = (0.0, WB_SR / 2)  # Hz
 LOW_BAND = LOW_BAND_HZ  # Hz, 50-300: the low band wideband telephony adds (bins 62.5-281 Hz on this grid)
 LOW_PRESENT_DB = 30.0  # dB: frames whose reference low band is within this of its loudest frame's hold a low band
+LONG_S = 30.0  # s: a longer pair gets its perceptual measures window by window
+WINDOW_S = 12.0  # s: nominal window length, cut at the quietest 100 ms within CUT_SEARCH_S of it
+CUT_SEARCH_S = 2.0  # s
+MIN_WINDOW_ACTIVE_S = 1.0  # s of active speech a window needs to be scored
 
 
 def frames(y: np.ndarray) -> np.ndarray:
@@ -244,6 +251,56 @@ def visqol_speech(ref: np.ndarray, est: np.ndarray) -> float:
         return float("nan")
 
 
+def perceptual_windows(ref: np.ndarray) -> list[tuple[int, int]]:
+    """Windows ``(start, stop)`` in samples that score a long pair: one window for up to LONG_S
+    seconds, else consecutive windows of about WINDOW_S seconds (the last between half and one and a
+    half of that, plus the search), each cut in the quietest 100 ms of the reference within
+    CUT_SEARCH_S of its nominal end, so no word is split.
+
+    Why: the pesq package's reference code takes at most 50 utterances (it crashes on about three
+    minutes of read sentences) and ViSQOL's memory grows with the length (about 1 GB for three
+    minutes); splitting a long recording into short samples cut at pauses is common practice for
+    PESQ, and ViSQOL averages over short patches in any case.
+    """
+    n = ref.size
+    if n <= LONG_S * WB_SR:
+        return [(0, n)]
+    frame = WB_SR // 100  # 10 ms
+    e = np.add.reduceat(ref.astype(np.float64) ** 2, np.arange(0, n, frame))
+    quiet = np.convolve(e, np.ones(10), mode="valid")  # energy of the 100 ms starting at each frame
+    w, reach = int(WINDOW_S * 100), int(CUT_SEARCH_S * 100)  # in frames
+    cuts = [0]
+    while e.size - cuts[-1] > 1.5 * w + reach:
+        lo = cuts[-1] + w - reach
+        cut = lo + int(np.argmin(quiet[lo : lo + 2 * reach])) + 5  # the middle of the quietest 100 ms
+        cuts.append(cut)
+    return [(a * frame, b * frame) for a, b in zip(cuts, cuts[1:])] + [(cuts[-1] * frame, n)]
+
+
+def _window_weights(ref: np.ndarray, windows: list[tuple[int, int]]) -> np.ndarray:
+    """Seconds of active speech per window (10 ms frames within ACTIVE_DB of the loudest frame)."""
+    frame = WB_SR // 100
+    e = np.add.reduceat(ref.astype(np.float64) ** 2, np.arange(0, ref.size, frame))
+    active = e >= e.max() * 10 ** (-ACTIVE_DB / 10) if e.max() > 0 else np.zeros(e.size, bool)
+    return np.array([active[a // frame : -(-b // frame)].sum() / 100 for a, b in windows])
+
+
+def perceptual(ref: np.ndarray, est: np.ndarray) -> tuple[float, float]:
+    """(WB-PESQ, ViSQOL) of a pair: as they are up to LONG_S seconds; a longer pair as the mean over
+    :func:`perceptual_windows` weighted by each window's active speech (windows with less than
+    MIN_WINDOW_ACTIVE_S of it, and values a measure cannot give, left out)."""
+    windows = perceptual_windows(ref)
+    if len(windows) == 1:
+        return pesq_wb(ref, est), visqol_speech(ref, est)
+    weights = _window_weights(ref, windows)
+    values = np.array([(pesq_wb(ref[a:b], est[a:b]), visqol_speech(ref[a:b], est[a:b])) if wt >= MIN_WINDOW_ACTIVE_S else (np.nan, np.nan) for (a, b), wt in zip(windows, weights)])
+    out = []
+    for col in values.T:
+        ok = np.isfinite(col)
+        out.append(float(np.average(col[ok], weights=weights[ok])) if ok.any() else float("nan"))
+    return out[0], out[1]
+
+
 @dataclass(frozen=True)
 class Scores:
     """Every measure for one system on one clip (dB unless noted)."""
@@ -263,6 +320,7 @@ class Scores:
         _check(ref, est)
         p_ref, p_est = power_spectra(ref), power_spectra(est)
         e_ref, e_est = envelope_spectra(ref), envelope_spectra(est)
+        pesq, vq = perceptual(ref, est)
         return cls(
             lsd_high=_lsd(p_ref, p_est, HIGH_BAND, p_ref),
             lsd_full=_lsd(p_ref, p_est, FULL_BAND, p_ref),
@@ -271,6 +329,6 @@ class Scores:
             level_error_high=high_band_level_error(ref, est),
             lsd_low=_lsd(p_ref, p_est, LOW_BAND, p_ref),
             level_error_low=_low_level_error(p_ref, p_est),
-            pesq_wb=pesq_wb(ref, est),
-            visqol=visqol_speech(ref, est),
+            pesq_wb=pesq,
+            visqol=vq,
         )
