@@ -15,7 +15,7 @@ from nenv import __version__
 from nenv.cli.app import DEMO_CLIP, LowBandOpt, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
 from nenv.errors import InputError
 
-JobsOpt = Annotated[int, typer.Option(min=0, help="Clips scored in this many processes (0 = one per core). Each needs its own memory (about 1 GB for a 3-minute clip); on 2 cores, 2 processes took 11-16% less time than one.")]
+JobsOpt = Annotated[int, typer.Option(min=0, help="Clips scored in this many processes (0 = one per core). Each needs its own memory (under 0.8 GB for a 3-minute clip); on 2 cores, 2 processes took 11-16% less time than one.")]
 
 
 @app.command()
