@@ -136,7 +136,7 @@ def variants(systems: Sequence[str], low_band: bool | str) -> list[tuple[str, bo
 _models: dict = {}  # in a worker process: model folder -> loaded model, read on first use
 
 
-def score_reference(name: str, ref: np.ndarray, systems: Sequence[str], laws: Sequence[str], excitation: str, model, low_band: bool, on_step: Callable[[str], None] | None = None) -> tuple[list[Row], list[Clip]]:
+def score_reference(name: str, ref: np.ndarray, systems: Sequence[str], laws: Sequence[str], excitation: str, model, low_band: bool | str, on_step: Callable[[str], None] | None = None) -> tuple[list[Row], list[Clip]]:
     """Every system through every law on one prepared reference (:func:`prepare_reference`); ``model``:
     a loaded model, its folder, or None when no system needs one; ``low_band`` as for :func:`run`.
     The clips' outputs are keyed by the table's system labels."""
