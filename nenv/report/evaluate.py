@@ -104,12 +104,13 @@ def run(
     # loaded once, failing early; None when no system needs one
     model = pipeline.load_model(model) if any(s in pipeline.MODEL_SYSTEMS for s in systems) else None
     refs = [(Path(p).stem, prepare_reference(p)) for p in references]  # fail early, before any scoring
-    tasks = [(name, ref, tuple(systems), tuple(laws), excitation, model, low_band) for name, ref in refs]
-    if workers != 1 and len(tasks) > 1:
+    apart = workers != 1 and len(refs) > 1
+    # a worker (a new interpreter) gets the model's folder, not the loaded model, and reads it once
+    model_arg = str(model.path) if apart and model is not None else model
+    tasks = [(name, ref, tuple(systems), tuple(laws), excitation, model_arg, low_band) for name, ref in refs]
+    if apart:
         from nenv.serve import parallel
 
-        # a worker (a new interpreter) gets the model's folder, not the loaded model, and reads it once
-        tasks = [t[:5] + (None if model is None else str(model.path),) + t[6:] for t in tasks]
         done: list = [None] * len(tasks)
         for i, (rows, clips) in parallel.as_done(score_reference, tasks, workers=workers, fresh=True):
             done[i] = (rows, clips)

@@ -39,6 +39,7 @@ LONG_S = 30.0  # s: a longer pair gets its perceptual measures window by window
 WINDOW_S = 12.0  # s: nominal window length, cut at the quietest 100 ms within CUT_SEARCH_S of it
 CUT_SEARCH_S = 2.0  # s
 MIN_WINDOW_ACTIVE_S = 1.0  # s of active speech a window needs to be scored
+BLOCK_10MS = WB_SR // 100  # samples: blocks that find the windows' cuts and their active speech
 
 
 def frames(y: np.ndarray) -> np.ndarray:
@@ -251,6 +252,11 @@ def visqol_speech(ref: np.ndarray, est: np.ndarray) -> float:
         return float("nan")
 
 
+def _block_energy(ref: np.ndarray) -> np.ndarray:
+    """Energy of each 10 ms block of ``ref`` (the last one possibly shorter)."""
+    return np.add.reduceat(ref.astype(np.float64) ** 2, np.arange(0, ref.size, BLOCK_10MS))
+
+
 def perceptual_windows(ref: np.ndarray) -> list[tuple[int, int]]:
     """Windows ``(start, stop)`` in samples that score a long pair: one window for up to LONG_S
     seconds, else consecutive windows of about WINDOW_S seconds (the last between half and one and a
@@ -265,24 +271,22 @@ def perceptual_windows(ref: np.ndarray) -> list[tuple[int, int]]:
     n = ref.size
     if n <= LONG_S * WB_SR:
         return [(0, n)]
-    frame = WB_SR // 100  # 10 ms
-    e = np.add.reduceat(ref.astype(np.float64) ** 2, np.arange(0, n, frame))
-    quiet = np.convolve(e, np.ones(10), mode="valid")  # energy of the 100 ms starting at each frame
-    w, reach = int(WINDOW_S * 100), int(CUT_SEARCH_S * 100)  # in frames
+    e = _block_energy(ref)
+    quiet = np.convolve(e, np.ones(10), mode="valid")  # energy of the 100 ms starting at each block
+    w, reach = int(WINDOW_S * 100), int(CUT_SEARCH_S * 100)  # in blocks
     cuts = [0]
     while e.size - cuts[-1] > 1.5 * w + reach:
         lo = cuts[-1] + w - reach
         cut = lo + int(np.argmin(quiet[lo : lo + 2 * reach])) + 5  # the middle of the quietest 100 ms
         cuts.append(cut)
-    return [(a * frame, b * frame) for a, b in zip(cuts, cuts[1:])] + [(cuts[-1] * frame, n)]
+    return [(a * BLOCK_10MS, b * BLOCK_10MS) for a, b in zip(cuts, cuts[1:])] + [(cuts[-1] * BLOCK_10MS, n)]
 
 
 def _window_weights(ref: np.ndarray, windows: list[tuple[int, int]]) -> np.ndarray:
-    """Seconds of active speech per window (10 ms frames within ACTIVE_DB of the loudest frame)."""
-    frame = WB_SR // 100
-    e = np.add.reduceat(ref.astype(np.float64) ** 2, np.arange(0, ref.size, frame))
+    """Seconds of active speech per window (10 ms blocks within ACTIVE_DB of the loudest block)."""
+    e = _block_energy(ref)
     active = e >= e.max() * 10 ** (-ACTIVE_DB / 10) if e.max() > 0 else np.zeros(e.size, bool)
-    return np.array([active[a // frame : -(-b // frame)].sum() / 100 for a, b in windows])
+    return np.array([active[a // BLOCK_10MS : -(-b // BLOCK_10MS)].sum() / 100 for a, b in windows])
 
 
 def perceptual(ref: np.ndarray, est: np.ndarray) -> tuple[float, float]:
