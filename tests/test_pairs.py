@@ -114,12 +114,41 @@ def test_clock_drift_is_measured_and_reported(extended, tmp_path):
     a = pairs.align(ref2, drifted)
     assert a.correlation > 0.9  # one-second segments still match
     assert 1.5 < a.drift_ms < 3.3  # 400 ppm between the first and last thirds' segments, 4-7 s apart
+    assert a.rate_ppm == pytest.approx(400, abs=40)
     assert abs(pairs.align(ref2, np.concatenate([y, y])).drift_ms) < 0.2
     sf.write(tmp_path / "ref.wav", ref2, 16000)
     sf.write(tmp_path / "out.wav", drifted, 16000)
     got = pairs.score(pairs.Pair("ref", "out", tmp_path / "out.wav", tmp_path / "ref.wav"))
-    assert got.error is None and any("drifts" in n for n in got.notes), got
+    said = [n for n in got.notes if "resampled" in n]
+    assert got.error is None and len(said) == 1 and abs(float(said[0].split("drifts ")[1].split(" ppm")[0]) - 400) < 40, got
+    assert abs(got.alignment.drift_ms) < 0.5  # what is scored is the resampled output
     assert not any("drifts" in n for n in pairs.score(pairs.Pair("ref", "y", tmp_path / "ref.wav", tmp_path / "ref.wav")).notes)
+
+
+@pytest.mark.parametrize("ppm", [1000, 2000])
+def test_a_drifting_clock_is_undone_before_scoring(extended, tmp_path, ppm):
+    """41 s of the sentence and pauses, the output's clock running 1000 or 2000 ppm long (41 or 82 ms
+    by the end; a drift that made the pair unscorable, 'no common speech', before resampling): the
+    rate is found within 2% and the scores are those of the same output without drift."""
+    from scipy import signal
+
+    ref, _, y = extended
+    gap = np.zeros(16000)
+    r, o = np.concatenate([ref, gap] * 8), np.concatenate([y, gap] * 8)
+    sf.write(tmp_path / "ref.wav", r, 16000)
+    sf.write(tmp_path / "same.wav", np.concatenate([np.zeros(1234), o]), 16000)
+    sf.write(tmp_path / "late.wav", np.concatenate([np.zeros(1234), signal.resample(o, round(o.size * (1 + ppm * 1e-6)))]), 16000)
+    same = pairs.score(pairs.Pair("ref", "same", tmp_path / "same.wav", tmp_path / "ref.wav"))
+    late = pairs.score(pairs.Pair("ref", "late", tmp_path / "late.wav", tmp_path / "ref.wav"))
+    assert late.error is None, late.error
+    said = [n for n in late.notes if "resampled" in n]
+    assert len(said) == 1 and abs(float(said[0].split("drifts ")[1].split(" ppm")[0]) - ppm) < 0.02 * ppm, late.notes
+    assert late.alignment.offset == pytest.approx(1234, abs=3) and abs(late.alignment.drift_ms) <= 1.0
+    assert late.clock_ppm == pytest.approx(ppm, rel=0.02) and same.clock_ppm == 0
+    assert f"{late.clock_ppm:.1f}" in pairs.to_csv([same, late], [])
+    assert late.scores.lsd_high == pytest.approx(same.scores.lsd_high, abs=0.1)
+    assert late.scores.visqol == pytest.approx(same.scores.visqol, abs=0.05)
+    assert late.scores.pesq_wb == pytest.approx(same.scores.pesq_wb, abs=0.05)
 
 
 @pytest.fixture

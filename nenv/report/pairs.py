@@ -45,7 +45,8 @@ MIN_SHARED = 0.5  # offsets at which the two share less than this part of the sh
 LEVEL_BLOCK = 320  # samples at 16 kHz (20 ms): blocks for the level match
 LEVEL_ACTIVE_DB = 30.0  # dB: blocks of the reference's band within this of its loudest block set the gain
 DRIFT_MIN_S = 6.0  # s: an overlap at least this long is also checked for drift (offset of its first vs last third)
-DRIFT_NOTE_MS = 1.0  # ms: a drift larger than this is reported (two clocks that differ)
+DRIFT_NOTE_MS = 1.0  # ms: a drift larger than this is reported and undone (two clocks that differ)
+UNDRIFT_PASSES = 3  # resampling passes at most
 
 
 @dataclass(frozen=True)
@@ -56,12 +57,15 @@ class Alignment:
     gain_db : float, dB, the output's telephone band re the reference's
     correlation : float, median over one-second segments of the two telephone bands' best waveform correlation (1 = same)
     drift_ms : float or None, offset over the last third minus over the first third (None: overlap too short to tell)
+    rate_ppm : float or None, the output's clock against the reference's (the slope of the segments' lags,
+        Theil-Sen), parts per million, positive when the output runs long; None where drift_ms is None
     """
 
     offset: int
     gain_db: float
     correlation: float
     drift_ms: float | None = None
+    rate_ppm: float | None = None
 
 
 def _band(y: np.ndarray) -> np.ndarray:
@@ -139,23 +143,25 @@ def overlap(ref: np.ndarray, out: np.ndarray, offset: int) -> tuple[np.ndarray, 
     return ref[:n], out[:n]
 
 
-def _segment_lags(r: np.ndarray, o: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _segment_lags(r: np.ndarray, o: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """For each SEGMENT of the aligned bands ``r`` and ``o`` that holds speech (within 30 dB of the
-    loudest segment): the lag, within +-20 ms, of the largest normalised waveform correlation, and that
-    correlation. Short segments keep it near 1 for the same speech even when two clocks drift."""
+    loudest segment): its index, the lag, within +-20 ms, of the largest normalised waveform
+    correlation, and that correlation. Short segments keep it near 1 for the same speech even when two
+    clocks drift."""
     n = r.size // SEGMENT
     if n == 0:
-        return np.zeros(0, int), np.zeros(0)
+        return np.zeros(0, int), np.zeros(0, int), np.zeros(0)
     e = np.sum(r[: n * SEGMENT].reshape(n, SEGMENT) ** 2, axis=1)
     reach = int(0.02 * WB_SR)
+    which = np.flatnonzero(e >= e.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)) if e.max() > 0 else np.zeros(0, int)
     lags, corrs = [], []
-    for k in np.flatnonzero(e >= e.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)) if e.max() > 0 else []:
+    for k in which:
         seg = slice(k * SEGMENT, (k + 1) * SEGMENT)
         c, lg = _xcorr(r[seg], o[seg])
         lag, val = _lag(c, lg, -reach, reach)
         lags.append(lag)
         corrs.append(val)
-    return np.array(lags, int), np.array(corrs)
+    return which, np.array(lags, int), np.array(corrs)
 
 
 def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_S) -> Alignment:
@@ -179,13 +185,24 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     e_out = np.sum(o[:n].reshape(-1, LEVEL_BLOCK) ** 2, axis=1)
     active = e_ref >= e_ref.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)
     gain_db = 10 * np.log10(max(e_out[active].sum(), 1e-300) / max(e_ref[active].sum(), 1e-300)) if e_ref.max() > 0 else 0.0
-    lags, corrs = _segment_lags(r, o)
+    which, lags, corrs = _segment_lags(r, o)
     similarity = float(np.median(corrs)) if corrs.size else 0.0
-    drift = None
+    drift = rate = None
     if r.size >= DRIFT_MIN_S * WB_SR and lags.size >= 3:
         third = max(1, lags.size // 3)
         drift = float(1000.0 * (np.median(lags[-third:]) - np.median(lags[:third])) / WB_SR)
-    return Alignment(offset, float(gain_db), similarity, drift)
+        good = corrs >= MIN_CORRELATION  # segments whose lag was found (not those drifted out of reach)
+        if good.sum() >= 3 and np.ptp(which[good]) > 0:
+            from scipy.stats import theilslopes
+
+            rate = float(1e6 * theilslopes(lags[good], (which[good] + 0.5) * SEGMENT).slope)
+    return Alignment(offset, float(gain_db), similarity, drift, rate)
+
+
+def undrift(out: np.ndarray, rate_ppm: float) -> np.ndarray:
+    """``out`` resampled to undo a clock running ``rate_ppm`` long: to ``len(out) / (1 + rate)``
+    samples through the FFT (band-limited, any ratio)."""
+    return signal.resample(out, int(round(out.size / (1 + rate_ppm * 1e-6))))
 
 
 @dataclass(frozen=True)
@@ -282,6 +299,7 @@ class Scored:
     alignment: Alignment | None = None
     notes: tuple[str, ...] = ()
     error: str | None = None
+    clock_ppm: float = 0.0  # the output's clock against the reference's, undone before scoring (0: none found)
 
 
 def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int | None = None, mix: bool = False) -> Scored:
@@ -290,6 +308,20 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
         ref = load_reference(pair.reference, channel_index=channel_index, mix=mix)
         out, note = load_output(pair.output, channel_index=channel_index, mix=mix)
         a = align(ref, out, max_offset_s=max_offset_s)
+        notes = [note] if note else []
+        total = 0.0
+        if a.rate_ppm is not None and abs(a.drift_ms) > DRIFT_NOTE_MS:
+            # two clocks that differ: the output is resampled to the reference's clock and aligned again;
+            # a large drift puts the last segments out of reach of the first estimate, so up to
+            # UNDRIFT_PASSES passes while a notable drift is left
+            drift_ms = a.drift_ms
+            for _ in range(UNDRIFT_PASSES):
+                if a.rate_ppm is None or abs(a.drift_ms) <= DRIFT_NOTE_MS:
+                    break
+                out = undrift(out, a.rate_ppm)
+                total = (1 + total * 1e-6) * (1 + a.rate_ppm * 1e-6) * 1e6 - 1e6
+                a = align(ref, out, max_offset_s=max_offset_s)
+            notes.append(f"the output's clock drifts {total:+.0f} ppm from the reference's ({drift_ms:+.1f} ms from the first to the last third): resampled to match before scoring")
         if a.correlation < MIN_CORRELATION:
             raise InputError(
                 f"no common speech found within +-{max_offset_s:g} s (telephone-band correlation {a.correlation:.2f}, "
@@ -303,10 +335,9 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
         # its spectrograms have an absolute floor, so the same pair scores differently louder or softer)
         k = 10 ** ((ev.EVAL_LEVEL_DBOV - channel.active_level_dbov(r, sr=WB_SR)) / 20)
         r, o = r * k, o * (k / 10 ** (a.gain_db / 20))
-        notes = [note] if note else []
         if a.drift_ms is not None and abs(a.drift_ms) > DRIFT_NOTE_MS:
-            notes.append(f"the offset drifts by {a.drift_ms:+.1f} ms from the first to the last third (the recorders' clocks differ?): the spectral measures are less reliable")
-        return Scored(pair, Scores.compute(r, o), a, tuple(notes))
+            notes.append(f"the offset still drifts by {a.drift_ms:+.1f} ms from the first to the last third: the spectral measures are less reliable")
+        return Scored(pair, Scores.compute(r, o), a, tuple(notes), clock_ppm=total)
     except NenvError as e:
         return Scored(pair, None, error=str(e))
 
@@ -362,15 +393,15 @@ def to_markdown(rows: Sequence[Scored], avg: Sequence[Mean]) -> str:
 def to_csv(rows: Sequence[Scored], avg: Sequence[Mean], groups: dict[str, str] | None = None) -> str:
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["clip", "group", "output", "offset_ms", "gain_db", "correlation", *ev.MEASURE_NAMES, "error"])
+    w.writerow(["clip", "group", "output", "offset_ms", "gain_db", "correlation", "clock_ppm", *ev.MEASURE_NAMES, "error"])
     for r in rows:
         if r.scores is None:
-            w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, "", "", "", *([""] * len(ev.MEASURE_NAMES)), r.error])
+            w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, "", "", "", "", *([""] * len(ev.MEASURE_NAMES)), r.error])
             continue
         a = r.alignment
-        w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, f"{1000 * a.offset / WB_SR:.4f}", f"{a.gain_db:.3f}", f"{a.correlation:.3f}", *(f"{getattr(r.scores, m):.4f}" for m in ev.MEASURE_NAMES), ""])
+        w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, f"{1000 * a.offset / WB_SR:.4f}", f"{a.gain_db:.3f}", f"{a.correlation:.3f}", f"{r.clock_ppm:.1f}", *(f"{getattr(r.scores, m):.4f}" for m in ev.MEASURE_NAMES), ""])
     for m in avg:
-        w.writerow([f"mean ({m.clips})", m.group or "", m.system, "", "", "", *(f"{getattr(m.scores, k):.4f}" for k in ev.MEASURE_NAMES), ""])
+        w.writerow([f"mean ({m.clips})", m.group or "", m.system, "", "", "", "", *(f"{getattr(m.scores, k):.4f}" for k in ev.MEASURE_NAMES), ""])
     return buf.getvalue()
 
 
@@ -389,5 +420,7 @@ Alignment (nenv.report.pairs): each output is shifted by "offset", the lag of th
 cross-correlation of the two signals' 500-3000 Hz bands (positive: the output is late), and both are
 cut to the time they share. "gain" is the output's 500-3000 Hz level re the reference's; the pair
 is scored with the reference at -26 dBov and the output scaled to match it there (the balance of the
-output's bands is untouched). ViSQOL needs this: its score depends on the absolute level.
+output's bands is untouched). ViSQOL needs this: its score depends on the absolute level. An
+output whose clock drifts against the reference's (lags of one-second segments, Theil-Sen slope)
+is resampled to the reference's clock first (a note gives the rate in ppm).
 """
