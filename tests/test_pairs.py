@@ -145,7 +145,7 @@ def test_a_drifting_clock_is_undone_before_scoring(extended, tmp_path, ppm):
     assert len(said) == 1 and abs(float(said[0].split("drifts ")[1].split(" ppm")[0]) - ppm) < 0.02 * ppm, late.notes
     assert late.alignment.offset == pytest.approx(1234, abs=3) and abs(late.alignment.drift_ms) <= 1.0
     assert late.clock_ppm == pytest.approx(ppm, rel=0.02) and same.clock_ppm == 0
-    assert f"{late.clock_ppm:.1f}" in pairs.to_csv([same, late], [])
+    assert f"{late.clock_ppm:.1f}" in pairs.to_csv([same, late], []) and f"| {late.clock_ppm:+.0f} |" in pairs.to_markdown([same, late], [])
     assert late.scores.lsd_high == pytest.approx(same.scores.lsd_high, abs=0.1)
     assert late.scores.visqol == pytest.approx(same.scores.visqol, abs=0.05)
     assert late.scores.pesq_wb == pytest.approx(same.scores.pesq_wb, abs=0.05)

@@ -376,17 +376,17 @@ def means(rows: Sequence[Scored], groups: dict[str, str] | None = None) -> list[
 
 
 def to_markdown(rows: Sequence[Scored], avg: Sequence[Mean]) -> str:
-    head = ["clip", "output", "offset [ms]", "gain [dB]", *(ev.MEASURE_LABELS[m] for m in ev.MEASURE_NAMES)]
+    head = ["clip", "output", "offset [ms]", "gain [dB]", "clock [ppm]", *(ev.MEASURE_LABELS[m] for m in ev.MEASURE_NAMES)]
     lines = ["| " + " | ".join(head) + " |", "|" + "|".join(["---"] * 2 + ["---:"] * (len(head) - 2)) + "|"]
     for r in rows:
         if r.scores is None:
             continue
         vals = [f"{getattr(r.scores, m):.2f}" for m in ev.MEASURE_NAMES]
-        lines.append("| " + " | ".join([r.pair.clip, r.pair.system, f"{1000 * r.alignment.offset / WB_SR:.1f}", f"{r.alignment.gain_db:+.1f}", *vals]) + " |")
+        lines.append("| " + " | ".join([r.pair.clip, r.pair.system, f"{1000 * r.alignment.offset / WB_SR:.1f}", f"{r.alignment.gain_db:+.1f}", f"{r.clock_ppm:+.0f}", *vals]) + " |")
     for m in avg:
         label = f"**mean** ({count(m.clips, 'clip')})" if m.group is None else f"**mean {m.group}** ({count(m.clips, 'clip')})"
         vals = [f"{getattr(m.scores, k):.2f}" for k in ev.MEASURE_NAMES]
-        lines.append("| " + " | ".join([label, m.system, "", "", *vals]) + " |")
+        lines.append("| " + " | ".join([label, m.system, "", "", "", *vals]) + " |")
     return "\n".join(lines) + "\n"
 
 
