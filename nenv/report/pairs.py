@@ -309,18 +309,17 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
         out, note = load_output(pair.output, channel_index=channel_index, mix=mix)
         a = align(ref, out, max_offset_s=max_offset_s)
         notes = [note] if note else []
-        total = 0.0
-        if a.rate_ppm is not None and abs(a.drift_ms) > DRIFT_NOTE_MS:
-            # two clocks that differ: the output is resampled to the reference's clock and aligned again;
-            # a large drift puts the last segments out of reach of the first estimate, so up to
-            # UNDRIFT_PASSES passes while a notable drift is left
-            drift_ms = a.drift_ms
-            for _ in range(UNDRIFT_PASSES):
-                if a.rate_ppm is None or abs(a.drift_ms) <= DRIFT_NOTE_MS:
-                    break
-                out = undrift(out, a.rate_ppm)
-                total = (1 + total * 1e-6) * (1 + a.rate_ppm * 1e-6) * 1e6 - 1e6
-                a = align(ref, out, max_offset_s=max_offset_s)
+        # two clocks that differ: the output is resampled to the reference's clock and aligned again; a
+        # large drift puts the last segments out of reach of the first estimate, so up to UNDRIFT_PASSES
+        # passes while a notable drift is left
+        drift_ms, total = a.drift_ms, 0.0
+        for _ in range(UNDRIFT_PASSES):
+            if a.rate_ppm is None or abs(a.drift_ms) <= DRIFT_NOTE_MS:
+                break
+            out = undrift(out, a.rate_ppm)
+            total = (1 + total * 1e-6) * (1 + a.rate_ppm * 1e-6) * 1e6 - 1e6
+            a = align(ref, out, max_offset_s=max_offset_s)
+        if total:
             notes.append(f"the output's clock drifts {total:+.0f} ppm from the reference's ({drift_ms:+.1f} ms from the first to the last third): resampled to match before scoring")
         if a.correlation < MIN_CORRELATION:
             raise InputError(
