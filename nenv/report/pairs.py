@@ -47,6 +47,11 @@ LEVEL_ACTIVE_DB = 30.0  # dB: blocks of the reference's band within this of its 
 DRIFT_MIN_S = 6.0  # s: an overlap at least this long is also checked for drift (offset of its first vs last third)
 DRIFT_NOTE_MS = 1.0  # ms: a drift larger than this is reported and undone (two clocks that differ)
 UNDRIFT_PASSES = 3  # resampling passes at most
+RESIDUAL_PPM = 10.0  # ppm: a drift left after resampling that is resampled again (1 ms over 100 s)
+SEGMENT_REACH_S = 0.15  # s: each segment's lag is searched this far either way of the offset (reaches a jitter
+# buffer's playout adjustments of one to several 10-30 ms packets, and 2000 ppm of drift over 75 s)
+JUMP_MIN_MS = 2.0  # ms: a step this large between neighbouring segments' lags (drift removed) is a jump (our rule)
+JUMP_BLOCK = 80  # samples at 16 kHz (5 ms): resolution of a jump's place
 
 
 @dataclass(frozen=True)
@@ -59,6 +64,9 @@ class Alignment:
     drift_ms : float or None, offset over the last third minus over the first third (None: overlap too short to tell)
     rate_ppm : float or None, the output's clock against the reference's (the slope of the segments' lags,
         Theil-Sen), parts per million, positive when the output runs long; None where drift_ms is None
+    pieces : ((start, offset), ...): where the output's offset jumps (an adaptive jitter buffer's playout
+        adjustments), from which reference sample on each offset holds; empty when ``offset`` holds throughout.
+        Drift and rate are measured with the jumps taken out.
     """
 
     offset: int
@@ -66,6 +74,12 @@ class Alignment:
     correlation: float
     drift_ms: float | None = None
     rate_ppm: float | None = None
+    pieces: tuple[tuple[int, int], ...] = ()
+
+    @property
+    def jumps(self) -> list[tuple[int, int]]:
+        """(reference sample, change of the offset in samples) of each jump, in order."""
+        return [(self.pieces[i][0], self.pieces[i][1] - self.pieces[i - 1][1]) for i in range(1, len(self.pieces))]
 
 
 def _band(y: np.ndarray) -> np.ndarray:
@@ -143,25 +157,72 @@ def overlap(ref: np.ndarray, out: np.ndarray, offset: int) -> tuple[np.ndarray, 
     return ref[:n], out[:n]
 
 
-def _segment_lags(r: np.ndarray, o: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """For each SEGMENT of the aligned bands ``r`` and ``o`` that holds speech (within 30 dB of the
-    loudest segment): its index, the lag, within +-20 ms, of the largest normalised waveform
-    correlation, and that correlation. Short segments keep it near 1 for the same speech even when two
-    clocks drift."""
+def _segment_lags(r: np.ndarray, o: np.ndarray, reach: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """For each SEGMENT of the reference band ``r`` that holds speech (within 30 dB of the loudest
+    segment): its index, the lag within +-``reach`` of the largest waveform correlation with the output
+    band ``o`` (sample ``i`` of ``o`` meets sample ``i`` of ``r`` at lag 0), each lag's correlation
+    normalised by the energies of the two stretches it compares, and that correlation. Short segments
+    keep it near 1 for the same speech even when two clocks drift or a jitter buffer moves the offset."""
     n = r.size // SEGMENT
     if n == 0:
         return np.zeros(0, int), np.zeros(0, int), np.zeros(0)
     e = np.sum(r[: n * SEGMENT].reshape(n, SEGMENT) ** 2, axis=1)
-    reach = int(0.02 * WB_SR)
     which = np.flatnonzero(e >= e.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)) if e.max() > 0 else np.zeros(0, int)
+    padded = np.concatenate([np.zeros(reach), o[: n * SEGMENT + reach], np.zeros(max(0, n * SEGMENT + reach - o.size))])
     lags, corrs = [], []
     for k in which:
-        seg = slice(k * SEGMENT, (k + 1) * SEGMENT)
-        c, lg = _xcorr(r[seg], o[seg])
-        lag, val = _lag(c, lg, -reach, reach)
-        lags.append(lag)
-        corrs.append(val)
+        seg = r[k * SEGMENT : (k + 1) * SEGMENT]
+        window = padded[k * SEGMENT : (k + 1) * SEGMENT + 2 * reach]  # o[k * SEGMENT - reach : (k + 1) * SEGMENT + reach]
+        c = signal.correlate(window, seg, mode="valid")  # c[j]: lag j - reach
+        cum = np.concatenate([[0.0], np.cumsum(window * window)])
+        norm = np.sqrt(np.sum(seg * seg) * (cum[SEGMENT:] - cum[:-SEGMENT]))
+        c = np.where(norm > 0, c / np.where(norm > 0, norm, 1.0), 0.0)
+        j = int(np.argmax(c))
+        lags.append(j - reach)
+        corrs.append(float(c[j]))
     return which, np.array(lags, int), np.array(corrs)
+
+
+def _steps(which: np.ndarray, lags: np.ndarray) -> np.ndarray:
+    """Jumps between neighbouring segments' lags: for each pair (i, i + 1) the step left once the drift
+    (the median step per segment, which a few jumps do not move) is taken out, zero where it is under
+    JUMP_MIN_MS."""
+    if lags.size < 2:
+        return np.zeros(max(lags.size - 1, 0))
+    dt, dl = np.diff(which), np.diff(lags).astype(float)
+    step = dl - np.median(dl / dt) * dt
+    return np.where(np.abs(step) >= JUMP_MIN_MS * WB_SR / 1000, step, 0.0)
+
+
+def _slope(which: np.ndarray, lags: np.ndarray, run: np.ndarray) -> float | None:
+    """Change of the lag per segment (Theil-Sen: the median of the slopes between any two segments of
+    the same run, so a jump between runs does not tilt it); None when no two segments share a run."""
+    i, j = np.triu_indices(which.size, 1)
+    keep = (run[i] == run[j]) & (which[i] != which[j])
+    if not np.any(keep):
+        return None
+    i, j = i[keep], j[keep]
+    return float(np.median((lags[j] - lags[i]) / (which[j] - which[i])))
+
+
+def _place(r: np.ndarray, o: np.ndarray, lo: int, hi: int, before: int, after: int) -> int | None:
+    """Where in r[lo:hi] the lag changes from ``before`` to ``after``, to JUMP_BLOCK: the split that
+    makes the two lags' waveform products largest; None when the best split is at either end (one lag
+    fits the whole stretch: no jump)."""
+    nb = (hi - lo) // JUMP_BLOCK
+    if nb < 2:
+        return None
+    idx = lo + np.arange(nb * JUMP_BLOCK)
+
+    def products(lag: int) -> np.ndarray:
+        j = idx + lag
+        ok = (j >= 0) & (j < o.size)
+        return np.where(ok, r[idx] * o[np.clip(j, 0, o.size - 1)], 0.0).reshape(nb, JUMP_BLOCK).sum(axis=1)
+
+    p1, p2 = products(before), products(after)
+    fit = np.concatenate([[0.0], np.cumsum(p1)]) + np.concatenate([np.cumsum(p2[::-1])[::-1], [0.0]])
+    b = int(np.argmax(fit))
+    return None if b in (0, nb) else lo + b * JUMP_BLOCK
 
 
 def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_S) -> Alignment:
@@ -170,9 +231,10 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     Both are band-passed to 500-3000 Hz. The offset is found coarsely from the bands' envelopes (RMS in
     10 ms blocks, whose correlation survives noise, coding and clock drift), then to the sample from
     the waveforms within 15 ms of it. Whether the two hold the same speech is judged on the waveforms
-    of one-second segments (median of their best correlations within +-20 ms); their lags also give
-    the drift. The gain is the ratio of the bands' powers over the blocks where the reference's band
-    is within 30 dB of its loudest block.
+    of one-second segments (median of their best correlations within +-150 ms); their lags also give
+    the jumps of the offset (a step of at least 2 ms between neighbours once the drift is taken out,
+    placed to 5 ms by the waveforms) and, with the jumps taken out, the drift. The gain is the ratio of
+    the bands' powers over the blocks where the reference's band is within 30 dB of its loudest block.
     """
     ref_b, out_b = _band(ref), _band(out)
     coarse, _ = _envelope_lag(_envelope(ref_b), _envelope(out_b), int(round(max_offset_s * WB_SR / ENVELOPE_BLOCK)))
@@ -185,18 +247,53 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     e_out = np.sum(o[:n].reshape(-1, LEVEL_BLOCK) ** 2, axis=1)
     active = e_ref >= e_ref.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)
     gain_db = 10 * np.log10(max(e_out[active].sum(), 1e-300) / max(e_ref[active].sum(), 1e-300)) if e_ref.max() > 0 else 0.0
-    which, lags, corrs = _segment_lags(r, o)
+    o_from = out_b[max(offset, 0) :]  # o_from[i] meets r[i] at the offset found
+    which, lags, corrs = _segment_lags(r, o_from, int(SEGMENT_REACH_S * WB_SR))
     similarity = float(np.median(corrs)) if corrs.size else 0.0
+    good = corrs >= MIN_CORRELATION  # segments whose lag was found (other speech or noise elsewhere)
+    which, lags = which[good], lags[good]
+    steps = _steps(which, lags)
+    run = np.concatenate([[0], np.cumsum(steps != 0)]).astype(int)  # segments between two jumps share a run
+    slope = _slope(which, lags, run)
+    flat = lags.astype(float)  # the lags with the jumps taken out: each run moved onto the first
+    if slope is not None:
+        at = np.array([np.median((lags - slope * which)[run == k]) for k in range(run[-1] + 1)]) if run.size else np.zeros(0)
+        flat = flat - (at[run] - at[0])
     drift = rate = None
-    if r.size >= DRIFT_MIN_S * WB_SR and lags.size >= 3:
-        third = max(1, lags.size // 3)
-        drift = float(1000.0 * (np.median(lags[-third:]) - np.median(lags[:third])) / WB_SR)
-        good = corrs >= MIN_CORRELATION  # segments whose lag was found (not those drifted out of reach)
-        if good.sum() >= 3 and np.ptp(which[good]) > 0:
-            from scipy.stats import theilslopes
+    if r.size >= DRIFT_MIN_S * WB_SR and flat.size >= 3:
+        third = max(1, flat.size // 3)
+        drift = float(1000.0 * (np.median(flat[-third:]) - np.median(flat[:third])) / WB_SR)
+        if slope is not None:
+            rate = float(1e6 * slope / SEGMENT)
+    pieces = []
+    for i in np.flatnonzero(steps):
+        at = _place(r, o_from, int(which[i]) * SEGMENT, int(which[i + 1] + 1) * SEGMENT, int(lags[i]), int(lags[i + 1]))
+        if at is not None and (not pieces or at > pieces[-1][0]):
+            pieces.append((at, int(lags[i + 1])))
+    if pieces:  # offsets from the reference's first sample: each piece's lag is its first segment's
+        start = max(0, -offset)
+        pieces = [(0, offset + int(lags[0]))] + [(start + at, offset + lag) for at, lag in pieces]
+    return Alignment(offset, float(gain_db), similarity, drift, rate, tuple(pieces))
 
-            rate = float(1e6 * theilslopes(lags[good], (which[good] + 0.5) * SEGMENT).slope)
-    return Alignment(offset, float(gain_db), similarity, drift, rate)
+
+def splice(ref: np.ndarray, out: np.ndarray, a: Alignment) -> tuple[np.ndarray, np.ndarray]:
+    """The parts of ``ref`` and ``out`` that hold the same speech: :func:`overlap` at ``a.offset``, or,
+    where the offset jumps, each piece at its own offset, joined. Where the output's offset grows it
+    holds samples the reference does not (inserted by the jitter buffer): they are left out; where it
+    shrinks the output lacks some of the reference's samples: those are left out of the reference."""
+    if not a.pieces:
+        return overlap(ref, out, a.offset)
+    rs, os_ = [], []
+    r_next, o_next = 0, 0  # first samples not yet used
+    for j, (start, off) in enumerate(a.pieces):
+        end = a.pieces[j + 1][0] if j + 1 < len(a.pieces) else ref.size
+        s = max(start, r_next, o_next - off, -off)
+        e = min(end, out.size - off, ref.size)
+        if e > s:
+            rs.append(ref[s:e])
+            os_.append(out[s + off : e + off])
+            r_next, o_next = e, e + off
+    return (np.concatenate(rs), np.concatenate(os_)) if rs else (ref[:0], out[:0])
 
 
 def undrift(out: np.ndarray, rate_ppm: float) -> np.ndarray:
@@ -310,11 +407,12 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
         a = align(ref, out, max_offset_s=max_offset_s)
         notes = [note] if note else []
         # two clocks that differ: the output is resampled to the reference's clock and aligned again; a
-        # large drift puts the last segments out of reach of the first estimate, so up to UNDRIFT_PASSES
-        # passes while a notable drift is left
+        # large drift blurs the first estimate (the lags move inside each segment) and jumps leave short
+        # runs to measure it on, so up to UNDRIFT_PASSES passes while a notable drift is left, or, once
+        # resampled, a rate of RESIDUAL_PPM
         drift_ms, total = a.drift_ms, 0.0
         for _ in range(UNDRIFT_PASSES):
-            if a.rate_ppm is None or abs(a.drift_ms) <= DRIFT_NOTE_MS:
+            if a.rate_ppm is None or (abs(a.drift_ms) <= DRIFT_NOTE_MS and (not total or abs(a.rate_ppm) < RESIDUAL_PPM)):
                 break
             out = undrift(out, a.rate_ppm)
             total = (1 + total * 1e-6) * (1 + a.rate_ppm * 1e-6) * 1e6 - 1e6
@@ -326,7 +424,13 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
                 f"no common speech found within +-{max_offset_s:g} s (telephone-band correlation {a.correlation:.2f}, "
                 f"below {MIN_CORRELATION}): not the same recording, or offset further (raise --max-offset-s)"
             )
-        r, o = overlap(ref, out, a.offset)
+        r, o = splice(ref, out, a)
+        if a.pieces:
+            said = ", ".join(f"{1000 * d / WB_SR:+.1f} ms at {at / WB_SR:.2f} s" for at, d in a.jumps)
+            notes.append(
+                f"the output's offset jumps {count(len(a.jumps), 'time')} ({said}; a jitter buffer's playout adjustments): "
+                "scored on the speech both hold, the stretches only one of them holds left out"
+            )
         if r.size < MIN_OVERLAP_S * WB_SR:
             raise InputError(f"the aligned overlap is {r.size / WB_SR:.2f} s: at least {MIN_OVERLAP_S} s is needed")
         # both at the level evaluate uses: the reference at its nominal active level, the output scaled
@@ -375,32 +479,32 @@ def means(rows: Sequence[Scored], groups: dict[str, str] | None = None) -> list[
 
 
 def to_markdown(rows: Sequence[Scored], avg: Sequence[Mean]) -> str:
-    head = ["clip", "output", "offset [ms]", "gain [dB]", "clock [ppm]", *(ev.MEASURE_LABELS[m] for m in ev.MEASURE_NAMES)]
+    head = ["clip", "output", "offset [ms]", "gain [dB]", "clock [ppm]", "jumps", *(ev.MEASURE_LABELS[m] for m in ev.MEASURE_NAMES)]
     lines = ["| " + " | ".join(head) + " |", "|" + "|".join(["---"] * 2 + ["---:"] * (len(head) - 2)) + "|"]
     for r in rows:
         if r.scores is None:
             continue
         vals = [f"{getattr(r.scores, m):.2f}" for m in ev.MEASURE_NAMES]
-        lines.append("| " + " | ".join([r.pair.clip, r.pair.system, f"{1000 * r.alignment.offset / WB_SR:.1f}", f"{r.alignment.gain_db:+.1f}", f"{r.clock_ppm:+.0f}", *vals]) + " |")
+        lines.append("| " + " | ".join([r.pair.clip, r.pair.system, f"{1000 * r.alignment.offset / WB_SR:.1f}", f"{r.alignment.gain_db:+.1f}", f"{r.clock_ppm:+.0f}", str(len(r.alignment.jumps)), *vals]) + " |")
     for m in avg:
         label = f"**mean** ({count(m.clips, 'clip')})" if m.group is None else f"**mean {m.group}** ({count(m.clips, 'clip')})"
         vals = [f"{getattr(m.scores, k):.2f}" for k in ev.MEASURE_NAMES]
-        lines.append("| " + " | ".join([label, m.system, "", "", "", *vals]) + " |")
+        lines.append("| " + " | ".join([label, m.system, "", "", "", "", *vals]) + " |")
     return "\n".join(lines) + "\n"
 
 
 def to_csv(rows: Sequence[Scored], avg: Sequence[Mean], groups: dict[str, str] | None = None) -> str:
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["clip", "group", "output", "offset_ms", "gain_db", "correlation", "clock_ppm", *ev.MEASURE_NAMES, "error"])
+    w.writerow(["clip", "group", "output", "offset_ms", "gain_db", "correlation", "clock_ppm", "jumps", *ev.MEASURE_NAMES, "error"])
     for r in rows:
         if r.scores is None:
-            w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, "", "", "", "", *([""] * len(ev.MEASURE_NAMES)), r.error])
+            w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, "", "", "", "", "", *([""] * len(ev.MEASURE_NAMES)), r.error])
             continue
         a = r.alignment
-        w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, f"{1000 * a.offset / WB_SR:.4f}", f"{a.gain_db:.3f}", f"{a.correlation:.3f}", f"{r.clock_ppm:.1f}", *(f"{getattr(r.scores, m):.4f}" for m in ev.MEASURE_NAMES), ""])
+        w.writerow([r.pair.clip, ev.group_of(r.pair.clip, groups) or "", r.pair.system, f"{1000 * a.offset / WB_SR:.4f}", f"{a.gain_db:.3f}", f"{a.correlation:.3f}", f"{r.clock_ppm:.1f}", len(a.jumps), *(f"{getattr(r.scores, m):.4f}" for m in ev.MEASURE_NAMES), ""])
     for m in avg:
-        w.writerow([f"mean ({m.clips})", m.group or "", m.system, "", "", "", "", *(f"{getattr(m.scores, k):.4f}" for k in ev.MEASURE_NAMES), ""])
+        w.writerow([f"mean ({m.clips})", m.group or "", m.system, "", "", "", "", "", *(f"{getattr(m.scores, k):.4f}" for k in ev.MEASURE_NAMES), ""])
     return buf.getvalue()
 
 
@@ -421,5 +525,7 @@ cut to the time they share. "gain" is the output's 500-3000 Hz level re the refe
 is scored with the reference at -26 dBov and the output scaled to match it there (the balance of the
 output's bands is untouched). ViSQOL needs this: its score depends on the absolute level. An
 output whose clock drifts against the reference's (lags of one-second segments, Theil-Sen slope)
-is resampled to the reference's clock first (a note gives the rate in ppm).
+is resampled to the reference's clock first (a note gives the rate in ppm). Where the output's offset
+jumps (a jitter buffer's playout adjustments; "jumps" counts them), each stretch is scored at its own
+offset and what only one side holds is left out (a note says where and by how much).
 """
