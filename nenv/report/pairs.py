@@ -52,6 +52,9 @@ SEGMENT_REACH_S = 0.15  # s: each segment's lag is searched this far either way 
 # buffer's playout adjustments of one to several 10-30 ms packets, and 2000 ppm of drift over 75 s)
 JUMP_MIN_MS = 2.0  # ms: a step this large between neighbouring segments' lags (drift removed) is a jump (our rule)
 JUMP_BLOCK = 80  # samples at 16 kHz (5 ms): resolution of a jump's place
+LEVEL_TRACK_DB = 3.0  # dB: a spread of the output's level re the reference's over the call larger than this
+# (one-second segments, a median of three) is evened out before scoring (our rule; an automatic level control)
+LEVEL_TRACK_SPEECH_DB = 15.0  # dB: segments of the reference's band within this of its loudest set the track
 
 
 @dataclass(frozen=True)
@@ -296,6 +299,34 @@ def splice(ref: np.ndarray, out: np.ndarray, a: Alignment) -> tuple[np.ndarray, 
     return (np.concatenate(rs), np.concatenate(os_)) if rs else (ref[:0], out[:0])
 
 
+def level_track(r: np.ndarray, o: np.ndarray) -> np.ndarray | None:
+    """The output's telephone-band level re the reference's, in dB, per sample (linear between the
+    centres of the one-second segments that hold speech, a median of three segments; flat beyond the
+    first and last), for an aligned pair ``r``, ``o``; None when it varies by no more than
+    LEVEL_TRACK_DB (one gain then serves, as :func:`align` finds it). Each side's noise floor (its
+    power where the reference is quietest) is taken out first and only segments within
+    LEVEL_TRACK_SPEECH_DB of the loudest count, so a noisy channel's quiet stretches do not look louder."""
+    rb, ob = _band(r), _band(o)
+    nb = rb.size // LEVEL_BLOCK
+    n = nb * LEVEL_BLOCK // SEGMENT
+    if n < 3:
+        return None
+    pr = np.mean(rb[: nb * LEVEL_BLOCK].reshape(nb, LEVEL_BLOCK) ** 2, axis=1)
+    po = np.mean(ob[: nb * LEVEL_BLOCK].reshape(nb, LEVEL_BLOCK) ** 2, axis=1)
+    quiet = pr <= np.percentile(pr, 10)
+    per = SEGMENT // LEVEL_BLOCK
+    er = pr[: n * per].reshape(n, per).mean(axis=1) - np.median(pr[quiet])
+    eo = po[: n * per].reshape(n, per).mean(axis=1) - np.median(po[quiet])
+    which = np.flatnonzero((er >= er.max() * 10 ** (-LEVEL_TRACK_SPEECH_DB / 10)) & (eo > 0)) if er.max() > 0 else np.zeros(0, int)
+    if which.size < 3:
+        return None
+    g = 10 * np.log10(eo[which] / er[which])
+    g = np.array([np.median(g[max(i - 1, 0) : i + 2]) for i in range(g.size)])  # one odd segment moves nothing
+    if np.ptp(g) <= LEVEL_TRACK_DB:
+        return None
+    return np.interp(np.arange(o.size), (which + 0.5) * SEGMENT, g)
+
+
 def undrift(out: np.ndarray, rate_ppm: float) -> np.ndarray:
     """``out`` resampled to undo a clock running ``rate_ppm`` long: to ``len(out) / (1 + rate)``
     samples through the FFT (band-limited, any ratio)."""
@@ -437,7 +468,15 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
         # with it so that their telephone bands match (ViSQOL's verdict depends on the absolute level:
         # its spectrograms have an absolute floor, so the same pair scores differently louder or softer)
         k = 10 ** ((ev.EVAL_LEVEL_DBOV - channel.active_level_dbov(r, sr=WB_SR)) / 20)
-        r, o = r * k, o * (k / 10 ** (a.gain_db / 20))
+        track = level_track(r, o)
+        if track is None:
+            r, o = r * k, o * (k / 10 ** (a.gain_db / 20))
+        else:  # every band of the output alike, moment by moment: the balance of its bands is untouched
+            notes.append(
+                f"the output's level re the reference's moves from {track.min():+.1f} to {track.max():+.1f} dB over the call "
+                "(an automatic level control?): evened out second by second before scoring"
+            )
+            r, o = r * k, o * (k / 10 ** (track / 20))
         if a.drift_ms is not None and abs(a.drift_ms) > DRIFT_NOTE_MS:
             notes.append(f"the offset still drifts by {a.drift_ms:+.1f} ms from the first to the last third: the spectral measures are less reliable")
         return Scored(pair, Scores.compute(r, o), a, tuple(notes), clock_ppm=total)
@@ -527,5 +566,6 @@ output's bands is untouched). ViSQOL needs this: its score depends on the absolu
 output whose clock drifts against the reference's (lags of one-second segments, Theil-Sen slope)
 is resampled to the reference's clock first (a note gives the rate in ppm). Where the output's offset
 jumps (a jitter buffer's playout adjustments; "jumps" counts them), each stretch is scored at its own
-offset and what only one side holds is left out (a note says where and by how much).
+offset and what only one side holds is left out (a note says where and by how much). An output whose
+level moves by more than 3 dB over the call (one-second segments) is evened out second by second.
 """
