@@ -188,6 +188,7 @@ def test_measures_command_pairs_folders_and_reports_groups(folders):
     hb = {o: float(r["level_error_high"]) for (_, o), r in scored.items()}
     assert hb[str(folders / "nb")] < hb[str(folders / "sys")] - 6
     assert (folders / "t" / "table.md").read_text().count("**mean") == 4
+    assert not (folders / "t" / "alignment.png").exists()  # one offset and one gain served every pair: nothing to draw
 
 
 def test_measures_command_goes_on_past_a_pair_it_cannot_score(folders):
@@ -305,6 +306,14 @@ def test_jumps_of_the_offset_are_undone_before_scoring(extended, tmp_path, ppm):
     assert got.scores.lsd_high == pytest.approx(same.scores.lsd_high, abs=0.1)
     assert got.scores.visqol == pytest.approx(same.scores.visqol, abs=0.05)
     assert got.scores.pesq_wb == pytest.approx(same.scores.pesq_wb, abs=0.05)
+    # the figure draws what was undone, and only that
+    from nenv.report.figures import alignment_grid
+
+    assert got.undone and not same.undone
+    assert len(got.found.segments) >= 12 and max(abs(v) for _, v in got.found.segments) > 20  # lags as first found: the jumps show
+    assert alignment_grid([same], tmp_path / "none.png") == 0 and not (tmp_path / "none.png").exists()
+    assert alignment_grid([same, got], tmp_path / "a.png") == 1
+    assert (tmp_path / "a.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
 @pytest.mark.parametrize("shape", ["ramp", "step"])
@@ -328,6 +337,7 @@ def test_a_level_that_moves_over_the_call_is_evened_out(extended, tmp_path, monk
     assert got.scores.level_error_high == pytest.approx(same.scores.level_error_high, abs=0.3)
     assert got.scores.visqol == pytest.approx(same.scores.visqol, abs=0.05)
     assert got.scores.pesq_wb == pytest.approx(same.scores.pesq_wb, abs=0.05)
+    assert got.evened and np.ptp([v for _, v in got.levels]) > pairs.LEVEL_TRACK_DB and not same.evened
     if shape == "step":  # the same pair with one gain for the whole call
         monkeypatch.setattr(pairs, "LEVEL_TRACK_DB", np.inf)
         one = pairs.score(pairs.Pair("ref", "moved", tmp_path / "moved.wav", tmp_path / "ref.wav"))

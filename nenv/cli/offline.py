@@ -282,7 +282,10 @@ def measures(
         output_folder(out)
         write_text(out / "table.csv", pairs.to_csv(rows, avg, group_table))
         write_text(out / "table.md", md + "\n" + pairs.ALIGN_NOTE + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks))
-        _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}")
+        from nenv.report.figures import alignment_grid
+
+        drawn = alignment_grid(rows, out / "alignment.png")
+        _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}" + (f", {out / 'alignment.png'} ({count(drawn, 'output')} aligned with more than one offset and gain)" if drawn else ""))
     if failed:
         raise typer.Exit(1)
 

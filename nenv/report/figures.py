@@ -83,3 +83,68 @@ def spectrogram_grid(panels: Sequence[Sequence[tuple[str, np.ndarray]]], path: s
     with atomic_output(p) as tmp:
         fig.savefig(tmp, dpi=dpi, format=p.suffix[1:])
     plt.close(fig)
+
+
+ALIGNMENT_PAIRS = 12  # pairs drawn in one alignment figure at most
+
+
+def alignment_grid(rows: Sequence, path: str | os.PathLike, *, dpi: int = 110) -> int:
+    """Write a figure of how the outputs of ``rows`` (:class:`nenv.report.pairs.Scored`) were aligned
+    with their references, one line of two panels per pair: each one-second segment's lag as first
+    found, with the drift (the clock rate undone) and the jumps undone drawn through them; and the
+    output's level per segment re the reference's, as scored, with the level the whole call got.
+
+    Only pairs that needed more than one offset and one gain are drawn (``Scored.undone``), the first
+    ALIGNMENT_PAIRS of them. Returns how many were drawn; nothing is written when none.
+    """
+    drawn = [r for r in rows if r.scores is not None and r.undone][:ALIGNMENT_PAIRS]
+    if not drawn:
+        return 0
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    p = check_output(path, suffixes=FIGURE_SUFFIXES)
+    fig, axes = plt.subplots(len(drawn), 2, figsize=(10.0, 1.9 * len(drawn) + 0.7), squeeze=False, layout="constrained")
+    for (ax_lag, ax_lvl), r in zip(axes, drawn):
+        a, first = r.alignment, r.found
+        t = np.array([s for s, _ in first.segments])
+        lag = np.array([v for _, v in first.segments])
+        ax_lag.plot(t, lag, "o", ms=3, color="0.2", label="segment lag, as found")
+        if t.size:
+            grid = np.linspace(0.0, t.max() + 0.5, 400)
+            model = r.clock_ppm * 1e-3 * grid  # ms: the drift undone
+            for at, d in a.jumps:
+                model = model + np.where(grid >= at / WB_SR, 1000 * d / WB_SR, 0.0)
+                ax_lag.axvline(at / WB_SR, color="tab:red", lw=0.8, ls="--")
+            model += np.median(lag - np.interp(t, grid, model))
+            ax_lag.plot(grid, model, color="tab:blue", lw=1.0, label=f"undone: {r.clock_ppm:+.0f} ppm, {len(a.jumps)} jump{'s' if len(a.jumps) != 1 else ''}")
+        _min_span(ax_lag, 2.0)
+        ax_lag.set_title(f"{r.pair.clip} | {r.pair.system}", fontsize=8, loc="left")
+        ax_lag.set_ylabel("lag [ms]")
+        ax_lag.legend(fontsize=6, loc="best")
+        lt = np.array([s for s, _ in r.levels])
+        lv = np.array([v for _, v in r.levels])
+        ax_lvl.plot(lt, lv, "o-", ms=3, lw=0.8, color="0.2", label="level re reference, per segment")
+        ax_lvl.axhline(a.gain_db, color="tab:blue", lw=1.0, label=f"one gain: {round(a.gain_db, 1) + 0.0:+.1f} dB" + (" (evened out instead)" if r.evened else ""))
+        _min_span(ax_lvl, 6.0)
+        ax_lvl.set_ylabel("dB")
+        ax_lvl.legend(fontsize=6, loc="best")
+    for ax in axes[-1]:
+        ax.set_xlabel("s of the reference")
+    n_all = sum(1 for r in rows if r.scores is not None and r.undone)
+    more = f" (the first {len(drawn)} of {n_all})" if n_all > len(drawn) else ""
+    fig.suptitle(f"Outputs that needed more than one offset and gain{more}", fontsize=10)
+    with atomic_output(p) as tmp:
+        fig.savefig(tmp, dpi=dpi, format=p.suffix[1:])
+    plt.close(fig)
+    return len(drawn)
+
+
+def _min_span(ax, span: float) -> None:
+    """Widen the y axis to at least ``span`` around its middle (a flat line is not drawn as a big change)."""
+    lo, hi = ax.get_ylim()
+    if hi - lo < span:
+        mid = (lo + hi) / 2
+        ax.set_ylim(mid - span / 2, mid + span / 2)

@@ -78,6 +78,7 @@ class Alignment:
     drift_ms: float | None = None
     rate_ppm: float | None = None
     pieces: tuple[tuple[int, int], ...] = ()
+    segments: tuple[tuple[float, float], ...] = ()  # (s of the reference, lag in ms re offset) of the segments whose lag was found
 
     @property
     def jumps(self) -> list[tuple[int, int]]:
@@ -276,7 +277,9 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     if pieces:  # offsets from the reference's first sample: each piece's lag is its first segment's
         start = max(0, -offset)
         pieces = [(0, offset + int(lags[0]))] + [(start + at, offset + lag) for at, lag in pieces]
-    return Alignment(offset, float(gain_db), similarity, drift, rate, tuple(pieces))
+    start = max(0, -offset)
+    segments = tuple((float((start + (k + 0.5) * SEGMENT) / WB_SR), float(1000 * lag / WB_SR)) for k, lag in zip(which, lags))
+    return Alignment(offset, float(gain_db), similarity, drift, rate, tuple(pieces), segments)
 
 
 def splice(ref: np.ndarray, out: np.ndarray, a: Alignment) -> tuple[np.ndarray, np.ndarray]:
@@ -299,18 +302,17 @@ def splice(ref: np.ndarray, out: np.ndarray, a: Alignment) -> tuple[np.ndarray, 
     return (np.concatenate(rs), np.concatenate(os_)) if rs else (ref[:0], out[:0])
 
 
-def level_track(r: np.ndarray, o: np.ndarray) -> np.ndarray | None:
-    """The output's telephone-band level re the reference's, in dB, per sample (linear between the
-    centres of the one-second segments that hold speech, a median of three segments; flat beyond the
-    first and last), for an aligned pair ``r``, ``o``; None when it varies by no more than
-    LEVEL_TRACK_DB (one gain then serves, as :func:`align` finds it). Each side's noise floor (its
-    power where the reference is quietest) is taken out first and only segments within
+def segment_levels(r: np.ndarray, o: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The output's telephone-band level re the reference's, in dB, per one-second segment of an
+    aligned pair ``r``, ``o`` that holds speech (a median of three segments, so one odd segment moves
+    nothing): the segments' centres in samples, and the levels. Each side's noise floor (its power
+    where the reference is quietest) is taken out first and only segments within
     LEVEL_TRACK_SPEECH_DB of the loudest count, so a noisy channel's quiet stretches do not look louder."""
     rb, ob = _band(r), _band(o)
     nb = rb.size // LEVEL_BLOCK
     n = nb * LEVEL_BLOCK // SEGMENT
-    if n < 3:
-        return None
+    if n == 0:
+        return np.zeros(0), np.zeros(0)
     pr = np.mean(rb[: nb * LEVEL_BLOCK].reshape(nb, LEVEL_BLOCK) ** 2, axis=1)
     po = np.mean(ob[: nb * LEVEL_BLOCK].reshape(nb, LEVEL_BLOCK) ** 2, axis=1)
     quiet = pr <= np.percentile(pr, 10)
@@ -318,13 +320,20 @@ def level_track(r: np.ndarray, o: np.ndarray) -> np.ndarray | None:
     er = pr[: n * per].reshape(n, per).mean(axis=1) - np.median(pr[quiet])
     eo = po[: n * per].reshape(n, per).mean(axis=1) - np.median(po[quiet])
     which = np.flatnonzero((er >= er.max() * 10 ** (-LEVEL_TRACK_SPEECH_DB / 10)) & (eo > 0)) if er.max() > 0 else np.zeros(0, int)
-    if which.size < 3:
-        return None
     g = 10 * np.log10(eo[which] / er[which])
-    g = np.array([np.median(g[max(i - 1, 0) : i + 2]) for i in range(g.size)])  # one odd segment moves nothing
-    if np.ptp(g) <= LEVEL_TRACK_DB:
+    g = np.array([np.median(g[max(i - 1, 0) : i + 2]) for i in range(g.size)])
+    return (which + 0.5) * SEGMENT, g
+
+
+def level_track(r: np.ndarray, o: np.ndarray, *, levels: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray | None:
+    """The output's level re the reference's per sample, in dB: :func:`segment_levels` (or ``levels``,
+    what it returned) joined by straight lines (flat beyond the first and last segment); None when
+    there are fewer than three segments or the levels spread by no more than LEVEL_TRACK_DB (one gain
+    then serves, as :func:`align` finds it)."""
+    at, g = segment_levels(r, o) if levels is None else levels
+    if g.size < 3 or np.ptp(g) <= LEVEL_TRACK_DB:
         return None
-    return np.interp(np.arange(o.size), (which + 0.5) * SEGMENT, g)
+    return np.interp(np.arange(o.size), at, g)
 
 
 def undrift(out: np.ndarray, rate_ppm: float) -> np.ndarray:
@@ -428,6 +437,14 @@ class Scored:
     notes: tuple[str, ...] = ()
     error: str | None = None
     clock_ppm: float = 0.0  # the output's clock against the reference's, undone before scoring (0: none found)
+    found: Alignment | None = None  # the first alignment, before any resampling (its segments' lags as recorded)
+    levels: tuple[tuple[float, float], ...] = ()  # (s of the reference, dB): the output's level per segment as scored
+    evened: bool = False  # the level was evened out second by second
+
+    @property
+    def undone(self) -> bool:
+        """Whether more than one offset and one gain was needed (drift, jumps or a moving level)."""
+        return bool(self.clock_ppm or (self.alignment is not None and self.alignment.pieces) or self.evened)
 
 
 def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int | None = None, mix: bool = False) -> Scored:
@@ -435,7 +452,7 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
     try:
         ref = load_reference(pair.reference, channel_index=channel_index, mix=mix)
         out, note = load_output(pair.output, channel_index=channel_index, mix=mix)
-        a = align(ref, out, max_offset_s=max_offset_s)
+        a = found = align(ref, out, max_offset_s=max_offset_s)
         notes = [note] if note else []
         # two clocks that differ: the output is resampled to the reference's clock and aligned again; a
         # large drift blurs the first estimate (the lags move inside each segment) and jumps leave short
@@ -468,7 +485,9 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
         # with it so that their telephone bands match (ViSQOL's verdict depends on the absolute level:
         # its spectrograms have an absolute floor, so the same pair scores differently louder or softer)
         k = 10 ** ((ev.EVAL_LEVEL_DBOV - channel.active_level_dbov(r, sr=WB_SR)) / 20)
-        track = level_track(r, o)
+        at, g = segment_levels(r, o)
+        track = level_track(r, o, levels=(at, g))
+        levels = tuple((float((t + max(0, -a.offset)) / WB_SR), float(v)) for t, v in zip(at, g))  # s of the reference (jumps aside)
         if track is None:
             r, o = r * k, o * (k / 10 ** (a.gain_db / 20))
         else:  # every band of the output alike, moment by moment: the balance of its bands is untouched
@@ -479,7 +498,7 @@ def score(pair: Pair, *, max_offset_s: float = MAX_OFFSET_S, channel_index: int 
             r, o = r * k, o * (k / 10 ** (track / 20))
         if a.drift_ms is not None and abs(a.drift_ms) > DRIFT_NOTE_MS:
             notes.append(f"the offset still drifts by {a.drift_ms:+.1f} ms from the first to the last third: the spectral measures are less reliable")
-        return Scored(pair, Scores.compute(r, o), a, tuple(notes), clock_ppm=total)
+        return Scored(pair, Scores.compute(r, o), a, tuple(notes), clock_ppm=total, found=found, levels=levels, evened=track is not None)
     except NenvError as e:
         return Scored(pair, None, error=str(e))
 
