@@ -11,7 +11,7 @@ import soundfile as sf
 from typer.testing import CliRunner
 
 from nenv.cli import app
-from nenv.report import pairs
+from nenv.report import lineup, pairs
 from tests.conftest import ARCTIC
 
 runner = CliRunner()
@@ -45,9 +45,9 @@ def _shifted(y, offset, gain_db):
 def test_alignment_finds_a_known_offset_and_level(extended, offset, gain_db):
     # The truth is made here: the same output, delayed (or cut) by a known number of samples and scaled.
     ref, _, y = extended
-    base = pairs.align(ref, y)
+    base = lineup.align(ref, y)
     assert base.offset == 0 and abs(base.gain_db) < 0.1 and base.correlation > 0.99  # G.711 and the added band change little
-    a = pairs.align(ref, _shifted(y, offset, gain_db))
+    a = lineup.align(ref, _shifted(y, offset, gain_db))
     assert a.offset == offset
     assert a.gain_db == pytest.approx(base.gain_db + gain_db, abs=0.02)
     assert a.correlation > 0.9  # normalised by the whole signals' energies: a cut start lowers it a little
@@ -55,8 +55,8 @@ def test_alignment_finds_a_known_offset_and_level(extended, offset, gain_db):
 
 def test_an_offset_outside_the_search_range_is_not_found(extended):
     ref, _, y = extended
-    a = pairs.align(ref, _shifted(y, 16000, 0.0), max_offset_s=0.5)
-    assert a.offset != 16000 and a.correlation < pairs.MIN_CORRELATION  # refused, not misaligned quietly
+    a = lineup.align(ref, _shifted(y, 16000, 0.0), max_offset_s=0.5)
+    assert a.offset != 16000 and a.correlation < lineup.MIN_CORRELATION  # refused, not misaligned quietly
 
 
 @pytest.mark.parametrize(("offset", "gain_db", "ref_gain_db"), [(600, -12.0, 0.0), (16000, -3.0, 9.0)])
@@ -111,11 +111,11 @@ def test_clock_drift_is_measured_and_reported(extended, tmp_path):
     ref, _, y = extended
     ref2, y2 = np.concatenate([ref, ref]), np.concatenate([y, y])
     drifted = signal.resample_poly(y2, 2501, 2500)  # 400 ppm more samples: the output runs late, more and more
-    a = pairs.align(ref2, drifted)
+    a = lineup.align(ref2, drifted)
     assert a.correlation > 0.9  # one-second segments still match
     assert 1.5 < a.drift_ms < 3.3  # 400 ppm between the first and last thirds' segments, 4-7 s apart
     assert a.rate_ppm == pytest.approx(400, abs=40)
-    assert abs(pairs.align(ref2, np.concatenate([y, y])).drift_ms) < 0.2
+    assert abs(lineup.align(ref2, np.concatenate([y, y])).drift_ms) < 0.2
     sf.write(tmp_path / "ref.wav", ref2, 16000)
     sf.write(tmp_path / "out.wav", drifted, 16000)
     got = pairs.score(pairs.Pair("ref", "out", tmp_path / "out.wav", tmp_path / "ref.wav"))
@@ -228,22 +228,22 @@ def test_same_speech_is_told_from_other_speech_on_the_heldout_set():
     clips = sorted((Path(__file__).parent / "data" / "heldout").glob("*.flac"))
     refs = [prepare_reference(p) for p in clips]
     outs = [audio.resample(channel.telephone(r, sr=16000, law="alaw", level_dbov=None, snr_db=20, seed=i), orig_sr=8000, target_sr=16000) for i, r in enumerate(refs)]
-    found = [pairs.align(r, o) for r, o in zip(refs, outs)]
+    found = [lineup.align(r, o) for r, o in zip(refs, outs)]
     same = [a.correlation for a in found]
-    other = [pairs.align(refs[i], outs[j]).correlation for i in range(len(refs)) for j in range(len(refs)) if i != j]
-    assert min(same) > pairs.MIN_CORRELATION + 0.15, same  # measured: 0.69-0.99
-    assert max(other) < pairs.MIN_CORRELATION - 0.1, max(other)  # measured: at most 0.34 (0.30 with +-20 ms segment lags)
+    other = [lineup.align(refs[i], outs[j]).correlation for i in range(len(refs)) for j in range(len(refs)) if i != j]
+    assert min(same) > lineup.MIN_CORRELATION + 0.15, same  # measured: 0.69-0.99
+    assert max(other) < lineup.MIN_CORRELATION - 0.1, max(other)  # measured: at most 0.34 (0.30 with +-20 ms segment lags)
     # nothing to undo where nothing happened: no jump, and the channel's noise is not taken for a moving level
     # (measured: without the noise floors taken out, 3 of these clips at 10 dB SNR were; with them none at 20, 10 or 5 dB)
     assert not any(a.pieces for a in found)
-    assert all(pairs.level_track(*pairs.splice(r, o, a)) is None for r, o, a in zip(refs, outs, found))
+    assert all(lineup.level_track(*lineup.splice(r, o, a)) is None for r, o, a in zip(refs, outs, found))
 
 
 @pytest.mark.parametrize("offset", [0, 5, -7])
 def test_overlap_cuts_both_to_the_same_time(offset):
     ref = np.arange(100.0)
     out = np.concatenate([np.full(offset, -1.0), ref]) if offset >= 0 else ref[-offset:]  # sample i of the reference at i + offset
-    r, o = pairs.overlap(ref, out, offset)
+    r, o = lineup.overlap(ref, out, offset)
     np.testing.assert_array_equal(r, o)
     assert r.size == 100 - max(0, -offset)
 
@@ -268,11 +268,11 @@ def test_splice_joins_the_pieces_that_hold_the_same_samples():
     rng = np.random.default_rng(0)
     ref = rng.standard_normal(1000)
     out = np.concatenate([np.zeros(20), _jittered(ref, [(300, 7), (600, -5)])])
-    a = pairs.Alignment(20, 0.0, 1.0, pieces=((0, 20), (300, 27), (600, 22)))  # a piece starts where the last one stops holding
-    r, o = pairs.splice(ref, out, a)
+    a = lineup.Alignment(20, 0.0, 1.0, pieces=((0, 20), (300, 27), (600, 22)))  # a piece starts where the last one stops holding
+    r, o = lineup.splice(ref, out, a)
     np.testing.assert_array_equal(r, o)
     assert r.size == 1000 - 5 and a.jumps == [(300, 7), (600, -5)]
-    np.testing.assert_array_equal(pairs.splice(ref, out[:900], pairs.Alignment(20, 0.0, 1.0))[0], ref[:880])  # no pieces: overlap
+    np.testing.assert_array_equal(lineup.splice(ref, out[:900], lineup.Alignment(20, 0.0, 1.0))[0], ref[:880])  # no pieces: overlap
 
 
 @pytest.mark.parametrize("ppm", [0, 1000])
@@ -299,7 +299,7 @@ def test_jumps_of_the_offset_are_undone_before_scoring(extended, tmp_path, ppm):
     assert len(got.alignment.jumps) == len(cuts) and not same.alignment.pieces
     for (at, size), (cut, d) in zip(got.alignment.jumps, cuts):
         assert abs(size - d) <= 1 + (ppm > 0), got.alignment.jumps  # after resampling, on the reference's clock
-        assert cut - pairs.JUMP_BLOCK <= at <= cut + max(-d, 0) + pairs.JUMP_BLOCK, got.alignment.jumps  # a drop: anywhere in the lost stretch
+        assert cut - lineup.JUMP_BLOCK <= at <= cut + max(-d, 0) + lineup.JUMP_BLOCK, got.alignment.jumps  # a drop: anywhere in the lost stretch
     assert got.clock_ppm == pytest.approx(ppm, abs=max(5, 0.01 * ppm))
     assert sum("jumps 3 times" in n for n in got.notes) == 1, got.notes
     assert "| 3 |" in pairs.to_markdown([got], []) and ",3," in pairs.to_csv([got], [])
@@ -337,9 +337,9 @@ def test_a_level_that_moves_over_the_call_is_evened_out(extended, tmp_path, monk
     assert got.scores.level_error_high == pytest.approx(same.scores.level_error_high, abs=0.3)
     assert got.scores.visqol == pytest.approx(same.scores.visqol, abs=0.05)
     assert got.scores.pesq_wb == pytest.approx(same.scores.pesq_wb, abs=0.05)
-    assert got.evened and np.ptp([v for _, v in got.levels]) > pairs.LEVEL_TRACK_DB and not same.evened
+    assert got.evened and np.ptp([v for _, v in got.levels]) > lineup.LEVEL_TRACK_DB and not same.evened
     if shape == "step":  # the same pair with one gain for the whole call
-        monkeypatch.setattr(pairs, "LEVEL_TRACK_DB", np.inf)
+        monkeypatch.setattr(lineup, "LEVEL_TRACK_DB", np.inf)
         one = pairs.score(pairs.Pair("ref", "moved", tmp_path / "moved.wav", tmp_path / "ref.wav"))
         assert abs(one.scores.level_error_high - same.scores.level_error_high) > 1.0
 
@@ -347,7 +347,7 @@ def test_a_level_that_moves_over_the_call_is_evened_out(extended, tmp_path, monk
 PARALLEL_SCRIPT = """
 import sys
 from pathlib import Path
-from nenv.report import pairs
+from nenv.report import lineup, pairs
 root = Path(sys.argv[1])
 work, _ = pairs.plan([root / "nb", root / "sys"], root / "ref")
 first = pairs.score(work[0])  # this process starts its PESQ worker and ViSQOL before the pool forks
