@@ -37,7 +37,7 @@ RESIDUAL_PPM = 10.0  # ppm: a drift left after resampling that is resampled agai
 SEGMENT_REACH_S = 0.15  # s: each segment's lag is searched this far either way of the offset (reaches a jitter
 # buffer's playout adjustments of one to several 10-30 ms packets, and 2000 ppm of drift over 75 s)
 JUMP_MIN_MS = 2.0  # ms: a step this large between neighbouring segments' lags (drift removed) is a jump (our rule)
-JUMP_BLOCK = 80  # samples at 16 kHz (5 ms): resolution of a jump's place
+JUMP_BLOCK = 80  # samples at 16 kHz (5 ms): a jump placed nearer than this to the end of its search is none
 LEVEL_TRACK_DB = 3.0  # dB: a spread of the output's level re the reference's over the call larger than this
 # (one-second segments, a median of three) is evened out before scoring (our rule; an automatic level control)
 LEVEL_TRACK_SPEECH_DB = 15.0  # dB: segments of the reference's band within this of its loudest set the track
@@ -196,23 +196,22 @@ def _slope(which: np.ndarray, lags: np.ndarray, run: np.ndarray) -> float | None
 
 
 def _place(r: np.ndarray, o: np.ndarray, lo: int, hi: int, before: int, after: int) -> int | None:
-    """Where in r[lo:hi] the lag changes from ``before`` to ``after``, to JUMP_BLOCK: the split that
-    makes the two lags' waveform products largest; None when the best split is at either end (one lag
+    """Where in r[lo:hi] the lag changes from ``before`` to ``after``: the split that makes the two lags'
+    waveform products largest, to the sample; None when it is within JUMP_BLOCK of either end (one lag
     fits the whole stretch: no jump)."""
-    nb = (hi - lo) // JUMP_BLOCK
-    if nb < 2:
+    if hi - lo < 2 * JUMP_BLOCK:
         return None
-    idx = lo + np.arange(nb * JUMP_BLOCK)
+    idx = np.arange(lo, hi)
 
     def products(lag: int) -> np.ndarray:
         j = idx + lag
         ok = (j >= 0) & (j < o.size)
-        return np.where(ok, r[idx] * o[np.clip(j, 0, o.size - 1)], 0.0).reshape(nb, JUMP_BLOCK).sum(axis=1)
+        return np.where(ok, r[idx] * o[np.clip(j, 0, o.size - 1)], 0.0)
 
     p1, p2 = products(before), products(after)
     fit = np.concatenate([[0.0], np.cumsum(p1)]) + np.concatenate([np.cumsum(p2[::-1])[::-1], [0.0]])
     b = int(np.argmax(fit))
-    return None if b in (0, nb) else lo + b * JUMP_BLOCK
+    return None if b < JUMP_BLOCK or b > idx.size - JUMP_BLOCK else lo + b
 
 
 def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_S) -> Alignment:
@@ -223,7 +222,7 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     the waveforms within 15 ms of it. Whether the two hold the same speech is judged on the waveforms
     of one-second segments (median of their best correlations within +-150 ms); their lags also give
     the jumps of the offset (a step of at least 2 ms between neighbours once the drift is taken out,
-    placed to 5 ms by the waveforms) and, with the jumps taken out, the drift. The gain is the ratio of
+    placed to the sample by the waveforms) and, with the jumps taken out, the drift. The gain is the ratio of
     the bands' powers over the blocks where the reference's band is within 30 dB of its loudest block.
     """
     ref_b, out_b = _band(ref), _band(out)
