@@ -201,7 +201,7 @@ def evaluate(
 ) -> None:
     """Score every system against wideband references passed through the telephone channel."""
     _kernels_ready()
-    from nenv.report import evaluate as ev
+    from nenv.report import evaluate as ev, versus
     from nenv.report.figures import spectrogram_grid
     from nenv.media.files import output_folder, write_text
 
@@ -225,15 +225,25 @@ def evaluate(
     output_folder(out)
     md = ev.to_markdown(table)
     blanks = ev.blank_notes(rows)
+    named = list(dict.fromkeys(r.system for r in rows))
+    heads = [h for lw in law for h in versus.compare([(r.system, r.clip, r.scores) for r in rows if r.law == lw], versus.pairs_to_compare(named), group_table, channel=lw if len(law) > 1 else "")]
+    vs_md = versus.to_markdown(heads) if heads else ""
     write_text(out / "table.csv", ev.to_csv(table))
-    write_text(out / "table.md", md + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks))
+    if heads:
+        write_text(out / "versus.csv", versus.to_csv(heads))
+    write_text(out / "table.md", md + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks) + (f"\n{vs_md}\n{versus.NOTE}" if heads else ""))
     panels = [[("reference", c.reference)] + list(c.outputs.items()) for c in clips[:4]]
     spectrogram_grid(panels, out / "spectrograms.png", title="  |  ".join(f"{c.name} ({c.law})" for c in clips[:4]))
     typer.echo(md)
     typer.echo(ev.MEASURES_NOTE)
+    if heads:
+        typer.echo(vs_md)
+        typer.echo(versus.NOTE)
     for b in blanks:
         _say(f"nenv: note: {b}")
-    _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}, {out / 'spectrograms.png'}")
+    for line in versus.summary(heads):
+        _say(f"nenv: {line}")
+    _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}" + (f", {out / 'versus.csv'}" if heads else "") + f", {out / 'spectrograms.png'}")
 
 
 @app.command()
@@ -249,7 +259,7 @@ def measures(
     jobs: JobsOpt = 1,
 ) -> None:
     """Score recordings you already have (from nenv or any other system) against wideband originals, after aligning them in time and level."""
-    from nenv.report import evaluate as ev, pairs
+    from nenv.report import evaluate as ev, pairs, versus
     from nenv.media.files import output_folder, write_text
 
     if out is not None:
@@ -273,19 +283,32 @@ def measures(
     _unknown_clips({r.pair.clip for r in rows if r.scores is not None}, group_table, groups)
     md = pairs.to_markdown(rows, avg)
     blanks = pairs.blank_notes(rows)
+    # with the unextended input among the outputs (one 8 kHz output): every other output against it
+    base = pairs.unextended_outputs(rows)
+    named = list(dict.fromkeys(r.pair.system for r in rows if r.scores is not None))
+    heads = versus.compare([(r.pair.system, r.pair.clip, r.scores) for r in rows if r.scores is not None], versus.pairs_to_compare(named, baseline=base[0], default=None), group_table) if len(base) == 1 else []
+    vs_md = versus.to_markdown(heads) if heads else ""
     typer.echo(md)
     typer.echo(pairs.ALIGN_NOTE)
     typer.echo(ev.MEASURES_NOTE)
+    if heads:
+        typer.echo(vs_md)
+        typer.echo(versus.NOTE)
     for b in blanks:
         _say(f"nenv: note: {b}")
+    for line in versus.summary(heads, baseline=base[0] if base else versus.BASELINE):
+        _say(f"nenv: {line}")
     if out is not None:
         output_folder(out)
         write_text(out / "table.csv", pairs.to_csv(rows, avg, group_table))
-        write_text(out / "table.md", md + "\n" + pairs.ALIGN_NOTE + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks))
+        write_text(out / "table.md", md + "\n" + pairs.ALIGN_NOTE + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks) + (f"\n{vs_md}\n{versus.NOTE}" if heads else ""))
+        if heads:
+            write_text(out / "versus.csv", versus.to_csv(heads))
         from nenv.report.figures import alignment_grid
 
         drawn = alignment_grid(rows, out / "alignment.png")
-        _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}" + (f", {out / 'alignment.png'} ({count(drawn, 'output')} aligned with more than one offset and gain)" if drawn else ""))
+        wrote = [out / "table.csv", out / "table.md"] + ([out / "versus.csv"] if heads else [])
+        _say(f"wrote {', '.join(map(str, wrote))}" + (f", {out / 'alignment.png'} ({count(drawn, 'output')} aligned with more than one offset and gain)" if drawn else ""))
     if failed:
         raise typer.Exit(1)
 

@@ -113,8 +113,17 @@ def load_output(path: str | os.PathLike, *, channel_index: int | None = None, mi
         raise InputError(f"'{path}' is digital silence: there is nothing to score")
     if a.sr == WB_SR:
         return a.y, None
-    note = "8 kHz: scored as the unextended input, resampled to 16 kHz" if a.sr == NB_SR else f"{a.sr} Hz, resampled to 16 kHz"
+    note = UNEXTENDED_NOTE if a.sr == NB_SR else f"{a.sr} Hz, resampled to 16 kHz"
     return audio.resample(a.y, orig_sr=a.sr, target_sr=WB_SR), note
+
+
+UNEXTENDED_NOTE = "8 kHz: scored as the unextended input, resampled to 16 kHz"
+
+
+def unextended_outputs(rows: Sequence["Scored"]) -> list[str]:
+    """The outputs (as named) whose every scored file was at 8 kHz: the unextended input."""
+    systems = list(dict.fromkeys(r.pair.system for r in rows if r.scores is not None))
+    return [s for s in systems if all(UNEXTENDED_NOTE in r.notes for r in rows if r.pair.system == s and r.scores is not None)]
 
 
 @dataclass(frozen=True)
