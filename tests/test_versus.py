@@ -82,6 +82,7 @@ def test_evaluate_and_measures_write_the_head_to_head(tmp_path):
     assert tb["clips"] == "2" and tb["a_better"] == "2"  # the right band beats no band on both sentences
     assert "true-band: ViSQOL above unextended on 2 of 2 clips" in res.stderr
     assert "Head to head" in (tmp_path / "ev" / "table.md").read_text()
+    assert (tmp_path / "ev" / "versus.png").read_bytes()[:4] == b"\x89PNG"
     # measures: the 8 kHz output is the unextended input, the other is compared with it
     from nenv.dsp import channel
     from nenv.report.evaluate import prepare_reference
@@ -97,6 +98,16 @@ def test_evaluate_and_measures_write_the_head_to_head(tmp_path):
     rows = list(csv.DictReader(open(tmp_path / "m" / "versus.csv")))
     assert {(r["a"], r["b"]) for r in rows} == {(str(tmp_path / "tb" / "a.wav"), str(tmp_path / "nb" / "a.wav"))}  # one reference file: each output file is named as itself
     assert next(r for r in rows if r["measure"] == "visqol")["a_better"] == "1"
+    assert (tmp_path / "m" / "versus.png").read_bytes()[:4] == b"\x89PNG"
     # without an 8 kHz output there is nothing to call the baseline: no head-to-head
     res = run.invoke(app, ["measures", str(tmp_path / "tb"), "--reference", str(ARCTIC[0]), "--out", str(tmp_path / "m2")], catch_exceptions=False)
-    assert res.exit_code == 0 and not (tmp_path / "m2" / "versus.csv").exists()
+    assert res.exit_code == 0 and not (tmp_path / "m2" / "versus.csv").exists() and not (tmp_path / "m2" / "versus.png").exists()
+
+
+def test_the_figure_draws_only_pairs_with_clips_on_both_sides(tmp_path):
+    from nenv.report.figures import versus_grid
+
+    items = _items()
+    assert not versus_grid(items, [("x", "nobody")], tmp_path / "none.png") and not (tmp_path / "none.png").exists()
+    assert versus_grid(items, [("x", "unextended"), ("x", "nobody")], tmp_path / "v.png", groups={"c0": "male"})
+    assert (tmp_path / "v.png").stat().st_size > 10000

@@ -202,7 +202,7 @@ def evaluate(
     """Score every system against wideband references passed through the telephone channel."""
     _kernels_ready()
     from nenv.report import evaluate as ev, versus
-    from nenv.report.figures import spectrogram_grid
+    from nenv.report.figures import spectrogram_grid, versus_grid
     from nenv.media.files import output_folder, write_text
 
     output_folder(out, create=False)
@@ -231,6 +231,9 @@ def evaluate(
     write_text(out / "table.csv", ev.to_csv(table))
     if heads:
         write_text(out / "versus.csv", versus.to_csv(heads))
+        for lw in law:  # one figure per channel law (the first keeps the plain name)
+            suffix = "" if lw == law[0] else f"-{lw}"
+            versus_grid([(r.system, r.clip, r.scores) for r in rows if r.law == lw], versus.pairs_to_compare(named), out / f"versus{suffix}.png", groups=group_table)
     write_text(out / "table.md", md + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks) + (f"\n{vs_md}\n{versus.NOTE}" if heads else ""))
     panels = [[("reference", c.reference)] + list(c.outputs.items()) for c in clips[:4]]
     spectrogram_grid(panels, out / "spectrograms.png", title="  |  ".join(f"{c.name} ({c.law})" for c in clips[:4]))
@@ -243,7 +246,7 @@ def evaluate(
         _say(f"nenv: note: {b}")
     for line in versus.summary(heads):
         _say(f"nenv: {line}")
-    _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}" + (f", {out / 'versus.csv'}" if heads else "") + f", {out / 'spectrograms.png'}")
+    _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}" + (f", {out / 'versus.csv'}, {out / 'versus.png'}" if heads else "") + f", {out / 'spectrograms.png'}")
 
 
 @app.command()
@@ -302,12 +305,13 @@ def measures(
         output_folder(out)
         write_text(out / "table.csv", pairs.to_csv(rows, avg, group_table))
         write_text(out / "table.md", md + "\n" + pairs.ALIGN_NOTE + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks) + (f"\n{vs_md}\n{versus.NOTE}" if heads else ""))
+        from nenv.report.figures import alignment_grid, versus_grid
+
         if heads:
             write_text(out / "versus.csv", versus.to_csv(heads))
-        from nenv.report.figures import alignment_grid
-
+            versus_grid([(r.pair.system, r.pair.clip, r.scores) for r in rows if r.scores is not None], versus.pairs_to_compare(named, baseline=base[0], default=None), out / "versus.png", groups=group_table)
         drawn = alignment_grid(rows, out / "alignment.png")
-        wrote = [out / "table.csv", out / "table.md"] + ([out / "versus.csv"] if heads else [])
+        wrote = [out / "table.csv", out / "table.md"] + ([out / "versus.csv", out / "versus.png"] if heads else [])
         _say(f"wrote {', '.join(map(str, wrote))}" + (f", {out / 'alignment.png'} ({count(drawn, 'output')} aligned with more than one offset and gain)" if drawn else ""))
     if failed:
         raise typer.Exit(1)

@@ -148,3 +148,50 @@ def _min_span(ax, span: float) -> None:
     if hi - lo < span:
         mid = (lo + hi) / 2
         ax.set_ylim(mid - span / 2, mid + span / 2)
+
+
+def versus_grid(items: Sequence, pairs: Sequence[tuple[str, str]], path: str | os.PathLike, *, groups: dict[str, str] | None = None, dpi: int = 110) -> bool:
+    """Write a figure of systems head to head (:mod:`nenv.report.versus`): for each pair (a, b), one
+    line per deciding measure's panel, a dot per clip at a's score minus b's (coloured by speaker
+    group), so how often and by how much a system beats no band (or a simple method) shows at a glance.
+    ``items``: ``(system, clip, scores)``. Returns whether anything was drawn (nothing is written when
+    no pair has a clip on both sides)."""
+    from nenv.report import versus
+    from nenv.report.evaluate import group_of
+
+    by = {(s, c): sc for s, c, sc in items}
+    clips = list(dict.fromkeys(c for _, c, _ in items))
+    shown = [(a, b) for a, b in pairs if any((a, c) in by and (b, c) in by for c in clips)]
+    if not shown:
+        return False
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    p = check_output(path, suffixes=FIGURE_SUFFIXES)
+    names = sorted({group_of(c, groups) or "(no group)" for c in clips}) if groups else [None]
+    colours = dict(zip(names, ["tab:red", "tab:blue", "tab:green", "tab:purple", "tab:orange", "tab:brown"] * 10))
+    colours["(no group)"] = colours[None] = "0.45"
+    fig, axes = plt.subplots(1, len(versus.DECIDING), figsize=(4.0 * len(versus.DECIDING), 0.42 * len(shown) + 1.3), sharey=True, squeeze=False, layout="constrained")
+    for ax, (m, (label, sign)) in zip(axes[0], versus.DECIDING.items()):
+        for y, (a, b) in enumerate(shown):
+            for c in clips:
+                if (a, c) in by and (b, c) in by:
+                    d = getattr(by[a, c], m) - getattr(by[b, c], m)
+                    if np.isfinite(d):
+                        g = group_of(c, groups) or "(no group)" if groups else None
+                        ax.plot(d, -y, "o", ms=3.5, alpha=0.7, color=colours[g], label=g)
+        ax.axvline(0.0, color="0.3", lw=0.8)
+        ax.set_title(f"{label}: a - b ({'higher' if sign > 0 else 'lower'} is better for a)", fontsize=8)
+        ax.grid(axis="x", alpha=0.3)
+    axes[0][0].set_yticks([-y for y in range(len(shown))], [f"{a}  vs  {b}" for a, b in shown], fontsize=7)
+    if groups:
+        handles, labels = axes[0][0].get_legend_handles_labels()
+        seen = dict(zip(labels, handles))
+        axes[0][-1].legend(seen.values(), seen.keys(), fontsize=7, loc="best")
+    fig.suptitle("Systems head to head: one dot per clip", fontsize=10)
+    with atomic_output(p) as tmp:
+        fig.savefig(tmp, dpi=dpi, format=p.suffix[1:])
+    plt.close(fig)
+    return True
