@@ -102,6 +102,17 @@ def test_evaluate_and_measures_write_the_head_to_head(tmp_path):
     # without an 8 kHz output there is nothing to call the baseline: no head-to-head
     res = run.invoke(app, ["measures", str(tmp_path / "tb"), "--reference", str(ARCTIC[0]), "--out", str(tmp_path / "m2")], catch_exceptions=False)
     assert res.exit_code == 0 and not (tmp_path / "m2" / "versus.csv").exists() and not (tmp_path / "m2" / "versus.png").exists()
+    # ... unless one is named: here the unextended input upsampled to 16 kHz, as a gateway would pass it on
+    from nenv.media import audio
+
+    (tmp_path / "up").mkdir()
+    sf.write(tmp_path / "up" / "a.wav", audio.resample(nb, orig_sr=8000, target_sr=16000), 16000)
+    up = str(tmp_path / "up" / "a.wav")
+    res = run.invoke(app, ["measures", str(tmp_path / "tb"), str(tmp_path / "up"), "--reference", str(ARCTIC[0]), "--out", str(tmp_path / "m3"), "--baseline", up], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    assert {(r["a"], r["b"]) for r in csv.DictReader(open(tmp_path / "m3" / "versus.csv"))} == {(str(tmp_path / "tb" / "a.wav"), up)}
+    res = run.invoke(app, ["measures", str(tmp_path / "tb"), "--reference", str(ARCTIC[0]), "--baseline", up])
+    assert res.exit_code == 2 and "is not one of the outputs scored" in res.stderr
 
 
 def test_the_figure_draws_only_pairs_with_clips_on_both_sides(tmp_path):

@@ -259,6 +259,7 @@ def measures(
     max_offset_s: Annotated[float, typer.Option(min=0.01, max=60.0, help="Search an output's offset against its reference within this many seconds either way.")] = 2.0,
     channel: Annotated[Optional[int], typer.Option("--channel", min=0, help="Channel of multichannel files to use (0 = first); mono files are read as they are.")] = None,
     mix: Annotated[bool, typer.Option("--mix", help="Average the channels of multichannel files.")] = False,
+    baseline: Annotated[Optional[Path], typer.Option(help="The output (as named here) that holds no added band, to compare the others with head to head; default: the one 8 kHz output, if there is one.")] = None,
     jobs: JobsOpt = 1,
 ) -> None:
     """Score recordings you already have (from nenv or any other system) against wideband originals, after aligning them in time and level."""
@@ -269,6 +270,9 @@ def measures(
         output_folder(out, create=False)
     group_table = ev.read_groups(groups) if groups is not None else None
     work, notes = pairs.plan(outputs, reference)
+    if baseline is not None and str(baseline) not in {p.system for p in work}:
+        names = list(dict.fromkeys(p.system for p in work))
+        raise InputError(f"--baseline {baseline} is not one of the outputs scored ({', '.join(names[:4])}{', ...' if len(names) > 4 else ''}): name a file or folder as given")
     for n in notes:
         _say(f"nenv: note: {n}")
     with _progress() as bar:
@@ -287,7 +291,7 @@ def measures(
     md = pairs.to_markdown(rows, avg)
     blanks = pairs.blank_notes(rows)
     # with the unextended input among the outputs (one 8 kHz output): every other output against it
-    base = pairs.unextended_outputs(rows)
+    base = [str(baseline)] if baseline is not None else pairs.unextended_outputs(rows)
     named = list(dict.fromkeys(r.pair.system for r in rows if r.scores is not None))
     heads = versus.compare([(r.pair.system, r.pair.clip, r.scores) for r in rows if r.scores is not None], versus.pairs_to_compare(named, baseline=base[0], default=None), group_table) if len(base) == 1 else []
     vs_md = versus.to_markdown(heads) if heads else ""
