@@ -100,7 +100,7 @@ def _wilcoxon(d: np.ndarray) -> float:
 def _fmt(h: HeadToHead) -> list[str]:
     iv = h.difference
     ci = f"{iv.mean:+.2f} [{iv.low:+.2f}, {iv.high:+.2f}]" if np.isfinite(iv.low) else (f"{iv.mean:+.2f}" if iv.n else "-")
-    p = f"{h.wilcoxon_p:.3f}" if np.isfinite(h.wilcoxon_p) else "-"
+    p = ("<0.001" if h.wilcoxon_p < 0.001 else f"{h.wilcoxon_p:.3f}") if np.isfinite(h.wilcoxon_p) else "-"
     return [f"{h.better} of {h.clips}" if h.clips else "-", ci, p]
 
 
