@@ -237,15 +237,7 @@ def evaluate(
     write_text(out / "table.md", md + "\n" + ev.MEASURES_NOTE + "".join(f"\nNote: {b}.\n" for b in blanks) + (f"\n{vs_md}\n{versus.NOTE}" if heads else ""))
     panels = [[("reference", c.reference)] + list(c.outputs.items()) for c in clips[:4]]
     spectrogram_grid(panels, out / "spectrograms.png", title="  |  ".join(f"{c.name} ({c.law})" for c in clips[:4]))
-    typer.echo(md)
-    typer.echo(ev.MEASURES_NOTE)
-    if heads:
-        typer.echo(vs_md)
-        typer.echo(versus.NOTE)
-    for b in blanks:
-        _say(f"nenv: note: {b}")
-    for line in versus.summary(heads):
-        _say(f"nenv: {line}")
+    _show([md, ev.MEASURES_NOTE], vs_md, blanks, versus.summary(heads))
     _say(f"wrote {out / 'table.csv'}, {out / 'table.md'}" + (f", {out / 'versus.csv'}, {out / 'versus.png'}" if heads else "") + f", {out / 'spectrograms.png'}")
 
 
@@ -295,16 +287,7 @@ def measures(
     named = list(dict.fromkeys(r.pair.system for r in rows if r.scores is not None))
     heads = versus.compare([(r.pair.system, r.pair.clip, r.scores) for r in rows if r.scores is not None], versus.pairs_to_compare(named, baseline=base[0], default=None), group_table) if len(base) == 1 else []
     vs_md = versus.to_markdown(heads) if heads else ""
-    typer.echo(md)
-    typer.echo(pairs.ALIGN_NOTE)
-    typer.echo(ev.MEASURES_NOTE)
-    if heads:
-        typer.echo(vs_md)
-        typer.echo(versus.NOTE)
-    for b in blanks:
-        _say(f"nenv: note: {b}")
-    for line in versus.summary(heads, baseline=base[0] if base else versus.BASELINE):
-        _say(f"nenv: {line}")
+    _show([md, pairs.ALIGN_NOTE, ev.MEASURES_NOTE], vs_md, blanks, versus.summary(heads, baseline=base[0] if base else versus.BASELINE))
     if out is not None:
         output_folder(out)
         write_text(out / "table.csv", pairs.to_csv(rows, avg, group_table))
@@ -319,6 +302,19 @@ def measures(
         _say(f"wrote {', '.join(map(str, wrote))}" + (f", {out / 'alignment.png'} ({count(drawn, 'output')} aligned with more than one offset and gain)" if drawn else ""))
     if failed:
         raise typer.Exit(1)
+
+
+def _show(texts: list[str], head_to_head: str, blanks: list[str], verdicts: list[str]) -> None:
+    """The tables and their notes on stdout (then the head-to-head table and its note, if any); the
+    blank-value notes and one line per system against the baseline on stderr."""
+    from nenv.report.versus import NOTE
+
+    for t in texts + ([head_to_head, NOTE] if head_to_head else []):
+        typer.echo(t)
+    for b in blanks:
+        _say(f"nenv: note: {b}")
+    for line in verdicts:
+        _say(f"nenv: {line}")
 
 
 def _unknown_clips(clips: set[str], group_table: Optional[dict], groups: Optional[Path]) -> None:
