@@ -80,23 +80,6 @@ def _band(y: np.ndarray) -> np.ndarray:
     return signal.sosfiltfilt(sos, y)
 
 
-def _lag(c: np.ndarray, lags: np.ndarray, lo: int, hi: int) -> tuple[int, float]:
-    """The lag in [lo, hi] of the largest value of the correlation ``c`` (at ``lags``), and that value."""
-    inside = (lags >= lo) & (lags <= hi)
-    if not np.any(inside):
-        return 0, 0.0
-    i = int(np.argmax(np.where(inside, c, -np.inf)))
-    return int(lags[i]), float(c[i])
-
-
-def _xcorr(ref: np.ndarray, out: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Cross-correlation of ``out`` against ``ref`` at every lag (positive: ``out`` late), normalised
-    by the two signals' energies."""
-    norm = np.sqrt(np.sum(out * out) * np.sum(ref * ref))
-    c = signal.correlate(out, ref, mode="full", method="fft") / (norm if norm > 0 else 1.0)
-    return c, signal.correlation_lags(out.size, ref.size, mode="full")
-
-
 def _envelope(band: np.ndarray) -> np.ndarray:
     n = band.size // ENVELOPE_BLOCK * ENVELOPE_BLOCK
     e = np.sqrt(np.mean(band[:n].reshape(-1, ENVELOPE_BLOCK) ** 2, axis=1))
