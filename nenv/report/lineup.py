@@ -236,8 +236,8 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     slope = _slope(which, lags, run)
     flat = lags.astype(float)  # the lags with the jumps taken out: each run moved onto the first
     if slope is not None:
-        at = np.array([np.median((lags - slope * which)[run == k]) for k in range(run[-1] + 1)]) if run.size else np.zeros(0)
-        flat = flat - (at[run] - at[0])
+        base = np.array([np.median((lags - slope * which)[run == k]) for k in range(run[-1] + 1)])  # each run's lag at segment 0
+        flat = flat - (base[run] - base[0])
     drift = rate = None
     if r.size >= DRIFT_MIN_S * WB_SR and flat.size >= 3:
         third = max(1, flat.size // 3)
@@ -249,10 +249,9 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
         at = _place(r, o_from, int(which[i]) * SEGMENT, int(which[i + 1] + 1) * SEGMENT, int(lags[i]), int(lags[i + 1]))
         if at is not None and (not pieces or at > pieces[-1][0]):
             pieces.append((at, int(lags[i + 1])))
+    start = max(0, -offset)  # r[0] is this sample of the reference
     if pieces:  # offsets from the reference's first sample: each piece's lag is its first segment's
-        start = max(0, -offset)
         pieces = [(0, offset + int(lags[0]))] + [(start + at, offset + lag) for at, lag in pieces]
-    start = max(0, -offset)
     segments = tuple((float((start + (k + 0.5) * SEGMENT) / WB_SR), float(1000 * lag / WB_SR)) for k, lag in zip(which, lags))
     return Alignment(offset, float(gain_db), similarity, drift, rate, tuple(pieces), segments)
 
