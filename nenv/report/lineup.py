@@ -43,6 +43,10 @@ JUMP_MIN_MS = 2.0  # ms: a step this large between neighbouring segments' lags (
 JUMP_BLOCK = 80  # samples at 16 kHz (5 ms): a jump placed nearer than this to the end of its search is none
 LEVEL_TRACK_DB = 3.0  # dB: a spread of the output's level re the reference's over the call larger than this
 # (one-second segments, a median of three) is evened out before scoring (our rule; an automatic level control)
+MATCH_BLOCK = 320  # samples at 16 kHz (20 ms, a packet): blocks checked for speech the output does not hold
+MATCH_ACTIVE_DB = 20.0  # dB: blocks of the reference's band within this of its loudest are checked
+MATCH_MIN_CORRELATION = 0.5  # a checked block whose bands correlate less than this does not match (our rule)
+MATCH_NOTE = 0.02  # a share of unmatched blocks from which a note says so
 LEVEL_TRACK_SPEECH_DB = 15.0  # dB: segments of the reference's band within this of its loudest set the track
 
 
@@ -310,6 +314,22 @@ def level_track(r: np.ndarray, o: np.ndarray, *, levels: tuple[np.ndarray, np.nd
     return np.interp(np.arange(o.size), at, g)
 
 
+def unmatched(r: np.ndarray, o: np.ndarray) -> tuple[int, int]:
+    """Of an aligned pair's MATCH_BLOCK blocks where the reference's band is within MATCH_ACTIVE_DB of
+    its loudest: how many the output's band does not follow (normalised correlation under
+    MATCH_MIN_CORRELATION: a lost packet, its concealment, or a system that changed the telephone
+    band), and how many were checked."""
+    rb, ob = _band(r), _band(o)
+    n = rb.size // MATCH_BLOCK
+    if n == 0:
+        return 0, 0
+    rr, oo = rb[: n * MATCH_BLOCK].reshape(n, MATCH_BLOCK), ob[: n * MATCH_BLOCK].reshape(n, MATCH_BLOCK)
+    er, eo = np.sum(rr * rr, axis=1), np.sum(oo * oo, axis=1)
+    checked = er >= er.max() * 10 ** (-MATCH_ACTIVE_DB / 10) if er.max() > 0 else np.zeros(n, bool)
+    corr = np.sum(rr * oo, axis=1) / np.sqrt(np.maximum(er * eo, 1e-300))
+    return int(np.count_nonzero(checked & (corr < MATCH_MIN_CORRELATION))), int(np.count_nonzero(checked))
+
+
 def undrift(out: np.ndarray, rate_ppm: float) -> np.ndarray:
     """``out`` resampled to undo a clock running ``rate_ppm`` long: to ``len(out) / (1 + rate)``
     samples through the FFT (band-limited, any ratio)."""
@@ -386,6 +406,12 @@ def line_up(ref: np.ndarray, out: np.ndarray, *, level_dbov: float, max_offset_s
             "(an automatic level control?): evened out second by second before scoring"
         )
         r, o = r * k, o * (k / 10 ** (track / 20))
+    bad, checked = unmatched(r, o)
+    if checked and bad >= MATCH_NOTE * checked:
+        notes.append(
+            f"{bad} of the {checked} loudest 20 ms blocks ({100 * bad / checked:.0f}%) do not follow the reference in the telephone band "
+            "(lost packets or their concealment, or a system that changed that band): they are scored as they are"
+        )
     if a.drift_ms is not None and abs(a.drift_ms) > DRIFT_NOTE_MS:
         notes.append(f"the offset still drifts by {a.drift_ms:+.1f} ms from the first to the last third: the spectral measures are less reliable")
     return LinedUp(r, o, a, found, total, levels, track is not None, tuple(notes))

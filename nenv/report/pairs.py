@@ -243,4 +243,5 @@ is resampled to the reference's clock first (a note gives the rate in ppm). Wher
 jumps (a jitter buffer's playout adjustments; "jumps" counts them), each stretch is scored at its own
 offset and what only one side holds is left out (a note says where and by how much). An output whose
 level moves by more than 3 dB over the call (one-second segments) is evened out second by second.
+Lost packets are counted (20 ms blocks of the loudest speech the output does not follow), not cut out.
 """
