@@ -11,7 +11,7 @@ import soundfile as sf
 from typer.testing import CliRunner
 
 from nenv.cli import app
-from nenv.report import lineup, pairs
+from nenv.report import lineup, pairs, telband
 from tests.conftest import ARCTIC
 
 runner = CliRunner()
@@ -236,7 +236,7 @@ def test_same_speech_is_told_from_other_speech_on_the_heldout_set():
     # nothing to undo where nothing happened: no jump, and the channel's noise is not taken for a moving level
     # (measured: without the noise floors taken out, 3 of these clips at 10 dB SNR were; with them none at 20, 10 or 5 dB)
     assert not any(a.pieces for a in found)
-    assert all(lineup.level_track(*lineup.splice(r, o, a)) is None for r, o, a in zip(refs, outs, found))
+    assert all(telband.level_track(*lineup.splice(r, o, a)) is None for r, o, a in zip(refs, outs, found))
 
 
 @pytest.mark.parametrize("offset", [0, 5, -7])
@@ -323,13 +323,13 @@ def test_lost_packets_in_speech_are_counted(extended):
     ref, _, y = extended
     gap = np.zeros(16000)
     r, o = np.concatenate([ref, gap] * 4), np.concatenate([y, gap] * 4)
-    blk = lineup.MATCH_BLOCK
-    e = np.sum(lineup._band(r)[: r.size // blk * blk].reshape(-1, blk) ** 2, axis=1)
+    blk = telband.MATCH_BLOCK
+    e = np.sum(telband.band(r)[: r.size // blk * blk].reshape(-1, blk) ** 2, axis=1)
     lost = np.argsort(e)[::-1][:40:3][:12]  # among the loudest blocks, not all side by side
     holed = o.copy()
     for k in lost:
         holed[k * blk : (k + 1) * blk] = 0.0
-    assert lineup.unmatched(r, o)[0] == 0 and lineup.unmatched(r, holed)[0] == 12
+    assert telband.unmatched(r, o)[0] == 0 and telband.unmatched(r, holed)[0] == 12
     notes = lineup.line_up(r, holed, level_dbov=-26).notes
     assert sum(n.startswith("12 of the ") and "do not follow the reference" in n for n in notes) == 1, notes
     assert not any("do not follow" in n for n in lineup.line_up(r, o, level_dbov=-26).notes)
@@ -382,9 +382,9 @@ def test_a_level_that_moves_over_the_call_is_evened_out(extended, tmp_path, monk
     assert got.scores.level_error_high == pytest.approx(same.scores.level_error_high, abs=0.3)
     assert got.scores.visqol == pytest.approx(same.scores.visqol, abs=0.05)
     assert got.scores.pesq_wb == pytest.approx(same.scores.pesq_wb, abs=0.05)
-    assert got.evened and np.ptp([v for _, v in got.levels]) > lineup.LEVEL_TRACK_DB and not same.evened
+    assert got.evened and np.ptp([v for _, v in got.levels]) > telband.LEVEL_TRACK_DB and not same.evened
     if shape == "step":  # the same pair with one gain for the whole call
-        monkeypatch.setattr(lineup, "LEVEL_TRACK_DB", np.inf)
+        monkeypatch.setattr(telband, "LEVEL_TRACK_DB", np.inf)
         one = pairs.score(pairs.Pair("ref", "moved", tmp_path / "moved.wav", tmp_path / "ref.wav"))
         assert abs(one.scores.level_error_high - same.scores.level_error_high) > 1.0
 
@@ -392,7 +392,7 @@ def test_a_level_that_moves_over_the_call_is_evened_out(extended, tmp_path, monk
 PARALLEL_SCRIPT = """
 import sys
 from pathlib import Path
-from nenv.report import lineup, pairs
+from nenv.report import lineup, pairs, telband
 root = Path(sys.argv[1])
 work, _ = pairs.plan([root / "nb", root / "sys"], root / "ref")
 first = pairs.score(work[0])  # this process starts its PESQ worker and ViSQOL before the pool forks

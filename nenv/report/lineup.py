@@ -17,19 +17,17 @@ from scipy import signal
 
 from nenv.dsp import channel
 from nenv.errors import InputError
+from nenv.report import telband
+from nenv.report.telband import LEVEL_ACTIVE_DB, LEVEL_BLOCK, SEGMENT, band, level_track, segment_levels, unmatched
 from nenv.settings import WB_SR
 from nenv.words import count
 
-ALIGN_BAND_HZ = (500.0, 3000.0)  # Hz: inside the pass band of any telephone channel (ITU-T G.712: 300-3400 Hz)
 MAX_OFFSET_S = 2.0  # s: default search range of the offset, either way
 ENVELOPE_BLOCK = 160  # samples at 16 kHz (10 ms): blocks of the band envelopes that find the coarse offset (longer
 # than a pitch period, whose pulses would otherwise give peaks one period off)
-SEGMENT = WB_SR  # samples (1 s): segments whose waveform correlation says whether two recordings hold the same speech
 MIN_CORRELATION = 0.5  # median segment correlation below which a pair is refused (our rule; measured in tests/test_pairs.py)
 MIN_OVERLAP_S = 0.5  # s: shortest aligned overlap scored (ViSQOL needs about this much)
 MIN_SHARED = 0.5  # offsets at which the two share less than this part of the shorter one are not considered
-LEVEL_BLOCK = 320  # samples at 16 kHz (20 ms): blocks for the level match
-LEVEL_ACTIVE_DB = 30.0  # dB: blocks of the reference's band within this of its loudest block set the gain
 DRIFT_MIN_S = 6.0  # s: an overlap at least this long is also checked for drift (offset of its first vs last third)
 DRIFT_NOTE_MS = 1.0  # ms: a drift larger than this is reported and undone (two clocks that differ)
 UNDRIFT_PASSES = 3  # resampling passes at most
@@ -41,13 +39,6 @@ LAG_MARGIN = 0.1  # period is at least 2.5 ms) by this much correlation to count
 # measured: 0.05-0.73 on real speech through a 10 dB SNR channel, about 0 on a tone or a pulse train)
 JUMP_MIN_MS = 2.0  # ms: a step this large between neighbouring segments' lags (drift removed) is a jump (our rule)
 JUMP_BLOCK = 80  # samples at 16 kHz (5 ms): a jump placed nearer than this to the end of its search is none
-LEVEL_TRACK_DB = 3.0  # dB: a spread of the output's level re the reference's over the call larger than this
-# (one-second segments, a median of three) is evened out before scoring (our rule; an automatic level control)
-MATCH_BLOCK = 320  # samples at 16 kHz (20 ms, a packet): blocks checked for speech the output does not hold
-MATCH_ACTIVE_DB = 20.0  # dB: blocks of the reference's band within this of its loudest are checked
-MATCH_MIN_CORRELATION = 0.5  # a checked block whose bands correlate less than this does not match (our rule)
-MATCH_NOTE = 0.02  # a share of unmatched blocks from which a note says so
-LEVEL_TRACK_SPEECH_DB = 15.0  # dB: segments of the reference's band within this of its loudest set the track
 
 
 @dataclass(frozen=True)
@@ -77,11 +68,6 @@ class Alignment:
     def jumps(self) -> list[tuple[int, int]]:
         """(reference sample, change of the offset in samples) of each jump, in order."""
         return [(self.pieces[i][0], self.pieces[i][1] - self.pieces[i - 1][1]) for i in range(1, len(self.pieces))]
-
-
-def _band(y: np.ndarray) -> np.ndarray:
-    sos = signal.butter(4, ALIGN_BAND_HZ, btype="bandpass", fs=WB_SR, output="sos")
-    return signal.sosfiltfilt(sos, y)
 
 
 def _envelope(band: np.ndarray) -> np.ndarray:
@@ -219,7 +205,7 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     placed to the sample by the waveforms) and, with the jumps taken out, the drift. The gain is the ratio of
     the bands' powers over the blocks where the reference's band is within 30 dB of its loudest block.
     """
-    ref_b, out_b = _band(ref), _band(out)
+    ref_b, out_b = band(ref), band(out)
     coarse, _ = _envelope_lag(_envelope(ref_b), _envelope(out_b), int(round(max_offset_s * WB_SR / ENVELOPE_BLOCK)))
     offset = _fine_lag(ref_b, out_b, coarse * ENVELOPE_BLOCK, int(1.5 * ENVELOPE_BLOCK))
     r, o = overlap(ref_b, out_b, offset)
@@ -278,56 +264,6 @@ def splice(ref: np.ndarray, out: np.ndarray, a: Alignment) -> tuple[np.ndarray, 
             os_.append(out[s + off : e + off])
             r_next, o_next = e, e + off
     return (np.concatenate(rs), np.concatenate(os_)) if rs else (ref[:0], out[:0])
-
-
-def segment_levels(r: np.ndarray, o: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The output's telephone-band level re the reference's, in dB, per one-second segment of an
-    aligned pair ``r``, ``o`` that holds speech (a median of three segments, so one odd segment moves
-    nothing): the segments' centres in samples, and the levels. Each side's noise floor (its power
-    where the reference is quietest) is taken out first and only segments within
-    LEVEL_TRACK_SPEECH_DB of the loudest count, so a noisy channel's quiet stretches do not look louder."""
-    rb, ob = _band(r), _band(o)
-    nb = rb.size // LEVEL_BLOCK
-    n = nb * LEVEL_BLOCK // SEGMENT
-    if n == 0:
-        return np.zeros(0), np.zeros(0)
-    pr = np.mean(rb[: nb * LEVEL_BLOCK].reshape(nb, LEVEL_BLOCK) ** 2, axis=1)
-    po = np.mean(ob[: nb * LEVEL_BLOCK].reshape(nb, LEVEL_BLOCK) ** 2, axis=1)
-    quiet = pr <= np.percentile(pr, 10)
-    per = SEGMENT // LEVEL_BLOCK
-    er = pr[: n * per].reshape(n, per).mean(axis=1) - np.median(pr[quiet])
-    eo = po[: n * per].reshape(n, per).mean(axis=1) - np.median(po[quiet])
-    which = np.flatnonzero((er >= er.max() * 10 ** (-LEVEL_TRACK_SPEECH_DB / 10)) & (eo > 0)) if er.max() > 0 else np.zeros(0, int)
-    g = 10 * np.log10(eo[which] / er[which])
-    g = np.array([np.median(g[max(i - 1, 0) : i + 2]) for i in range(g.size)])
-    return (which + 0.5) * SEGMENT, g
-
-
-def level_track(r: np.ndarray, o: np.ndarray, *, levels: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray | None:
-    """The output's level re the reference's per sample, in dB: :func:`segment_levels` (or ``levels``,
-    what it returned) joined by straight lines (flat beyond the first and last segment); None when
-    there are fewer than three segments or the levels spread by no more than LEVEL_TRACK_DB (one gain
-    then serves, as :func:`align` finds it)."""
-    at, g = segment_levels(r, o) if levels is None else levels
-    if g.size < 3 or np.ptp(g) <= LEVEL_TRACK_DB:
-        return None
-    return np.interp(np.arange(o.size), at, g)
-
-
-def unmatched(r: np.ndarray, o: np.ndarray) -> tuple[int, int]:
-    """Of an aligned pair's MATCH_BLOCK blocks where the reference's band is within MATCH_ACTIVE_DB of
-    its loudest: how many the output's band does not follow (normalised correlation under
-    MATCH_MIN_CORRELATION: a lost packet, its concealment, or a system that changed the telephone
-    band), and how many were checked."""
-    rb, ob = _band(r), _band(o)
-    n = rb.size // MATCH_BLOCK
-    if n == 0:
-        return 0, 0
-    rr, oo = rb[: n * MATCH_BLOCK].reshape(n, MATCH_BLOCK), ob[: n * MATCH_BLOCK].reshape(n, MATCH_BLOCK)
-    er, eo = np.sum(rr * rr, axis=1), np.sum(oo * oo, axis=1)
-    checked = er >= er.max() * 10 ** (-MATCH_ACTIVE_DB / 10) if er.max() > 0 else np.zeros(n, bool)
-    corr = np.sum(rr * oo, axis=1) / np.sqrt(np.maximum(er * eo, 1e-300))
-    return int(np.count_nonzero(checked & (corr < MATCH_MIN_CORRELATION))), int(np.count_nonzero(checked))
 
 
 def undrift(out: np.ndarray, rate_ppm: float) -> np.ndarray:
@@ -407,7 +343,7 @@ def line_up(ref: np.ndarray, out: np.ndarray, *, level_dbov: float, max_offset_s
         )
         r, o = r * k, o * (k / 10 ** (track / 20))
     bad, checked = unmatched(r, o)
-    if checked and bad >= MATCH_NOTE * checked:
+    if checked and bad >= telband.MATCH_NOTE * checked:
         notes.append(
             f"{bad} of the {checked} loudest 20 ms blocks ({100 * bad / checked:.0f}%) do not follow the reference in the telephone band "
             "(lost packets or their concealment, or a system that changed that band): they are scored as they are"
