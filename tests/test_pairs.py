@@ -316,6 +316,25 @@ def test_jumps_of_the_offset_are_undone_before_scoring(extended, tmp_path, ppm):
     assert (tmp_path / "a.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
 
+def test_jumps_that_add_up_beyond_the_search_are_followed(extended):
+    """80 s whose offset grows by 77 ms every 20 s (231 ms in all, beyond the +-150 ms each segment is
+    searched within around the offset found): each segment is searched around its neighbours' lags
+    too, so every jump is found and the lined-up bands match. Searched around the offset alone, the
+    first jump came out 7.5 ms wrong here, and a 3-minute call with eight such jumps was refused ("no
+    common speech", median correlation 0.27)."""
+    ref, _, y = extended
+    gap = np.zeros(16000)
+    tile_r, tile_o = np.concatenate([ref, gap] * 4), np.concatenate([y, gap] * 4)
+    r = np.concatenate([tile_r] * 4)
+    o = np.concatenate([np.concatenate([np.zeros(1234), tile_o])] * 4)
+    a = lineup.align(r, o)
+    assert [d for _, d in a.jumps] == [1234] * 3 and a.correlation > 0.95
+    for (at, _), k in zip(a.jumps, (1, 2, 3)):
+        assert k * tile_r.size - 16000 <= at <= k * tile_r.size  # in the pause before the next tile
+    u = lineup.line_up(r, o, level_dbov=-26)
+    assert np.corrcoef(telband.band(u.ref), telband.band(u.out))[0, 1] > 0.999
+
+
 def test_lost_packets_in_speech_are_counted(extended):
     """Twelve 20 ms packets of the loudest speech lost (zeros) in 20 s: a note counts them, and only
     them; the same output without losses gets no note (nor does any held-out clip's extension through a

@@ -123,34 +123,56 @@ def overlap(ref: np.ndarray, out: np.ndarray, offset: int) -> tuple[np.ndarray, 
     return ref[:n], out[:n]
 
 
+def _lag_near(seg: np.ndarray, o: np.ndarray, start: int, centre: int, reach: int) -> tuple[int, float, float]:
+    """The lag within ``centre`` +- ``reach`` of the largest correlation of ``seg`` with ``o`` (``seg[0]``
+    meets ``o[start + lag]``), each lag's correlation normalised by the energies of the two stretches it
+    compares; that correlation; and by how much it beats the best one further than LAG_UNIQUE from it
+    (near 0 for a tone or a held vowel, whose lag is ambiguous by whole periods)."""
+    lo = start + centre - reach
+    window = np.zeros(seg.size + 2 * reach)  # o[lo : lo + window.size], zero outside o
+    a, b = max(lo, 0), min(lo + window.size, o.size)
+    if b > a:
+        window[a - lo : b - lo] = o[a:b]
+    c = signal.correlate(window, seg, mode="valid")  # c[j]: lag centre - reach + j
+    cum = np.concatenate([[0.0], np.cumsum(window * window)])
+    norm = np.sqrt(np.sum(seg * seg) * (cum[seg.size :] - cum[: -seg.size]))
+    c = np.where(norm > 0, c / np.where(norm > 0, norm, 1.0), 0.0)
+    j = int(np.argmax(c))
+    far = np.abs(np.arange(c.size) - j) > LAG_UNIQUE
+    return centre - reach + j, float(c[j]), float(c[j] - c[far].max()) if far.any() else 1.0
+
+
 def _segment_lags(r: np.ndarray, o: np.ndarray, reach: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """For each SEGMENT of the reference band ``r`` that holds speech (within 30 dB of the loudest
-    segment): its index, the lag within +-``reach`` of the largest waveform correlation with the output
-    band ``o`` (sample ``i`` of ``o`` meets sample ``i`` of ``r`` at lag 0), each lag's correlation
-    normalised by the energies of the two stretches it compares, that correlation, and by how much it
-    beats the best one further than LAG_UNIQUE from it (near 0 for a tone or a held vowel, whose lag
-    is ambiguous by whole periods). Short segments keep the correlation near 1 for the same speech even
-    when two clocks drift or a jitter buffer moves the offset."""
+    segment): its index, and :func:`_lag_near`'s lag, correlation and margin against the output band
+    ``o`` (sample ``i`` of ``o`` meets sample ``i`` of ``r`` at lag 0). Each lag is searched within
+    +-``reach`` of 0 and, where a neighbour's clear lag is more than ``reach`` / 2 away from 0, around
+    that lag too (the better kept), first forward then backward, so jumps and drift that add up beyond
+    ``reach`` are followed. Short
+    segments keep the correlation near 1 for the same speech even when two clocks drift or a jitter
+    buffer moves the offset."""
     n = r.size // SEGMENT
     if n == 0:
         return np.zeros(0, int), np.zeros(0, int), np.zeros(0), np.zeros(0)
     e = np.sum(r[: n * SEGMENT].reshape(n, SEGMENT) ** 2, axis=1)
     which = np.flatnonzero(e >= e.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)) if e.max() > 0 else np.zeros(0, int)
-    padded = np.concatenate([np.zeros(reach), o[: n * SEGMENT + reach], np.zeros(max(0, n * SEGMENT + reach - o.size))])
-    lags, corrs, margins = [], [], []
-    for k in which:
-        seg = r[k * SEGMENT : (k + 1) * SEGMENT]
-        window = padded[k * SEGMENT : (k + 1) * SEGMENT + 2 * reach]  # o[k * SEGMENT - reach : (k + 1) * SEGMENT + reach]
-        c = signal.correlate(window, seg, mode="valid")  # c[j]: lag j - reach
-        cum = np.concatenate([[0.0], np.cumsum(window * window)])
-        norm = np.sqrt(np.sum(seg * seg) * (cum[SEGMENT:] - cum[:-SEGMENT]))
-        c = np.where(norm > 0, c / np.where(norm > 0, norm, 1.0), 0.0)
-        j = int(np.argmax(c))
-        lags.append(j - reach)
-        corrs.append(float(c[j]))
-        far = np.abs(np.arange(c.size) - j) > LAG_UNIQUE
-        margins.append(float(c[j] - c[far].max()) if far.any() else 1.0)
-    return which, np.array(lags, int), np.array(corrs), np.array(margins)
+    segs = [r[k * SEGMENT : (k + 1) * SEGMENT] for k in which]
+    found = [_lag_near(seg, o, k * SEGMENT, 0, reach) for seg, k in zip(segs, which)]
+
+    def clear(f: tuple[int, float, float]) -> bool:
+        return f[1] >= MIN_CORRELATION and f[2] >= LAG_MARGIN
+
+    for order in (range(len(found)), range(len(found) - 1, -1, -1)):
+        last = None  # the lag of the last clear segment met in this direction
+        for i in order:
+            if last is not None and abs(last) > reach // 2:  # where a search around 0 may not reach
+                again = _lag_near(segs[i], o, which[i] * SEGMENT, last, reach)
+                if clear(again) and again[1] > found[i][1]:
+                    found[i] = again
+            if clear(found[i]):
+                last = found[i][0]
+    lags, corrs, margins = (np.array(v) for v in zip(*found)) if found else (np.zeros(0),) * 3
+    return which, lags.astype(int), corrs.astype(float), margins.astype(float)
 
 
 def _steps(which: np.ndarray, lags: np.ndarray) -> np.ndarray:
@@ -200,7 +222,8 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     Both are band-passed to 500-3000 Hz. The offset is found coarsely from the bands' envelopes (RMS in
     10 ms blocks, whose correlation survives noise, coding and clock drift), then to the sample from
     the waveforms within 15 ms of it. Whether the two hold the same speech is judged on the waveforms
-    of one-second segments (median of their best correlations within +-150 ms); their lags also give
+    of one-second segments (median of their best correlations within +-150 ms of the offset or of
+    their neighbours' lags); their lags also give
     the jumps of the offset (a step of at least 2 ms between neighbours once the drift is taken out,
     placed to the sample by the waveforms) and, with the jumps taken out, the drift. The gain is the ratio of
     the bands' powers over the blocks where the reference's band is within 30 dB of its loudest block.
@@ -234,11 +257,12 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
         drift = float(1000.0 * (np.median(flat[-third:]) - np.median(flat[:third])) / WB_SR)
         if slope is not None:
             rate = float(1e6 * slope / SEGMENT)
-    pieces = []
+    pieces, now = [], int(lags[0]) if lags.size else 0
     for i in np.flatnonzero(steps):
-        at = _place(r, o_from, int(which[i]) * SEGMENT, int(which[i + 1] + 1) * SEGMENT, int(lags[i]), int(lags[i + 1]))
-        if at is not None and (not pieces or at > pieces[-1][0]):
+        at = _place(r, o_from, int(which[i]) * SEGMENT, int(which[i + 1] + 1) * SEGMENT, now, int(lags[i + 1]))
+        if at is not None and int(lags[i + 1]) != now and (not pieces or at > pieces[-1][0]):
             pieces.append((at, int(lags[i + 1])))
+            now = int(lags[i + 1])
     start = max(0, -offset)  # r[0] is this sample of the reference
     if pieces:  # offsets from the reference's first sample: each piece's lag is its first segment's
         pieces = [(0, offset + int(lags[0]))] + [(start + at, offset + lag) for at, lag in pieces]
