@@ -10,7 +10,7 @@ and the numbers measured with them: ``docs/scoring-captured-calls.md``.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy import signal
@@ -216,6 +216,18 @@ def _place(r: np.ndarray, o: np.ndarray, lo: int, hi: int, before: int, after: i
     return None if b < JUMP_BLOCK or b > idx.size - JUMP_BLOCK else lo + b
 
 
+def _gain_db(r: np.ndarray, o: np.ndarray) -> float:
+    """The output band's power re the reference band's over the LEVEL_BLOCK blocks where the reference's
+    is within LEVEL_ACTIVE_DB of its loudest, in dB (0 for a silent reference)."""
+    n = r.size // LEVEL_BLOCK * LEVEL_BLOCK
+    e_ref = np.sum(r[:n].reshape(-1, LEVEL_BLOCK) ** 2, axis=1)
+    e_out = np.sum(o[:n].reshape(-1, LEVEL_BLOCK) ** 2, axis=1)
+    if not e_ref.size or e_ref.max() <= 0:
+        return 0.0
+    active = e_ref >= e_ref.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)
+    return float(10 * np.log10(max(e_out[active].sum(), 1e-300) / max(e_ref[active].sum(), 1e-300)))
+
+
 def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_S) -> Alignment:
     """Offset, level difference and drift of ``out`` against ``ref`` (both 16 kHz, mono).
 
@@ -232,13 +244,9 @@ def align(ref: np.ndarray, out: np.ndarray, *, max_offset_s: float = MAX_OFFSET_
     coarse, _ = _envelope_lag(_envelope(ref_b), _envelope(out_b), int(round(max_offset_s * WB_SR / ENVELOPE_BLOCK)))
     offset = _fine_lag(ref_b, out_b, coarse * ENVELOPE_BLOCK, int(1.5 * ENVELOPE_BLOCK))
     r, o = overlap(ref_b, out_b, offset)
-    n = r.size // LEVEL_BLOCK * LEVEL_BLOCK
-    if n == 0:
+    if r.size < LEVEL_BLOCK:
         return Alignment(offset, 0.0, 0.0)
-    e_ref = np.sum(r[:n].reshape(-1, LEVEL_BLOCK) ** 2, axis=1)
-    e_out = np.sum(o[:n].reshape(-1, LEVEL_BLOCK) ** 2, axis=1)
-    active = e_ref >= e_ref.max() * 10 ** (-LEVEL_ACTIVE_DB / 10)
-    gain_db = 10 * np.log10(max(e_out[active].sum(), 1e-300) / max(e_ref[active].sum(), 1e-300)) if e_ref.max() > 0 else 0.0
+    gain_db = _gain_db(r, o)
     o_from = out_b[max(offset, 0) :]  # o_from[i] meets r[i] at the offset found
     which, lags, corrs, margins = _segment_lags(r, o_from, int(SEGMENT_REACH_S * WB_SR))
     similarity = float(np.median(corrs)) if corrs.size else 0.0
@@ -343,7 +351,8 @@ def line_up(ref: np.ndarray, out: np.ndarray, *, level_dbov: float, max_offset_s
             f"below {MIN_CORRELATION}): not the same recording, or offset further (raise --max-offset-s)"
         )
     r, o = splice(ref, out, a)
-    if a.pieces:
+    if a.pieces:  # the gain found at one offset counted the other pieces' mismatched blocks: again, lined up
+        a = replace(a, gain_db=_gain_db(band(r), band(o)))
         said = ", ".join(f"{1000 * d / WB_SR:+.1f} ms at {at / WB_SR:.2f} s" for at, d in a.jumps)
         notes.append(
             f"the output's offset jumps {count(len(a.jumps), 'time')} ({said}; a jitter buffer's playout adjustments): "
