@@ -157,11 +157,8 @@ def versus_grid(items: Sequence, pairs: Sequence[tuple[str, str]], path: str | o
     ``items``: ``(system, clip, scores)``. Returns whether anything was drawn (nothing is written when
     no pair has a clip on both sides)."""
     from nenv.report import versus
-    from nenv.report.evaluate import group_of
 
-    by = {(s, c): sc for s, c, sc in items}
-    clips = list(dict.fromkeys(c for _, c, _ in items))
-    shown = [(a, b) for a, b in pairs if any((a, c) in by and (b, c) in by for c in clips)]
+    shown = [(a, b) for a, b in pairs if any(versus.differences(items, a, b, m) for m in versus.DECIDING)]
     if not shown:
         return False
     import matplotlib
@@ -170,18 +167,13 @@ def versus_grid(items: Sequence, pairs: Sequence[tuple[str, str]], path: str | o
     import matplotlib.pyplot as plt
 
     p = check_output(path, suffixes=FIGURE_SUFFIXES)
-    names = sorted({group_of(c, groups) or "(no group)" for c in clips}) if groups else [None]
-    colours = dict(zip(names, ["tab:red", "tab:blue", "tab:green", "tab:purple", "tab:orange", "tab:brown"] * 10))
+    colours = dict(zip(sorted(set(groups.values())) if groups else [], ["tab:red", "tab:blue", "tab:green", "tab:purple", "tab:orange", "tab:brown"] * 10))
     colours["(no group)"] = colours[None] = "0.45"
     fig, axes = plt.subplots(1, len(versus.DECIDING), figsize=(4.0 * len(versus.DECIDING), 0.42 * len(shown) + 1.3), sharey=True, squeeze=False, layout="constrained")
     for ax, (m, (label, sign)) in zip(axes[0], versus.DECIDING.items()):
         for y, (a, b) in enumerate(shown):
-            for c in clips:
-                if (a, c) in by and (b, c) in by:
-                    d = getattr(by[a, c], m) - getattr(by[b, c], m)
-                    if np.isfinite(d):
-                        g = group_of(c, groups) or "(no group)" if groups else None
-                        ax.plot(d, -y, "o", ms=3.5, alpha=0.7, color=colours[g], label=g)
+            for _, g, d in versus.differences(items, a, b, m, groups):
+                ax.plot(d, -y, "o", ms=3.5, alpha=0.7, color=colours[g], label=g)
         ax.axvline(0.0, color="0.3", lw=0.8)
         ax.set_title(f"{label}: a - b ({'higher' if sign > 0 else 'lower'} is better for a)", fontsize=8)
         ax.grid(axis="x", alpha=0.3)

@@ -71,19 +71,30 @@ def pairs_to_compare(systems: Sequence[str], *, baseline: str = BASELINE, defaul
     return out
 
 
+def differences(items: Sequence[tuple[str, str, Scores]], a: str, b: str, measure: str, groups: dict[str, str] | None = None) -> list[tuple[str, str | None, float]]:
+    """``(clip, group, a's score minus b's)`` on ``measure`` for every clip of ``(system, clip, scores)``
+    items that both systems were scored on and where both values are finite, in the clips' order;
+    the group is None without ``groups`` (clip -> group), "(no group)" for a clip it does not name."""
+    by = {(s, c): sc for s, c, sc in items}
+    out = []
+    for c in dict.fromkeys(c for _, c, _ in items):
+        if (a, c) in by and (b, c) in by:
+            d = getattr(by[a, c], measure) - getattr(by[b, c], measure)
+            if np.isfinite(d):
+                out.append((c, (group_of(c, groups) or "(no group)") if groups else None, float(d)))
+    return out
+
+
 def compare(items: Sequence[tuple[str, str, Scores]], pairs: Sequence[tuple[str, str]], groups: dict[str, str] | None = None, *, channel: str = "") -> list[HeadToHead]:
     """Head-to-head results from ``(system, clip, scores)`` items, for each pair, each deciding measure
     and (with ``groups``, clip -> group) each group after all clips; ``channel`` labels them."""
-    by = {(s, c): sc for s, c, sc in items}
-    clips = list(dict.fromkeys(c for _, c, _ in items))
-    label = {c: (group_of(c, groups) or "(no group)") if groups else None for c in clips}
+    names = sorted({(group_of(c, groups) or "(no group)") for _, c, _ in items}) if groups else []
     out = []
     for a, b in pairs:
-        for group in [None, *sorted({g for g in label.values() if g is not None})]:
-            mine = [c for c in clips if (a, c) in by and (b, c) in by and (group is None or label[c] == group)]
+        diffs = {m: differences(items, a, b, m, groups) for m in DECIDING}
+        for group in [None, *names]:
             for m, (_, sign) in DECIDING.items():
-                d = np.array([getattr(by[a, c], m) - getattr(by[b, c], m) for c in mine], dtype=float)
-                d = d[np.isfinite(d)]
+                d = np.array([v for _, g, v in diffs[m] if group is None or g == group])
                 out.append(HeadToHead(a, b, m, group, int(np.sum(sign * d > 0)), Interval.of(d), _wilcoxon(d), channel))
     return out
 
