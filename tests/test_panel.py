@@ -292,8 +292,8 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
 
 
 def test_page_runs_in_firefox(tmp_path):
-    """The same page in Firefox ESR (Debian's), driven over its Marionette protocol: every stimulus decodes,
-    the listener goes through every screen and slider, and the results come out complete. (Headless Firefox
+    """The same page in Firefox ESR (Debian's), driven over its Marionette protocol, in both designs: every
+    stimulus decodes, the listener goes through every screen, slider and pair, and the results come out complete. (Headless Firefox
     on a machine without a sound device keeps its audio context suspended, so playback itself is checked
     in the Chromium test only.)"""
     import socket
@@ -339,6 +339,22 @@ def test_page_runs_in_firefox(tmp_path):
             m.find_element("id", "next").click()
             trials += 1
         results = json.loads(m.execute_script("return JSON.stringify(window.wrappedJSObject.results())"))
+        # the pairs design (ITU-T P.800 Annex E) in the same browser: every pair played and answered
+        pairs_key = panel.prepare([ARCTIC[0]], tmp_path / "pairs", systems=["imaging"], design="ccr")
+        m.navigate((tmp_path / "pairs" / "page" / "index.html").as_uri())
+        m.find_element("id", "listener").send_keys("fox")
+        t0 = time.time()
+        while m.execute_script("return document.getElementById('start').disabled") and time.time() - t0 < 60:
+            time.sleep(0.2)
+        for button in ("start", "level-play", "level-stop", "level-next", "training-next"):
+            m.find_element("id", button).click()
+        pairs = 0
+        while m.execute_script("return document.getElementById('pair').classList.contains('on')"):
+            m.find_element("id", "pair-play").click()
+            m.find_element("css selector", "#categories input[value='-2']").click()
+            m.find_element("id", "pair-next").click()
+            pairs += 1
+        pair_results = json.loads(m.execute_script("return JSON.stringify(window.wrappedJSObject.results())"))
         m.delete_session()
     finally:
         ff.kill()
@@ -346,3 +362,5 @@ def test_page_runs_in_firefox(tmp_path):
     assert trials == 2 and results["listener"] == "fox" and results["panel"] == key["panel"]
     assert len(results["ratings"]) == 2 * 3 and all(r["score"] == 100 - r["position"] for r in results["ratings"])
     assert {key["stimuli"][r["stimulus"]]["system"] for r in results["ratings"]} == {"reference", "unextended", "imaging"}
+    assert pairs == 3 and sorted(r["trial"] for r in pair_results["ratings"]) == sorted(pairs_key["pairs"])
+    assert all(r["score"] == -2 for r in pair_results["ratings"])

@@ -1,4 +1,5 @@
-"""Listening panels: ``nenv panel`` prepares a blind multi-stimulus test (ITU-R BS.1534) as one web page,
+"""Listening panels: ``nenv panel`` prepares a blind test as one web page (multi-stimulus with hidden
+reference and anchor, ITU-R BS.1534; or pairs against the unextended signal, ITU-T P.800 Annex E),
 ``nenv verdicts`` analyses the results the listeners send back."""
 
 from __future__ import annotations
@@ -12,6 +13,7 @@ import typer
 from nenv.cli.app import Law, _guarded, _kernels_ready, _progress, _say, app
 
 PanelMethod = enum.Enum("PanelMethod", [(v, v) for v in ("neural", "codebook", "imaging")], type=str)
+PanelDesign = enum.Enum("PanelDesign", [(v, v) for v in ("mushra", "ccr")], type=str)
 
 
 @app.command()
@@ -24,17 +26,21 @@ def panel(
     law: Annotated[Law, typer.Option(help="G.711 law of the telephone channel applied to the references.")] = "mulaw",
     post_url: Annotated[Optional[str], typer.Option(help="Also POST each listener's results (JSON) to this URL when they finish (they can always save a file).")] = None,
     overwrite: Annotated[bool, typer.Option("--overwrite", help="Replace a panel already in --out (its key is lost: results of that panel can no longer be analysed).")] = False,
+    design: Annotated[PanelDesign, typer.Option(help="mushra: rate every version against the open original (ITU-R BS.1534); ccr: rate pairs, each system against the unextended signal with no original, as a caller hears it (ITU-T P.800 Annex E).")] = PanelDesign.mushra,
 ) -> None:
-    """Prepare a blind listening test (multi-stimulus with hidden reference and anchor) as one web page."""
+    """Prepare a blind listening test as one web page (versions against the original, or pairs against the unextended signal)."""
     _kernels_ready()
     from nenv.report import panel as pn
 
     with _progress() as bar:
         systems = [m.value for m in method]
         task = bar.add_task("preparing the panel", total=len(references) * len(set(systems)))
-        key = pn.prepare([str(p) for p in references], out, systems=systems, model=model, law=law, post_url=post_url, on_step=lambda s: bar.advance(task), overwrite=overwrite)
+        key = pn.prepare([str(p) for p in references], out, systems=systems, model=model, law=law, post_url=post_url, on_step=lambda s: bar.advance(task), overwrite=overwrite, design=design.value)
     n = len(key["trials"])
-    _say(f"wrote {out / 'page' / 'index.html'}: {n} trial{'s' if n != 1 else ''} of {len(key['systems'])} stimuli ({', '.join(key['systems'])}), levels aligned")
+    if design.value == "ccr":
+        _say(f"wrote {out / 'page' / 'index.html'}: {n} pair{'s' if n != 1 else ''} ({', '.join(key['systems'][2:])} against unextended in both orders, and the original against unextended), levels aligned")
+    else:
+        _say(f"wrote {out / 'page' / 'index.html'}: {n} trial{'s' if n != 1 else ''} of {len(key['systems'])} stimuli ({', '.join(key['systems'])}), levels aligned")
     _say(f"kept the key in {out / 'key.json'} (not for listeners); analyse the results with: nenv verdicts RESULTS.json... --key {out / 'key.json'} --out DIR")
 
 
@@ -44,19 +50,24 @@ def verdicts(
     results: Annotated[list[Path], typer.Argument(help="Results files the panel page saved (one per listener session).", show_default=False)],
     key: Annotated[Path, typer.Option(help="The panel's key.json (written by nenv panel).")],
     out: Annotated[Path, typer.Option(help="Folder for verdicts.md, verdicts.csv, ratings.csv and verdicts.png (created if missing).")],
-    default_system: Annotated[str, typer.Option(help="The system compared pairwise with every other.")] = "neural",
+    default_system: Annotated[str, typer.Option(help="The system compared pairwise with every other (versions against the original).")] = "neural",
 ) -> None:
-    """Analyse a listening panel: post-screening, mean scores with 95% intervals, paired differences."""
+    """Analyse a listening panel: screening, mean scores with 95% intervals, paired differences."""
     from nenv.media.files import output_folder, write_text
+    from nenv.report import ccr
     from nenv.report import verdicts as vd
 
-    ratings = vd.read([str(p) for p in results], key)
-    analysis = vd.analyse(ratings, default_system=default_system)
+    if ccr.is_pairs_key(key):
+        kind, ratings = ccr, ccr.read([str(p) for p in results], key)
+        found = ccr.analyse(ratings)
+    else:
+        kind, ratings = vd, vd.read([str(p) for p in results], key)
+        found = vd.analyse(ratings, default_system=default_system)
     folder = output_folder(out)
-    write_text(folder / "ratings.csv", vd.ratings_csv(ratings))  # every rating, excluded listeners' too
-    md = vd.to_markdown(analysis)
+    write_text(folder / "ratings.csv", kind.ratings_csv(ratings))  # every rating, excluded listeners' too
+    md = kind.to_markdown(found)
     write_text(folder / "verdicts.md", md)
-    write_text(folder / "verdicts.csv", vd.to_csv(analysis))
-    if analysis.listeners:
-        vd.figure(analysis, folder / "verdicts.png")
+    write_text(folder / "verdicts.csv", kind.to_csv(found))
+    if found.listeners:
+        kind.figure(found, folder / "verdicts.png")
     typer.echo(md)

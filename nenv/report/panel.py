@@ -1,9 +1,18 @@
-"""Prepare a listening panel: a blind multi-stimulus test with hidden reference and anchor (the method
-of ITU-R BS.1534, "MUSHRA") as one self-contained web page.
+"""Prepare a listening panel as one self-contained web page, in one of two designs.
+
+* ``mushra`` (the default): a blind multi-stimulus test with hidden reference and anchor (the method
+  of ITU-R BS.1534, "MUSHRA"). The stimuli of a trial are the hidden reference (the original), the
+  anchor (``unextended``) and each system, rated against the open original: how close each comes to it.
+* ``ccr``: comparison category rating (ITU-T P.800 Annex E). A trial is a pair, the unextended signal
+  and one system, and the listener rates the second's quality against the first's on the 7 steps
+  from -3 (much worse) to +3 (much better), with no original to compare with: as a caller hears a
+  bridged call. Every system meets the unextended signal in both orders on every clip, so an
+  order bias cancels; one more pair per clip, the original against the unextended signal (in
+  alternating orders), checks that the listener hears the upper band at all
+  (:mod:`nenv.report.ccr`).
 
 For every wideband reference clip the telephone channel is applied and every system asked for runs
-on it; the stimuli of a trial are the hidden reference (the original), the anchor (``unextended``)
-and each system. All stimuli of a trial are set to the reference's active speech level (nenv's
+on it. All stimuli of a clip are set to the reference's active speech level (nenv's
 active-level measure, :func:`nenv.dsp.channel.active_level_dbov`) and, if any would then clip, all
 are lowered together. The output folder holds
 
@@ -42,12 +51,20 @@ from nenv.settings import WB_SR
 
 PEAK = 0.98  # highest sample after level alignment (full scale 1.0)
 PANEL_SYSTEMS = ("neural",)  # what a panel compares by default, beside the hidden reference and the anchor
+DESIGNS = ("mushra", "ccr")
 
 
 def _wav_base64(y: np.ndarray) -> str:
     buf = io.BytesIO()
     sf.write(buf, y, WB_SR, format="WAV", subtype="PCM_16")
     return base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def _token(key: dict, clip: str, system: str, trial_id: str, y: np.ndarray) -> dict:
+    """A stimulus for the page under a fresh random token; the key records what it is."""
+    token = secrets.token_hex(4)
+    key["stimuli"][token] = {"clip": clip, "system": system, "trial": trial_id}
+    return {"id": token, "audio": _wav_base64(y)}
 
 
 def _aligned(stimuli: dict[str, np.ndarray], target_dbov: float) -> dict[str, np.ndarray]:
@@ -72,9 +89,12 @@ def prepare(
     post_url: str | None = None,
     on_step: Callable[[str], None] | None = None,
     overwrite: bool = False,
+    design: str = "mushra",
 ) -> dict:
     """Write the panel (see the module docstring) for ``references``; returns the key. A folder that
     holds a panel already is refused unless ``overwrite``: its key is what makes results readable."""
+    if design not in DESIGNS:
+        raise InputError(f"design {design!r} is not known: choose from {', '.join(DESIGNS)}")
     if (Path(out) / "key.json").exists() and not overwrite:
         raise OutputError(f"'{out}' holds a panel already (key.json): its listeners' results need that key; choose another folder, or pass --overwrite")
     if not references:
@@ -92,9 +112,14 @@ def prepare(
     refs = [(n, prepare_reference(p)) for n, p in zip(names, references)]  # fail early, before any work
     folder = output_folder(Path(out))
     panel_id = secrets.token_hex(4)
-    key = {"panel": panel_id, "method": "ITU-R BS.1534 (multi-stimulus with hidden reference and anchor)", "law": law,
-           "systems": [HIDDEN_REFERENCE, ANCHOR, *asked], "trials": {}, "stimuli": {}}
     trials = []
+    key = {"panel": panel_id, "design": design, "law": law, "systems": [HIDDEN_REFERENCE, ANCHOR, *asked], "trials": {}, "stimuli": {}}
+    if design == "ccr":
+        key["method"] = "ITU-T P.800 Annex E (comparison category rating)"
+        key["pairs"] = {}
+    else:
+        key["method"] = "ITU-R BS.1534 (multi-stimulus with hidden reference and anchor)"
+    control_first = secrets.randbelow(2) == 1  # the original's place in the first clip's control pair
     for i, (name, ref) in enumerate(refs):
         nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
         raw = {HIDDEN_REFERENCE: ref, ANCHOR: pipeline.extend(nb, system=pipeline.make_system(ANCHOR)).y}
@@ -103,15 +128,20 @@ def prepare(
             if on_step:
                 on_step(f"{name} / {s}")
         aligned = _aligned(raw, channel.active_level_dbov(ref, sr=WB_SR))
+        if design == "ccr":
+            control = (HIDDEN_REFERENCE, ANCHOR) if (i % 2 == 0) == control_first else (ANCHOR, HIDDEN_REFERENCE)
+            order = [p for s in asked for p in ((ANCHOR, s), (s, ANCHOR))] + [control]
+            for first, second in sorted(order, key=lambda _: secrets.randbelow(2**30)):  # neither trial ids nor page order say which is which
+                trial_id = f"t{len(trials) + 1}"
+                key["trials"][trial_id] = name
+                key["pairs"][trial_id] = {"clip": name, "first": first, "second": second}
+                trials.append({"id": trial_id, **{place: _token(key, name, s, trial_id, aligned[s]) for place, s in (("first", first), ("second", second))}})
+            continue
         trial_id = f"t{i + 1}"
         key["trials"][trial_id] = name
-        stimuli = []
-        for s in sorted(aligned, key=lambda _: secrets.randbelow(2**30)):  # page order says nothing
-            token = secrets.token_hex(4)
-            key["stimuli"][token] = {"clip": name, "system": s, "trial": trial_id}
-            stimuli.append({"id": token, "audio": _wav_base64(aligned[s])})
+        stimuli = [_token(key, name, s, trial_id, aligned[s]) for s in sorted(aligned, key=lambda _: secrets.randbelow(2**30))]  # page order says nothing
         trials.append({"id": trial_id, "reference": _wav_base64(aligned[HIDDEN_REFERENCE]), "stimuli": stimuli})
-    data = {"panel": panel_id, "trials": trials, "post_url": post_url or ""}
+    data = {"panel": panel_id, "design": design, "trials": trials, "post_url": post_url or ""}
     page = resources.files("nenv.report").joinpath("panel_page.html").read_text(encoding="utf-8")
     html = page.replace("/*PANEL_DATA*/null", json.dumps(data, separators=(",", ":")))
     (folder / "page").mkdir(exist_ok=True)

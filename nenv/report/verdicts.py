@@ -90,23 +90,36 @@ class Analysis:
     paired: list[Paired]
 
 
-def read(result_files: Sequence[str | os.PathLike], key_file: str | os.PathLike) -> list[Rating]:
-    """Every rating in the results files, mapped to its system through the panel's key."""
+def load_key(key_file: str | os.PathLike) -> dict:
+    """A panel's key.json, read; InputError if it is not one."""
     try:
         key = json.loads(Path(key_file).read_text(encoding="utf-8"))
     except (OSError, ValueError) as e:
         raise InputError(f"cannot read the panel key '{key_file}': {e}") from e
-    stimuli = key.get("stimuli")
-    if not isinstance(stimuli, dict):
+    if not isinstance(key, dict) or not isinstance(key.get("stimuli"), dict):
         raise InputError(f"'{key_file}' is not a panel key (no 'stimuli')")
+    return key
+
+
+def load_results(path: str | os.PathLike, key: dict) -> dict:
+    """One listener's results file, read; InputError if it is unreadable or of another panel."""
+    try:
+        res = json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, ValueError) as e:
+        raise InputError(f"cannot read the results file '{path}': {e}") from e
+    if not isinstance(res, dict) or res.get("panel") != key.get("panel"):
+        other = res.get("panel") if isinstance(res, dict) else None
+        raise InputError(f"'{path}' holds results of another panel ({other!r}, the key is for {key.get('panel')!r})")
+    return res
+
+
+def read(result_files: Sequence[str | os.PathLike], key_file: str | os.PathLike) -> list[Rating]:
+    """Every rating in the results files, mapped to its system through the panel's key."""
+    key = load_key(key_file)
+    stimuli = key["stimuli"]
     out = []
     for path in result_files:
-        try:
-            res = json.loads(Path(path).read_text(encoding="utf-8"))
-        except (OSError, ValueError) as e:
-            raise InputError(f"cannot read the results file '{path}': {e}") from e
-        if res.get("panel") != key.get("panel"):
-            raise InputError(f"'{path}' holds results of another panel ({res.get('panel')!r}, the key is for {key.get('panel')!r})")
+        res = load_results(path, key)
         for r in res.get("ratings", []):
             s = stimuli.get(r["stimulus"])
             if s is None:
