@@ -90,6 +90,10 @@ def test_pairs_results_that_do_not_fit_the_key_are_refused(tmp_path):
         (lambda d: d["ratings"][0].update(score=1.5), "not one of the steps"),
         (lambda d: d["ratings"][0].update(trial="t99"), "not in the key"),
         (lambda d: d["ratings"].append(dict(d["ratings"][0])), "rated twice"),
+        (lambda d: d["ratings"][0].update(score="much better"), "not a number"),
+        (lambda d: d["ratings"][0].pop("score"), "not a number"),
+        (lambda d: d.pop("listener"), "not a panel's results file"),
+        (lambda d: d.update(ratings="all good"), "not a panel's results file"),
     ):
         bad = json.loads(json.dumps(data))
         change(bad)
@@ -102,6 +106,12 @@ def test_pairs_results_that_do_not_fit_the_key_are_refused(tmp_path):
     assert not ccr.is_pairs_key(tmp_path / "plain.json")
     with pytest.raises(InputError, match="not the key of a pairs panel"):
         ccr.read(files, tmp_path / "plain.json")
+    # and pairs results read against that key (same panel id) are refused, not a traceback
+    from nenv.report import verdicts
+
+    files[0].write_text(json.dumps(data))
+    with pytest.raises(InputError, match="other design"):
+        verdicts.read(files, tmp_path / "plain.json")
 
 
 def test_prepared_pairs_are_balanced_blind_and_level_aligned(tmp_path):

@@ -113,6 +113,23 @@ def load_results(path: str | os.PathLike, key: dict) -> dict:
     return res
 
 
+def ratings_in(res: dict, path) -> list[dict]:
+    """The ratings of a results file (each a dict), after checking it names its listener."""
+    ratings = res.get("ratings", [])
+    if "listener" not in res or not isinstance(ratings, list) or not all(isinstance(r, dict) for r in ratings):
+        raise InputError(f"'{path}' is not a panel's results file (no listener, or ratings that are not a list of records)")
+    return ratings
+
+
+def number_field(r: dict, field: str, path, default: float | None = None) -> float:
+    """A rating's numeric field; InputError if it is missing (without a default) or not a number."""
+    v = r.get(field, default)
+    try:
+        return float(v)
+    except (TypeError, ValueError):
+        raise InputError(f"'{path}': a rating's {field} is {v!r}, not a number") from None
+
+
 def read(result_files: Sequence[str | os.PathLike], key_file: str | os.PathLike) -> list[Rating]:
     """Every rating in the results files, mapped to its system through the panel's key."""
     key = load_key(key_file)
@@ -120,14 +137,14 @@ def read(result_files: Sequence[str | os.PathLike], key_file: str | os.PathLike)
     out = []
     for path in result_files:
         res = load_results(path, key)
-        for r in res.get("ratings", []):
-            s = stimuli.get(r["stimulus"])
+        for r in ratings_in(res, path):
+            s = stimuli.get(r.get("stimulus"))
             if s is None:
-                raise InputError(f"'{path}': stimulus {r['stimulus']!r} is not in the key")
-            score = float(r["score"])
+                raise InputError(f"'{path}': stimulus {r.get('stimulus')!r} is not in the key (results of the other design?)")
+            score = number_field(r, "score", path)
             if not 0.0 <= score <= 100.0:
                 raise InputError(f"'{path}': score {score} is outside 0..100")
-            out.append(Rating(str(res["listener"]), str(r["trial"]), s["clip"], s["system"], score, float(r.get("seconds", math.nan))))
+            out.append(Rating(str(res["listener"]), str(r.get("trial")), s["clip"], s["system"], score, number_field(r, "seconds", path, math.nan)))
     if not out:
         raise InputError("no ratings in the results given")
     return out
