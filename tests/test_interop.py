@@ -26,7 +26,7 @@ import pytest
 from nenv.chain import pipeline
 from nenv.dsp import channel, g711
 from nenv.media.audio import to_int16
-from nenv.serve import rtp
+from nenv.serve import rtp, rtp_packet
 from tests.conftest import missing_tool
 
 WAV_FORMAT_TAG = {"mulaw": 7, "alaw": 6}  # WAVE_FORMAT_MULAW / WAVE_FORMAT_ALAW (Microsoft RIFF specification)
@@ -308,5 +308,5 @@ def test_relay_command_stops_cleanly_on_two_signals_while_gstreamer_sends(arctic
             break
     assert p.returncode == 0, err.decode()
     assert b"packets in" in err or b"packet in" in err
-    seqs = [rtp.parse(g).seq for g in got]
+    seqs = [rtp_packet.parse(g).seq for g in got]
     assert len(seqs) > 10 and all((b - a) & 0xFFFF == 1 for a, b in zip(seqs[:-1], seqs[1:]))

@@ -11,21 +11,39 @@ import pytest
 
 from nenv.dsp import channel, g711
 from nenv.chain import pipeline
-from nenv.serve import rtp
+from nenv.serve import rtp, rtp_packet
 
 
 def test_parse_and_build_round_trip_with_csrc_extension_and_padding():
-    pkt = rtp.build(payload_type=0, seq=65535, timestamp=2**32 - 80, ssrc=0xDEADBEEF, payload=b"\x01\x02\x03", marker=True)
-    p = rtp.parse(pkt)
+    pkt = rtp_packet.build(payload_type=0, seq=65535, timestamp=2**32 - 80, ssrc=0xDEADBEEF, payload=b"\x01\x02\x03", marker=True)
+    p = rtp_packet.parse(pkt)
     assert (p.payload_type, p.seq, p.timestamp, p.ssrc, p.payload, p.marker) == (0, 65535, 2**32 - 80, 0xDEADBEEF, b"\x01\x02\x03", True)
     # RFC 3550 section 5.1: CC=1 CSRC, X=1 extension of one word, P=1 with 2 padding octets
     head = bytes([0x80 | 0x20 | 0x10 | 0x01, 8]) + (7).to_bytes(2, "big") + (160).to_bytes(4, "big") + (5).to_bytes(4, "big")
     raw = head + b"CSRC" + b"\xbe\xde\x00\x01" + b"EXT!" + b"\xd5\xd5\xd5" + b"\x00\x02"
-    p = rtp.parse(raw)
+    p = rtp_packet.parse(raw)
     assert p.payload_type == 8 and p.seq == 7 and p.payload == b"\xd5\xd5\xd5"
     for bad in (b"", b"\x80\x00", bytes([0x40]) + raw[1:], raw[:14], head[:12] + b"\x00" * 3 + b"\xff"):
-        assert rtp.parse(bad) is None
+        assert rtp_packet.parse(bad) is None
 
+
+
+def test_packetizer_cuts_whole_packets_wraps_its_numbers_and_sends_the_rest_when_told():
+    # 16-bit samples in 20 ms packets at 16 kHz (320 samples); sequence number and timestamp start
+    # near their wrap (RFC 3550 section 5.1: modulo 2**16 and 2**32); the marker bit only on the first
+    # packet of the stream (RFC 3551 section 4.1)
+    out = rtp_packet.Packetizer(payload_type=96, samples_per_packet=320, ssrc=0xABCDEF01, seq=65535, timestamp=2**32 - 320)
+    pcm = bytes(range(256)) * 7  # 1792 bytes = 896 samples: two whole packets and 256 samples over
+    got = [rtp_packet.parse(b) for b in out.packets(pcm)]
+    assert [(g.seq, g.timestamp, g.marker, len(g.payload)) for g in got] == [(65535, 2**32 - 320, True, 640), (0, 0, False, 640)]
+    assert b"".join(g.payload for g in got) == pcm[:1280] and out.pending == pcm[1280:]
+    assert out.packets(b"") == [] and out.pending == pcm[1280:]  # nothing whole yet: nothing sent
+    last = [rtp_packet.parse(b) for b in out.packets(b"\x00\x01" * 32, final=True)]  # the end: a shorter last packet
+    assert [(g.seq, g.timestamp, g.marker, len(g.payload)) for g in last] == [(1, 320, False, 512 + 64)]
+    assert last[0].payload == pcm[1280:] + b"\x00\x01" * 32 and out.pending == b"" and out.sent == 3
+    assert {g.ssrc for g in got + last} == {0xABCDEF01} and {g.payload_type for g in got + last} == {96}
+    a, b = rtp_packet.Packetizer.starting_at_random(96, 320), rtp_packet.Packetizer.starting_at_random(96, 320)
+    assert (a.ssrc, a.seq, a.timestamp) != (b.ssrc, b.seq, b.timestamp)  # random starts (RFC 3550 section 5.1)
 
 def _receiver():
     s = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
@@ -45,7 +63,7 @@ def _collect(sock, seconds, quiet=1.5):
         except socket.timeout:
             if got and time.time() - last > quiet:
                 break
-    return [rtp.parse(g) for g in got]
+    return [rtp_packet.parse(g) for g in got]
 
 
 def test_relay_extends_a_clip_with_reordering_and_loss(arctic_refs):
@@ -66,12 +84,12 @@ def test_relay_extends_a_clip_with_reordering_and_loss(arctic_refs):
     lost = 40
     order.remove(lost)  # one packet never arrives
     for i in order:
-        tx.sendto(rtp.build(payload_type=0, seq=seq0 + i, timestamp=ts0 + 160 * i, ssrc=ssrc, payload=packets[i].tobytes()), relay.address)
+        tx.sendto(rtp_packet.build(payload_type=0, seq=seq0 + i, timestamp=ts0 + 160 * i, ssrc=ssrc, payload=packets[i].tobytes()), relay.address)
         if i == 20:
-            tx.sendto(rtp.build(payload_type=0, seq=seq0 + 5, timestamp=ts0 + 800, ssrc=ssrc, payload=packets[5].tobytes()), relay.address)  # a late duplicate
+            tx.sendto(rtp_packet.build(payload_type=0, seq=seq0 + 5, timestamp=ts0 + 800, ssrc=ssrc, payload=packets[5].tobytes()), relay.address)  # a late duplicate
         time.sleep(0.002)
     tx.sendto(b"garbage", relay.address)
-    tx.sendto(rtp.build(payload_type=18, seq=1, timestamp=1, ssrc=7, payload=b"x" * 10), relay.address)  # G.729: not ours
+    tx.sendto(rtp_packet.build(payload_type=18, seq=1, timestamp=1, ssrc=7, payload=b"x" * 10), relay.address)  # G.729: not ours
     got = receiving.result()  # includes the tail the relay flushes when the stream goes idle
     relay.stop()
     assert got and all(p is not None and p.payload_type == 96 for p in got)
@@ -99,7 +117,7 @@ def test_relay_drops_what_it_must(arctic_refs):
     rx = _receiver()
     relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), allowed_sources=["127.0.0.2"], max_streams=2, idle_timeout_s=0.3).start()
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
-    tx.sendto(rtp.build(payload_type=0, seq=1, timestamp=0, ssrc=1, payload=b"\xff" * 160), relay.address)
+    tx.sendto(rtp_packet.build(payload_type=0, seq=1, timestamp=0, ssrc=1, payload=b"\xff" * 160), relay.address)
     time.sleep(0.3)
     relay.stop()
     assert relay.counters.not_allowed == 1 and relay.counters.streams_opened == 0
@@ -108,7 +126,7 @@ def test_relay_drops_what_it_must(arctic_refs):
     relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx2.getsockname(), max_streams=3, idle_timeout_s=5).start()
     rng = np.random.default_rng(0)
     for ssrc in rng.integers(1, 2**31, 200):
-        tx.sendto(rtp.build(payload_type=0, seq=1, timestamp=0, ssrc=int(ssrc), payload=b"\xff" * 160), relay.address)
+        tx.sendto(rtp_packet.build(payload_type=0, seq=1, timestamp=0, ssrc=int(ssrc), payload=b"\xff" * 160), relay.address)
     time.sleep(0.5)
     assert len(relay.streams) == 3 and relay.counters.over_stream_limit == 197
     relay.stop()
@@ -136,7 +154,7 @@ def test_relay_resolves_its_destination_once_and_outlives_refused_sends():
     relay.out.close()
     relay.out = Refusing()
     for seq in range(10):
-        relay.handle(rtp.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=5, payload=b"\x7f" * 160), ("127.0.0.1", 9))
+        relay.handle(rtp_packet.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=5, payload=b"\x7f" * 160), ("127.0.0.1", 9))
     c = relay.streams[5].counters
     assert c.packets == 10 and c.packets_out >= 8 and relay.counters.send_errors == c.packets_out
     relay.stop()
@@ -152,8 +170,8 @@ def test_two_senders_with_one_ssrc_never_mix_and_a_moved_sender_is_followed(monk
     first, second = ("10.0.0.1", 4000), ("10.0.0.2", 4000)
     loud, other = b"\x10" * 160, b"\x90" * 160  # two different payloads (G.711 mu-law codes)
     for seq in range(5):  # both send SSRC 1 at once (fixed SSRCs are common in simple devices)
-        relay.handle(rtp.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=1, payload=loud), first)
-        relay.handle(rtp.build(payload_type=0, seq=100 + seq, timestamp=999 + 160 * seq, ssrc=1, payload=other), second)
+        relay.handle(rtp_packet.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=1, payload=loud), first)
+        relay.handle(rtp_packet.build(payload_type=0, seq=100 + seq, timestamp=999 + 160 * seq, ssrc=1, payload=other), second)
     st = relay.streams[1]
     # each packet of the second address is held until the first speaks again, then dropped: four so far,
     # and the last one still held (the first sender's next packet, or its silence, decides)
@@ -162,11 +180,11 @@ def test_two_senders_with_one_ssrc_never_mix_and_a_moved_sender_is_followed(monk
     assert st.source == first and st.counters.samples_in == 5 * 160  # nothing of the second sender was played
     time.sleep(0.25)  # the first sender goes quiet, then its packets come from a new port (NAT rebinding)
     moved = ("10.0.0.1", 4002)
-    relay.handle(rtp.build(payload_type=0, seq=5, timestamp=800, ssrc=1, payload=loud), moved)
+    relay.handle(rtp_packet.build(payload_type=0, seq=5, timestamp=800, ssrc=1, payload=loud), moved)
     assert st.source == moved and st.counters.source_changes == 1 and st.counters.packets == 6
     assert relay.counters.ssrc_conflicts == 5  # the second address's held packet went when the stream moved elsewhere
-    relay.handle(rtp.build(payload_type=0, seq=6, timestamp=960, ssrc=1, payload=loud), first)  # the old port, right away: held
-    relay.handle(rtp.build(payload_type=0, seq=6, timestamp=960, ssrc=1, payload=loud), moved)  # ... and dropped: the source is alive
+    relay.handle(rtp_packet.build(payload_type=0, seq=6, timestamp=960, ssrc=1, payload=loud), first)  # the old port, right away: held
+    relay.handle(rtp_packet.build(payload_type=0, seq=6, timestamp=960, ssrc=1, payload=loud), moved)  # ... and dropped: the source is alive
     assert relay.counters.ssrc_conflicts == 6 and st.counters.packets == 7 and st.source == moved
     relay.stop()
 
@@ -178,9 +196,9 @@ def test_a_second_sender_flooding_an_ssrc_in_use_holds_bounded_memory(monkeypatc
     relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
     relay.out.close()
     relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
-    relay.handle(rtp.build(payload_type=0, seq=0, timestamp=0, ssrc=3, payload=b"\x10" * 160), ("10.0.0.1", 4000))
+    relay.handle(rtp_packet.build(payload_type=0, seq=0, timestamp=0, ssrc=3, payload=b"\x10" * 160), ("10.0.0.1", 4000))
     for seq in range(100):
-        relay.handle(rtp.build(payload_type=0, seq=500 + seq, timestamp=160 * seq, ssrc=3, payload=b"\x90" * 160), ("10.0.0.2", 4000))
+        relay.handle(rtp_packet.build(payload_type=0, seq=500 + seq, timestamp=160 * seq, ssrc=3, payload=b"\x90" * 160), ("10.0.0.2", 4000))
     st = relay.streams[3]
     assert len(st.newcomer_packets) == rtp.MAX_NEWCOMER_PACKETS and relay.counters.ssrc_conflicts == 100 - rtp.MAX_NEWCOMER_PACKETS
     assert st.source == ("10.0.0.1", 4000) and st.counters.packets == 1
@@ -196,18 +214,18 @@ def test_a_sender_that_restarts_on_a_new_port_at_once_loses_nothing(monkeypatch)
     relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
     old, new = ("10.0.0.1", 4000), ("10.0.0.1", 4010)
     for seq in range(5):
-        relay.handle(rtp.build(payload_type=0, seq=1000 + seq, timestamp=160 * seq, ssrc=7, payload=b"\x10" * 160), old)
+        relay.handle(rtp_packet.build(payload_type=0, seq=1000 + seq, timestamp=160 * seq, ssrc=7, payload=b"\x10" * 160), old)
     st = relay.streams[7]
     for seq in range(3):  # the restarted sender: a new port, new numbering, at once
-        relay.handle(rtp.build(payload_type=0, seq=30000 + seq, timestamp=5000 + 160 * seq, ssrc=7, payload=b"\x20" * 160), new)
+        relay.handle(rtp_packet.build(payload_type=0, seq=30000 + seq, timestamp=5000 + 160 * seq, ssrc=7, payload=b"\x20" * 160), new)
     assert st.source == old and len(st.newcomer_packets) == 3 and st.counters.packets == 5
     time.sleep(rtp.REBIND_AFTER_S + 0.02)
-    relay.handle(rtp.build(payload_type=0, seq=30003, timestamp=5000 + 480, ssrc=7, payload=b"\x20" * 160), new)
+    relay.handle(rtp_packet.build(payload_type=0, seq=30003, timestamp=5000 + 480, ssrc=7, payload=b"\x20" * 160), new)
     assert st.source == new and st.counters.packets == 9 and st.counters.resyncs == 1 and st.counters.lost_packets == 0
     assert relay.counters.ssrc_conflicts == 0 and st.counters.samples_in == 9 * 160
     # the same when the newcomer sends nothing more: the relay's clock decides
     for seq in range(2):
-        relay.handle(rtp.build(payload_type=0, seq=100 + seq, timestamp=90000 + 160 * seq, ssrc=7, payload=b"\x30" * 160), old)
+        relay.handle(rtp_packet.build(payload_type=0, seq=100 + seq, timestamp=90000 + 160 * seq, ssrc=7, payload=b"\x30" * 160), old)
     assert st.source == new and len(st.newcomer_packets) == 2
     time.sleep(rtp.REBIND_AFTER_S + 0.02)
     relay._expire()
@@ -242,7 +260,7 @@ def test_relay_command_runs_and_stops_on_sigterm(arctic_refs, method):
     assert b"relaying RTP" in started and (b"with the low band" in started) == ("--low-band" in method)
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     for i in range(25):
-        tx.sendto(rtp.build(payload_type=8, seq=i, timestamp=160 * i, ssrc=99, payload=b"\xd5" * 160), ("127.0.0.1", listen_port))
+        tx.sendto(rtp_packet.build(payload_type=8, seq=i, timestamp=160 * i, ssrc=99, payload=b"\xd5" * 160), ("127.0.0.1", listen_port))
         time.sleep(0.005)
     got = _collect(rx, 10.0, quiet=1.0)
     p.send_signal(signal.SIGTERM)
@@ -269,22 +287,22 @@ def test_relay_survives_junk_bursts_silence_and_sender_restarts(arctic_refs):
     rng = np.random.default_rng(3)
     a, b = 0xA1, 0xB2
     for i in range(25):  # a burst: no pacing at all
-        send(rtp.build(payload_type=8, seq=100 + i, timestamp=1000 + 160 * i, ssrc=a, payload=packets[i]))
+        send(rtp_packet.build(payload_type=8, seq=100 + i, timestamp=1000 + 160 * i, ssrc=a, payload=packets[i]))
     for n in rng.integers(0, 40, 50):  # junk of every length, including RTP-looking headers
         send(bytes(rng.integers(0, 256, int(n), dtype=np.uint8)))
-    send(rtp.build(payload_type=9, seq=1, timestamp=0, ssrc=a, payload=b"\x00" * 160))  # G.722: not ours
-    send(rtp.build(payload_type=8, seq=125, timestamp=5000, ssrc=a, payload=b"\xd5" * 4000))  # 0.5 s in one packet
+    send(rtp_packet.build(payload_type=9, seq=1, timestamp=0, ssrc=a, payload=b"\x00" * 160))  # G.722: not ours
+    send(rtp_packet.build(payload_type=8, seq=125, timestamp=5000, ssrc=a, payload=b"\xd5" * 4000))  # 0.5 s in one packet
     # silence suppression: the sequence continues, the timestamp jumps 0.25 s
     for i in range(25, 40):
-        send(rtp.build(payload_type=8, seq=100 + i, timestamp=1000 + 160 * i + 2000, ssrc=a, payload=packets[i]))
+        send(rtp_packet.build(payload_type=8, seq=100 + i, timestamp=1000 + 160 * i + 2000, ssrc=a, payload=packets[i]))
         time.sleep(0.002)
     # the sender restarts with the same SSRC, numbering from far away
     for i in range(40, 60):
-        send(rtp.build(payload_type=8, seq=40000 + i, timestamp=9_000_000 + 160 * i, ssrc=a, payload=packets[i]))
+        send(rtp_packet.build(payload_type=8, seq=40000 + i, timestamp=9_000_000 + 160 * i, ssrc=a, payload=packets[i]))
         time.sleep(0.002)
     # and once more as a new SSRC
     for i in range(60, 75):
-        send(rtp.build(payload_type=8, seq=7 + i, timestamp=160 * i, ssrc=b, payload=packets[i]))
+        send(rtp_packet.build(payload_type=8, seq=7 + i, timestamp=160 * i, ssrc=b, payload=packets[i]))
         time.sleep(0.002)
     got = receiving.result()
     relay.stop()
@@ -321,7 +339,7 @@ def test_relay_counts_guard_fallbacks_without_keeping_per_hop_records(arctic_ref
     receiving = ThreadPoolExecutor(1).submit(_collect, rx, 30.0)
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     for i in range(codes.size // 160):
-        tx.sendto(rtp.build(payload_type=0, seq=i, timestamp=160 * i, ssrc=5, payload=codes[i * 160 : (i + 1) * 160].tobytes()), relay.address)
+        tx.sendto(rtp_packet.build(payload_type=0, seq=i, timestamp=160 * i, ssrc=5, payload=codes[i * 160 : (i + 1) * 160].tobytes()), relay.address)
         if i == 10:
             deadline = time.time() + 10
             while 5 not in relay.streams and time.time() < deadline:
@@ -342,9 +360,9 @@ def test_relay_memory_per_stream_is_bounded(monkeypatch):
     rng = np.random.default_rng(11)
     worst = 0
     for seq, ts in zip(rng.integers(0, 2**16, 3000), rng.integers(0, 2**32, 3000)):
-        relay.handle(rtp.build(payload_type=0, seq=int(seq), timestamp=int(ts), ssrc=77, payload=b"\xff" * 160), ("127.0.0.1", 9))
+        relay.handle(rtp_packet.build(payload_type=0, seq=int(seq), timestamp=int(ts), ssrc=77, payload=b"\xff" * 160), ("127.0.0.1", 9))
         st = relay.streams[77]
-        worst = max(worst, len(st.playout.held), len(st.out_pcm) // 2)
+        worst = max(worst, len(st.playout.held), len(st.out.pending) // 2)
     po = relay.streams[77].playout
     assert len(po.held) <= 4 + 1 and worst <= rtp.OUT_SAMPLES
     c = po.counters
@@ -353,7 +371,7 @@ def test_relay_memory_per_stream_is_bounded(monkeypatch):
     assert c.packets + c.late_or_duplicate + pending == 3000 and c.samples_in == 160 * (c.packets - held)  # each packet played once, held or dropped
     # many short streams one after another: only the last MAX_CLOSED keep their counters
     for ssrc in range(100, 120):
-        relay.handle(rtp.build(payload_type=0, seq=1, timestamp=0, ssrc=ssrc, payload=b"\xff" * 160), ("127.0.0.1", 9))
+        relay.handle(rtp_packet.build(payload_type=0, seq=1, timestamp=0, ssrc=ssrc, payload=b"\xff" * 160), ("127.0.0.1", 9))
         relay._close(ssrc)
     assert len(relay.closed) == 5 and set(relay.closed) == set(range(115, 120))
     relay.stop()
@@ -382,7 +400,7 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     for k in range(clips[0].size // 160):  # 20 ms packets, the six streams interleaved
         for i, codes in enumerate(clips):
-            tx.sendto(rtp.build(payload_type=0, seq=1000 * i + k, timestamp=160 * k, ssrc=100 + i, payload=codes[160 * k : 160 * (k + 1)].tobytes()), relay.address)
+            tx.sendto(rtp_packet.build(payload_type=0, seq=1000 * i + k, timestamp=160 * k, ssrc=100 + i, payload=codes[160 * k : 160 * (k + 1)].tobytes()), relay.address)
         time.sleep(0.004)
     got = receiving.result()
     relay.stop()

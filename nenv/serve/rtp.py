@@ -36,7 +36,6 @@ closed streams are kept for the last ``MAX_CLOSED`` streams only.
 
 from __future__ import annotations
 
-import os
 import select
 import socket
 import threading
@@ -49,7 +48,7 @@ import numpy as np
 from nenv.media.audio import to_int16
 from nenv.errors import InputError
 from nenv.serve.jitter import LAW_OF_PT, PlayOut, StreamCounters
-from nenv.serve.rtp_packet import build, goodbyes, is_rtcp, parse
+from nenv.serve.rtp_packet import Packetizer, goodbyes, is_rtcp, parse
 from nenv.serve.runtime import CallEngine
 
 PT_PCMU = 0
@@ -71,11 +70,8 @@ class _Stream:
     engine: CallEngine | None  # None in batched mode (the relay's MultiCallEngine holds the call)
     law: str
     playout: PlayOut
-    out_ssrc: int
+    out: Packetizer
     last_seen: float
-    out_pcm: bytes = b""  # output not yet sent (less than a packet), as big-endian 16-bit samples
-    out_seq: int = 0
-    out_ts: int = 0
     call_id: str = ""
     source: tuple = ()  # the transport address (host, port) the stream's packets come from
     tail_sent: bool = False  # its held-back tail went out during the current quiet spell
@@ -284,16 +280,15 @@ class Relay:
             if len(self.streams) >= self.max_streams:
                 self.counters.over_stream_limit += 1
                 return
-            if self.multi is None:
-                st = _Stream(CallEngine(system=self.make_system()), LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), int.from_bytes(os.urandom(4), "big"), time.monotonic())
+            engine = CallEngine(system=self.make_system()) if self.multi is None else None
+            out = Packetizer.starting_at_random(self.pt_out, OUT_SAMPLES)
+            st = _Stream(engine, LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), out, time.monotonic(), source=addr)
+            if engine is not None:
                 self._count_fallbacks(st)  # the engine keeps no per-hop verdicts: counted here
             else:
-                st = _Stream(None, LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), int.from_bytes(os.urandom(4), "big"), time.monotonic(), call_id=f"{pkt.ssrc:08x}-{self.counters.streams_opened}")
+                st.call_id = f"{pkt.ssrc:08x}-{self.counters.streams_opened}"
                 self.multi.open(st.call_id)
                 self._by_call[st.call_id] = st
-            st.source = addr
-            st.out_seq = int.from_bytes(os.urandom(2), "big")
-            st.out_ts = int.from_bytes(os.urandom(4), "big")
             self.streams[pkt.ssrc] = st
             self.counters.streams_opened += 1
         st.last_seen = time.monotonic()
@@ -358,22 +353,14 @@ class Relay:
         self._send(st, to_int16(y).astype(">i2").tobytes(), final=final)
 
     def _send(self, st: _Stream, pcm: bytes, *, final: bool = False) -> None:
-        """Send whole packets of the stream's pending output plus ``pcm`` (big-endian int16);
-        keep the rest for the next call, or with ``final`` send it as a last, shorter packet."""
-        buf = st.out_pcm + pcm if st.out_pcm else pcm
-        packet = 2 * OUT_SAMPLES
-        n_full = len(buf) if final else len(buf) // packet * packet
-        for s in range(0, n_full, packet):
-            payload = buf[s : min(s + packet, n_full)]
+        """Send whole packets of the stream's pending output plus ``pcm`` (big-endian int16); with
+        ``final`` the rest too, as a last, shorter packet."""
+        for packet in st.out.packets(pcm, final=final):
             try:
-                first = st.counters.packets_out == 0  # the marker bit starts the stream's first talkspurt (RFC 3551 section 4.1)
-                self.out.sendto(build(payload_type=self.pt_out, seq=st.out_seq, timestamp=st.out_ts, ssrc=st.out_ssrc, payload=payload, marker=first), self.send_to)
+                self.out.sendto(packet, self.send_to)
             except OSError:  # no route, buffers full, ...: the packet is lost like one on the wire, the relay goes on
                 self.counters.send_errors += 1
-            st.out_seq = (st.out_seq + 1) & 0xFFFF
-            st.out_ts = (st.out_ts + len(payload) // 2) & 0xFFFFFFFF
             st.counters.packets_out += 1
-        st.out_pcm = buf[n_full:]
 
     def _expire(self) -> None:
         """Close streams idle for ``idle_timeout_s``; for streams quiet for TAIL_AFTER_S, push out the

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import struct
 from dataclasses import dataclass
 
@@ -44,6 +45,42 @@ def parse(data: bytes) -> RtpPacket | None:
 def build(*, payload_type: int, seq: int, timestamp: int, ssrc: int, payload: bytes, marker: bool = False) -> bytes:
     """An RTP version 2 packet with no CSRC, extension or padding."""
     return HEADER.pack(0x80, (0x80 if marker else 0) | (payload_type & 0x7F), seq & 0xFFFF, timestamp & 0xFFFFFFFF, ssrc & 0xFFFFFFFF) + payload
+
+
+@dataclass
+class Packetizer:
+    """One outgoing stream of 16-bit PCM packets: its SSRC, next sequence number and timestamp (random
+    starts, RFC 3550 section 5.1), and the output not yet sent (less than a packet)."""
+
+    payload_type: int
+    samples_per_packet: int
+    ssrc: int
+    seq: int
+    timestamp: int
+    pending: bytes = b""  # big-endian 16-bit samples
+    sent: int = 0
+
+    @classmethod
+    def starting_at_random(cls, payload_type: int, samples_per_packet: int) -> "Packetizer":
+        r = os.urandom(10)
+        return cls(payload_type, samples_per_packet, int.from_bytes(r[:4], "big"), int.from_bytes(r[4:6], "big"), int.from_bytes(r[6:], "big"))
+
+    def packets(self, pcm: bytes, *, final: bool = False) -> list[bytes]:
+        """Whole packets of the pending output plus ``pcm`` (big-endian int16); the rest waits for the
+        next call, or with ``final`` goes as a last, shorter packet. The first packet carries the marker
+        bit (the stream's first talkspurt, RFC 3551 section 4.1)."""
+        buf = self.pending + pcm if self.pending else pcm
+        size = 2 * self.samples_per_packet
+        n_full = len(buf) if final else len(buf) // size * size
+        out = []
+        for s in range(0, n_full, size):
+            payload = buf[s : min(s + size, n_full)]
+            out.append(build(payload_type=self.payload_type, seq=self.seq, timestamp=self.timestamp, ssrc=self.ssrc, payload=payload, marker=self.sent == 0))
+            self.seq = (self.seq + 1) & 0xFFFF
+            self.timestamp = (self.timestamp + len(payload) // 2) & 0xFFFFFFFF
+            self.sent += 1
+        self.pending = buf[n_full:]
+        return out
 
 
 RTCP_BYE = 203  # RFC 3550 section 6.6

@@ -33,7 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from nenv.dsp import channel, g711
-from nenv.serve import rtp
+from nenv.serve import rtp, rtp_packet
 from nenv.report.evaluate import prepare_reference
 
 DATA = Path(__file__).resolve().parents[1] / "data"
@@ -68,7 +68,7 @@ class _Receiver(threading.Thread):
                 data = self.sock.recv(65535)
             except socket.timeout:
                 continue
-            pkt = rtp.parse(data)
+            pkt = rtp_packet.parse(data)
             if pkt is not None:
                 self.samples[pkt.ssrc] += len(pkt.payload) // 2
                 self.last = time.monotonic()
@@ -103,7 +103,7 @@ def run(n: int, seconds: float, payload: list[bytes], model: str | None, hold: b
                 wait = due - time.monotonic()
                 if wait > 0:
                     time.sleep(wait)
-                tx.sendto(rtp.build(payload_type=0, seq=k, timestamp=PACKET * k, ssrc=1000 + i, payload=payload[(k + 7 * i) % len(payload)]), ("127.0.0.1", port_in))
+                tx.sendto(rtp_packet.build(payload_type=0, seq=k, timestamp=PACKET * k, ssrc=1000 + i, payload=payload[(k + 7 * i) % len(payload)]), ("127.0.0.1", port_in))
                 sent[i] += PACKET
             if k == n_packets // 2:
                 half_backlog = _backlog_ms(sent, rx)
