@@ -53,18 +53,14 @@ class MultiCallEngine:
             system.estimator.keep_decisions = False  # verdicts are counted per call, not kept
         self.system = system
         self._chain = Chain(system, rows=0)
-        self._ids: list[str] = []
-        self._calls: dict[str, _Call] = {}
-        self._order: list[_Call] = []  # the calls in row order (as _ids)
+        self._calls: dict[str, _Call] = {}  # in row order: a call's row is its place in this dict
 
     # ---- calls joining and leaving -------------------------------------------------
     def open(self, call_id: str) -> None:
         """Start a call (its state starts from silence, like a new CallEngine)."""
         if call_id in self._calls:
             raise ValueError(f"call {call_id!r} is already open")
-        self._ids.append(call_id)
-        self._calls[call_id] = call = _Call()
-        self._order.append(call)
+        self._calls[call_id] = _Call()
         self._chain.add_rows(1)
 
     def close(self, call_id: str, *, stats: dict | None = None) -> np.ndarray:
@@ -80,16 +76,13 @@ class MultiCallEngine:
         y = y[: max(want, 0)]
         if stats is not None:
             stats.update(self.stats(call_id))
-        i = self._ids.index(call_id)
-        self._chain.keep_rows(np.arange(len(self._ids)) != i)
-        self._ids.pop(i)
-        self._order.pop(i)
+        self._chain.keep_rows(np.arange(len(self._calls)) != list(self._calls).index(call_id))
         del self._calls[call_id]
         return y
 
     @property
     def calls(self) -> list[str]:
-        return list(self._ids)
+        return list(self._calls)
 
     def stats(self, call_id: str) -> dict:
         c = self._call(call_id)
@@ -124,9 +117,9 @@ class MultiCallEngine:
     def _run(self, only: str | None = None) -> None:
         """Process queued whole hops: each round takes every call with a hop queued, as many hops
         as all of them have (H), and runs them as one batch of B calls x H hops."""
-        order = self._order
+        order = list(self._calls.values())  # row order
         while True:
-            candidates = range(len(order)) if only is None else (self._ids.index(only),)
+            candidates = range(len(order)) if only is None else (list(self._calls).index(only),)
             rows = [i for i in candidates if order[i].pending.size >= HOP_NB]
             if not rows:
                 return
