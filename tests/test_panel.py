@@ -207,6 +207,23 @@ def _collector():
     return SimpleNamespace(server=server, bodies=bodies, url=f"http://127.0.0.1:{server.server_address[1]}/results")
 
 
+CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking", "--disable-component-update",
+                 "--disable-sync", "--autoplay-policy=no-user-gesture-required"]
+
+
+def _open_in_chromium(pw, browser: str, page_file, listener: str):
+    """A headless Chromium page on the panel with the listener's name entered, once every stimulus has
+    decoded (Start enabled); returns the browser, the page and the list its page errors go to."""
+    b = pw.chromium.launch(executable_path=browser, headless=True, args=CHROMIUM_ARGS)
+    pg = b.new_page(accept_downloads=True)
+    errors: list[str] = []
+    pg.on("pageerror", lambda e: errors.append(str(e)))
+    pg.goto(page_file.as_uri())
+    pg.fill("#listener", listener)
+    pg.wait_for_function("!document.getElementById('start').disabled", timeout=60000)
+    return b, pg, errors
+
+
 def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path):
     """Headless chromium driven by Playwright: a listener goes through the cautions, the level check and
     the practice, plays every stimulus, moves every slider with the keyboard, saves the results; the
@@ -222,18 +239,10 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
     res = runner.invoke(app, ["panel", str(ARCTIC[0]), str(ARCTIC[1]), "--out", str(tmp_path / "p"), "--method", "imaging", "--post-url", posted.url])
     assert res.exit_code == 0, res.output
     key = json.loads((tmp_path / "p" / "key.json").read_text())
-    args = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--disable-background-networking", "--disable-component-update",
-            "--disable-sync", "--autoplay-policy=no-user-gesture-required"]
     saved = []
     for listener in ("ana", "ben"):
         with sync_playwright() as pw:
-            b = pw.chromium.launch(executable_path=browser, headless=True, args=args)
-            pg = b.new_page(accept_downloads=True)
-            errors = []
-            pg.on("pageerror", lambda e: errors.append(str(e)))
-            pg.goto((tmp_path / "p" / "page" / "index.html").as_uri())
-            pg.fill("#listener", listener)
-            pg.wait_for_function("!document.getElementById('start').disabled", timeout=60000)
+            b, pg, errors = _open_in_chromium(pw, browser, tmp_path / "p" / "page" / "index.html", listener)
             pg.click("#start")
             pg.click("#level-play")
             pg.click("#level-stop")

@@ -19,7 +19,7 @@ from nenv.dsp import channel
 from nenv.errors import InputError
 from nenv.report import ccr, panel
 from tests.conftest import ARCTIC
-from tests.test_panel import _browser, _collector, _page_data
+from tests.test_panel import _browser, _collector, _open_in_chromium, _page_data
 
 U, N, R = "unextended", "neural", "reference"
 
@@ -164,17 +164,10 @@ def test_pairs_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp
     assert res.exit_code == 0, res.output
     assert "6 pairs" in res.output
     key = json.loads((tmp_path / "p" / "key.json").read_text())
-    args = ["--no-sandbox", "--disable-gpu", "--no-first-run", "--disable-background-networking", "--autoplay-policy=no-user-gesture-required"]
     out = tmp_path / "ana.json"
     with sync_playwright() as pw:
-        b = pw.chromium.launch(executable_path=browser, headless=True, args=args)
-        pg = b.new_page(accept_downloads=True)
-        errors = []
-        pg.on("pageerror", lambda e: errors.append(str(e)))
-        pg.goto((tmp_path / "p" / "page" / "index.html").as_uri())
+        b, pg, errors = _open_in_chromium(pw, browser, tmp_path / "p" / "page" / "index.html", "ana")
         assert pg.locator("[data-design=mushra]").count() == 0 and pg.locator("[data-design=ccr]").count() == 2  # the intro and the practice say pairs
-        pg.fill("#listener", "ana")
-        pg.wait_for_function("!document.getElementById('start').disabled", timeout=60000)
         for button in ("#start", "#level-play", "#level-stop", "#level-next"):
             pg.click(button)
         assert pg.locator("#training-buttons button").count() == 4  # the pair, first, second, stop

@@ -29,7 +29,7 @@ import numpy as np
 from scipy import stats
 
 from nenv.errors import InputError
-from nenv.report.verdicts import ANCHOR, HIDDEN_REFERENCE, Interval, number_field, load_key, load_results, ratings_in
+from nenv.report.verdicts import ANCHOR, HIDDEN_REFERENCE, Interval, collect, load_key, number_field
 
 SCALE = (-3, 3)
 SCREEN_CONTROL_AT_LEAST = 0.5  # share of the control pairs in which the original must be rated better
@@ -86,24 +86,22 @@ def read(result_files: Sequence[str | os.PathLike], key_file: str | os.PathLike)
     pairs = key.get("pairs")
     if not isinstance(pairs, dict):
         raise InputError(f"'{key_file}' is not the key of a pairs panel (no 'pairs')")
-    out = []
-    for path in result_files:
-        res = load_results(path, key)
-        seen = set()
-        for r in ratings_in(res, path):
-            p = pairs.get(str(r.get("trial")))
-            if p is None:
-                raise InputError(f"'{path}': pair {r.get('trial')!r} is not in the key")
-            score = number_field(r, "score", path)
-            if not (math.isfinite(score) and score == int(score) and SCALE[0] <= score <= SCALE[1]):
-                raise InputError(f"'{path}': score {r['score']} is not one of the steps -3..+3")
-            if r["trial"] in seen:
-                raise InputError(f"'{path}': pair {r['trial']!r} is rated twice")
-            seen.add(r["trial"])
-            out.append(PairRating(str(res["listener"]), str(r["trial"]), p["clip"], p["first"], p["second"], int(score), number_field(r, "seconds", path, math.nan)))
-    if not out:
-        raise InputError("no ratings in the results given")
-    return out
+    seen: set[tuple[str, str]] = set()
+
+    def make(listener: str, r: dict, path: str) -> PairRating:
+        trial = str(r.get("trial"))
+        p = pairs.get(trial)
+        if p is None:
+            raise InputError(f"'{path}': pair {trial!r} is not in the key")
+        score = number_field(r, "score", path)
+        if not (math.isfinite(score) and score == int(score) and SCALE[0] <= score <= SCALE[1]):
+            raise InputError(f"'{path}': score {r['score']} is not one of the steps -3..+3")
+        if (path, trial) in seen:
+            raise InputError(f"'{path}': pair {trial!r} is rated twice")
+        seen.add((path, trial))
+        return PairRating(listener, trial, p["clip"], p["first"], p["second"], int(score), number_field(r, "seconds", path, math.nan))
+
+    return collect(result_files, key, make)
 
 
 def screen(ratings: Sequence[PairRating]) -> dict[str, str]:

@@ -23,7 +23,7 @@ import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 from scipy import stats
@@ -130,24 +130,32 @@ def number_field(r: dict, field: str, path, default: float | None = None) -> flo
         raise InputError(f"'{path}': a rating's {field} is {v!r}, not a number") from None
 
 
-def read(result_files: Sequence[str | os.PathLike], key_file: str | os.PathLike) -> list[Rating]:
-    """Every rating in the results files, mapped to its system through the panel's key."""
-    key = load_key(key_file)
-    stimuli = key["stimuli"]
+def collect(result_files: Sequence[str | os.PathLike], key: dict, make: Callable[[str, dict, str], object]) -> list:
+    """``make(listener, rating, path)`` for every rating of every results file (of the panel ``key``);
+    InputError if there are none."""
     out = []
     for path in result_files:
         res = load_results(path, key)
-        for r in ratings_in(res, path):
-            s = stimuli.get(r.get("stimulus"))
-            if s is None:
-                raise InputError(f"'{path}': stimulus {r.get('stimulus')!r} is not in the key (results of the other design?)")
-            score = number_field(r, "score", path)
-            if not 0.0 <= score <= 100.0:
-                raise InputError(f"'{path}': score {score} is outside 0..100")
-            out.append(Rating(str(res["listener"]), str(r.get("trial")), s["clip"], s["system"], score, number_field(r, "seconds", path, math.nan)))
+        out += [make(str(res["listener"]), r, str(path)) for r in ratings_in(res, path)]
     if not out:
         raise InputError("no ratings in the results given")
     return out
+
+
+def read(result_files: Sequence[str | os.PathLike], key_file: str | os.PathLike) -> list[Rating]:
+    """Every rating in the results files, mapped to its system through the panel's key."""
+    key = load_key(key_file)
+
+    def make(listener: str, r: dict, path: str) -> Rating:
+        s = key["stimuli"].get(r.get("stimulus"))
+        if s is None:
+            raise InputError(f"'{path}': stimulus {r.get('stimulus')!r} is not in the key (results of the other design?)")
+        score = number_field(r, "score", path)
+        if not 0.0 <= score <= 100.0:
+            raise InputError(f"'{path}': score {score} is outside 0..100")
+        return Rating(listener, str(r.get("trial")), s["clip"], s["system"], score, number_field(r, "seconds", path, math.nan))
+
+    return collect(result_files, key, make)
 
 
 def screen(ratings: Sequence[Rating]) -> dict[str, str]:
