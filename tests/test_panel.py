@@ -68,6 +68,12 @@ def test_analysis_reproduces_a_worked_example_and_flags_a_careless_listener(tmp_
     assert p.wilcoxon_p == pytest.approx(0.125)
     md = verdicts.to_markdown(a)
     assert "excluded L3" in md and "65.0 [44.5, 85.5]" in md
+    # per speaker group: clip0 female (neural 60, 50 -> 55), clip1 not in the table -> "(no group)" (70, 80 -> 75)
+    g = verdicts.analyse(verdicts.read(files, key), groups={"clip0": "female"})
+    assert list(g.per_group) == ["(no group)", "female"]
+    assert (g.per_group["female"]["neural"].mean, g.per_group["female"]["neural"].n) == (55.0, 2) and g.per_group["(no group)"]["neural"].mean == 75.0
+    assert "Per speaker group" in verdicts.to_markdown(g) and "group female,neural,55.0" in verdicts.to_csv(g)
+    assert a.per_group == {} and "Per speaker group" not in md  # no groups given, no group table
     assert "neural,65.0" in verdicts.to_csv(a).replace("all,", "")
 
 

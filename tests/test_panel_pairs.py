@@ -77,6 +77,11 @@ def test_pairs_analysis_reproduces_a_worked_example_and_screens_a_listener_who_h
     md = ccr.to_markdown(a)
     assert "excluded L3" in md and "| neural | +0.75 [-0.28, +1.78] | 4 |" in md and "original (control)" in md
     assert "all,neural,0.75" in ccr.to_csv(a)
+    # per speaker group: c0 female (units 1.5, 1.0 -> 1.25), c1 not in the table -> "(no group)" (0.5, 0.0 -> 0.25)
+    g = {p.system: p for p in ccr.analyse(ccr.read(files, key), groups={"c0": "female"}).preferences}
+    assert g[N].per_group["female"].mean == pytest.approx(1.25) and g[N].per_group["female"].n == 2
+    assert g[N].per_group["(no group)"].mean == pytest.approx(0.25) and pref[N].per_group == {}
+    assert "Per speaker group" in ccr.to_markdown(ccr.analyse(ccr.read(files, key), groups={"c0": "female"})) and "Per speaker group" not in md
     rows = ccr.ratings_csv(ccr.read(files, key)).splitlines()
     assert rows[0] == "listener,trial,clip,first,second,score,seconds" and len(rows) == 1 + 18
 
@@ -196,8 +201,10 @@ def test_pairs_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp
     saved = json.loads(out.read_text())
     assert posted.bodies[0]["ratings"] == saved["ratings"] and sorted(answered) == sorted(key["pairs"])
     assert {r["trial"]: r["score"] for r in saved["ratings"]} == answered
-    res = runner.invoke(app, ["verdicts", str(out), "--key", str(tmp_path / "p" / "key.json"), "--out", str(tmp_path / "v")])
+    (tmp_path / "groups.csv").write_text("clip,group\narctic_a0007,male\narctic_a0009,female\n")
+    res = runner.invoke(app, ["verdicts", str(out), "--key", str(tmp_path / "p" / "key.json"), "--out", str(tmp_path / "v"), "--groups", str(tmp_path / "groups.csv")])
     assert res.exit_code == 0, res.output
+    assert "| imaging | +2.00 (n=1) | +2.00 (n=1) |" in res.output  # female, male: one listener, one clip each
     a = ccr.analyse(ccr.read([out], tmp_path / "p" / "key.json"))
     pref = {p.system: p for p in a.preferences}
     # imaging after unextended: +3; before it: -1, negated +1 -> every unit 2.0; the original the same way

@@ -51,18 +51,21 @@ def verdicts(
     key: Annotated[Path, typer.Option(help="The panel's key.json (written by nenv panel).")],
     out: Annotated[Path, typer.Option(help="Folder for verdicts.md, verdicts.csv, ratings.csv and verdicts.png (created if missing).")],
     default_system: Annotated[str, typer.Option(help="The system compared pairwise with every other (versions against the original).")] = "neural",
+    groups: Annotated[Optional[Path], typer.Option(help="CSV with the columns clip and group (e.g. female/male; clip = a reference's file name without suffix): adds a result per group.")] = None,
 ) -> None:
     """Analyse a listening panel: screening, mean scores with 95% intervals, paired differences."""
     from nenv.media.files import output_folder, write_text
     from nenv.report import ccr
     from nenv.report import verdicts as vd
+    from nenv.report.evaluate import read_groups
 
+    group_table = read_groups(groups) if groups is not None else None
     if ccr.is_pairs_key(key):
         kind, ratings = ccr, ccr.read([str(p) for p in results], key)
-        found = ccr.analyse(ratings)
+        found = ccr.analyse(ratings, groups=group_table)
     else:
         kind, ratings = vd, vd.read([str(p) for p in results], key)
-        found = vd.analyse(ratings, default_system=default_system)
+        found = vd.analyse(ratings, default_system=default_system, groups=group_table)
     folder = output_folder(out)
     write_text(folder / "ratings.csv", kind.ratings_csv(ratings))  # every rating, excluded listeners' too
     md = kind.to_markdown(found)

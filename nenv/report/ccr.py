@@ -14,6 +14,8 @@ better). Every system met the unextended signal on every clip in both orders, so
    with the unextended signal. A listener who did not rate the original better than the unextended
    signal in at least half of those pairs does not hear the upper band (headphones, room or hearing)
    and is excluded, and named.
+
+Given the clips' speaker groups (``groups``, e.g. female/male), the CMOS is also reported per group.
 """
 
 from __future__ import annotations
@@ -29,7 +31,7 @@ import numpy as np
 from scipy import stats
 
 from nenv.errors import InputError
-from nenv.report.verdicts import ANCHOR, HIDDEN_REFERENCE, Interval, collect, load_key, number_field
+from nenv.report.verdicts import ANCHOR, HIDDEN_REFERENCE, Interval, collect, group_names, group_of_clip, load_key, number_field
 
 SCALE = (-3, 3)
 SCREEN_CONTROL_AT_LEAST = 0.5  # share of the control pairs in which the original must be rated better
@@ -65,6 +67,7 @@ class Preference:
     second: float  # mean rating against unextended where the system came second
     first: float  # ... and where it came first
     per_clip: dict[str, Interval]
+    per_group: dict[str, Interval]  # speaker group -> CMOS over its clips' units (empty without groups)
 
 
 @dataclass
@@ -134,7 +137,8 @@ def _tests(values: np.ndarray) -> tuple[float, float]:
     return t_p, w_p
 
 
-def analyse(ratings: Sequence[PairRating]) -> PairAnalysis:
+def analyse(ratings: Sequence[PairRating], *, groups: dict[str, str] | None = None) -> PairAnalysis:
+    """``groups``: clip -> speaker group (e.g. female/male), for a CMOS per group as well."""
     excluded = screen(ratings)
     kept = [r for r in ratings if r.listener not in excluded]
     systems = sorted({a[0] for r in kept if (a := r.against_anchor())}, key=lambda s: (s != HIDDEN_REFERENCE, s))
@@ -146,7 +150,8 @@ def analyse(ratings: Sequence[PairRating]) -> PairAnalysis:
         order = {place: [a[1] for r in kept if (a := r.against_anchor()) and a[0] == s and getattr(r, place) == s] for place in ("first", "second")}
         clips = sorted({c for _, c in units})
         per_clip = {c: Interval.of([u for (_, cc), u in units.items() if cc == c]) for c in clips}
-        prefs.append(Preference(s, Interval.of(v), t_p, w_p, _mean(order["second"]), _mean(order["first"]), per_clip))
+        per_group = {g: Interval.of([u for (_, c), u in units.items() if group_of_clip(c, groups) == g]) for g in group_names(kept, groups)}
+        prefs.append(Preference(s, Interval.of(v), t_p, w_p, _mean(order["second"]), _mean(order["first"]), per_clip, per_group))
     return PairAnalysis(kept, sorted({r.listener for r in kept}), excluded, prefs)
 
 
@@ -180,6 +185,10 @@ def to_markdown(a: PairAnalysis) -> str:
     lines.append("|---|---:|---:|---:|---:|---:|---:|")
     for p in a.preferences:
         lines.append(f"| {_label(p.system)} | {_fmt(p.cmos)} | {p.cmos.n} | {p.t_p:.3g} | {p.wilcoxon_p:.3g} | {p.second:+.2f} | {p.first:+.2f} |")
+    group_list = sorted({g for p in a.preferences for g in p.per_group})
+    if group_list:
+        lines += ["", "Per speaker group (CMOS vs unextended [95% confidence interval], n):", "", "| system | " + " | ".join(group_list) + " |", "|---|" + "---:|" * len(group_list)]
+        lines += [f"| {_label(p.system)} | " + " | ".join(f"{_fmt(p.per_group[g])} (n={p.per_group[g].n})" if g in p.per_group else "-" for g in group_list) + " |" for p in a.preferences]
     clips = sorted({c for p in a.preferences for c in p.per_clip})
     lines += ["", "Per clip (CMOS vs unextended, mean over listeners):", ""]
     lines.append("| system | " + " | ".join(clips) + " |")
@@ -197,6 +206,8 @@ def to_csv(a: PairAnalysis) -> str:
         w.writerow(["all", p.system, p.cmos.mean, p.cmos.low, p.cmos.high, p.cmos.n])
         for c, iv in p.per_clip.items():
             w.writerow([c, p.system, iv.mean, iv.low, iv.high, iv.n])
+        for g, iv in p.per_group.items():
+            w.writerow([f"group {g}", p.system, iv.mean, iv.low, iv.high, iv.n])
     return buf.getvalue()
 
 

@@ -11,7 +11,8 @@ Reads the results files the panel page saves (one per listener session, JSON) an
 3. **paired differences** between systems on the same trials (every pair with the unextended
    signal, and the default model against each other system): mean difference with its 95%
    interval, the paired t-test and, as a check that does not assume normal differences, the
-   Wilcoxon signed-rank test (both from scipy.stats).
+   Wilcoxon signed-rank test (both from scipy.stats);
+4. given the clips' speaker groups (e.g. female/male), each system's mean per group as well.
 """
 
 from __future__ import annotations
@@ -21,7 +22,7 @@ import io
 import json
 import math
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Sequence
 
@@ -88,6 +89,7 @@ class Analysis:
     overall: dict[str, Interval]  # system -> interval
     per_clip: dict[str, dict[str, Interval]]  # clip -> system -> interval
     paired: list[Paired]
+    per_group: dict[str, dict[str, Interval]] = field(default_factory=dict)  # speaker group -> system -> interval
 
 
 def load_key(key_file: str | os.PathLike) -> dict:
@@ -176,7 +178,8 @@ def screen(ratings: Sequence[Rating]) -> dict[str, str]:
     return excluded
 
 
-def analyse(ratings: Sequence[Rating], *, default_system: str = "neural") -> Analysis:
+def analyse(ratings: Sequence[Rating], *, default_system: str = "neural", groups: dict[str, str] | None = None) -> Analysis:
+    """``groups``: clip -> speaker group (e.g. female/male), for a mean per group as well."""
     excluded = screen(ratings)
     kept = [r for r in ratings if r.listener not in excluded]
     systems = sorted({r.system for r in kept}, key=lambda s: (s != HIDDEN_REFERENCE, s != ANCHOR, s))
@@ -186,7 +189,21 @@ def analyse(ratings: Sequence[Rating], *, default_system: str = "neural") -> Ana
     if default_system in systems:
         pairs += [(default_system, s) for s in systems if s not in (default_system, ANCHOR)]
     paired = [p for p in (_paired(kept, a, b) for a, b in pairs) if p is not None]
-    return Analysis(kept, sorted({r.listener for r in kept}), excluded, overall, per_clip, paired)
+    per_group = {g: {s: Interval.of([r.score for r in kept if r.system == s and group_of_clip(r.clip, groups) == g]) for s in systems} for g in group_names(kept, groups)}
+    return Analysis(kept, sorted({r.listener for r in kept}), excluded, overall, per_clip, paired, per_group)
+
+
+NO_GROUP = "(no group)"
+
+
+def group_of_clip(clip: str, groups: dict[str, str] | None) -> str:
+    """The speaker group of a clip in ``groups`` (clip -> group), or NO_GROUP."""
+    return (groups or {}).get(clip, NO_GROUP)
+
+
+def group_names(ratings: Sequence, groups: dict[str, str] | None) -> list[str]:
+    """The groups the rated clips fall in, sorted (none without ``groups``)."""
+    return sorted({group_of_clip(r.clip, groups) for r in ratings}) if groups else []
 
 
 def _paired(ratings: Sequence[Rating], a: str, b: str) -> Paired | None:
@@ -222,6 +239,9 @@ def to_markdown(a: Analysis) -> str:
     lines.append("|---|---:|" + "---:|" * len(clips))
     for s, iv in a.overall.items():
         lines.append(f"| {s} | {_fmt(iv)} (n={iv.n}) | " + " | ".join(_fmt(a.per_clip[c][s]) for c in clips) + " |")
+    if a.per_group:
+        lines += ["", "Per speaker group (mean [95% confidence interval], n):", "", "| system | " + " | ".join(a.per_group) + " |", "|---|" + "---:|" * len(a.per_group)]
+        lines += [f"| {s} | " + " | ".join(f"{_fmt(by[s])} (n={by[s].n})" for by in a.per_group.values()) + " |" for s in a.overall]
     lines += ["", "Paired differences on the same trials (paired t-test; Wilcoxon signed-rank test as a check):", ""]
     lines.append("| a - b | mean difference [95% CI] | n | t-test p | Wilcoxon p |")
     lines.append("|---|---:|---:|---:|---:|")
@@ -239,6 +259,9 @@ def to_csv(a: Analysis) -> str:
     for c, by in a.per_clip.items():
         for s, iv in by.items():
             w.writerow([c, s, iv.mean, iv.low, iv.high, iv.n])
+    for g, by in a.per_group.items():
+        for s, iv in by.items():
+            w.writerow([f"group {g}", s, iv.mean, iv.low, iv.high, iv.n])
     return buf.getvalue()
 
 
