@@ -162,14 +162,6 @@ def _mean(values: Sequence[float]) -> float:
 # ---- tables and figure ---------------------------------------------------------------------
 
 
-def _fmt(iv: Interval) -> str:
-    if iv.n == 0:
-        return "-"
-    if math.isnan(iv.low):
-        return f"{iv.mean:+.2f}"
-    return f"{iv.mean:+.2f} [{iv.low:+.2f}, {iv.high:+.2f}]"
-
-
 def _label(system: str) -> str:
     return "original (control)" if system == HIDDEN_REFERENCE else system
 
@@ -184,11 +176,11 @@ def to_markdown(a: PairAnalysis) -> str:
     lines.append("| system | CMOS vs unextended | n | t-test p | Wilcoxon p | when second | when first |")
     lines.append("|---|---:|---:|---:|---:|---:|---:|")
     for p in a.preferences:
-        lines.append(f"| {_label(p.system)} | {_fmt(p.cmos)} | {p.cmos.n} | {p.t_p:.3g} | {p.wilcoxon_p:.3g} | {p.second:+.2f} | {p.first:+.2f} |")
+        lines.append(f"| {_label(p.system)} | {p.cmos.text('+.2f')} | {p.cmos.n} | {p.t_p:.3g} | {p.wilcoxon_p:.3g} | {p.second:+.2f} | {p.first:+.2f} |")
     group_list = sorted({g for p in a.preferences for g in p.per_group})
     if group_list:
         lines += ["", "Per speaker group (CMOS vs unextended [95% confidence interval], n):", "", "| system | " + " | ".join(group_list) + " |", "|---|" + "---:|" * len(group_list)]
-        lines += [f"| {_label(p.system)} | " + " | ".join(f"{_fmt(p.per_group[g])} (n={p.per_group[g].n})" if g in p.per_group else "-" for g in group_list) + " |" for p in a.preferences]
+        lines += [f"| {_label(p.system)} | " + " | ".join(f"{p.per_group[g].text('+.2f')} (n={p.per_group[g].n})" if g in p.per_group else "-" for g in group_list) + " |" for p in a.preferences]
     clips = sorted({c for p in a.preferences for c in p.per_clip})
     lines += ["", "Per clip (CMOS vs unextended, mean over listeners):", ""]
     lines.append("| system | " + " | ".join(clips) + " |")

@@ -69,6 +69,14 @@ class Interval:
         half = float(stats.t.ppf(0.975, n - 1) * v.std(ddof=1) / math.sqrt(n))
         return cls(m, m - half, m + half, n)
 
+    def text(self, spec: str = ".1f") -> str:
+        """``mean [low, high]`` in the format ``spec``; the mean alone without an interval; ``-`` for none."""
+        if self.n == 0:
+            return "-"
+        if math.isnan(self.low):
+            return format(self.mean, spec)
+        return f"{self.mean:{spec}} [{self.low:{spec}}, {self.high:{spec}}]"
+
 
 @dataclass(frozen=True)
 class Paired:
@@ -220,14 +228,6 @@ def _paired(ratings: Sequence[Rating], a: str, b: str) -> Paired | None:
 # ---- tables ----------------------------------------------------------------------------------
 
 
-def _fmt(iv: Interval) -> str:
-    if iv.n == 0:
-        return "-"
-    if math.isnan(iv.low):
-        return f"{iv.mean:.1f}"
-    return f"{iv.mean:.1f} [{iv.low:.1f}, {iv.high:.1f}]"
-
-
 def to_markdown(a: Analysis) -> str:
     lines = [f"Listeners kept: {len(a.listeners)} ({', '.join(a.listeners) or 'none'}); excluded: {len(a.excluded)}"]
     lines += [f"- excluded {who}: {why}" for who, why in a.excluded.items()]
@@ -238,15 +238,15 @@ def to_markdown(a: Analysis) -> str:
     lines.append("| system | all | " + " | ".join(clips) + " |")
     lines.append("|---|---:|" + "---:|" * len(clips))
     for s, iv in a.overall.items():
-        lines.append(f"| {s} | {_fmt(iv)} (n={iv.n}) | " + " | ".join(_fmt(a.per_clip[c][s]) for c in clips) + " |")
+        lines.append(f"| {s} | {iv.text()} (n={iv.n}) | " + " | ".join(a.per_clip[c][s].text() for c in clips) + " |")
     if a.per_group:
         lines += ["", "Per speaker group (mean [95% confidence interval], n):", "", "| system | " + " | ".join(a.per_group) + " |", "|---|" + "---:|" * len(a.per_group)]
-        lines += [f"| {s} | " + " | ".join(f"{_fmt(by[s])} (n={by[s].n})" for by in a.per_group.values()) + " |" for s in a.overall]
+        lines += [f"| {s} | " + " | ".join(f"{by[s].text()} (n={by[s].n})" for by in a.per_group.values()) + " |" for s in a.overall]
     lines += ["", "Paired differences on the same trials (paired t-test; Wilcoxon signed-rank test as a check):", ""]
     lines.append("| a - b | mean difference [95% CI] | n | t-test p | Wilcoxon p |")
     lines.append("|---|---:|---:|---:|---:|")
     for p in a.paired:
-        lines.append(f"| {p.a} - {p.b} | {_fmt(p.difference)} | {p.difference.n} | {p.t_p:.3g} | {p.wilcoxon_p:.3g} |")
+        lines.append(f"| {p.a} - {p.b} | {p.difference.text()} | {p.difference.n} | {p.t_p:.3g} | {p.wilcoxon_p:.3g} |")
     return "\n".join(lines) + "\n"
 
 
