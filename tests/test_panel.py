@@ -249,6 +249,7 @@ def test_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp_path)
     for listener in ("ana", "ben"):
         with sync_playwright() as pw:
             b, pg, errors = _open_in_chromium(pw, browser, tmp_path / "p" / "page" / "index.html", listener)
+            assert pg.locator("[data-design=ccr]").count() == 0 and pg.locator("[data-design=mushra]").count() == 3  # no word of pairs
             pg.click("#start")
             pg.click("#level-play")
             pg.click("#level-stop")

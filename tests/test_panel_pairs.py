@@ -172,7 +172,7 @@ def test_pairs_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp
     out = tmp_path / "ana.json"
     with sync_playwright() as pw:
         b, pg, errors = _open_in_chromium(pw, browser, tmp_path / "p" / "page" / "index.html", "ana")
-        assert pg.locator("[data-design=mushra]").count() == 0 and pg.locator("[data-design=ccr]").count() == 2  # the intro and the practice say pairs
+        assert pg.locator("[data-design=mushra]").count() == 0 and pg.locator("[data-design=ccr]").count() == 3  # the intro, its cautions and the practice say pairs
         for button in ("#start", "#level-play", "#level-stop", "#level-next"):
             pg.click(button)
         assert pg.locator("#training-buttons button").count() == 4  # the pair, first, second, stop
