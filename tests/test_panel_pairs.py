@@ -205,6 +205,10 @@ def test_pairs_page_runs_in_a_real_browser_and_its_results_feed_the_analysis(tmp
     res = runner.invoke(app, ["verdicts", str(out), "--key", str(tmp_path / "p" / "key.json"), "--out", str(tmp_path / "v"), "--groups", str(tmp_path / "groups.csv")])
     assert res.exit_code == 0, res.output
     assert "| imaging | +2.00 (n=1) | +2.00 (n=1) |" in res.output  # female, male: one listener, one clip each
+    assert "not in" not in res.output  # every clip has its group
+    (tmp_path / "groups.csv").write_text("clip,group\narctic_a0009,female\n")
+    res = runner.invoke(app, ["verdicts", str(out), "--key", str(tmp_path / "p" / "key.json"), "--out", str(tmp_path / "v"), "--groups", str(tmp_path / "groups.csv")])
+    assert res.exit_code == 0 and "1 clip not in" in res.output and "(first: arctic_a0007) counts under '(no group)'" in res.output
     a = ccr.analyse(ccr.read([out], tmp_path / "p" / "key.json"))
     pref = {p.system: p for p in a.preferences}
     # imaging after unextended: +3; before it: -1, negated +1 -> every unit 2.0; the original the same way

@@ -57,6 +57,16 @@ def _say(msg: str) -> None:
     typer.echo(msg, err=True)
 
 
+def _unknown_clips(clips: set[str], group_table: Optional[dict], groups: Optional[Path]) -> None:
+    """Say which clips the groups table (``--groups``) does not name: they count under '(no group)'."""
+    from nenv.report.evaluate import group_of
+    from nenv.words import count
+
+    unknown = sorted(c for c in clips if group_table is not None and group_of(c, group_table) is None)
+    if unknown:
+        _say(f"nenv: note: {count(len(unknown), 'clip')} not in {groups} (first: {unknown[0]}) {'counts' if len(unknown) == 1 else 'count'} under '(no group)'")
+
+
 def _guarded(fn: Callable) -> Callable:
     """Turn nenv's own errors into one line on stderr and exit status 2; Ctrl-C into 130."""
 

@@ -10,7 +10,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from nenv.cli.app import Law, _guarded, _kernels_ready, _progress, _say, app
+from nenv.cli.app import Law, _guarded, _kernels_ready, _progress, _say, _unknown_clips, app
 
 PanelMethod = enum.Enum("PanelMethod", [(v, v) for v in ("neural", "codebook", "imaging")], type=str)
 PanelDesign = enum.Enum("PanelDesign", [(v, v) for v in ("mushra", "ccr")], type=str)
@@ -66,6 +66,7 @@ def verdicts(
     else:
         kind, ratings = vd, vd.read([str(p) for p in results], key)
         found = vd.analyse(ratings, default_system=default_system, groups=group_table)
+    _unknown_clips({r.clip for r in ratings}, group_table, groups)
     folder = output_folder(out)
     write_text(folder / "ratings.csv", kind.ratings_csv(ratings))  # every rating, excluded listeners' too
     md = kind.to_markdown(found)

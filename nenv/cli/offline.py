@@ -12,7 +12,7 @@ import typer
 
 from nenv.words import count
 from nenv import __version__
-from nenv.cli.app import DEMO_CLIP, LowBandOpt, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, app
+from nenv.cli.app import DEMO_CLIP, LowBandOpt, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, _unknown_clips, app
 from nenv.errors import InputError
 
 JobsOpt = Annotated[int, typer.Option(min=0, help="Clips scored in this many processes (0 = one per core). Each needs its own memory (under 0.8 GB for a 3-minute clip); on 2 cores, 2 processes took 11-16% less time than one.")]
@@ -315,14 +315,6 @@ def _show(texts: list[str], head_to_head: str, blanks: list[str], verdicts: list
         _say(f"nenv: note: {b}")
     for line in verdicts:
         _say(f"nenv: {line}")
-
-
-def _unknown_clips(clips: set[str], group_table: Optional[dict], groups: Optional[Path]) -> None:
-    from nenv.report.evaluate import group_of
-
-    unknown = sorted(c for c in clips if group_table is not None and group_of(c, group_table) is None)
-    if unknown:
-        _say(f"nenv: note: {count(len(unknown), 'clip')} not in {groups} (first: {unknown[0]}) {'counts' if len(unknown) == 1 else 'count'} under '(no group)'")
 
 
 @app.command()
