@@ -38,7 +38,7 @@ def panel(
         key = pn.prepare([str(p) for p in references], out, systems=systems, model=model, law=law, post_url=post_url, on_step=lambda s: bar.advance(task), overwrite=overwrite, design=design.value)
     n = len(key["trials"])
     if design.value == "ccr":
-        _say(f"wrote {out / 'page' / 'index.html'}: {n} pair{'s' if n != 1 else ''} ({', '.join(key['systems'][2:])} against unextended in both orders, and the original against unextended), levels aligned")
+        _say(f"wrote {out / 'page' / 'index.html'}: {n} pair{'s' if n != 1 else ''} ({', '.join(dict.fromkeys(systems))} against unextended in both orders, and the original against unextended), levels aligned")
     else:
         _say(f"wrote {out / 'page' / 'index.html'}: {n} trial{'s' if n != 1 else ''} of {len(key['systems'])} stimuli ({', '.join(key['systems'])}), levels aligned")
     _say(f"kept the key in {out / 'key.json'} (not for listeners); analyse the results with: nenv verdicts RESULTS.json... --key {out / 'key.json'} --out DIR")

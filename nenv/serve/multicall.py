@@ -118,8 +118,8 @@ class MultiCallEngine:
         """Process queued whole hops: each round takes every call with a hop queued, as many hops
         as all of them have (H), and runs them as one batch of B calls x H hops."""
         order = list(self._calls.values())  # row order
+        candidates = range(len(order)) if only is None else (list(self._calls).index(only),)
         while True:
-            candidates = range(len(order)) if only is None else (list(self._calls).index(only),)
             rows = [i for i in candidates if order[i].pending.size >= HOP_NB]
             if not rows:
                 return
