@@ -24,7 +24,7 @@ from tests.conftest import ARCTIC
 
 runner = CliRunner()
 TABLE = Path(__file__).resolve().parents[1] / "docs" / "bad-input.md"
-ROWS = [f"F{i}" for i in range(1, 16)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 9)]
+ROWS = [f"F{i}" for i in range(1, 16)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 10)]
 
 
 def _run(*args):
@@ -437,6 +437,19 @@ def test_m7_model_files_of_the_wrong_kind(tmp_path, call):
     shutil.copy(call, m / "model.onnx")  # a WAV named model.onnx
     _refused(_run("extend", call, tmp_path / "out.wav", "--model", m), "cannot load")
     _no_output(tmp_path)
+
+
+def test_m9_calibration_out_of_range(tmp_path, call):
+    m = _model_copy(tmp_path)
+    info = json.loads((m / "nenv.json").read_text())
+    info["calibration"] = {"band_trim_db": 25}
+    (m / "nenv.json").write_text(json.dumps(info))
+    _refused(_run("extend", call, tmp_path / "out.wav", "--model", m), "calibration band_trim_db must be a number of dB from -40 to 12")
+    _refused(_run("extend", call, tmp_path / "out.wav", "--band-trim", "-50"), "from -40 to 12, got -50")
+    _refused(_run("extend", call, tmp_path / "out.wav", "--method", "imaging", "--band-trim", "-6"), "the imaging method has none")
+    _refused(_run("evaluate", ARCTIC[0], "--out", tmp_path / "ev", "--method", "oracle", "--band-trim", "-6"), "add neural or codebook")
+    _no_output(tmp_path)
+    assert not (tmp_path / "ev").exists()
 
 
 def test_m8_train_replaces_only_a_model_folder(tmp_path, synthetic_corpus):

@@ -81,6 +81,7 @@ def test_model_folder_is_complete_and_self_describing(trained):
     info = json.loads((out / "nenv.json").read_text())
     assert info["features"]["context"] == 4 and info["model"]["hidden"] == [128, 128]
     assert info["recipe"]["codebook_size"] == 16
+    assert info["calibration"] == {"band_trim_db": 0.0}  # the recipe's calibration (its default: the trained level)
     assert set(info["normalisation"]) == {"x_mean", "x_std", "y_mean", "y_std"}
     rec = json.loads((out / "record.json").read_text())
     assert rec["record_id"] == info["record_id"] and rec["wall_s"] > 0

@@ -6,8 +6,9 @@ A checkpoint folder holds:
   out (normalisation folded in); its metadata repeats the feature settings;
 * ``codebook.npz``: the paired codebook (fallback and baseline);
 * ``nenv.json``: format version, feature settings, guard limits, model
-  arguments, normalisation statistics, the resolved training recipe and the
-  training record id;
+  arguments, normalisation statistics, the resolved training recipe, the
+  training record id and, optionally, the calibration of the added band
+  (``"calibration": {"band_trim_db": ...}``, see :data:`TRIM_RANGE_DB`);
 * optionally ``model.pt`` (torch weights, for re-export), ``record.json`` and
   ``curves.png`` from training.
 """
@@ -33,6 +34,7 @@ META_FEATURES = "nenv_features"  # ONNX metadata key holding the feature setting
 MODEL_FILE = "model.onnx"
 CODEBOOK_FILE = "codebook.npz"
 SETTINGS_FILE = "nenv.json"
+TRIM_RANGE_DB = (-40.0, 12.0)  # a calibration's band_trim_db must lie in this range (dB re the trained level)
 KEEP_BOUND_ROWS = 64  # Checkpoint.predict keeps its bound buffers between runs of at most this many rows
 
 
@@ -70,6 +72,7 @@ class Checkpoint:
     codebook: Codebook
     info: dict
     flush_denormals: bool = False
+    band_trim_db: float = 0.0  # level of the added high band against the trained level (the folder's calibration)
     _session: object = field(default=None, repr=False)
     _bound: threading.local = field(default_factory=threading.local, repr=False, compare=False)  # per thread: IOBinding buffers (predict)
 
@@ -152,7 +155,24 @@ def load(path: str | os.PathLike, *, flush_denormals: bool = False) -> Checkpoin
     except (KeyError, TypeError) as e:
         raise ConfigError(f"'{p / SETTINGS_FILE}' lacks a valid 'features' or 'guard' section: {e}") from e
     FeatureSettings().check_compatible(feats, what=f"the model in '{p}'")
-    return Checkpoint(p, feats, limits, Codebook.load(p / CODEBOOK_FILE), info, flush_denormals)
+    trim = band_trim(info.get("calibration", {}), where=f"'{p / SETTINGS_FILE}'")
+    return Checkpoint(p, feats, limits, Codebook.load(p / CODEBOOK_FILE), info, flush_denormals, trim)
+
+
+def band_trim(calibration, *, where: str) -> float:
+    """The ``band_trim_db`` of a model folder's calibration section (0 when absent); ConfigError naming
+    ``where`` when it is not a number within TRIM_RANGE_DB."""
+    if not isinstance(calibration, dict):
+        raise ConfigError(f"{where}: 'calibration' must be a table such as {{\"band_trim_db\": -6.0}}, got {calibration!r}")
+    return check_trim(calibration.get("band_trim_db", 0.0), what=f"{where}: calibration band_trim_db", error=ConfigError)
+
+
+def check_trim(value, *, what: str, error=ConfigError) -> float:
+    """``value`` as a float when it is a number of dB within TRIM_RANGE_DB, else ``error`` naming ``what``."""
+    lo, hi = TRIM_RANGE_DB
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not lo <= value <= hi:
+        raise error(f"{what} must be a number of dB from {lo:g} to {hi:g}, got {value!r}")
+    return float(value)
 
 
 def default_path() -> Path | None:

@@ -4,7 +4,8 @@ For every hop of 8 kHz input the :class:`Chain`
 
 1. frames and analyses the narrowband signal (LPC, order NB_ORDER), for systems that use it;
 2. asks its *system* for a 16 kHz high-band candidate for the hop;
-3. keeps only the band above 3.4 kHz of that candidate (elliptic high-pass) and, for a system made
+3. keeps only the band above 3.4 kHz of that candidate (elliptic high-pass), at the system's
+   ``band_gain`` (a model's calibration, 1 otherwise), and, for a system made
    with ``low_band=True``, also its 50-300 Hz band weighted per hop by the system (elliptic band
    filter, :func:`nenv.dsp.synthesis.low_band_sos`);
 4. adds them to the interpolated narrowband signal, which is never altered.
@@ -102,6 +103,9 @@ class Chain:
         iso = self._state.get("iso", sel)
         high = kernels.sosfilt(self._iso, candidate, iso)
         self._state.put("iso", sel, iso)
+        gain = getattr(self.system, "band_gain", 1.0)
+        if gain != 1.0:  # a model folder's calibration of its band (exactly the trained output otherwise)
+            high *= gain
         out = low + high
         if self.low_band:
             out += self._low_band(candidate, sel, B, H)

@@ -112,12 +112,18 @@ def low_band_weights(voicing: np.ndarray, gain: np.ndarray) -> np.ndarray:
 
 
 class SourceFilterSystem:
-    """Residual -> extended excitation -> wideband all-pole envelope from ``estimator``, per row."""
+    """Residual -> extended excitation -> wideband all-pole envelope from ``estimator``, per row.
+
+    ``band_gain``: amplitude factor on the added high band (the chain applies it after isolating the
+    band; the low band keeps its own level). 1 for the trained level; a model folder's calibration
+    sets it for the model's systems (:func:`make_system`).
+    """
 
     needs_analysis = True
 
     def __init__(self, estimator: EnvelopeEstimator, *, excitation: Method = DEFAULT_EXCITATION, low_band: bool = False):
         self.estimator = estimator
+        self.band_gain = 1.0
         self.name = estimator.name
         self.excitation = excitation
         self.low_band = low_band
@@ -212,7 +218,14 @@ def check_low_band(name: str, low_band: bool) -> None:
         raise InputError(f"low_band (--low-band): the {name} method adds no low band ({', '.join(LOW_BAND_SYSTEMS)} do)")
 
 
-def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION, model=None, low_band: bool = False) -> System:
+def check_band_trim(name: str, band_trim_db: float | None) -> None:
+    """InputError when a band trim is asked of a system that is not a model's (see :func:`make_system`)."""
+    name = getattr(name, "value", name)
+    if band_trim_db is not None and name not in MODEL_SYSTEMS:
+        raise InputError(f"band_trim_db (--band-trim) calibrates a model's band: the {name} method has none ({', '.join(MODEL_SYSTEMS)} do)")
+
+
+def make_system(name: str, *, reference: np.ndarray | None = None, excitation: Method = DEFAULT_EXCITATION, model=None, low_band: bool = False, band_trim_db: float | None = None) -> System:
     """Build a system by name.
 
     'unextended', 'imaging'; 'codebook' and 'neural' (need ``model``: a checkpoint
@@ -220,11 +233,26 @@ def make_system(name: str, *, reference: np.ndarray | None = None, excitation: M
     'oracle' and 'true-band' (need ``reference``, the time-aligned 16 kHz original).
     ``low_band``: add the 50-300 Hz band as well (LOW_BAND_SYSTEMS; asking it of unextended or
     imaging, which have nothing to shape one with, is an InputError).
+    ``band_trim_db``: level of the model systems' added high band in dB against the trained level;
+    None takes the model folder's calibration (0 dB when it has none). Asking it of any other
+    system is an InputError.
     """
     if name not in SYSTEMS:
         raise InputError(f"method={name!r} is not known: choose one of {', '.join(SYSTEMS)}")
     check_low_band(name, low_band)
-    return SYSTEMS[name](reference, excitation, model, low_band)
+    check_band_trim(name, band_trim_db)
+    if name not in MODEL_SYSTEMS:
+        return SYSTEMS[name](reference, excitation, model, low_band)
+    model = load_model(model)
+    if band_trim_db is None:
+        band_trim_db = model.band_trim_db
+    else:
+        from nenv.chain.checkpoint import check_trim
+
+        band_trim_db = check_trim(band_trim_db, what="band_trim_db (--band-trim)", error=InputError)
+    system = SYSTEMS[name](reference, excitation, model, low_band)
+    system.band_gain = 10 ** (band_trim_db / 20)
+    return system
 
 
-__all__ = ["DEFAULT_EXCITATION", "LOW_BAND_SYSTEMS", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "check_low_band", "load_model", "make_system"]
+__all__ = ["DEFAULT_EXCITATION", "LOW_BAND_SYSTEMS", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "check_band_trim", "check_low_band", "load_model", "make_system"]

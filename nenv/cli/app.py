@@ -99,6 +99,7 @@ def _progress():
 
 ChannelOpt = Annotated[Optional[int], typer.Option("--channel", min=0, help="Channel of a multichannel file to use (0 = first).")]
 MixOpt = Annotated[bool, typer.Option("--mix", help="Average all channels of a multichannel file.")]
+BandTrimOpt = Annotated[Optional[float], typer.Option("--band-trim", help="Level of the model's added high band in dB against its trained level (neural, codebook; negative is quieter). Default: the model folder's calibration, 0 dB when it has none.", show_default=False)]
 LowBandOpt = Annotated[bool, typer.Option("--low-band", help="Also add an estimated 50-300 Hz band (neural, codebook, oracle, true-band). Off by default: it lowers WB-PESQ (docs/2026-12-03-low-band.md).")]
 
 

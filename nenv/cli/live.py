@@ -175,7 +175,7 @@ def relay(
     except OSError as e:
         raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
     host = f"[{r.address[0]}]" if ":" in r.address[0] else r.address[0]
-    _say(f"relaying RTP from {host}:{r.address[1]} to {to} (method={method}{' with the low band' if low_band else ''}, output payload type {payload_type}{', symmetric' if symmetric else ''}); stop with Ctrl-C")
+    _say(f"relaying RTP from {host}:{r.address[1]} to {to} (method={method}{' with the low band' if low_band else ''}{f', band {ck.band_trim_db:+g} dB by the model folder' if ck is not None and ck.band_trim_db else ''}, output payload type {payload_type}{', symmetric' if symmetric else ''}); stop with Ctrl-C")
     if r.receive_buffer < rtp.RECEIVE_BUFFER_BYTES:
         _say(f"note: the system allows a receive buffer of only {r.receive_buffer // 1024} KiB (net.core.rmem_max); under load, packets that arrive "
              f"during a step may be dropped: raise net.core.rmem_max to {rtp.RECEIVE_BUFFER_BYTES} or more")

@@ -12,7 +12,7 @@ import typer
 
 from nenv.words import count
 from nenv import __version__
-from nenv.cli.app import DEMO_CLIP, LowBandOpt, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, _unknown_clips, app
+from nenv.cli.app import DEMO_CLIP, BandTrimOpt, LowBandOpt, SNR_RANGE_DB, AudioFormat, ChannelOpt, Excitation, Law, LawChoice, Method, MethodChoice, MixOpt, _default_method, _guarded, _kernels_ready, _progress, _say, _unknown_clips, app
 from nenv.errors import InputError
 
 JobsOpt = Annotated[int, typer.Option(min=0, help="Clips scored in this many processes (0 = one per core). Each needs its own memory (under 0.8 GB for a 3-minute clip); on 2 cores, 2 processes took 11-16% less time than one.")]
@@ -67,6 +67,7 @@ def extend(
     model: Annotated[Optional[Path], typer.Option(help="Model folder made by 'nenv train' (default: $NENV_MODEL, else the shipped model).")] = None,
     excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
     low_band: LowBandOpt = False,
+    band_trim: BandTrimOpt = None,
     reference: Annotated[Optional[Path], typer.Option(help="Wideband original, for --method oracle or true-band only (one file).")] = None,
     figure: Annotated[Optional[Path], typer.Option(help="Also write a spectrogram figure (.png, .svg, .pdf): input vs output (one file).")] = None,
     resample: Annotated[bool, typer.Option("--resample", help="Accept input at another rate (4-192 kHz) and resample it to 8 kHz.")] = False,
@@ -81,12 +82,13 @@ def extend(
 ) -> None:
     """Extend 8 kHz telephone speech to 16 kHz wideband speech: one file, or whole folders in parallel."""
     _kernels_ready()
-    from nenv.chain.systems import check_low_band
+    from nenv.chain.systems import check_band_trim, check_low_band
     from nenv.serve import batch, streamfile
 
     method = method or _default_method(model)
     check_low_band(method, low_band)  # before any file is read
-    opts = streamfile.Options(method=method, model=None if model is None else str(model), excitation=excitation, low_band=low_band, resample=resample, channel=channel, mix=mix, group=group)
+    check_band_trim(method, band_trim)
+    opts = streamfile.Options(method=method, model=None if model is None else str(model), excitation=excitation, low_band=low_band, band_trim_db=band_trim, resample=resample, channel=channel, mix=mix, group=group)
     if batch.is_batch(inputs):
         if reference is not None or figure is not None:
             raise InputError("--reference and --figure work on one input file at a time")
@@ -195,6 +197,7 @@ def evaluate(
     excitation: Annotated[Excitation, typer.Option(help="Excitation extension for source-filter systems.")] = "rectify",
     model: Annotated[Optional[Path], typer.Option(help="Model folder for the neural and codebook systems (default: the shipped model, if any).")] = None,
     low_band: LowBandOpt = False,
+    band_trim: BandTrimOpt = None,
     groups: Annotated[Optional[Path], typer.Option(help="CSV with the columns clip and group (e.g. female/male; clip = a reference's file name without suffix): adds a mean per group.")] = None,
     compare_low_band: Annotated[bool, typer.Option("--compare-low-band", help="Run each system that can add the 50-300 Hz band twice, without and with it, side by side.")] = False,
     jobs: JobsOpt = 1,
@@ -219,12 +222,12 @@ def evaluate(
     low = "both" if compare_low_band else low_band
     with _progress() as bar:
         task = bar.add_task("evaluating", total=len(references) * len(law) * len(ev.variants(systems, low)))
-        rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task), low_band=low, workers=jobs)
+        rows, clips = ev.run(references, systems=systems, laws=law, excitation=excitation, model=model, on_step=lambda s: bar.advance(task), low_band=low, workers=jobs, band_trim_db=band_trim)
     table = rows + ev.means(rows, group_table)
     _unknown_clips({r.clip for r in rows}, group_table, groups)
     output_folder(out)
     md = ev.to_markdown(table)
-    blanks = ev.blank_notes(rows)
+    blanks = ev.blank_notes(rows) + ev.trim_notes(systems, band_trim, model)
     named = list(dict.fromkeys(r.system for r in rows))
     heads = [h for lw in law for h in versus.compare([(r.system, r.clip, r.scores) for r in rows if r.law == lw], versus.pairs_to_compare(named), group_table, channel=lw if len(law) > 1 else "")]
     vs_md = versus.to_markdown(heads) if heads else ""

@@ -21,6 +21,7 @@ import numpy as np
 from nenv.media import audio
 from nenv.dsp import channel
 from nenv.chain import pipeline
+from nenv.chain.checkpoint import check_trim
 from nenv.errors import InputError
 from nenv.report.measures import Scores
 from nenv.settings import WB_SR
@@ -89,12 +90,15 @@ def run(
     on_step: Callable[[str], None] | None = None,
     low_band: bool | str = False,
     workers: int = 1,
+    band_trim_db: float | None = None,
 ) -> tuple[list[Row], list[Clip]]:
     """Score every system on every reference and channel law (``low_band``: systems that can add
     the 50-300 Hz band do, the true band adds the reference's own; ``"both"``: those systems run
     without and with it, side by side). ``workers``: references scored
     in that many processes (0 = one per core; each loads the model itself); ``on_step(label)`` once
     per system, clip and law, as each is scored (in this process) or as each reference is done.
+    ``band_trim_db``: the level of the model systems' added band against their trained level (None:
+    the model folder's calibration; see :func:`nenv.chain.systems.make_system`).
 
     Returns the rows of the table and the signals (for figures), in the order of ``references``.
     """
@@ -103,11 +107,15 @@ def run(
             raise InputError(f"system {s!r} is not known: choose from {', '.join(pipeline.SYSTEMS)}")
     # loaded once, failing early; None when no system needs one
     model = pipeline.load_model(model) if any(s in pipeline.MODEL_SYSTEMS for s in systems) else None
+    if band_trim_db is not None:
+        if model is None:
+            raise InputError(f"band_trim_db (--band-trim) calibrates a model's band: add neural or codebook to the systems ({', '.join(systems)})")
+        band_trim_db = check_trim(band_trim_db, what="band_trim_db (--band-trim)", error=InputError)
     refs = [(Path(p).stem, prepare_reference(p)) for p in references]  # fail early, before any scoring
     apart = workers != 1 and len(refs) > 1
     # a worker (a new interpreter) gets the model's folder, not the loaded model, and reads it once
     model_arg = str(model.path) if apart and model is not None else model
-    tasks = [(name, ref, tuple(systems), tuple(laws), excitation, model_arg, low_band) for name, ref in refs]
+    tasks = [(name, ref, tuple(systems), tuple(laws), excitation, model_arg, low_band, band_trim_db) for name, ref in refs]
     if apart:
         from nenv.serve import parallel
 
@@ -137,9 +145,9 @@ def variants(systems: Sequence[str], low_band: bool | str) -> list[tuple[str, bo
 _models: dict = {}  # in a worker process: model folder -> loaded model, read on first use
 
 
-def score_reference(name: str, ref: np.ndarray, systems: Sequence[str], laws: Sequence[str], excitation: str, model, low_band: bool | str, on_step: Callable[[str], None] | None = None) -> tuple[list[Row], list[Clip]]:
+def score_reference(name: str, ref: np.ndarray, systems: Sequence[str], laws: Sequence[str], excitation: str, model, low_band: bool | str, band_trim_db: float | None = None, on_step: Callable[[str], None] | None = None) -> tuple[list[Row], list[Clip]]:
     """Every system through every law on one prepared reference (:func:`prepare_reference`); ``model``:
-    a loaded model, its folder, or None when no system needs one; ``low_band`` as for :func:`run`.
+    a loaded model, its folder, or None when no system needs one; ``low_band`` and ``band_trim_db`` as for :func:`run`.
     The clips' outputs are keyed by the table's system labels."""
     if isinstance(model, str):
         model = _models.get(model) or _models.setdefault(model, pipeline.load_model(model))
@@ -149,7 +157,8 @@ def score_reference(name: str, ref: np.ndarray, systems: Sequence[str], laws: Se
         nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
         outs = {}
         for s, with_low in variants(systems, low_band):
-            system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=with_low)
+            trim = band_trim_db if s in pipeline.MODEL_SYSTEMS else None
+            system = pipeline.make_system(s, reference=ref, excitation=excitation, model=model, low_band=with_low, band_trim_db=trim)
             y = pipeline.extend(nb, system=system).y
             label = f"{s} +low band" if with_low else s  # the table says what ran
             outs[label] = y
@@ -227,6 +236,19 @@ def blank_notes(rows: Sequence[Row]) -> list[str]:
         if where:
             notes.append(f"{MEASURE_LABELS[m]} is blank (nan) for {', '.join(where)}: {BLANK_REASONS.get(m, BLANK_DEFAULT)}; the means leave it out")
     return notes
+
+
+def trim_notes(systems: Sequence[str], band_trim_db: float | None, model=None) -> list[str]:
+    """A line for the table when the model systems' added band is not at its trained level (the trim
+    given, else the model folder's calibration)."""
+    named = [s for s in systems if s in pipeline.MODEL_SYSTEMS]
+    if not named:
+        return []
+    trim = band_trim_db if band_trim_db is not None else pipeline.load_model(model).band_trim_db
+    if trim == 0:
+        return []
+    where = "--band-trim" if band_trim_db is not None else "the model folder's calibration"
+    return [f"{' and '.join(named)} add their band {trim:+g} dB against the trained level ({where})"]
 
 
 def to_csv(rows: Sequence[Row]) -> str:

@@ -114,6 +114,8 @@ def prepare(
     panel_id = secrets.token_hex(4)
     trials = []
     key = {"panel": panel_id, "design": design, "law": law, "systems": [HIDDEN_REFERENCE, ANCHOR, *asked], "trials": {}, "stimuli": {}}
+    if any(s in pipeline.MODEL_SYSTEMS for s in asked):  # which model, at which level of its band, was heard
+        key["model"] = {"folder": str(model.path), "record_id": model.info.get("record_id"), "band_trim_db": model.band_trim_db}
     if design == "ccr":
         key["method"] = "ITU-T P.800 Annex E (comparison category rating)"
         key["pairs"] = {}

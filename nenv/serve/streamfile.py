@@ -34,6 +34,7 @@ class Options:
     model: Optional[str] = None  # model folder; None = default model
     excitation: str = "rectify"
     low_band: bool = False
+    band_trim_db: Optional[float] = None  # None = the model folder's calibration
     resample: bool = False
     channel: Optional[int] = None
     mix: bool = False
@@ -79,7 +80,7 @@ def _system(opts: Options, reference: Optional[np.ndarray]):
     if opts.excitation not in METHODS:
         raise InputError(f"--excitation {opts.excitation} is not known: choose one of {', '.join(METHODS)}")
     model = load_checkpoint(opts.model) if opts.method in pipeline.MODEL_SYSTEMS else None
-    return pipeline.make_system(opts.method, reference=reference, excitation=opts.excitation, model=model, low_band=opts.low_band)
+    return pipeline.make_system(opts.method, reference=reference, excitation=opts.excitation, model=model, low_band=opts.low_band, band_trim_db=opts.band_trim_db)
 
 
 def _narrowband_blocks(reader, *, resample: bool, notes: list) -> tuple[Iterator[np.ndarray], int]:
@@ -167,6 +168,10 @@ def extend_file(
             ref = _oracle_reference(reference, x)
             blocks = (x[i : i + int(BLOCK_S * NB_SR)] for i in range(0, x.size, int(BLOCK_S * NB_SR)))
         system = _system(opts, ref)
+        gain = getattr(system, "band_gain", 1.0)
+        if gain != 1.0:
+            where = "--band-trim" if opts.band_trim_db is not None else "the model folder's calibration"
+            notes.append(f"the added band is {20 * np.log10(gain):+.3g} dB against the model's trained level ({where})")
         n_hops = -(-n // HOP_NB)
         tally, writer = watch(system, record, source=str(src), group=opts.group, n_hops=n_hops)
         engine = CallEngine(system=system)

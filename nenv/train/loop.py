@@ -302,6 +302,7 @@ def train(
             "record_id": record_id,
             "features": settings.to_dict(),
             "guard": limits.to_dict(),
+            "calibration": {"band_trim_db": recipe.band_trim_db},
             "model": cfg.to_dict(),
             "normalisation": norm,
             "recipe": recipe.to_dict(),

@@ -74,6 +74,11 @@ BELOW_INPUT = """\
 """
 
 
+def _trim(info: dict) -> str:
+    trim = info.get("calibration", {}).get("band_trim_db", 0.0)
+    return "the level it was trained to give" if trim == 0 else f"{trim:+g} dB against the level it was trained to give"
+
+
 def _low_range(guard: dict) -> str:
     """The low band's range in words, for models that have one (trained or updated since the low band)."""
     if guard.get("low_min_db") is None:
@@ -163,6 +168,7 @@ The envelope network and codebook that `nenv extend` uses when no `--model` is g
 - Guard thresholds learned from the training data: level {info['guard']['level_min_db']:.1f} to {info['guard']['level_max_db']:.1f} dB
   re the narrowband frame, telephone-band mismatch up to {info['guard']['mismatch_max_db']:.2f} dB, novelty up to
   {info['guard']['novelty_max']:.2f}, reflection coefficients below {1 - info['guard']['stability_margin']:.3f}{_low_range(info['guard'])}.
+- Calibration: the added band at {_trim(info)} (`band_trim_db` in `nenv.json`; `--band-trim` overrides it).
 - Training: {record['data']['train_hops']} hops (10 ms) of training speakers, {record['data']['val_hops']} of validation
   speakers for early stopping (best epoch {m['best_epoch']}), {record['wall_s'] / 60:.1f} minutes on 2 CPU cores.
 

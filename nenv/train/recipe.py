@@ -64,6 +64,8 @@ class Recipe:
     stability_margin: float = 1e-3
     level_margin_db: float = 3.0
     guard_percentile: float = 99.9
+    # calibration written to the model folder
+    band_trim_db: float = 0.0
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -157,5 +159,8 @@ def _validate(r: Recipe) -> None:
         raise ConfigError(f"recipe key 'warp_max' must lie between 1.0 (off) and 1.3, got {r.warp_max}")
     if r.loss not in ("cepstra", "spectrum"):
         raise ConfigError(f"recipe key 'loss' must be 'cepstra' or 'spectrum', got {r.loss!r}")
+    from nenv.chain.checkpoint import check_trim
+
+    check_trim(r.band_trim_db, what="recipe key 'band_trim_db'")
     if r.level_min_dbov > r.level_max_dbov or r.snr_min_db > r.snr_max_db:
         raise ConfigError("recipe ranges must have min <= max (level_*_dbov, snr_*_db)")

@@ -2,7 +2,7 @@
 
 Usage::
 
-    python -m nenv.train.validate MODEL [MODEL ...] --out DIR [--clips-per-voice 4]
+    python -m nenv.train.validate MODEL [MODEL ...] --out DIR [--clips-per-voice 4] [--trims DB ...]
 
 Recipes are selected here, never on the held-out evaluation set. The validation speakers are the
 ones the training run held out (its ``survey.csv`` and recorded split, in the model folder); their
@@ -11,7 +11,9 @@ to ``clips_per_voice`` clips for a speaker with many files, one otherwise), rend
 out (they are not what the model will hear). Each clip goes at -26 dBov through the telephone
 channel with G.711 mu-law, and every model's neural output, the unextended input, the oracle and
 the true band are scored with ViSQOL (speech mode) and WB-PESQ. Clips are grouped as female or
-male by their median F0 (above 165 Hz: female; a rule of thumb for adult voices). Writes
+male by their median F0 (above 165 Hz: female; a rule of thumb for adult voices). ``--trims``
+also scores each model's output with its added band at those levels in dB against the trained
+level (the calibration ``band_trim_db`` of a model folder; :mod:`nenv.chain.checkpoint`). Writes
 ``validation.csv`` (every clip and system) and ``validation.md`` (means per group).
 """
 
@@ -67,14 +69,17 @@ def validation_clips(model: Path, *, clips_per_voice: int = 4, seed: int = 1) ->
     return out
 
 
-def score(models: list[Path], clips: list[tuple[str, str, np.ndarray]], *, law: str = "mulaw") -> list[dict]:
-    """One row per clip and system: the reference systems once, then each model's neural output."""
+def score(models: list[Path], clips: list[tuple[str, str, np.ndarray]], *, law: str = "mulaw", trims: tuple[float | None, ...] = (None,)) -> list[dict]:
+    """One row per clip and system: the reference systems once, then each model's neural output at
+    each of ``trims`` (dB against the trained level; None: the folder's own calibration)."""
     rows = []
     loaded = [(m.name, pipeline.load_model(m)) for m in models]
     for name, group, ref in clips:
         nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
         systems = {s: pipeline.make_system(s, reference=ref) for s in ("unextended", "oracle", "true-band")}
-        systems.update({f"neural:{label}": pipeline.make_system("neural", model=ck) for label, ck in loaded})
+        for label, ck in loaded:
+            for t in trims:
+                systems[f"neural:{label}" + ("" if t is None else f" {t:+g} dB")] = pipeline.make_system("neural", model=ck, band_trim_db=t)
         for s, system in systems.items():
             y = pipeline.extend(nb, system=system).y
             rows.append({"clip": name, "group": group, "system": s, "visqol": measures.visqol_speech(ref, y), "pesq_wb": measures.pesq_wb(ref, y), "lsd_high": measures.lsd(ref, y), "level_error_high": measures.high_band_level_error(ref, y)})
@@ -105,9 +110,10 @@ def main() -> None:
     ap.add_argument("models", nargs="+", type=Path)
     ap.add_argument("--out", type=Path, required=True)
     ap.add_argument("--clips-per-voice", type=int, default=4)
+    ap.add_argument("--trims", type=float, nargs="+", default=None, metavar="DB", help="levels of the added band in dB against the trained level (instead of each folder's calibration)")
     args = ap.parse_args()
     clips = validation_clips(args.models[0], clips_per_voice=args.clips_per_voice)
-    rows = score(args.models, clips)
+    rows = score(args.models, clips, trims=tuple(args.trims) if args.trims else (None,))
     args.out.mkdir(parents=True, exist_ok=True)
     with open(args.out / "validation.csv", "w", newline="", encoding="utf-8") as fh:
         w = csv.DictWriter(fh, fieldnames=list(rows[0]), lineterminator="\n")

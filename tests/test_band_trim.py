@@ -1,0 +1,153 @@
+"""A model folder's calibration of its added band (band_trim_db) and the --band-trim override.
+
+The trim is a gain on the isolated high band only: by linearity of the all-pole synthesis and of
+the isolation filter, the trimmed output minus the unextended one must be the trained output minus
+the unextended one, times 10^(trim/20); the telephone band and the low band do not move. The band's
+level is also measured independently with scipy.signal.welch (Welch's averaged periodogram).
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from scipy.signal import welch
+
+from nenv.chain import checkpoint, pipeline
+from nenv.dsp import channel
+from nenv.errors import ConfigError, InputError
+from tests.conftest import ARCTIC
+
+
+@pytest.fixture(scope="module")
+def call():
+    """The first ARCTIC sentence through G.711 mu-law at -26 dBov (8 kHz)."""
+    from nenv.report.evaluate import prepare_reference
+
+    return channel.telephone(prepare_reference(ARCTIC[0]), sr=16000, law="mulaw", level_dbov=None)
+
+
+def _out(nb, name, **kw):
+    return pipeline.extend(nb, system=pipeline.make_system(name, **kw)).y
+
+
+def _band_db(y, lo, hi):
+    f, p = welch(y, fs=16000, nperseg=512)
+    return 10 * np.log10(p[(f >= lo) & (f <= hi)].sum())
+
+
+@pytest.mark.parametrize("name", ["neural", "codebook"])
+def test_trim_scales_the_added_band_and_nothing_else(call, name):
+    u = _out(call, "unextended")
+    y0 = _out(call, name)
+    g = 10 ** (-6 / 20)
+    y6 = _out(call, name, band_trim_db=-6.0)
+    assert np.max(np.abs((y6 - u) - g * (y0 - u))) < 1e-12 * np.max(np.abs(y0))
+    assert _band_db(y0, 4000, 7500) - _band_db(y6, 4000, 7500) == pytest.approx(6.0, abs=0.05)  # Welch, 4-7.5 kHz
+    assert _band_db(y6, 500, 3000) == pytest.approx(_band_db(y0, 500, 3000), abs=0.01)  # the telephone band stays
+    assert np.array_equal(_out(call, name, band_trim_db=0.0), y0)  # 0 dB: the trained output, bit for bit
+
+
+def test_the_low_band_keeps_its_own_level(call):
+    """The trim is the high band's: with the low band on, 50-300 Hz does not move."""
+    a = _out(call, "neural", low_band=True)
+    b = _out(call, "neural", low_band=True, band_trim_db=-10.0)
+    assert _band_db(b, 60, 250) == pytest.approx(_band_db(a, 60, 250), abs=0.05)
+    assert _band_db(a, 4000, 7500) - _band_db(b, 4000, 7500) == pytest.approx(10.0, abs=0.05)
+
+
+def _calibrated(tmp_path, value):
+    folder = tmp_path / "model"
+    shutil.copytree(checkpoint.default_path(), folder, ignore=shutil.ignore_patterns("*.png", "model.pt"))
+    info = json.loads((folder / "nenv.json").read_text())
+    info["calibration"] = {"band_trim_db": value}
+    (folder / "nenv.json").write_text(json.dumps(info))
+    return folder
+
+
+def test_a_folder_calibration_reaches_every_engine(call, tmp_path):
+    """What the folder says is what extend, one streaming call and the batched engine give: the same as
+    asking for the trim explicitly."""
+    import nenv
+
+    folder = _calibrated(tmp_path, -4.5)
+    assert nenv.load_model(folder).band_trim_db == -4.5
+    want = _out(call, "neural", band_trim_db=-4.5)
+    assert np.array_equal(_out(call, "neural", model=folder), want)
+    assert not np.array_equal(_out(call, "neural"), want)  # the shipped folder: the trained level
+    one = nenv.CallEngine(nenv.load_model(folder))
+    streamed = np.concatenate([one.feed(call[i : i + 160]) for i in range(0, call.size, 160)] + [one.flush()])
+    np.testing.assert_allclose(streamed, want, rtol=0, atol=1e-9)
+    many = nenv.MultiCallEngine(nenv.load_model(folder))
+    many.open("a")
+    parts = []
+    for i in range(0, call.size, 160):
+        many.feed("a", call[i : i + 160])
+        parts.append(many.step().get("a", np.zeros(0)))
+    parts.append(many.close("a"))
+    np.testing.assert_allclose(np.concatenate(parts), want, rtol=0, atol=1e-9)
+    # an explicit trim wins over the folder's
+    assert np.array_equal(_out(call, "neural", model=folder, band_trim_db=0.0), _out(call, "neural"))
+
+
+@pytest.mark.parametrize("value", ["loud", 20.0, -41, float("nan"), True, None])
+def test_a_bad_calibration_is_refused_naming_the_file(tmp_path, value):
+    folder = _calibrated(tmp_path, value)
+    with pytest.raises(ConfigError, match="nenv.json.*band_trim_db"):
+        checkpoint.load(folder)
+
+
+def test_a_calibration_that_is_not_a_table_is_refused(tmp_path):
+    folder = _calibrated(tmp_path, 0.0)
+    info = json.loads((folder / "nenv.json").read_text())
+    info["calibration"] = -6
+    (folder / "nenv.json").write_text(json.dumps(info))
+    with pytest.raises(ConfigError, match="'calibration' must be a table"):
+        checkpoint.load(folder)
+
+
+def test_a_trim_is_only_for_the_model_systems(call):
+    for name in ("imaging", "unextended"):
+        with pytest.raises(InputError, match="calibrates a model's band"):
+            pipeline.make_system(name, band_trim_db=-3.0)
+    for bad in (13.0, float("inf")):
+        with pytest.raises(InputError, match="from -40 to 12"):
+            pipeline.make_system("neural", band_trim_db=bad)
+    from nenv.report import evaluate
+
+    with pytest.raises(InputError, match="add neural or codebook"):
+        evaluate.run([ARCTIC[0]], systems=("unextended", "imaging"), band_trim_db=-3.0)
+
+
+def test_the_recipe_refuses_a_trim_out_of_range():
+    from nenv.train import recipe
+
+    assert recipe.load(None, overrides=["band_trim_db=-6"]).band_trim_db == -6.0
+    with pytest.raises(ConfigError, match="band_trim_db"):
+        recipe.load(None, overrides=["band_trim_db=30"])
+
+
+def test_extend_says_the_band_is_trimmed(tmp_path):
+    src = tmp_path / "in.wav"
+    subprocess.run([sys.executable, "-m", "nenv", "degrade", str(ARCTIC[0]), str(src), "--law", "mulaw"], check=True, capture_output=True)
+    r = subprocess.run([sys.executable, "-m", "nenv", "extend", str(src), str(tmp_path / "out.wav"), "--band-trim", "-6"], capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    assert "-6 dB against the model's trained level (--band-trim)" in r.stderr + r.stdout
+    r = subprocess.run([sys.executable, "-m", "nenv", "extend", str(src), str(tmp_path / "img.wav"), "--method", "imaging", "--band-trim", "-6"], capture_output=True, text=True)
+    assert r.returncode == 2 and "calibrates a model's band" in r.stderr
+    assert not (tmp_path / "img.wav").exists()
+
+
+def test_a_panel_key_says_which_model_and_level_was_heard(tmp_path):
+    from nenv.report import panel
+
+    folder = _calibrated(tmp_path, -4.5)
+    key = panel.prepare([str(ARCTIC[0])], tmp_path / "p", systems=["neural"], model=folder)
+    info = json.loads((folder / "nenv.json").read_text())
+    assert key["model"] == {"folder": str(folder), "record_id": info["record_id"], "band_trim_db": -4.5}
+    assert json.loads((tmp_path / "p" / "key.json").read_text())["model"]["band_trim_db"] == -4.5
+    assert "model" not in panel.prepare([str(ARCTIC[0])], tmp_path / "q", systems=["imaging"])
