@@ -151,3 +151,13 @@ def test_a_panel_key_says_which_model_and_level_was_heard(tmp_path):
     assert key["model"] == {"folder": str(folder), "record_id": info["record_id"], "band_trim_db": -4.5}
     assert json.loads((tmp_path / "p" / "key.json").read_text())["model"]["band_trim_db"] == -4.5
     assert "model" not in panel.prepare([str(ARCTIC[0])], tmp_path / "q", systems=["imaging"])
+
+
+def test_the_evaluation_table_says_when_the_band_is_not_at_its_trained_level(tmp_path):
+    from nenv.report.evaluate import trim_notes
+
+    assert trim_notes(["neural", "unextended"], None) == []  # the shipped folder: the trained level
+    assert trim_notes(["neural", "unextended"], -6.0) == ["neural adds its band -6 dB against the trained level (--band-trim)"]
+    folder = _calibrated(tmp_path, -4.5)
+    assert trim_notes(["neural", "codebook"], None, folder) == ["neural and codebook add their band -4.5 dB against the trained level (the model folder's calibration)"]
+    assert trim_notes(["imaging"], None, folder) == []

@@ -248,7 +248,8 @@ def trim_notes(systems: Sequence[str], band_trim_db: float | None, model=None) -
     if trim == 0:
         return []
     where = "--band-trim" if band_trim_db is not None else "the model folder's calibration"
-    return [f"{' and '.join(named)} add their band {trim:+g} dB against the trained level ({where})"]
+    verb = "adds its" if len(named) == 1 else "add their"
+    return [f"{' and '.join(named)} {verb} band {trim:+g} dB against the trained level ({where})"]
 
 
 def to_csv(rows: Sequence[Row]) -> str:
