@@ -161,3 +161,13 @@ def test_the_evaluation_table_says_when_the_band_is_not_at_its_trained_level(tmp
     folder = _calibrated(tmp_path, -4.5)
     assert trim_notes(["neural", "codebook"], None, folder) == ["neural and codebook add their band -4.5 dB against the trained level (the model folder's calibration)"]
     assert trim_notes(["imaging"], None, folder) == []
+
+
+def test_stream_says_the_folder_trims_its_band(tmp_path, call):
+    folder = _calibrated(tmp_path, -6.0)
+    pcm = (np.clip(call[:8000], -1, 1) * 32767).astype("<i2").tobytes()
+    r = subprocess.run([sys.executable, "-m", "nenv", "stream", "--model", str(folder)], input=pcm, capture_output=True)
+    assert r.returncode == 0, r.stderr.decode()
+    assert len(r.stdout) == 2 * len(pcm) and "-6 dB against the model's trained level (the model folder's calibration)" in r.stderr.decode()
+    r = subprocess.run([sys.executable, "-m", "nenv", "stream"], input=pcm, capture_output=True)
+    assert r.returncode == 0 and "trained level" not in r.stderr.decode()

@@ -50,6 +50,8 @@ def stream(
     if method in pipeline.MODEL_SYSTEMS:
         model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
     engine = CallEngine(system=pipeline.make_system(method, model=model, excitation=excitation, low_band=low_band))
+    if method in pipeline.MODEL_SYSTEMS and model.band_trim_db:
+        _say(f"nenv: note: the added band is {model.band_trim_db:+g} dB against the model's trained level (the model folder's calibration)")
     tally, writer = watch(engine.system, record, source=call_id, group=group, n_hops=2**62)
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()
