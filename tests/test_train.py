@@ -302,9 +302,10 @@ def test_validation_scoring_uses_the_runs_own_validation_speakers(trained):
     for _, group, y in clips:
         assert group in ("female", "male") and y.size % 160 == 0
         assert channel.active_level_dbov(y, sr=16000) == pytest.approx(-26.0, abs=0.5)
-    rows = validate.score([trained.out], clips[:1])
-    assert [r["system"] for r in rows] == ["unextended", "oracle", "true-band", f"neural:{trained.out.name}"]
+    rows = validate.score([trained.out], clips[:1], trims=(None, -6.0))
+    assert [r["system"] for r in rows] == ["unextended", "oracle", "true-band", f"neural:{trained.out.name}", f"neural:{trained.out.name} -6 dB"]
     assert rows[2]["lsd_high"] < rows[0]["lsd_high"] - 5  # the true band is the reference's own
+    assert rows[4]["level_error_high"] < rows[3]["level_error_high"] - 3  # the trimmed band is quieter
 
 
 def test_validation_table_counts_wins_against_the_unextended_clip():
@@ -317,6 +318,7 @@ def test_validation_table_counts_wins_against_the_unextended_clip():
         {"clip": "b", "group": "male", "system": "neural:m", "visqol": 3.1, "pesq_wb": 2.0, "lsd_high": 11.0, "level_error_high": -4.0},
     ]
     md = to_markdown(rows)
+    assert "| unextended | all | 2 | 3.25 | 3.00 | 15.00 | -10.00 | - |" in md  # no count against itself
     assert "| neural:m | female | 1 | 3.20 | 2.00 | 9.00 | -2.00 | 100% |" in md
     assert "| neural:m | male | 1 | 3.10 | 2.00 | 11.00 | -4.00 | 0% |" in md
     assert "| neural:m | all | 2 | 3.15 | 2.00 | 10.00 | -3.00 | 50% |" in md

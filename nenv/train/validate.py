@@ -95,10 +95,10 @@ def to_markdown(rows: list[dict]) -> str:
             sel = [r for r in rows if r["system"] == s and g in ("all", r["group"])]
             if not sel:
                 continue
-            wins = np.mean([r["visqol"] > base[r["clip"]] for r in sel])
+            wins = "-" if s == "unextended" else f"{100 * np.mean([r['visqol'] > base[r['clip']] for r in sel]):.0f}%"
             lines.append(
                 f"| {s} | {g} | {len(sel)} | {np.nanmean([r['visqol'] for r in sel]):.2f} | {np.nanmean([r['pesq_wb'] for r in sel]):.2f} | "
-                f"{np.nanmean([r['lsd_high'] for r in sel]):.2f} | {np.nanmedian([r['level_error_high'] for r in sel]):+.2f} | {100 * wins:.0f}% |"
+                f"{np.nanmean([r['lsd_high'] for r in sel]):.2f} | {np.nanmedian([r['level_error_high'] for r in sel]):+.2f} | {wins} |"
             )
     return "\n".join(lines) + "\n"
 
