@@ -171,3 +171,51 @@ def test_stream_says_the_folder_trims_its_band(tmp_path, call):
     assert len(r.stdout) == 2 * len(pcm) and "-6 dB against the model's trained level (the model folder's calibration)" in r.stderr.decode()
     r = subprocess.run([sys.executable, "-m", "nenv", "stream"], input=pcm, capture_output=True)
     assert r.returncode == 0 and "trained level" not in r.stderr.decode()
+
+
+def test_a_pairs_panel_asks_which_level_of_the_band_listeners_prefer(tmp_path):
+    """--band-trim in a panel: each model system once more at that level, as a system of its own, in
+    both orders against unextended; its samples carry the band that much quieter (Welch, 4-7.5 kHz);
+    the analysis reads the labelled system like any other."""
+    import base64
+    import io
+
+    import soundfile as sf
+
+    from nenv.report import ccr, panel
+    from tests.test_panel import _page_data
+
+    key = panel.prepare([str(ARCTIC[0])], tmp_path / "p", systems=["neural"], design="ccr", band_trims=[-6.0, -6])
+    assert key["systems"] == ["reference", "unextended", "neural", "neural -6 dB"]  # a level asked twice runs once
+    assert sorted((p["first"], p["second"]) for p in key["pairs"].values() if "reference" not in (p["first"], p["second"])) == sorted(
+        [("unextended", "neural"), ("neural", "unextended"), ("unextended", "neural -6 dB"), ("neural -6 dB", "unextended")]
+    )
+    audio = {}
+    for t in _page_data(tmp_path / "p" / "page" / "index.html")["trials"]:
+        for place in ("first", "second"):
+            audio[key["stimuli"][t[place]["id"]]["system"]] = sf.read(io.BytesIO(base64.b64decode(t[place]["audio"])))[0]
+    assert _band_db(audio["neural"], 4000, 7500) - _band_db(audio["neural -6 dB"], 4000, 7500) == pytest.approx(6.0, abs=0.3)
+    # two listeners who prefer the quieter band: +1 for it, 0 for the trained level, the original +2
+    ratings = []
+    for tid, p in key["pairs"].items():
+        sys_ = p["second"] if p["first"] == "unextended" else p["first"]
+        score = {"neural": 0, "neural -6 dB": 1, "reference": 2}[sys_]
+        ratings.append({"trial": tid, "score": score if p["first"] == "unextended" else -score, "seconds": 9.0})
+    files = []
+    for who in ("ana", "ben"):
+        f = tmp_path / f"{who}.json"
+        f.write_text(json.dumps({"panel": key["panel"], "listener": who, "ratings": ratings}))
+        files.append(f)
+    pref = {p.system: p.cmos.mean for p in ccr.analyse(ccr.read(files, tmp_path / "p" / "key.json")).preferences}
+    assert pref == {"reference": pytest.approx(2.0), "neural": pytest.approx(0.0), "neural -6 dB": pytest.approx(1.0)}
+    with pytest.raises(InputError, match="add --method neural or codebook"):
+        panel.prepare([str(ARCTIC[0])], tmp_path / "q", systems=["imaging"], band_trims=[-6.0])
+    with pytest.raises(InputError, match="from -40 to 12"):
+        panel.prepare([str(ARCTIC[0])], tmp_path / "r", systems=["neural"], band_trims=[20.0])
+    assert not (tmp_path / "q").exists() and not (tmp_path / "r").exists()  # refused before anything is written
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+
+    res = CliRunner().invoke(app, ["panel", str(ARCTIC[0]), "--out", str(tmp_path / "cli"), "--method", "neural", "--band-trim", "-6", "--design", "ccr"])
+    assert res.exit_code == 0 and "5 pairs (neural, neural -6 dB against unextended in both orders" in res.output, res.output

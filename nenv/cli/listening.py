@@ -26,19 +26,25 @@ def panel(
     law: Annotated[Law, typer.Option(help="G.711 law of the telephone channel applied to the references.")] = "mulaw",
     post_url: Annotated[Optional[str], typer.Option(help="Also POST each listener's results (JSON) to this URL when they finish (they can always save a file).")] = None,
     overwrite: Annotated[bool, typer.Option("--overwrite", help="Replace a panel already in --out (its key is lost: results of that panel can no longer be analysed).")] = False,
+    band_trim: Annotated[list[float], typer.Option("--band-trim", help="Also present each model system (neural, codebook) with its added band at this level in dB against the trained level, as a system of its own (e.g. 'neural -6 dB'); repeat for several.", show_default=False)] = [],
     design: Annotated[PanelDesign, typer.Option(help="mushra: rate every version against the open original (ITU-R BS.1534); ccr: rate pairs, each system against the unextended signal with no original, as a caller hears it (ITU-T P.800 Annex E).")] = PanelDesign.mushra,
 ) -> None:
     """Prepare a blind listening test as one web page (versions against the original, or pairs against the unextended signal)."""
     _kernels_ready()
     from nenv.report import panel as pn
 
+    from nenv.chain.systems import MODEL_SYSTEMS
+    from nenv.report.verdicts import ANCHOR, HIDDEN_REFERENCE
+
     with _progress() as bar:
         systems = [m.value for m in method]
-        task = bar.add_task("preparing the panel", total=len(references) * len(set(systems)))
-        key = pn.prepare([str(p) for p in references], out, systems=systems, model=model, law=law, post_url=post_url, on_step=lambda s: bar.advance(task), overwrite=overwrite, design=design.value)
+        runs = len(set(systems)) + len(set(band_trim)) * len(set(systems) & set(MODEL_SYSTEMS))
+        task = bar.add_task("preparing the panel", total=len(references) * runs)
+        key = pn.prepare([str(p) for p in references], out, systems=systems, model=model, law=law, post_url=post_url, on_step=lambda s: bar.advance(task), overwrite=overwrite, design=design.value, band_trims=band_trim)
     n = len(key["trials"])
+    asked = [s for s in key["systems"] if s not in (HIDDEN_REFERENCE, ANCHOR)]
     if design.value == "ccr":
-        _say(f"wrote {out / 'page' / 'index.html'}: {n} pair{'s' if n != 1 else ''} ({', '.join(dict.fromkeys(systems))} against unextended in both orders, and the original against unextended), levels aligned")
+        _say(f"wrote {out / 'page' / 'index.html'}: {n} pair{'s' if n != 1 else ''} ({', '.join(asked)} against unextended in both orders, and the original against unextended), levels aligned")
     else:
         _say(f"wrote {out / 'page' / 'index.html'}: {n} trial{'s' if n != 1 else ''} of {len(key['systems'])} stimuli ({', '.join(key['systems'])}), levels aligned")
     _say(f"kept the key in {out / 'key.json'} (not for listeners); analyse the results with: nenv verdicts RESULTS.json... --key {out / 'key.json'} --out DIR")

@@ -12,7 +12,9 @@
   (:mod:`nenv.report.ccr`).
 
 For every wideband reference clip the telephone channel is applied and every system asked for runs
-on it. All stimuli of a clip are set to the reference's active speech level (nenv's
+on it; with ``band_trims``, each model system (neural, codebook) runs once more for each of those
+levels of its added band (dB against the trained level), as a system of its own ("neural -6 dB"):
+a panel can then ask listeners which level they prefer. All stimuli of a clip are set to the reference's active speech level (nenv's
 active-level measure, :func:`nenv.dsp.channel.active_level_dbov`) and, if any would then clip, all
 are lowered together. The output folder holds
 
@@ -42,6 +44,7 @@ import numpy as np
 import soundfile as sf
 
 from nenv.chain import pipeline
+from nenv.chain.checkpoint import check_trim
 from nenv.dsp import channel
 from nenv.errors import InputError, OutputError
 from nenv.media.files import output_folder, write_text
@@ -90,6 +93,7 @@ def prepare(
     on_step: Callable[[str], None] | None = None,
     overwrite: bool = False,
     design: str = "mushra",
+    band_trims: Sequence[float] = (),
 ) -> dict:
     """Write the panel (see the module docstring) for ``references``; returns the key. A folder that
     holds a panel already is refused unless ``overwrite``: its key is what makes results readable."""
@@ -107,14 +111,22 @@ def prepare(
         if s not in pipeline.SYSTEMS or s in pipeline.REFERENCE_SYSTEMS:
             raise InputError(f"--method {s}: a panel compares neural, codebook or imaging (the reference and unextended are always in)")
     asked = list(dict.fromkeys(asked))
-    if any(s in pipeline.MODEL_SYSTEMS for s in asked):
+    with_model = [s for s in asked if s in pipeline.MODEL_SYSTEMS]
+    if band_trims and not with_model:
+        raise InputError("--band-trim sets the level of a model's band: add --method neural or codebook")
+    if with_model:
         model = pipeline.load_model(model)
+    # label -> (system, band trim in dB or None for the model folder's own level)
+    runs = {s: (s, None) for s in asked}
+    for t in dict.fromkeys(check_trim(t, what="band_trims (--band-trim)", error=InputError) for t in band_trims):
+        runs.update({f"{s} {t:+g} dB": (s, t) for s in with_model})
+    asked = list(runs)
     refs = [(n, prepare_reference(p)) for n, p in zip(names, references)]  # fail early, before any work
     folder = output_folder(Path(out))
     panel_id = secrets.token_hex(4)
     trials = []
     key = {"panel": panel_id, "design": design, "law": law, "systems": [HIDDEN_REFERENCE, ANCHOR, *asked], "trials": {}, "stimuli": {}}
-    if any(s in pipeline.MODEL_SYSTEMS for s in asked):  # which model, at which level of its band, was heard
+    if with_model:  # which model, at which level of its band, was heard
         key["model"] = {"folder": str(model.path), "record_id": model.info.get("record_id"), "band_trim_db": model.band_trim_db}
     if design == "ccr":
         key["method"] = "ITU-T P.800 Annex E (comparison category rating)"
@@ -125,8 +137,8 @@ def prepare(
     for i, (name, ref) in enumerate(refs):
         nb = channel.telephone(ref, sr=WB_SR, law=law, level_dbov=None)
         raw = {HIDDEN_REFERENCE: ref, ANCHOR: pipeline.extend(nb, system=pipeline.make_system(ANCHOR)).y}
-        for s in asked:
-            raw[s] = pipeline.extend(nb, system=pipeline.make_system(s, model=model)).y
+        for s, (system_name, trim) in runs.items():
+            raw[s] = pipeline.extend(nb, system=pipeline.make_system(system_name, model=model, band_trim_db=trim)).y
             if on_step:
                 on_step(f"{name} / {s}")
         aligned = _aligned(raw, channel.active_level_dbov(ref, sr=WB_SR))
