@@ -14,9 +14,9 @@
 For every wideband reference clip the telephone channel is applied and every system asked for runs
 on it; with ``band_trims``, each model system (neural, codebook) runs once more for each of those
 levels of its added band (dB against the trained level), as a system of its own ("neural -6 dB"):
-a panel can then ask listeners which level they prefer. All stimuli of a clip are set to the reference's active speech level (nenv's
-active-level measure, :func:`nenv.dsp.channel.active_level_dbov`) and, if any would then clip, all
-are lowered together. The output folder holds
+a panel can then ask listeners which level they prefer. All stimuli of a clip are set to the
+reference's active speech level (nenv's active-level measure,
+:func:`nenv.dsp.channel.active_level_dbov`) and, if any would then clip, all are lowered together. The output folder holds
 
 * ``page/index.html``: the test, audio included (WAV, base64), nothing to install: open it from a
   file or serve the folder from any static web server. Stimuli carry random tokens, in a random
