@@ -5,7 +5,7 @@ For every hop of 8 kHz input the :class:`Chain`
 1. frames and analyses the narrowband signal (LPC, order NB_ORDER), for systems that use it;
 2. asks its *system* for a 16 kHz high-band candidate for the hop;
 3. keeps only the band above 3.4 kHz of that candidate (elliptic high-pass), at the system's
-   ``band_gain`` (a model's calibration, 1 otherwise), and, for a system made
+   ``band_trim_db`` (a model's calibration, 0 dB otherwise), and, for a system made
    with ``low_band=True``, also its 50-300 Hz band weighted per hop by the system (elliptic band
    filter, :func:`nenv.dsp.synthesis.low_band_sos`);
 4. adds them to the interpolated narrowband signal, which is never altered.
@@ -54,6 +54,8 @@ class Chain:
         system.reset()  # a system starts with no calls: this chain's rows are its rows
         self._iso = np.ascontiguousarray(isolation_sos())
         self.low_band = bool(getattr(system, "low_band", False))
+        trim = getattr(system, "band_trim_db", 0.0)
+        self._band_gain = 10 ** (trim / 20) if trim else None  # None: the trained output, untouched
         state = dict(nb=np.zeros(WIN_NB - HOP_NB), up=np.zeros(UPSAMPLER_HISTORY), iso=np.zeros((self._iso.shape[0], 2)))
         if self.low_band:
             self._low = np.ascontiguousarray(low_band_sos())
@@ -103,9 +105,8 @@ class Chain:
         iso = self._state.get("iso", sel)
         high = kernels.sosfilt(self._iso, candidate, iso)
         self._state.put("iso", sel, iso)
-        gain = getattr(self.system, "band_gain", 1.0)
-        if gain != 1.0:  # a model folder's calibration of its band (exactly the trained output otherwise)
-            high *= gain
+        if self._band_gain is not None:  # a model folder's calibration of its band
+            high *= self._band_gain
         out = low + high
         if self.low_band:
             out += self._low_band(candidate, sel, B, H)

@@ -114,16 +114,16 @@ def low_band_weights(voicing: np.ndarray, gain: np.ndarray) -> np.ndarray:
 class SourceFilterSystem:
     """Residual -> extended excitation -> wideband all-pole envelope from ``estimator``, per row.
 
-    ``band_gain``: amplitude factor on the added high band (the chain applies it after isolating the
-    band; the low band keeps its own level). 1 for the trained level; a model folder's calibration
-    sets it for the model's systems (:func:`make_system`).
+    ``band_trim_db``: level of the added high band in dB against the trained level (the chain applies
+    it after isolating the band; the low band keeps its own level). 0 for the trained level; a model
+    folder's calibration sets it for the model's systems (:func:`make_system`).
     """
 
     needs_analysis = True
 
     def __init__(self, estimator: EnvelopeEstimator, *, excitation: Method = DEFAULT_EXCITATION, low_band: bool = False):
         self.estimator = estimator
-        self.band_gain = 1.0
+        self.band_trim_db = 0.0
         self.name = estimator.name
         self.excitation = excitation
         self.low_band = low_band
@@ -251,8 +251,15 @@ def make_system(name: str, *, reference: np.ndarray | None = None, excitation: M
 
         band_trim_db = check_trim(band_trim_db, what="band_trim_db (--band-trim)", error=InputError)
     system = SYSTEMS[name](reference, excitation, model, low_band)
-    system.band_gain = 10 ** (band_trim_db / 20)
+    system.band_trim_db = band_trim_db
     return system
 
 
-__all__ = ["DEFAULT_EXCITATION", "LOW_BAND_SYSTEMS", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "check_band_trim", "check_low_band", "load_model", "make_system"]
+def band_note(band_trim_db: float, *, given: bool) -> str:
+    """What to tell the user when a model's band is not at its trained level: ``given`` by
+    ``--band-trim``, or set by the model folder's calibration."""
+    where = "--band-trim" if given else "the model folder's calibration"
+    return f"the added band is {band_trim_db:+g} dB against the model's trained level ({where})"
+
+
+__all__ = ["DEFAULT_EXCITATION", "LOW_BAND_SYSTEMS", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "band_note", "check_band_trim", "check_low_band", "load_model", "make_system"]

@@ -40,6 +40,7 @@ def stream(
     from nenv.chain import pipeline
     from nenv.media.audio import to_int16
     from nenv.serve.runtime import CallEngine
+    from nenv.chain.systems import band_note
 
     if sys.stdout.isatty():
         raise InputError("standard output is a terminal: stream writes raw 16-bit audio; redirect it to a file or a pipe (nenv stream < call.raw > call-wb.raw)")
@@ -50,8 +51,8 @@ def stream(
     if method in pipeline.MODEL_SYSTEMS:
         model = pipeline.load_model(model, flush_denormals=True)  # this process is ours: flush denormals
     engine = CallEngine(system=pipeline.make_system(method, model=model, excitation=excitation, low_band=low_band))
-    if method in pipeline.MODEL_SYSTEMS and model.band_trim_db:
-        _say(f"nenv: note: the added band is {model.band_trim_db:+g} dB against the model's trained level (the model folder's calibration)")
+    if getattr(engine.system, "band_trim_db", 0.0):
+        _say(f"nenv: note: {band_note(engine.system.band_trim_db, given=False)}")
     tally, writer = watch(engine.system, record, source=call_id, group=group, n_hops=2**62)
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()

@@ -145,6 +145,7 @@ def extend_file(
     from nenv.media import audio
     from nenv.media.files import check_distinct, check_output
     from nenv.chain.pipeline import REFERENCE_SYSTEMS
+    from nenv.chain.systems import band_note
     from nenv.serve.runtime import CallEngine
 
     t0 = time.perf_counter()
@@ -168,10 +169,8 @@ def extend_file(
             ref = _oracle_reference(reference, x)
             blocks = (x[i : i + int(BLOCK_S * NB_SR)] for i in range(0, x.size, int(BLOCK_S * NB_SR)))
         system = _system(opts, ref)
-        gain = getattr(system, "band_gain", 1.0)
-        if gain != 1.0:
-            where = "--band-trim" if opts.band_trim_db is not None else "the model folder's calibration"
-            notes.append(f"the added band is {20 * np.log10(gain):+.3g} dB against the model's trained level ({where})")
+        if getattr(system, "band_trim_db", 0.0):
+            notes.append(band_note(system.band_trim_db, given=opts.band_trim_db is not None))
         n_hops = -(-n // HOP_NB)
         tally, writer = watch(system, record, source=str(src), group=opts.group, n_hops=n_hops)
         engine = CallEngine(system=system)

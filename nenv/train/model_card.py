@@ -75,7 +75,9 @@ BELOW_INPUT = """\
 
 
 def _trim(info: dict) -> str:
-    trim = info.get("calibration", {}).get("band_trim_db", 0.0)
+    from nenv.chain.checkpoint import band_trim
+
+    trim = band_trim(info.get("calibration", {}), where="nenv.json")
     return "the level it was trained to give" if trim == 0 else f"{trim:+g} dB against the level it was trained to give"
 
 
