@@ -135,10 +135,12 @@ def fir(taps, x, history):
             buf[i] = history[b, i]
         for i in range(n):
             buf[m + i] = x[b, i]
+        out = y[b]
         for j in range(m + 1):
             tj = taps[j]
+            src = buf[m - j : m - j + n]  # a slice, so the loop's indices are plainly >= 0 (SIMD)
             for i in range(n):
-                y[b, i] += tj * buf[m + i - j]
+                out[i] += tj * src[i]
         for i in range(m):
             history[b, i] = buf[n + i]
     return y
@@ -177,7 +179,42 @@ def upsample2(x, history, even, odd):
     return y
 
 
-@jit.plain  # not reordered: the recursion's dot product runs faster in order (2.15 -> 1.70 us per hop)
+@jit.plain
+def _all_pole_16(ar, hist, u, y, start, stop, g):
+    """The all-pole recursion of :func:`synthesize` for order 16 (the wideband envelope's), samples
+    ``start`` to ``stop``: the same products and sums in the same order, with the last 16 outputs
+    held in locals instead of re-read from ``hist`` (a read of the sample just written waits for
+    that write: 1.7 -> 1.3 us per hop). ``hist`` is still written, for the caller's state."""
+    c0, c1, c2, c3, c4, c5, c6, c7 = ar[0], ar[1], ar[2], ar[3], ar[4], ar[5], ar[6], ar[7]
+    c8, c9, c10, c11, c12, c13, c14, c15 = ar[8], ar[9], ar[10], ar[11], ar[12], ar[13], ar[14], ar[15]
+    h0, h1, h2, h3, h4, h5, h6, h7 = hist[start], hist[start + 1], hist[start + 2], hist[start + 3], hist[start + 4], hist[start + 5], hist[start + 6], hist[start + 7]
+    h8, h9, h10, h11, h12, h13, h14, h15 = hist[start + 8], hist[start + 9], hist[start + 10], hist[start + 11], hist[start + 12], hist[start + 13], hist[start + 14], hist[start + 15]
+    for n in range(start, stop):
+        acc = 0.0  # a_16 y[n-16] + ... + a_1 y[n-1], left to right
+        acc += c0 * h0
+        acc += c1 * h1
+        acc += c2 * h2
+        acc += c3 * h3
+        acc += c4 * h4
+        acc += c5 * h5
+        acc += c6 * h6
+        acc += c7 * h7
+        acc += c8 * h8
+        acc += c9 * h9
+        acc += c10 * h10
+        acc += c11 * h11
+        acc += c12 * h12
+        acc += c13 * h13
+        acc += c14 * h14
+        acc += c15 * h15
+        v = g * u[n] - acc
+        hist[16 + n] = v
+        y[n] = v
+        h0, h1, h2, h3, h4, h5, h6, h7 = h1, h2, h3, h4, h5, h6, h7, h8
+        h8, h9, h10, h11, h12, h13, h14, h15 = h9, h10, h11, h12, h13, h14, h15, v
+
+
+@jit.plain  # not reordered (no SIMD sums): the recursion runs faster in order
 def synthesize(u, k, log_g, k_prev, log_g_prev, past, n_sub, max_reflection):
     """All-pole synthesis G/A(z) with sub-frame interpolation, per row (one call or stream).
 
@@ -221,6 +258,9 @@ def synthesize(u, k, log_g, k_prev, log_g_prev, past, n_sub, max_reflection):
                     ar[i] = a[p - i]  # a_p .. a_1: the dot product below reads the memory forwards
                 g = math.exp(gb * wb + gc * w)
                 start = t * length + j * sub
+                if p == 16:
+                    _all_pole_16(ar, hist, u[b], y[b], start, start + sub, g)
+                    continue
                 for n in range(start, start + sub):
                     acc = 0.0
                     for i in range(p):

@@ -176,10 +176,12 @@ def residual(frames, a, hop):
     start = length - hop
     e = np.zeros((n_rows, hop))
     for b in range(n_rows):
+        out = e[b]
         for j in range(p + 1):
             aj = a[b, j]
+            src = frames[b, start - j : start - j + hop]  # a slice, so the loop's indices are plainly >= 0 (SIMD)
             for t in range(hop):
-                e[b, t] += aj * frames[b, start + t - j]
+                out[t] += aj * src[t]
     return e
 
 
