@@ -142,6 +142,27 @@ def test_extend_says_the_band_is_trimmed(tmp_path):
     assert not (tmp_path / "img.wav").exists()
 
 
+def test_a_guard_record_says_at_which_level_the_band_was_played(tmp_path):
+    """An audit must know which band a listener heard: the record's header carries the level in force,
+    and the audit page names it beside the model (a record without it reads as the trained level)."""
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+    from nenv.report import audit, records
+
+    src, rec = tmp_path / "in.wav", tmp_path / "guard.jsonl"
+    runner = CliRunner()
+    assert runner.invoke(app, ["degrade", str(ARCTIC[0]), str(src), "--law", "mulaw"]).exit_code == 0
+    for trim in (None, "-6"):
+        res = runner.invoke(app, ["extend", str(src), str(tmp_path / f"out{trim}.wav"), "--record", str(rec)] + (["--band-trim", trim] if trim else []))
+        assert res.exit_code == 0, res.output
+    heads = records.read([rec]).headers
+    assert [h["model"]["band_trim_db"] for h in heads] == [0.0, -6.0]
+    labels = {audit._model_label(h["model"]) for h in heads}
+    assert labels == {heads[0]["model"]["record_id"], f"{heads[0]['model']['record_id']} (band at -6 dB)"}
+    assert audit._model_label({"record_id": "old-record"}) == "old-record"  # written before the level was recorded
+
+
 def test_a_panel_key_says_which_model_and_level_was_heard(tmp_path):
     from nenv.report import panel
 

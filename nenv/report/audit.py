@@ -240,6 +240,14 @@ def figures(rec: Records, rows: list[SourceRow], *, max_sources: int = 30) -> di
     return out
 
 
+def _model_label(model: dict) -> str:
+    """A session's model as the audit names it: its record id, and the band's level when it was not the
+    trained one (headers written before the level was recorded say nothing of it)."""
+    label = model.get("record_id") or "?"
+    trim = model.get("band_trim_db") or 0.0
+    return f"{label} (band at {trim:+g} dB)" if trim else label
+
+
 def html_page(rec: Records, rows: list[SourceRow], figs: dict[str, str], reruns: list[dict] | None) -> str:
     tot = totals(rows)[0] if rows else SourceRow("all", "", 0, 0, {})
     groups = totals(rows, key=lambda r: r.group or "(none)")
@@ -252,7 +260,7 @@ def html_page(rec: Records, rows: list[SourceRow], figs: dict[str, str], reruns:
         )
         return f"<table><tr>{head}</tr>{body}</table>"
 
-    models = sorted({h["model"]["record_id"] or "?" for h in rec.headers})
+    models = sorted({_model_label(h["model"]) for h in rec.headers})
     worst_html = f'<h2>Worst sources</h2><img alt="spectrograms of the worst outputs" src="data:image/png;base64,{figs["worst"]}">' if "worst" in figs else ""
     rerun_html = ""
     if reruns is not None:

@@ -4,7 +4,8 @@ A record file is a sequence of lines, each one JSON object with a ``type``:
 
 * ``header``: starts every session that appends to the file. ``schema`` is
   ``"nenv-guard-record"``, ``version`` is :data:`VERSION`; it names the model
-  (record id, folder), the guard limits, the check names and their bits, the
+  (record id, folder, and ``band_trim_db``: the level its added band was played at
+  relative to the trained one, 0 for the trained level), the guard limits, the check names and their bits, the
   hop length, and the feature names of the stored inputs.
 * ``reject``: one rejected hop. ``source`` (file or call id), ``group``
   (speaker group or null), ``hop`` (index) and ``t`` (start time, s),
@@ -68,7 +69,7 @@ def check_appendable(path: str | os.PathLike) -> Path:
 class RecordWriter:
     """Appends one session's decisions to a record file (new, or a record already)."""
 
-    def __init__(self, path: str | os.PathLike, *, checkpoint, context: int):
+    def __init__(self, path: str | os.PathLike, *, checkpoint, context: int, band_trim_db: float = 0.0):
         p = check_appendable(path)
         try:
             self._fh = open(p, "a", encoding="utf-8")
@@ -84,7 +85,7 @@ class RecordWriter:
                 "version": VERSION,
                 "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
                 "nenv_version": __version__,
-                "model": {"record_id": checkpoint.info.get("record_id"), "path": str(checkpoint.path)},
+                "model": {"record_id": checkpoint.info.get("record_id"), "path": str(checkpoint.path), "band_trim_db": float(band_trim_db)},
                 "limits": self.limits,
                 "checks": {name: int(bit) for bit, name in CHECK_NAMES.items()},
                 "hop_s": HOP_S,

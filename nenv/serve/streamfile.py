@@ -231,7 +231,7 @@ def watch(system, record, *, source: str, group: Optional[str], n_hops: int):
     if record is not None:
         from nenv.report.records import RecordWriter
 
-        writer = RecordWriter(record, checkpoint=est.checkpoint, context=est.checkpoint.features.context)
+        writer = RecordWriter(record, checkpoint=est.checkpoint, context=est.checkpoint.features.context, band_trim_db=getattr(system, "band_trim_db", 0.0))
     tally = Tally(limit=n_hops)
 
     def listen(first_hop, dec, x, a_nb):
