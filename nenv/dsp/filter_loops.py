@@ -184,7 +184,7 @@ def _all_pole_16(ar, hist, u, y, start, stop, g):
     """The all-pole recursion of :func:`synthesize` for order 16 (the wideband envelope's), samples
     ``start`` to ``stop``: the same products and sums in the same order, with the last 16 outputs
     held in locals instead of re-read from ``hist`` (a read of the sample just written waits for
-    that write: 1.7 -> 1.3 us per hop). ``hist`` is still written, for the caller's state."""
+    that write: 1.7 -> 1.0-1.3 us per hop). ``hist`` is still written, for the caller's state."""
     c0, c1, c2, c3, c4, c5, c6, c7 = ar[0], ar[1], ar[2], ar[3], ar[4], ar[5], ar[6], ar[7]
     c8, c9, c10, c11, c12, c13, c14, c15 = ar[8], ar[9], ar[10], ar[11], ar[12], ar[13], ar[14], ar[15]
     h0, h1, h2, h3, h4, h5, h6, h7 = hist[start], hist[start + 1], hist[start + 2], hist[start + 3], hist[start + 4], hist[start + 5], hist[start + 6], hist[start + 7]

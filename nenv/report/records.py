@@ -5,8 +5,9 @@ A record file is a sequence of lines, each one JSON object with a ``type``:
 * ``header``: starts every session that appends to the file. ``schema`` is
   ``"nenv-guard-record"``, ``version`` is :data:`VERSION`; it names the model
   (record id, folder, and ``band_trim_db``: the level its added band was played at
-  relative to the trained one, 0 for the trained level), the guard limits, the check names and their bits, the
-  hop length, and the feature names of the stored inputs.
+  relative to the trained one, 0 for the trained level), the guard limits, the
+  check names and their bits, the hop length, and the feature names of the stored
+  inputs.
 * ``reject``: one rejected hop. ``source`` (file or call id), ``group``
   (speaker group or null), ``hop`` (index) and ``t`` (start time, s),
   ``reasons`` (check names), ``values`` (each check's measured value) and
