@@ -9,9 +9,8 @@ from __future__ import annotations
 from functools import lru_cache
 
 import numpy as np
-from scipy import signal
 
-from nenv.dsp import kernels
+from nenv.dsp import designs, kernels
 from nenv.settings import BAND_EDGE_HZ, HOP_WB, N_SUBFRAMES, WB_SR
 
 UPSAMPLER_TAPS = 47  # at 16 kHz, linear phase
@@ -24,27 +23,38 @@ LOW_PASS_HZ = 250.0  # Hz, pass-band edge of the low band's upper side (0.5 dB r
 LOW_HIGHPASS_HZ = 60.0  # Hz, pass-band edge of its lower side (0.5 dB ripple, 40 dB below 32 Hz)
 
 
-@lru_cache(maxsize=None)
 def upsampler_taps() -> np.ndarray:
     """Interpolation low-pass for 8 -> 16 kHz, with the x2 gain of zero insertion.
 
     Parks-McClellan, pass 0-3500 Hz (+-0.06 dB), stop from 4500 Hz (<= -63 dB): the
     telephone band passes untouched and its image above 4.6 kHz is removed.
     """
+    return designs.stored("upsampler")
+
+
+def design_upsampler() -> np.ndarray:
+    """:func:`upsampler_taps` designed afresh (scipy.signal.remez, equiripple)."""
+    from scipy import signal
+
     return 2.0 * signal.remez(UPSAMPLER_TAPS, [0, 3500, 4500, WB_SR / 2], [1, 0], weight=[1, 10], fs=WB_SR)
 
 
-@lru_cache(maxsize=None)
 def isolation_sos() -> np.ndarray:
     """Elliptic high-pass that isolates the added band (above 3.4 kHz).
 
     Its phase is irrelevant (it filters synthetic content only), so an IIR filter
     keeps the latency low. Measured: <= -60 dB below 3300 Hz, 0.2 dB ripple above 3450 Hz.
     """
+    return designs.stored("isolation")
+
+
+def design_isolation() -> np.ndarray:
+    """:func:`isolation_sos` designed afresh (scipy.signal.ellip)."""
+    from scipy import signal
+
     return signal.ellip(ISOLATION_ORDER, 0.2, ISOLATION_STOP_DB, ISOLATION_PASS_HZ, btype="highpass", fs=WB_SR, output="sos")
 
 
-@lru_cache(maxsize=None)
 def low_band_sos() -> np.ndarray:
     """The filter that isolates the added low band (about 50-300 Hz): elliptic low-pass (order 8,
     pass to 250 Hz) and elliptic high-pass (order 4, pass from 60 Hz), as second-order sections.
@@ -54,6 +64,13 @@ def low_band_sos() -> np.ndarray:
     below -40 dB under 30 Hz: no rumble. Like the high band's filter it is causal (IIR) and filters
     synthetic content only; its group delay is about 3 ms over 60-200 Hz (9 ms at 240 Hz).
     """
+    return designs.stored("low_band")
+
+
+def design_low_band() -> np.ndarray:
+    """:func:`low_band_sos` designed afresh (scipy.signal.ellip, twice)."""
+    from scipy import signal
+
     low = signal.ellip(8, 0.5, 60.0, LOW_PASS_HZ, fs=WB_SR, output="sos")
     high = signal.ellip(4, 0.5, 40.0, LOW_HIGHPASS_HZ, btype="highpass", fs=WB_SR, output="sos")
     return np.vstack([low, high])

@@ -12,9 +12,8 @@ from __future__ import annotations
 from functools import lru_cache
 
 import numpy as np
-from scipy import signal
 
-from nenv.dsp import kernels
+from nenv.dsp import designs, kernels
 from nenv.chain.estimators.base import NarrowbandAnalysis
 from nenv.dsp.rows import ALL, RowState
 from nenv.settings import WB_SR
@@ -28,9 +27,19 @@ SHAPING_DB_AT_8K = -32.0  # dB
 SHAPING_TAPS = 33  # linear-phase prototype; the filter used is its minimum-phase version
 
 
-@lru_cache(maxsize=None)
 def shaping_taps(db_at_4k: float = SHAPING_DB_AT_4K, db_at_8k: float = SHAPING_DB_AT_8K) -> np.ndarray:
-    """Minimum-phase FIR with the falling shaping gain (flat below 4 kHz)."""
+    """Minimum-phase FIR with the falling shaping gain (flat below 4 kHz); for the default gains, the
+    stored design (:mod:`nenv.dsp.designs`)."""
+    if (db_at_4k, db_at_8k) == (SHAPING_DB_AT_4K, SHAPING_DB_AT_8K):
+        return designs.stored("shaping")
+    return design_shaping(db_at_4k, db_at_8k)
+
+
+@lru_cache(maxsize=None)
+def design_shaping(db_at_4k: float = SHAPING_DB_AT_4K, db_at_8k: float = SHAPING_DB_AT_8K) -> np.ndarray:
+    """:func:`shaping_taps` designed afresh (scipy.signal.firwin2 and minimum_phase)."""
+    from scipy import signal
+
     freq = np.array([0.0, 4000.0, 8000.0]) / (WB_SR / 2)
     gain_db = np.array([db_at_4k, db_at_4k, db_at_8k])
     # minimum_phase (homomorphic) matches the square root of the prototype's magnitude,
