@@ -13,14 +13,38 @@ import pytest
 from nenv.chain.estimators import imaging
 from nenv.dsp import designs, synthesis
 
+# each stored design and the recipe that designs it afresh (scipy.signal, beside the code using it)
+DESIGNERS = {"upsampler": synthesis.design_upsampler, "isolation": synthesis.design_isolation, "low_band": synthesis.design_low_band, "shaping": imaging.design_shaping}
+
+
+def table() -> str:
+    """The body of nenv.dsp.designs.STORED from fresh designs (``repr`` of a float gives back the same float)."""
+    lines = []
+    for name, design in DESIGNERS.items():
+        v = np.asarray(design(), dtype=np.float64)
+        if v.ndim == 1:  # FIR taps, four to a line
+            rows = [", ".join(repr(float(x)) for x in v[i : i + 4]) for i in range(0, v.size, 4)]
+        else:  # second-order sections, one to a line
+            rows = ["[" + ", ".join(repr(float(x)) for x in section) + "]" for section in v]
+        body = ",\n        ".join(rows)
+        lines.append(f'    "{name}": [\n        {body},\n    ],')
+    return "\n".join(lines)
+
+
+def test_the_printed_table_reads_back_as_the_stored_one():
+    assert set(DESIGNERS) == set(designs.STORED)
+    printed = eval("{" + table() + "}")  # noqa: S307 - the table this file printed, as Python literals
+    for name, values in designs.STORED.items():
+        np.testing.assert_allclose(np.array(printed[name]), np.array(values), rtol=1e-9, atol=1e-13)
+
 
 @pytest.mark.parametrize("name", ["upsampler", "isolation", "low_band", "shaping"])
 def test_each_stored_design_equals_a_fresh_one(name):
-    fresh = np.asarray(designs.designers()[name](), dtype=np.float64)
+    fresh = np.asarray(DESIGNERS[name](), dtype=np.float64)
     kept = designs.stored(name)
     assert kept.shape == fresh.shape
     # equal here to the last bit; a later scipy may design a few units in the last place apart
-    np.testing.assert_allclose(kept, fresh, rtol=1e-9, atol=1e-13, err_msg=f"scipy now designs '{name}' differently: python -m nenv.dsp.designs")
+    np.testing.assert_allclose(kept, fresh, rtol=1e-9, atol=1e-13, err_msg=f"scipy now designs '{name}' differently: python tests/test_designs.py")
     kept[...] = 0.0  # each caller gets its own copy: changing one changes no other
     assert designs.stored(name).any()
 
@@ -45,3 +69,7 @@ def test_extending_speech_designs_no_filter():
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False", out.stdout + out.stderr
+
+
+if __name__ == "__main__":  # python tests/test_designs.py: the table to paste into nenv/dsp/designs.py
+    print(table())

@@ -8,8 +8,8 @@ there): :func:`nenv.dsp.synthesis.design_upsampler` (the 8 -> 16 kHz interpolato
 reads the stored numbers, so a process needs no filter design before its first hop (importing
 scipy.signal alone takes some 0.4 s of a 2 s ``nenv extend``), and its output does not move when a
 new scipy designs a filter a few units in the last place differently. ``tests/test_designs.py`` holds
-each stored design against a fresh one; ``python -m nenv.dsp.designs`` prints the table afresh (to
-paste here after a recipe changes).
+each stored design against a fresh one, and ``python tests/test_designs.py`` prints this table afresh
+(to paste here after a recipe changes).
 """
 
 from __future__ import annotations
@@ -60,28 +60,3 @@ def stored(name: str) -> np.ndarray:
     """The stored design ``name`` as a new float64 array (FIR taps, or second-order sections)."""
     return np.array(STORED[name], dtype=np.float64)
 
-
-def designers() -> dict:
-    """Each stored design's name and the function that designs it afresh."""
-    from nenv.chain.estimators.imaging import design_shaping
-    from nenv.dsp.synthesis import design_isolation, design_low_band, design_upsampler
-
-    return {"upsampler": design_upsampler, "isolation": design_isolation, "low_band": design_low_band, "shaping": design_shaping}
-
-
-def table() -> str:
-    """The body of :data:`STORED` from fresh designs (``repr`` of a float gives back the same float)."""
-    lines = []
-    for name, design in designers().items():
-        v = np.asarray(design(), dtype=np.float64)
-        if v.ndim == 1:  # FIR taps, four to a line
-            rows = [", ".join(repr(float(x)) for x in v[i : i + 4]) for i in range(0, v.size, 4)]
-        else:  # second-order sections, one to a line
-            rows = ["[" + ", ".join(repr(float(x)) for x in section) + "]" for section in v]
-        body = ",\n        ".join(rows)
-        lines.append(f'    "{name}": [\n        {body},\n    ],')
-    return "\n".join(lines)
-
-
-if __name__ == "__main__":
-    print(table())
