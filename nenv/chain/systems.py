@@ -255,11 +255,14 @@ def make_system(name: str, *, reference: np.ndarray | None = None, excitation: M
     return system
 
 
+def trim_source(given: bool) -> str:
+    """Where a model's band level came from: ``given`` by ``--band-trim``, or the model folder's calibration."""
+    return "--band-trim" if given else "the model folder's calibration"
+
+
 def band_note(band_trim_db: float, *, given: bool) -> str:
-    """What to tell the user when a model's band is not at its trained level: ``given`` by
-    ``--band-trim``, or set by the model folder's calibration."""
-    where = "--band-trim" if given else "the model folder's calibration"
-    return f"the added band is {band_trim_db:+g} dB against the model's trained level ({where})"
+    """What to tell the user when a model's band is not at its trained level (``given``: see :func:`trim_source`)."""
+    return f"the added band is {band_trim_db:+g} dB against the model's trained level ({trim_source(given)})"
 
 
-__all__ = ["DEFAULT_EXCITATION", "LOW_BAND_SYSTEMS", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "band_note", "check_band_trim", "check_low_band", "load_model", "make_system"]
+__all__ = ["DEFAULT_EXCITATION", "LOW_BAND_SYSTEMS", "MODEL_SYSTEMS", "REFERENCE_SYSTEMS", "SYSTEMS", "SourceFilterSystem", "System", "TrueBand", "Unextended", "band_note", "check_band_trim", "check_low_band", "load_model", "make_system", "trim_source"]

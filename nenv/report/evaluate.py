@@ -22,6 +22,7 @@ from nenv.media import audio
 from nenv.dsp import channel
 from nenv.chain import pipeline
 from nenv.chain.checkpoint import check_trim
+from nenv.chain.systems import trim_source
 from nenv.errors import InputError
 from nenv.report.measures import Scores
 from nenv.settings import WB_SR
@@ -247,9 +248,8 @@ def trim_notes(systems: Sequence[str], band_trim_db: float | None, model=None) -
     trim = band_trim_db if band_trim_db is not None else pipeline.load_model(model).band_trim_db
     if trim == 0:
         return []
-    where = "--band-trim" if band_trim_db is not None else "the model folder's calibration"
     verb = "adds its" if len(named) == 1 else "add their"
-    return [f"{' and '.join(named)} {verb} band {trim:+g} dB against the trained level ({where})"]
+    return [f"{' and '.join(named)} {verb} band {trim:+g} dB against the trained level ({trim_source(band_trim_db is not None)})"]
 
 
 def to_csv(rows: Sequence[Row]) -> str:
