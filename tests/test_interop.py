@@ -83,7 +83,7 @@ def _gst_receiver(port: int, out: Path) -> subprocess.Popen:
     """GStreamer's own RTP receiver for the relay's output: jitter buffer, L16 depayloader, raw S16BE file."""
     p = subprocess.Popen([_tool("gst-launch-1.0"), "-e", "-q", "udpsrc", "address=127.0.0.1", f"port={port}", f"caps={L16_CAPS}", "!",
                           "rtpjitterbuffer", "latency=200", "!", "rtpL16depay", "!", "filesink", f"location={out}"], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    time.sleep(1.0)  # until the pipeline is playing and its socket is bound
+    _wait_bound(p, port, at_least=1.0)  # and until the pipeline is playing
     return p
 
 
@@ -93,8 +93,27 @@ def _ffmpeg_receiver(port: int, tmp: Path, out: Path) -> subprocess.Popen:
     sdp.write_text(f"v=0\no=- 0 0 IN IP4 127.0.0.1\ns=nenv relay\nc=IN IP4 127.0.0.1\nt=0 0\nm=audio {port} RTP/AVP 96\na=rtpmap:96 L16/16000/1\n")
     p = subprocess.Popen([_tool("ffmpeg"), "-hide_banner", "-loglevel", "error", "-nostdin", "-protocol_whitelist", "file,udp,rtp", "-i", str(sdp),
                           "-c:a", "pcm_s16be", "-f", "s16be", "-y", str(out)], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    time.sleep(1.5)
+    _wait_bound(p, port, at_least=1.5)
     return p
+
+
+def _wait_bound(p: subprocess.Popen, port: int, *, at_least: float, seconds: float = 20.0) -> None:
+    """Wait ``at_least`` seconds (the tool's start-up), and on until the receiver has bound its UDP
+    ``port`` (Linux lists bound sockets in /proc/net/udp, the port in hex after the address): on a
+    busy machine the pause alone could end before anyone listened. Elsewhere, the pause alone."""
+    t0 = time.monotonic()
+    time.sleep(at_least)
+    tables = [Path("/proc/net/udp"), Path("/proc/net/udp6")]
+    if not tables[0].exists():
+        return
+    want = f":{port:04X}"
+    while time.monotonic() - t0 < seconds:
+        local = [line.split()[1] for t in tables if t.exists() for line in t.read_text().splitlines()[1:]]
+        if any(a.endswith(want) for a in local):
+            return
+        assert p.poll() is None, f"the receiver exited before listening: {p.stderr.read().decode(errors='replace')[-500:]}"
+        time.sleep(0.05)
+    raise AssertionError(f"no receiver bound UDP port {port} within {seconds} s")
 
 
 def _gst_sender(wav: Path, port: int, law: str, *, ssrc: int = 0x4E454E56, seq: int = 1000, rtcp: bool = False) -> list[str]:
