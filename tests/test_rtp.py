@@ -428,6 +428,58 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
         assert 0 < c.guard_fallbacks == rejected, (i, c.guard_fallbacks, rejected)
 
 
+def test_time_the_relay_spends_busy_is_not_taken_for_the_senders_silence(arctic_refs):
+    """A batched step that runs longer than TAIL_AFTER_S (a loaded machine) while the sender's next
+    packets wait in the socket: the stream is not taken for quiet, no silence goes into the middle of
+    the call, and the call comes out as offline extension gives it (with ffmpeg as the sender on a
+    loaded machine, 20 ms of silence once went in 80 ms into the call)."""
+    import threading
+    from concurrent.futures import ThreadPoolExecutor
+
+    from nenv.chain import checkpoint
+    from nenv.media.audio import to_int16
+
+    model = checkpoint.load(checkpoint.default_path())
+    _, ref = arctic_refs[0]
+    codes = g711.encode(channel.telephone(ref, sr=16000, law="mulaw")[:4800], law="mulaw")  # 30 packets
+    rx = _receiver()
+    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=1.0, batch_model=model)
+    stalled, sent = threading.Event(), threading.Event()
+    step = relay.multi.step
+
+    def slow_step():  # the first step with the call open is slow, and ends only once the rest was sent
+        if relay.streams and not stalled.is_set():
+            stalled.set()
+            time.sleep(2.5 * rtp.TAIL_AFTER_S)
+            sent.wait(10.0)
+        return step()
+
+    relay.multi.step = slow_step
+    relay.start()
+    receiving = ThreadPoolExecutor(1).submit(_collect, rx, 30.0)
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+
+    def send(k):
+        tx.sendto(rtp_packet.build(payload_type=0, seq=k, timestamp=160 * k, ssrc=9, payload=codes[160 * k : 160 * (k + 1)].tobytes()), relay.address)
+
+    send(0)
+    assert stalled.wait(10.0), "the relay never stepped the call"
+    for k in range(1, codes.size // 160):
+        send(k)
+    sent.set()
+    got = receiving.result()
+    relay.stop()
+    c = relay.closed[9]
+    assert c.packets == codes.size // 160 and c.lost_packets == 0
+    assert c.silence_filled == rtp.TAIL_SAMPLES  # the call's end only, not the relay's busy time
+    first = got[0].seq
+    got.sort(key=lambda p: (p.seq - first) & 0xFFFF)
+    y = np.concatenate([np.frombuffer(p.payload, dtype=">i2") for p in got]).astype(np.int64)
+    expected = to_int16(pipeline.extend(g711.decode(codes, law="mulaw"), system=pipeline.make_system("neural", model=model)).y).astype(np.int64)
+    assert y.size == expected.size + 2 * rtp.TAIL_SAMPLES
+    assert np.max(np.abs(y[: expected.size] - expected)) <= 1
+
+
 def test_packets_arriving_while_the_relay_is_busy_wait_in_its_socket_not_dropped():
     """A batched step of a few hundred calls takes 10-20 ms; the packets that arrive meanwhile wait in
     the listening socket. The system's default buffer (about 200 KB on Linux) holds some 20 ms of 200

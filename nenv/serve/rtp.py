@@ -61,7 +61,7 @@ MAX_NEWCOMER_PACKETS = 16  # packets of another address held per stream while th
 RECEIVE_BURST = 256  # datagrams handled per wake-up before the relay checks its clock again
 RECEIVE_BUFFER_BYTES = 2**20  # the listening socket's receive buffer (the system caps it): packets that arrive while a batched step runs wait here; about 0.1 s of 200 streams
 EXPIRY_CHECK_S = 0.02  # how often quiet and idle streams are looked for
-TAIL_AFTER_S = 0.2  # a stream quiet this long (ten packet times) has its held-back tail sent, without ending it (a delay spike longer than this inserts 20 ms of silence)
+TAIL_AFTER_S = 0.2  # a stream quiet this long (ten packet times) has its held-back tail sent, without ending it (a delay spike of the sender's packets longer than this inserts 20 ms of silence; the relay's own busy time does not count)
 TAIL_SAMPLES = 160  # 8 kHz samples of silence that push the tail out (a partial hop and the interpolator's delay)
 
 
@@ -199,27 +199,34 @@ class Relay:
             self._shutdown()
 
     def serve(self) -> None:
+        heard = time.monotonic()  # every packet that arrived before this has been handled
         try:
             while not self._stop.is_set():
                 wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - time.monotonic())
                 ready, _, _ = select.select([self.sock] + ([self.rtcp_sock] if self.rtcp_sock else []), [], [], wait)
+                looked = time.monotonic()  # what arrived before this waits in a ready socket
+                emptied = True
                 for sock in ready:
-                    self._receive_all(sock)
+                    emptied = self._receive_all(sock) and emptied
+                if emptied:
+                    heard = looked
                 if self.multi is not None and time.monotonic() - self._last_step >= self.tick:
                     self.step()
                 if time.monotonic() - self._last_expiry >= EXPIRY_CHECK_S:
-                    self._expire()
+                    self._expire(heard)
         finally:
             self._shutdown()
 
-    def _receive_all(self, sock: socket.socket) -> None:
-        """Handle every datagram waiting in ``sock`` (up to RECEIVE_BURST), without blocking."""
+    def _receive_all(self, sock: socket.socket) -> bool:
+        """Handle every datagram waiting in ``sock`` (up to RECEIVE_BURST), without blocking; True
+        when the socket was left empty."""
         for _ in range(RECEIVE_BURST):
             try:
                 data, addr = sock.recvfrom(65535)
             except (BlockingIOError, InterruptedError):
-                return
+                return True
             self.handle(data, addr)
+        return False
 
     def step(self) -> None:
         """Batched mode: run every queued hop of every stream and send what is ready."""
@@ -362,17 +369,22 @@ class Relay:
                 self.counters.send_errors += 1
             st.counters.packets_out += 1
 
-    def _expire(self) -> None:
+    def _expire(self, heard: float | None = None) -> None:
         """Close streams idle for ``idle_timeout_s``; for streams quiet for TAIL_AFTER_S, push out the
         audio the engine still holds (the end of a call, or the start of a pause) with a little
-        silence that counts as part of the pause, so the stream's timing is kept."""
+        silence that counts as part of the pause, so the stream's timing is kept.
+
+        Quiet is measured up to ``heard`` (default: now), the last moment every packet that had
+        arrived was handled: time the relay itself spent busy (a long step, with packets waiting in
+        the socket) is not the sender's silence, and inserts none."""
         now = self._last_expiry = time.monotonic()
+        heard = now if heard is None else heard
         for ssrc, st in list(self.streams.items()):
-            if st.newcomer and now - st.last_seen >= REBIND_AFTER_S:  # the source stayed quiet: follow the newcomer
+            if st.newcomer and heard - st.last_seen >= REBIND_AFTER_S:  # the source stayed quiet: follow the newcomer
                 self._follow_newcomer(st, st.newcomer)
-            if now - st.last_seen > self.idle:
+            if heard - st.last_seen > self.idle:
                 self._close(ssrc)
-            elif now - st.last_seen > TAIL_AFTER_S and not st.tail_sent:
+            elif heard - st.last_seen > TAIL_AFTER_S and not st.tail_sent:
                 st.tail_sent = True
                 for x in st.playout.pad(TAIL_SAMPLES):
                     self._feed(st, x)
