@@ -53,6 +53,15 @@ def _receiver():
     return s
 
 
+def _samples_in_order(packets) -> np.ndarray:
+    """The L16 samples of one stream's received packets, which it sorts in place into sequence order
+    (numbers wrap modulo 2**16; the earliest is found around the first received, so reordering on the
+    way does not matter)."""
+    first = min((p.seq for p in packets), key=lambda s: (s - packets[0].seq + 0x8000) & 0xFFFF)
+    packets.sort(key=lambda p: (p.seq - first) & 0xFFFF)
+    return np.concatenate([np.frombuffer(p.payload, dtype=">i2") for p in packets]).astype(np.int64)
+
+
 def _collect(sock, seconds, quiet=1.5):
     """Packets until ``quiet`` seconds pass without one (after the first), or ``seconds`` in all."""
     got, end, last = [], time.time() + seconds, time.time()
@@ -93,9 +102,7 @@ def test_relay_extends_a_clip_with_reordering_and_loss(arctic_refs):
     got = receiving.result()  # includes the tail the relay flushes when the stream goes idle
     relay.stop()
     assert got and all(p is not None and p.payload_type == 96 for p in got)
-    seq_first = min((p.seq for p in got), key=lambda s: (s - got[0].seq + 0x8000) & 0xFFFF)
-    got.sort(key=lambda p: (p.seq - seq_first) & 0xFFFF)
-    y = np.concatenate([np.frombuffer(p.payload, dtype=">i2") for p in got]).astype(np.int64)
+    y = _samples_in_order(got)
     # reference: the same G.711 audio with the lost packet as silence, extended offline
     played = g711.decode(codes, law="mulaw")
     played[lost * 160 : (lost + 1) * 160] = 0.0
@@ -410,9 +417,7 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
     assert len(by_ssrc) == 6 and relay.counters.streams_opened == 6
     outs = []
     for pkts in by_ssrc.values():
-        first = pkts[0].seq
-        pkts.sort(key=lambda p: (p.seq - first) & 0xFFFF)
-        outs.append(np.concatenate([np.frombuffer(p.payload, dtype=">i2") for p in pkts]).astype(np.int64))
+        outs.append(_samples_in_order(pkts))
     for i, codes in enumerate(clips):
         played = g711.decode(codes, law="mulaw")
         expected = to_int16(pipeline.extend(played, system=pipeline.make_system("neural", model=ck, low_band=low_band)).y).astype(np.int64)
@@ -472,9 +477,7 @@ def test_time_the_relay_spends_busy_is_not_taken_for_the_senders_silence(arctic_
     c = relay.closed[9]
     assert c.packets == codes.size // 160 and c.lost_packets == 0
     assert c.silence_filled == rtp.TAIL_SAMPLES  # the call's end only, not the relay's busy time
-    first = got[0].seq
-    got.sort(key=lambda p: (p.seq - first) & 0xFFFF)
-    y = np.concatenate([np.frombuffer(p.payload, dtype=">i2") for p in got]).astype(np.int64)
+    y = _samples_in_order(got)
     expected = to_int16(pipeline.extend(g711.decode(codes, law="mulaw"), system=pipeline.make_system("neural", model=model)).y).astype(np.int64)
     assert y.size == expected.size + 2 * rtp.TAIL_SAMPLES
     assert np.max(np.abs(y[: expected.size] - expected)) <= 1
