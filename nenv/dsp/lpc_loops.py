@@ -314,10 +314,9 @@ def frames_after(x, history, hop):
             r = b * hops + h
             start = h * hop - keep  # where the frame starts in x; before 0 it is the history
             split = min(max(-start, 0), length)  # samples taken from the history
-            for i in range(split):
-                frames[r, i] = history[b, keep + start + i]
-            for i in range(split, length):
-                frames[r, i] = x[b, start + i]
+            # slices, so the copies' indices are plainly >= 0 (no wrap-around checks; SIMD)
+            frames[r, :split] = history[b, keep + start : keep + start + split]
+            frames[r, split:] = x[b, start + split : start + length]
         if n >= keep:
             for i in range(keep):
                 history[b, i] = x[b, n - keep + i]
