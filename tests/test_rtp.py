@@ -483,6 +483,55 @@ def test_time_the_relay_spends_busy_is_not_taken_for_the_senders_silence(arctic_
     assert np.max(np.abs(y[: expected.size] - expected)) <= 1
 
 
+def test_time_the_relay_spends_busy_does_not_make_a_colliding_sender_look_like_a_move(arctic_refs):
+    """RFC 3550 section 8.2: the same SSRC from a second address while the source is sending is a
+    collision. A batched step that runs longer than REBIND_AFTER_S while both senders' packets wait in
+    the socket must not be taken for the source's silence: the stream stays with its source and the
+    other sender's packet is dropped as a conflict, not played into the call."""
+    import threading
+
+    from nenv.chain import checkpoint
+
+    model = checkpoint.load(checkpoint.default_path())
+    _, ref = arctic_refs[0]
+    codes = g711.encode(channel.telephone(ref, sr=16000, law="mulaw")[:960], law="mulaw")  # 6 packets
+    rx = _receiver()
+    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=5.0, batch_model=model)
+    stalled, sent = threading.Event(), threading.Event()
+    step = relay.multi.step
+
+    def slow_step():  # the first step with the call open is slow, and ends only once the rest was sent
+        if relay.streams and not stalled.is_set():
+            stalled.set()
+            time.sleep(3 * rtp.REBIND_AFTER_S)
+            sent.wait(10.0)
+        return step()
+
+    relay.multi.step = slow_step
+    relay.start()
+    source, other = socket.socket(socket.AF_INET, socket.SOCK_DGRAM), socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    source.bind(("127.0.0.1", 0))
+    other.bind(("127.0.0.1", 0))
+
+    def send(sock, k, payload):
+        sock.sendto(rtp_packet.build(payload_type=0, seq=k, timestamp=160 * k, ssrc=11, payload=payload), relay.address)
+
+    send(source, 0, codes[:160].tobytes())
+    assert stalled.wait(10.0), "the relay never stepped the call"
+    send(other, 500, b"\x90" * 160)  # the colliding sender's packet comes first ...
+    for k in range(1, 6):  # ... then the source's next packets, 20 ms apart as sent
+        send(source, k, codes[160 * k : 160 * (k + 1)].tobytes())
+        time.sleep(0.02)
+    sent.set()
+    deadline = time.time() + 10.0
+    while (relay.streams.get(11) is None or relay.streams[11].counters.packets < 6) and time.time() < deadline:
+        time.sleep(0.02)
+    relay.stop()
+    c = relay.closed[11]
+    assert c.source_changes == 0 and c.packets == 6 and c.samples_in == 6 * 160  # the source's six packets only
+    assert relay.counters.ssrc_conflicts == 1  # the other sender's packet: dropped and counted
+
+
 def test_packets_arriving_while_the_relay_is_busy_wait_in_its_socket_not_dropped():
     """A batched step of a few hundred calls takes 10-20 ms; the packets that arrive meanwhile wait in
     the listening socket. The system's default buffer (about 200 KB on Linux) holds some 20 ms of 200

@@ -207,7 +207,7 @@ class Relay:
                 looked = time.monotonic()  # what arrived before this waits in a ready socket
                 emptied = True
                 for sock in ready:
-                    emptied = self._receive_all(sock) and emptied
+                    emptied = self._receive_all(sock, heard) and emptied
                 if emptied:
                     heard = looked
                 if self.multi is not None and time.monotonic() - self._last_step >= self.tick:
@@ -217,15 +217,15 @@ class Relay:
         finally:
             self._shutdown()
 
-    def _receive_all(self, sock: socket.socket) -> bool:
+    def _receive_all(self, sock: socket.socket, heard: float) -> bool:
         """Handle every datagram waiting in ``sock`` (up to RECEIVE_BURST), without blocking; True
-        when the socket was left empty."""
+        when the socket was left empty. Each arrived after ``heard`` (see :meth:`handle`)."""
         for _ in range(RECEIVE_BURST):
             try:
                 data, addr = sock.recvfrom(65535)
             except (BlockingIOError, InterruptedError):
                 return True
-            self.handle(data, addr)
+            self.handle(data, addr, heard)
         return False
 
     def step(self) -> None:
@@ -253,7 +253,11 @@ class Relay:
             self.out.close()
 
     # ---- packets in ----------------------------------------------------------------------
-    def handle(self, data: bytes, addr: tuple[str, int]) -> None:
+    def handle(self, data: bytes, addr: tuple[str, int], heard: float | None = None) -> None:
+        """One datagram. ``heard`` (default: now) is a moment before which every packet that had
+        arrived was handled, so this one arrived after it: a stream's source is known to have been
+        quiet, before this packet came, only up to ``heard`` (the relay's own busy time is not the
+        source's silence, as in :meth:`_expire`)."""
         if self.allowed is not None and addr[0] not in self.allowed:
             self.counters.not_allowed += 1
             return
@@ -276,7 +280,7 @@ class Relay:
             # unless the first source has gone quiet (a sender that restarted on a new port, or whose NAT
             # binding changed): its packets are held until REBIND_AFTER_S after the source's last packet,
             # then followed (nothing lost) or, if the source spoke again meanwhile, dropped as conflicts
-            if time.monotonic() - st.last_seen < REBIND_AFTER_S:
+            if (time.monotonic() if heard is None else heard) - st.last_seen < REBIND_AFTER_S:
                 self._hold_newcomer(st, pkt, addr)
                 return
             self._follow_newcomer(st, addr)
