@@ -433,12 +433,34 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
         assert 0 < c.guard_fallbacks == rejected, (i, c.guard_fallbacks, rejected)
 
 
+def _relay_with_a_slow_first_step(model, seconds, idle_timeout_s):
+    """A batched relay (the neural ``model``), started, whose first step with a call open is slow, as
+    on a loaded machine: it sleeps ``seconds`` and then waits until the test sets ``sent``.
+    Returns (relay, its receiver, stalled, sent)."""
+    import threading
+
+    rx = _receiver()
+    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=idle_timeout_s, batch_model=model)
+    stalled, sent = threading.Event(), threading.Event()
+    step = relay.multi.step
+
+    def slow_step():
+        if relay.streams and not stalled.is_set():
+            stalled.set()
+            time.sleep(seconds)
+            sent.wait(10.0)
+        return step()
+
+    relay.multi.step = slow_step
+    relay.start()
+    return relay, rx, stalled, sent
+
+
 def test_time_the_relay_spends_busy_is_not_taken_for_the_senders_silence(arctic_refs):
     """A batched step that runs longer than TAIL_AFTER_S (a loaded machine) while the sender's next
     packets wait in the socket: the stream is not taken for quiet, no silence goes into the middle of
     the call, and the call comes out as offline extension gives it (with ffmpeg as the sender on a
     loaded machine, 20 ms of silence once went in 80 ms into the call)."""
-    import threading
     from concurrent.futures import ThreadPoolExecutor
 
     from nenv.chain import checkpoint
@@ -447,20 +469,7 @@ def test_time_the_relay_spends_busy_is_not_taken_for_the_senders_silence(arctic_
     model = checkpoint.load(checkpoint.default_path())
     _, ref = arctic_refs[0]
     codes = g711.encode(channel.telephone(ref, sr=16000, law="mulaw")[:4800], law="mulaw")  # 30 packets
-    rx = _receiver()
-    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=1.0, batch_model=model)
-    stalled, sent = threading.Event(), threading.Event()
-    step = relay.multi.step
-
-    def slow_step():  # the first step with the call open is slow, and ends only once the rest was sent
-        if relay.streams and not stalled.is_set():
-            stalled.set()
-            time.sleep(2.5 * rtp.TAIL_AFTER_S)
-            sent.wait(10.0)
-        return step()
-
-    relay.multi.step = slow_step
-    relay.start()
+    relay, rx, stalled, sent = _relay_with_a_slow_first_step(model, 2.5 * rtp.TAIL_AFTER_S, idle_timeout_s=1.0)
     receiving = ThreadPoolExecutor(1).submit(_collect, rx, 30.0)
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
 
@@ -488,27 +497,12 @@ def test_time_the_relay_spends_busy_does_not_make_a_colliding_sender_look_like_a
     collision. A batched step that runs longer than REBIND_AFTER_S while both senders' packets wait in
     the socket must not be taken for the source's silence: the stream stays with its source and the
     other sender's packet is dropped as a conflict, not played into the call."""
-    import threading
-
     from nenv.chain import checkpoint
 
     model = checkpoint.load(checkpoint.default_path())
     _, ref = arctic_refs[0]
     codes = g711.encode(channel.telephone(ref, sr=16000, law="mulaw")[:960], law="mulaw")  # 6 packets
-    rx = _receiver()
-    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=5.0, batch_model=model)
-    stalled, sent = threading.Event(), threading.Event()
-    step = relay.multi.step
-
-    def slow_step():  # the first step with the call open is slow, and ends only once the rest was sent
-        if relay.streams and not stalled.is_set():
-            stalled.set()
-            time.sleep(3 * rtp.REBIND_AFTER_S)
-            sent.wait(10.0)
-        return step()
-
-    relay.multi.step = slow_step
-    relay.start()
+    relay, rx, stalled, sent = _relay_with_a_slow_first_step(model, 3 * rtp.REBIND_AFTER_S, idle_timeout_s=5.0)
     source, other = socket.socket(socket.AF_INET, socket.SOCK_DGRAM), socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     source.bind(("127.0.0.1", 0))
     other.bind(("127.0.0.1", 0))
