@@ -521,6 +521,8 @@ def test_time_the_relay_spends_busy_does_not_make_a_colliding_sender_look_like_a
     while (relay.streams.get(11) is None or relay.streams[11].counters.packets < 6) and time.time() < deadline:
         time.sleep(0.02)
     relay.stop()
+    for sock in (source, other, rx):
+        sock.close()
     c = relay.closed[11]
     assert c.source_changes == 0 and c.packets == 6 and c.samples_in == 6 * 160  # the source's six packets only
     assert relay.counters.ssrc_conflicts == 1  # the other sender's packet: dropped and counted
