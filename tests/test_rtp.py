@@ -11,7 +11,7 @@ import pytest
 
 from nenv.dsp import channel, g711
 from nenv.chain import pipeline
-from nenv.serve import rtp, rtp_packet
+from nenv.serve import load, rtp, rtp_packet
 
 
 def test_parse_and_build_round_trip_with_csrc_extension_and_padding():
@@ -528,6 +528,82 @@ def test_time_the_relay_spends_busy_does_not_make_a_colliding_sender_look_like_a
     assert relay.counters.ssrc_conflicts == 1  # the other sender's packet: dropped and counted
 
 
+def test_load_watch_counts_late_rounds_and_tells_only_what_is_new(monkeypatch):
+    """The load logic without sockets or sleeps: rounds up to LATE_AFTER_STEPS steps are not late;
+    a notice names the late rounds, the longest of them and the system's new drops since the last
+    look, and says nothing when there is nothing new."""
+    monkeypatch.setattr(load, "NOTICE_EVERY_S", 0.0)
+    counters, told, system = rtp.RelayCounters(), [], {"drops": 0}
+    watch = load.LoadWatch(counters, lambda: system["drops"], step_s=0.02, notice=told.append)
+    for busy in (0.005, 0.02, 0.039, 0.04):  # at most two steps of 20 ms: on time
+        watch.round(busy)
+    assert counters.late_rounds == 0 and counters.longest_round_ms == pytest.approx(40.0) and told == []
+    watch.round(0.085)
+    watch.round(0.05)
+    assert counters.late_rounds == 2 and len(told) == 2  # each round looked (every 0 s): each late round told at once
+    assert "1 round busier than 2 steps of 20 ms (the longest 85 ms" in told[0] and "the longest 50 ms" in told[1]
+    assert "dropped" not in told[0]
+    system["drops"] = 7
+    watch.round(0.01)
+    assert len(told) == 3 and "7 datagrams dropped by the system unread" in told[2] and "busier" not in told[2]
+    watch.round(0.01)  # nothing new
+    assert len(told) == 3 and counters.longest_round_ms == pytest.approx(85.0)
+
+
+def test_a_relay_that_runs_late_says_so(arctic_refs, monkeypatch):
+    """A round of the serving loop that keeps the relay busy for more than LATE_AFTER_STEPS steps (a
+    stalled step, as on an overloaded machine) is counted, with its length, and the notice says so."""
+    from nenv.chain import checkpoint
+
+    monkeypatch.setattr(load, "NOTICE_EVERY_S", 0.0)  # look at the load after every round
+    model = checkpoint.load(checkpoint.default_path())
+    _, ref = arctic_refs[0]
+    codes = g711.encode(channel.telephone(ref, sr=16000, law="mulaw")[:960], law="mulaw")  # 6 packets
+    relay, rx, stalled, sent = _relay_with_a_slow_first_step(model, 0.3, idle_timeout_s=5.0)
+    told = []
+    relay.load.notice = told.append
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for k in range(6):
+        tx.sendto(rtp_packet.build(payload_type=0, seq=k, timestamp=160 * k, ssrc=12, payload=codes[160 * k : 160 * (k + 1)].tobytes()), relay.address)
+        if k == 0:
+            assert stalled.wait(10.0), "the relay never stepped the call"
+    sent.set()
+    deadline = time.time() + 10.0
+    while not told and time.time() < deadline:
+        time.sleep(0.02)
+    relay.stop()
+    for sock in (tx, rx):
+        sock.close()
+    c = relay.counters
+    assert c.late_rounds >= 1 and c.longest_round_ms >= 300.0
+    assert len(told) >= 1 and told[0].startswith("running late") and "busier than 2 steps of 20 ms" in told[0]
+    longest = int(told[0].split("the longest ")[1].split(" ms")[0])
+    assert 300 <= longest <= c.longest_round_ms + 1
+
+
+def test_datagrams_the_system_drops_unread_are_counted(monkeypatch):
+    """Datagrams that arrive while the listening socket's buffer is full never reach the relay; the
+    system's own count of them (Linux) is reported, and with the packets the relay did handle it
+    accounts for every datagram sent (nothing else is lost on loopback)."""
+    monkeypatch.setattr(rtp, "RECEIVE_BUFFER_BYTES", 1)  # the system's minimum: a few datagrams
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
+    relay.out.close()
+    relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for seq in range(200):  # before the relay reads anything
+        tx.sendto(rtp_packet.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=13, payload=b"\x7f" * 160), relay.address)
+    tx.close()
+    relay.start()
+    time.sleep(0.3)
+    relay.stop()
+    drops = relay.counters.system_drops
+    if not os.path.exists("/proc/net/udp"):
+        assert drops is None  # unknown, not zero
+        pytest.skip("this system does not count a socket's dropped datagrams (/proc/net/udp)")
+    handled = relay.closed[13].packets
+    assert drops > 0 and handled > 0 and handled + drops == 200, (handled, drops)
+
+
 def test_packets_arriving_while_the_relay_is_busy_wait_in_its_socket_not_dropped():
     """A batched step of a few hundred calls takes 10-20 ms; the packets that arrive meanwhile wait in
     the listening socket. The system's default buffer (about 200 KB on Linux) holds some 20 ms of 200
@@ -549,6 +625,19 @@ def test_packets_arriving_while_the_relay_is_busy_wait_in_its_socket_not_dropped
         relay.stop()
         tx.close()
     assert relay.counters.malformed == 1200
+
+
+def test_relay_command_reports_its_load_when_it_stops(monkeypatch):
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+
+    monkeypatch.setattr(rtp.Relay, "serve", lambda self: self._shutdown())  # start, report, stop at once
+    res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging", "--step-ms", "10"], catch_exceptions=False)
+    assert res.exit_code == 0
+    line = next(line for line in res.output.splitlines() if line.startswith("relay load:"))
+    drops = "0" if os.path.exists("/proc/net/udp") else "unknown"  # a socket that received nothing dropped nothing
+    assert line == f"relay load: the longest round 0 ms, 0 longer than 2 steps of 10 ms; datagrams the system dropped unread, its socket buffer full: {drops}"
 
 
 def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch):

@@ -162,6 +162,7 @@ def relay(
 
     from nenv.chain import pipeline
     from nenv.serve import rtp
+    from nenv.serve.load import LATE_AFTER_STEPS
 
     method = method or _default_method(model)
     if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
@@ -174,7 +175,8 @@ def relay(
         # the neural system runs every stream in one batched engine (one pass per hop for all calls)
         r = rtp.Relay(lambda: pipeline.make_system(method, model=ck, low_band=low_band), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
                       payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout,
-                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0, symmetric=symmetric, low_band=low_band)
+                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0, symmetric=symmetric, low_band=low_band,
+                      notice=lambda text: _say(f"relay: {text}"))
     except OSError as e:
         raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
     host = f"[{r.address[0]}]" if ":" in r.address[0] else r.address[0]
@@ -195,3 +197,6 @@ def relay(
     for ssrc, c in r.closed.items():
         _say(f"stream {ssrc:08x}: {count(c.packets, 'packet')} in, {c.packets_out} out, {c.lost_packets} lost ({count(c.filled_samples, 'sample')} filled), {c.late_or_duplicate} late or duplicate, {count(c.silence_filled, 'sample')} of suppressed silence filled, {count(c.timing_restarts, 'timing restart')}, {count(c.resyncs, 'sender restart')}, {count(c.source_changes, 'source address change')}, {count(c.guard_fallbacks, 'guard fallback')}")
     _say(f"relay: {count(r.counters.streams_opened, 'stream')}, {r.counters.malformed} malformed, {r.counters.oversized} oversized, {r.counters.wrong_payload_type} wrong payload type, {r.counters.not_allowed} not allowed, {r.counters.over_stream_limit} over the stream limit, {r.counters.ssrc_conflicts} from a second sender of an SSRC in use, {count(r.counters.goodbyes, 'stream')} ended by RTCP BYE, {count(r.counters.send_errors, 'packet')} the system would not send")
+    drops = "unknown" if r.counters.system_drops is None else r.counters.system_drops
+    _say(f"relay load: the longest round {r.counters.longest_round_ms:.0f} ms, {r.counters.late_rounds} longer than {LATE_AFTER_STEPS} steps of {step_ms:g} ms; "
+         f"datagrams the system dropped unread, its socket buffer full: {drops}")

@@ -16,22 +16,14 @@ timestamps wrap modulo 2^16 and 2^32. Malformed packets, wrong payload types
 and packets from addresses not allowed are dropped and counted, never raised.
 A stream idle for ``idle_timeout_s`` is flushed (its tail sent) and closed.
 
-Robustness (each case counted): a payload longer than ``MAX_PAYLOAD`` bytes
-is dropped (``oversized``); a timestamp jump between consecutive packets
-(silence suppression) is filled with silence up to ``MAX_FILL`` samples, and
-a longer one restarts the timing (``timing_restarts``); a sender that
-restarts with the same SSRC but far-away sequence numbers is followed as soon as
-a second packet confirms the new numbering, with nothing counted lost (RFC 3550
-appendix A.1; ``resyncs``; the rules are :class:`nenv.serve.jitter.PlayOut`'s); a new SSRC
-(a restarted sender) opens a new stream. An SSRC already in use by a stream
-arriving from another address is a collision or a loop (RFC 3550 section 8.2),
-unless the stream's own sender stays quiet for ``REBIND_AFTER_S`` after its last
-packet (it restarted on a new port, or its NAT binding changed): the other
-address's packets are held until then, and either played (the stream follows the
-new address, ``source_changes``; nothing is lost) or, if the sender spoke again,
-dropped (``ssrc_conflicts``), so two senders with the same SSRC never mix. Memory per stream is bounded (the
-reorder window holds at most ``reorder_window + 1`` packets); the counters of
-closed streams are kept for the last ``MAX_CLOSED`` streams only.
+Robustness (each case counted; docs/rtp-relay.md has the rules): oversized payloads, timestamp
+jumps (silence suppression, filled up to ``MAX_FILL``), senders that restart with new sequence
+numbers (:class:`nenv.serve.jitter.PlayOut`) or a new SSRC, and an SSRC arriving from a second
+address (RFC 3550 section 8.2: held until the stream's own sender has been quiet for
+``REBIND_AFTER_S``, then followed, or dropped as a conflict, so two senders never mix). Memory per
+stream is bounded; the counters of the last ``MAX_CLOSED`` closed streams are kept. Load: rounds of
+the serving loop that ran late and datagrams the system dropped unread are counted, and ``notice``
+hears of them (:class:`nenv.serve.load.LoadWatch`).
 """
 
 from __future__ import annotations
@@ -47,6 +39,8 @@ import numpy as np
 
 from nenv.media.audio import to_int16
 from nenv.errors import InputError
+from nenv.serve import udp
+from nenv.serve.load import LoadWatch
 from nenv.serve.jitter import LAW_OF_PT, PlayOut, StreamCounters
 from nenv.serve.rtp_packet import Packetizer, goodbyes, is_rtcp, parse
 from nenv.serve.runtime import CallEngine
@@ -95,17 +89,9 @@ class RelayCounters:
     ssrc_conflicts: int = 0  # packets dropped: an SSRC in use by another sender (collision or loop)
     send_errors: int = 0  # output packets the system refused to send (they are counted as sent for numbering)
     goodbyes: int = 0  # streams closed at once by their sender's RTCP BYE
-
-
-def _resolve(address: tuple[str, int]) -> tuple[int, tuple]:
-    """``(family, socket address)`` of ``(host, port)``, IPv4 or IPv6 (the first the resolver gives);
-    InputError if it does not resolve."""
-    host, port = address[0], address[1]
-    try:
-        info = socket.getaddrinfo(host, port, socket.AF_UNSPEC, socket.SOCK_DGRAM)
-    except (socket.gaierror, UnicodeError) as e:
-        raise InputError(f"cannot resolve '{host}': {e.strerror if isinstance(e, socket.gaierror) else e}") from e
-    return info[0][0], info[0][4]
+    late_rounds: int = 0  # rounds of receiving and stepping busier than LATE_AFTER_STEPS steps (nenv.serve.load)
+    longest_round_ms: float = 0.0  # the longest round of all (packets that arrived meanwhile waited that long to be read)
+    system_drops: int | None = None  # datagrams the system dropped unread, the socket buffer full (Linux; None where unknown)
 
 
 class Relay:
@@ -126,6 +112,7 @@ class Relay:
         low_band: bool = False,
         tick_s: float = 0.02,
         symmetric: bool = False,
+        notice: Callable[[str], None] | None = None,
     ):
         """``batch_model``: a loaded neural checkpoint; if given, every stream is a call of one
         :class:`nenv.serve.multicall.MultiCallEngine` (``make_system`` is not used), stepped every
@@ -137,13 +124,13 @@ class Relay:
         if not 96 <= payload_type_out <= 127:
             raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
         self.make_system = make_system
-        out_family, self.send_to = _resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
+        out_family, self.send_to = udp.resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
         self.pt_out = payload_type_out
-        self.allowed = {_resolve((a, 0))[1][0] for a in allowed_sources} if allowed_sources else None  # names -> addresses, once
+        self.allowed = {udp.resolve((a, 0))[1][0] for a in allowed_sources} if allowed_sources else None  # names -> addresses, once
         self.max_streams = max_streams
         self.window = reorder_window
         self.idle = idle_timeout_s
-        family, listen_at = _resolve(listen)
+        family, listen_at = udp.resolve(listen)
         if symmetric and family != out_family:
             raise InputError("symmetric RTP sends from the listening socket: give the listen and destination addresses in one family (both IPv4 or both IPv6)")
         self.sock = socket.socket(family, socket.SOCK_DGRAM)
@@ -175,6 +162,7 @@ class Relay:
         self.tick = tick_s
         self._last_step = self._last_expiry = time.monotonic()
         self._by_call: dict[str, _Stream] = {}
+        self.load = LoadWatch(self.counters, self._system_drops, step_s=tick_s, notice=notice)
 
     # ---- lifecycle ---------------------------------------------------------------------
     def start(self) -> "Relay":
@@ -214,6 +202,7 @@ class Relay:
                     self.step()
                 if time.monotonic() - self._last_expiry >= EXPIRY_CHECK_S:
                     self._expire(heard)
+                self.load.round(time.monotonic() - looked)
         finally:
             self._shutdown()
 
@@ -243,9 +232,14 @@ class Relay:
             self._send(st, pcm[pos : pos + 2 * y.size], final=st.tail_sent)  # a quiet stream's last, shorter packet goes too
             pos += 2 * y.size
 
+    def _system_drops(self) -> int | None:
+        """Datagrams the system dropped unread for the relay's listening sockets (None where unknown)."""
+        return udp.dropped(*[s for s in (self.sock, self.rtcp_sock) if s is not None])
+
     def _shutdown(self) -> None:
         for ssrc in list(self.streams):
             self._close(ssrc)
+        self.counters.system_drops = self._system_drops()
         self.sock.close()
         if self.rtcp_sock is not None:
             self.rtcp_sock.close()

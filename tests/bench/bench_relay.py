@@ -89,7 +89,9 @@ def run(n: int, seconds: float, payload: list[bytes], model: str | None, hold: b
     try:
         proc.stderr.readline()  # "relaying RTP from ...": the socket is bound
         # keep reading: the per-stream report at the end outgrows a pipe's buffer with a few hundred streams
-        threading.Thread(target=proc.stderr.read, daemon=True).start()
+        err: list[str] = []
+        reader = threading.Thread(target=lambda: err.append(proc.stderr.read()), daemon=True)
+        reader.start()
         tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
         tx.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, 8 * 2**20)
         n_packets = int(seconds * 50)
@@ -118,8 +120,10 @@ def run(n: int, seconds: float, payload: list[bytes], model: str | None, hold: b
         proc.terminate()
         proc.wait(timeout=30)
         rx.stop.set()
+    reader.join(timeout=10)
+    load = next((line for line in "".join(err).splitlines() if line.startswith("relay load:")), "relay load: not reported")
     return (f"{n:4d} streams: relay CPU {100 * cpu / wall:5.1f}% of one core; backlog half-way {half_backlog:6.0f} ms, "
-            f"at the end {end_backlog:6.0f} ms (mean over streams); output complete {100 * complete:6.2f}%")
+            f"at the end {end_backlog:6.0f} ms (mean over streams); output complete {100 * complete:6.2f}%\n      {load}")
 
 
 def _backlog_ms(sent: np.ndarray, rx: _Receiver) -> float:

@@ -1,0 +1,49 @@
+"""What the relay asks the system about its UDP sockets: addresses, and datagrams dropped unread.
+
+A datagram that arrives while a socket's receive buffer is full is dropped by the system before the
+relay can see it; Linux counts such drops per socket (the ``drops`` column of ``/proc/net/udp`` and
+``/proc/net/udp6``, the socket found by its inode). Elsewhere the count is unknown (None).
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+
+from nenv.errors import InputError
+
+_PROC_TABLES = ("/proc/net/udp", "/proc/net/udp6")
+_INODE, _DROPS = 9, 12  # columns of a socket's line in those tables (after sl, addresses, state, queues, timers, uid)
+
+
+def resolve(address: tuple[str, int]) -> tuple[int, tuple]:
+    """``(family, socket address)`` of ``(host, port)``, IPv4 or IPv6 (the first the resolver gives);
+    InputError if it does not resolve."""
+    host, port = address[0], address[1]
+    try:
+        info = socket.getaddrinfo(host, port, socket.AF_UNSPEC, socket.SOCK_DGRAM)
+    except (socket.gaierror, UnicodeError) as e:
+        raise InputError(f"cannot resolve '{host}': {e.strerror if isinstance(e, socket.gaierror) else e}") from e
+    return info[0][0], info[0][4]
+
+
+def dropped(*socks: socket.socket) -> int | None:
+    """Datagrams the system dropped for these open sockets because a receive buffer was full, in all
+    (Linux); None where the system does not say."""
+    try:
+        inodes = {str(os.fstat(s.fileno()).st_ino) for s in socks}
+    except (OSError, ValueError):  # a closed socket
+        return None
+    total, found = 0, set()
+    for table in _PROC_TABLES:
+        try:
+            with open(table) as f:
+                lines = f.read().splitlines()[1:]
+        except OSError:
+            continue
+        for line in lines:
+            cols = line.split()
+            if len(cols) > _DROPS and cols[_INODE] in inodes:
+                total += int(cols[_DROPS])
+                found.add(cols[_INODE])
+    return total if found == inodes else None
