@@ -124,3 +124,8 @@ def test_calls_of_different_lengths_stay_exact_while_others_idle(model, calls):
         y = np.concatenate(outs[i] + [engine.close(str(i))])
         ref, _ = _alone(model, x, [])
         np.testing.assert_allclose(y, ref, atol=1e-6)
+
+
+def test_only_a_guarded_method_reports_rejected_hops():
+    with pytest.raises(ValueError, match="no guard"):
+        MultiCallEngine(method="imaging").on_rejected = print

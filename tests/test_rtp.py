@@ -433,6 +433,63 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
         assert 0 < c.guard_fallbacks == rejected, (i, c.guard_fallbacks, rejected)
 
 
+def test_batched_relay_records_each_streams_rejected_hops_as_offline_extension_does(arctic_refs, tmp_path):
+    """``record``: every hop the guard rejects in any stream is written as the offline record of the same
+    call writes it (hop, reasons, values, the inputs to recompute it), under the stream's call id, and
+    each stream's summary when it ends; the record reads back as any other (``nenv audit``)."""
+    from nenv.chain import checkpoint
+    from nenv.report import records
+    from tests.conftest import narrowed_guard
+
+    ck = narrowed_guard(checkpoint.load(checkpoint.default_path()))
+    clips = []
+    for i in range(3):
+        _, ref = arctic_refs[i % 2]
+        clips.append(g711.encode(channel.telephone(ref, sr=16000, law="mulaw")[3200 * i : 3200 * i + 9600], law="mulaw"))
+    relay = rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), idle_timeout_s=0.5, batch_model=ck, record=str(tmp_path / "guard.jsonl"), group="arctic")
+    relay.out.close()
+    relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+    relay.start()
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for k in range(clips[0].size // 160):
+        for i, codes in enumerate(clips):
+            tx.sendto(rtp_packet.build(payload_type=0, seq=k, timestamp=160 * k, ssrc=200 + i, payload=codes[160 * k : 160 * (k + 1)].tobytes()), relay.address)
+        time.sleep(0.004)
+    tx.close()
+    deadline = time.time() + 10.0
+    while len(relay.closed) < 3 and time.time() < deadline:  # each stream closes after 0.5 s idle
+        time.sleep(0.05)
+    relay.stop()
+    got = records.read([tmp_path / "guard.jsonl"])
+    assert len(got.headers) == 1 and got.skipped_lines == 0 and len(got.summaries) == 3
+    for i, codes in enumerate(clips):
+        offline = pipeline.make_system("neural", model=ck)  # the call, then the tail's silence, as the relay saw it
+        pipeline.extend(np.concatenate([g711.decode(codes, law="mulaw"), np.zeros(rtp.TAIL_SAMPLES)]), system=offline)
+        want = offline.estimator.record()
+        want_hops = np.flatnonzero(want.rejected)
+        assert want_hops.size > 0
+        (summary,) = [x for x in got.summaries if x["source"].startswith(f"{200 + i:08x}-")]
+        mine = [r for r in got.rejects if r["source"] == summary["source"]]
+        assert [r["hop"] for r in mine] == want_hops.tolist()
+        assert [r["reasons"] for r in mine] == [records.reason_names(int(m)) for m in want.reasons[want_hops]]
+        assert [r["values"]["max_k"] for r in mine] == pytest.approx(want.max_k[want_hops].tolist())
+        assert all(r["group"] == "arctic" and r["fallback"]["cell"] == int(c) for r, c in zip(mine, want.cell[want_hops]))
+        assert summary["hops"] == want.rejected.size and summary["rejected"] == want_hops.size == relay.closed[200 + i].guard_fallbacks
+
+
+def test_a_relay_records_only_the_neural_guard_and_never_into_another_file(tmp_path):
+    from nenv.chain import checkpoint
+    from nenv.errors import InputError, OutputError
+
+    with pytest.raises(InputError, match="neural"):
+        rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9), record=str(tmp_path / "guard.jsonl"))
+    other = tmp_path / "notes.txt"
+    other.write_text("not a record\n")
+    with pytest.raises(OutputError, match="not a nenv guard record"):
+        rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), batch_model=checkpoint.load(checkpoint.default_path()), record=str(other))
+    assert other.read_text() == "not a record\n"
+
+
 def _relay_with_a_slow_first_step(model, seconds, idle_timeout_s):
     """A batched relay (the neural ``model``), started, whose first step with a call open is slow, as
     on a loaded machine: it sleeps ``seconds`` and then waits until the test sets ``sent``.
@@ -638,6 +695,23 @@ def test_relay_command_reports_its_load_when_it_stops(monkeypatch):
     line = next(line for line in res.output.splitlines() if line.startswith("relay load:"))
     drops = "0" if os.path.exists("/proc/net/udp") else "unknown"  # a socket that received nothing dropped nothing
     assert line == f"relay load: the longest round 0 ms, 0 longer than 2 steps of 10 ms; datagrams the system dropped unread, its socket buffer full: {drops}"
+
+
+def test_relay_command_writes_the_guard_record_it_is_given(monkeypatch, tmp_path):
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+    from nenv.report import records
+
+    monkeypatch.setattr(rtp.Relay, "serve", lambda self: self._shutdown())  # start, stop at once
+    path = tmp_path / "guard.jsonl"
+    res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--record", str(path), "--group", "g1"], catch_exceptions=False)
+    assert res.exit_code == 0, res.output
+    got = records.read([path])
+    assert len(got.headers) == 1 and got.rejects == [] and got.summaries == []  # a relay that heard no call
+    res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--record", str(path), "--method", "imaging"])
+    assert res.exit_code != 0 and "--record needs the neural method" in res.output
+    assert len(records.read([path]).headers) == 1  # refused before anything was appended
 
 
 def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch):

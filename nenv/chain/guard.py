@@ -95,7 +95,11 @@ class Decisions:
 
     def head(self, n: int) -> "Decisions":
         """The verdicts on the first ``n`` hops."""
-        return Decisions(*(getattr(self, f.name)[:n] for f in fields(Decisions)))
+        return self.part(slice(0, n))
+
+    def part(self, hops: slice) -> "Decisions":
+        """The verdicts on the hops ``hops`` (a slice)."""
+        return Decisions(*(getattr(self, f.name)[hops] for f in fields(Decisions)))
 
     @staticmethod
     def concat(parts: list["Decisions"]) -> "Decisions":

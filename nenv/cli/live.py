@@ -151,6 +151,8 @@ def relay(
     symmetric: Annotated[bool, typer.Option("--symmetric", help="Send from the listening port (symmetric RTP, which many gateways and NATs expect).")] = False,
     low_band: LowBandOpt = False,
     hold_freed_memory: Annotated[bool, typer.Option("--hold-freed-memory", help="Let this process keep the memory a batched step frees (glibc raises its own heap thresholds once): a fifth less time per step with many streams.")] = False,
+    record: Annotated[Optional[Path], typer.Option(help="Append the guard's record to this JSON Lines file while the relay runs, each stream under its call id (neural only).")] = None,
+    group: Annotated[Optional[str], typer.Option(help="Speaker group or codec label stored with the record.")] = None,
 ) -> None:
     """Relay RTP: PCMU/PCMA in (RFC 3551 types 0 and 8), L16 16 kHz out, one call per SSRC. Stops on SIGTERM/Ctrl-C."""
     _kernels_ready()
@@ -168,6 +170,8 @@ def relay(
     if method not in pipeline.SYSTEMS or method in pipeline.REFERENCE_SYSTEMS:
         raise InputError(f"--method {method} cannot stream: choose neural, codebook, imaging or unextended")
     pipeline.check_low_band(method, low_band)  # before anything starts (the relay makes its systems per stream)
+    if record is not None and method != "neural":
+        raise InputError("--record needs the neural method (only the guard's decisions are recorded)")
     if not 96 <= payload_type <= 127:
         raise InputError(f"--payload-type {payload_type}: dynamic payload types are 96-127 (RFC 3551)")
     ck = pipeline.load_model(model, flush_denormals=True) if method in pipeline.MODEL_SYSTEMS else None
@@ -176,7 +180,7 @@ def relay(
         r = rtp.Relay(lambda: pipeline.make_system(method, model=ck, low_band=low_band), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
                       payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout,
                       batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0, symmetric=symmetric, low_band=low_band,
-                      notice=lambda text: _say(f"relay: {text}"))
+                      notice=lambda text: _say(f"relay: {text}"), record=record, group=group)
     except OSError as e:
         raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
     host = f"[{r.address[0]}]" if ":" in r.address[0] else r.address[0]

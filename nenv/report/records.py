@@ -129,6 +129,28 @@ class RecordWriter:
         self._fh.close()
 
 
+class CallRecords:
+    """One record for the calls of a batched engine (``nenv relay``): each call's rejected hops as the
+    engine reports them (:attr:`nenv.serve.multicall.MultiCallEngine.on_rejected`) and its summary
+    when it ends; ``source`` is the call id."""
+
+    def __init__(self, writer: RecordWriter, *, group: str | None = None):
+        self.writer, self.group = writer, group
+        self._tallies: dict[str, Tally] = {}
+
+    def rejected(self, call_id: str, first_hop: int, dec: Decisions, x: np.ndarray, a_nb: np.ndarray) -> None:
+        dec = self._tallies.setdefault(call_id, Tally()).add(first_hop, dec)
+        self.writer.hops(source=call_id, group=self.group, first_hop=first_hop, dec=dec, x=x, a_nb=a_nb)
+
+    def ended(self, call_id: str, *, hops: int, seconds: float) -> None:
+        tally = self._tallies.pop(call_id, Tally())
+        tally.hops = hops  # every hop of the call (the engine's count), not only those of rounds with a rejection
+        self.writer.summary(source=call_id, group=self.group, tally=tally, seconds=seconds)
+
+    def close(self) -> None:
+        self.writer.close()
+
+
 def _f(v) -> float | None:
     v = float(v)
     return v if np.isfinite(v) else None

@@ -54,6 +54,8 @@ class MultiCallEngine:
         self.system = system
         self._chain = Chain(system, rows=0)
         self._calls: dict[str, _Call] = {}  # in row order: a call's row is its place in this dict
+        self._on_rejected = None
+        self._round: tuple[list, int] = ([], 0)  # the call ids of the rows being processed, and hops per row
 
     # ---- calls joining and leaving -------------------------------------------------
     def open(self, call_id: str) -> None:
@@ -113,11 +115,36 @@ class MultiCallEngine:
             call.out = []
         return out
 
+    @property
+    def on_rejected(self):
+        """None, or called as ``on_rejected(call_id, first_hop, decisions, stacked_inputs, a_nb)`` for each
+        call with a hop the guard rejected in a round (the call's hops from first_hop on), e.g. to write
+        the guard's record (:class:`nenv.report.records.CallRecords`)."""
+        return self._on_rejected
+
+    @on_rejected.setter
+    def on_rejected(self, callback) -> None:
+        est = getattr(self.system, "estimator", None)
+        if not hasattr(est, "batch_listener"):
+            raise ValueError(f"the {getattr(self.system, 'name', 'given')} method has no guard whose verdicts could be reported")
+        self._on_rejected = callback
+        est.batch_listener = None if callback is None else self._verdicts
+
+    def _verdicts(self, dec, stacked: np.ndarray, a_nb: np.ndarray) -> None:
+        """The guard's verdicts on a round (rows x hops, row-major): each call's with a rejected hop to
+        :attr:`on_rejected`, with the call's first hop of the round (its hops are counted after)."""
+        if not dec.rejected.any():
+            return
+        ids, n_hops = self._round
+        for r in np.flatnonzero(dec.rejected.reshape(len(ids), n_hops).any(axis=1)):
+            hops = slice(r * n_hops, (r + 1) * n_hops)
+            self._on_rejected(ids[r], self._calls[ids[r]].hops, dec.part(hops), stacked[hops], a_nb[hops])
+
     # ---- one hop for a set of calls ----------------------------------------------------
     def _run(self, only: str | None = None) -> None:
         """Process queued whole hops: each round takes every call with a hop queued, as many hops
         as all of them have (H), and runs them as one batch of B calls x H hops."""
-        order = list(self._calls.values())  # row order
+        order, ids = list(self._calls.values()), list(self._calls)  # row order
         candidates = range(len(order)) if only is None else (list(self._calls).index(only),)
         while True:
             rows = [i for i in candidates if order[i].pending.size >= HOP_NB]
@@ -135,6 +162,7 @@ class MultiCallEngine:
                     calls[r].bad_samples += int(np.count_nonzero(~finite[r]))
                 x = np.where(finite, x, 0.0)
             # rows are in call order, so a round of every call reads its state as views, not gathers
+            self._round = ([ids[i] for i in rows], n_hops)
             y = self._chain.process(x, ALL if len(rows) == len(order) else np.array(rows))
             dec = getattr(getattr(self.system, "estimator", None), "last", None)
             if dec is not None and dec.rejected.any():

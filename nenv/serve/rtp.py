@@ -113,6 +113,8 @@ class Relay:
         tick_s: float = 0.02,
         symmetric: bool = False,
         notice: Callable[[str], None] | None = None,
+        record: str | None = None,
+        group: str | None = None,
     ):
         """``batch_model``: a loaded neural checkpoint; if given, every stream is a call of one
         :class:`nenv.serve.multicall.MultiCallEngine` (``make_system`` is not used), stepped every
@@ -120,9 +122,17 @@ class Relay:
         one tick per usual 20 ms packet time by default, ``0.01`` halves that wait for about twice
         the fixed cost per second). ``symmetric``: send from the listening socket (symmetric RTP, which
         many gateways and NATs expect); the destination must then be of the listening address's
-        family. Addresses may be IPv4 or IPv6."""
+        family. Addresses may be IPv4 or IPv6. ``record``: append the guard's decisions to this record
+        file (JSON Lines, :mod:`nenv.report.records`; batched neural only), each stream as a source named
+        by its call id, with ``group``."""
         if not 96 <= payload_type_out <= 127:
             raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
+        if record is not None and batch_model is None:
+            raise InputError("a guard record needs the neural method (only the guard's decisions are recorded)")
+        if record is not None:  # before any socket is opened: a record that cannot be written leaves nothing half-open
+            from nenv.report.records import check_appendable
+
+            check_appendable(record)
         self.make_system = make_system
         out_family, self.send_to = udp.resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
         self.pt_out = payload_type_out
@@ -160,6 +170,13 @@ class Relay:
 
             self.multi = MultiCallEngine(batch_model, low_band=low_band)
         self.tick = tick_s
+        self.records = None
+        if record is not None:
+            from nenv.report.records import CallRecords, RecordWriter
+
+            writer = RecordWriter(record, checkpoint=batch_model, context=batch_model.features.context, band_trim_db=batch_model.band_trim_db)
+            self.records = CallRecords(writer, group=group)
+            self.multi.on_rejected = self.records.rejected
         self._last_step = self._last_expiry = time.monotonic()
         self._by_call: dict[str, _Stream] = {}
         self.load = LoadWatch(self.counters, self._system_drops, step_s=tick_s, notice=notice)
@@ -240,6 +257,8 @@ class Relay:
         for ssrc in list(self.streams):
             self._close(ssrc)
         self.counters.system_drops = self._system_drops()
+        if self.records is not None:
+            self.records.close()
         self.sock.close()
         if self.rtcp_sock is not None:
             self.rtcp_sock.close()
@@ -402,6 +421,8 @@ class Relay:
             del self._by_call[st.call_id]
             st.counters.limited = stats["limited"]
             st.counters.guard_fallbacks = stats["rejected_hops"]
+            if self.records is not None:
+                self.records.ended(st.call_id, hops=stats["hops"], seconds=stats["samples_in"] / 8000)
         self.closed[ssrc] = st.counters
         while len(self.closed) > MAX_CLOSED:
             self.closed.pop(next(iter(self.closed)))

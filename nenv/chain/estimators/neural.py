@@ -61,6 +61,7 @@ class NeuralEstimator(EnvelopeEstimator):
         self.order = checkpoint.features.wb_order
         self.guard = Guard(checkpoint.limits, low_band=low_band) if guard else None
         self.listener = None  # called as listener(first_hop, decisions, stacked_inputs, a_nb) after each batch (one call)
+        self.batch_listener = None  # called as batch_listener(decisions, stacked_inputs, a_nb) after each batch of any rows (row-major)
         self.context = checkpoint.features.context
         n_in = checkpoint.features.n_inputs
         self._state = RowState(ctx=np.zeros(self.context * n_in), ready=np.zeros((), dtype=bool))
@@ -94,6 +95,8 @@ class NeuralEstimator(EnvelopeEstimator):
         stacked = self._stack(feats, sel, B, H)
         a, gain, dec, k = guarded_envelopes(self.checkpoint, self.guard, feats=feats, stacked=stacked, a_nb=analysis.a)
         self.last = dec
+        if dec is not None and self.batch_listener is not None:
+            self.batch_listener(dec, stacked, analysis.a)
         if dec is not None and len(self._state) == 1:
             if self.listener is not None:
                 self.listener(self._hops, dec, stacked, analysis.a)
