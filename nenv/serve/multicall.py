@@ -23,6 +23,7 @@ from nenv.serve.runtime import OutputGate, as_samples
 from nenv.settings import HOP_NB
 
 MAX_HOPS_PER_BATCH = 10  # hops of each call processed together when more are queued (bounds working memory)
+_WARM_UP = "(warm-up)"  # the call id of warm_up()'s silent call
 _NOTHING = np.zeros(0)  # an empty queue (never written to: a queue is replaced, not changed in place)
 
 
@@ -81,6 +82,17 @@ class MultiCallEngine:
         self._chain.keep_rows(np.arange(len(self._calls)) != list(self._calls).index(call_id))
         del self._calls[call_id]
         return y
+
+    def warm_up(self) -> None:
+        """Run one step of a silent call that is then forgotten, so the first real call does not wait
+        for what a first step does once (the network's session and its first run: 0.05-0.3 s). Call it
+        with no call open; nothing of it stays."""
+        if self._calls:
+            raise ValueError("warm_up() runs before any call is open")
+        self.open(_WARM_UP)
+        self.feed(_WARM_UP, np.zeros(2 * HOP_NB))
+        self.step()
+        self.close(_WARM_UP)
 
     @property
     def calls(self) -> list[str]:

@@ -169,6 +169,7 @@ class Relay:
             from nenv.serve.multicall import MultiCallEngine
 
             self.multi = MultiCallEngine(batch_model, low_band=low_band)
+            self.multi.warm_up()  # before the first packet, not on it
         self.tick = tick_s
         self.records = None
         if record is not None:
