@@ -12,7 +12,9 @@ across the packet time, as independent callers are) and receives the L16 output.
     streams) half-way
     and at the end of sending: steady = keeping up (the reorder window and one step of the
     batched engine make up most of it); growing = falling behind;
-  * how much of the expected output arrived in the end (every stream is flushed when it goes idle).
+  * how much of the expected output arrived in the end (every stream is flushed when it goes idle);
+  * the relay's own load line when it stops: its longest round, its rounds busier than two steps
+    and the datagrams the system dropped unread (docs/rtp-relay.md, "Load").
 
 The sender and receiver run in this process, the relay in another: on a 2-core machine each has
 a core. Measured numbers belong in the README's performance section with this command.
