@@ -157,7 +157,7 @@ class MultiCallEngine:
         """Process queued whole hops: each round takes every call with a hop queued, as many hops
         as all of them have (H), and runs them as one batch of B calls x H hops."""
         order, ids = list(self._calls.values()), list(self._calls)  # row order
-        candidates = range(len(order)) if only is None else (list(self._calls).index(only),)
+        candidates = range(len(order)) if only is None else (ids.index(only),)
         while True:
             rows = [i for i in candidates if order[i].pending.size >= HOP_NB]
             if not rows:

@@ -44,6 +44,7 @@ from nenv.serve.load import LoadWatch
 from nenv.serve.jitter import LAW_OF_PT, PlayOut, StreamCounters
 from nenv.serve.rtp_packet import Packetizer, goodbyes, is_rtcp, parse
 from nenv.serve.runtime import CallEngine
+from nenv.settings import NB_SR
 
 PT_PCMU = 0
 PT_PCMA = 8
@@ -127,11 +128,11 @@ class Relay:
         by its call id, with ``group``."""
         if not 96 <= payload_type_out <= 127:
             raise ValueError(f"payload_type_out={payload_type_out}: dynamic payload types are 96-127 (RFC 3551)")
-        if record is not None and batch_model is None:
-            raise InputError("a guard record needs the neural method (only the guard's decisions are recorded)")
-        if record is not None:  # before any socket is opened: a record that cannot be written leaves nothing half-open
+        if record is not None:  # checked before any socket is opened: a refused record leaves nothing half-open
             from nenv.report.records import check_appendable
 
+            if batch_model is None:
+                raise InputError("a guard record needs the neural method (only the guard's decisions are recorded)")
             check_appendable(record)
         self.make_system = make_system
         out_family, self.send_to = udp.resolve(send_to)  # once: a name that stops resolving later cannot stop the relay
@@ -423,7 +424,7 @@ class Relay:
             st.counters.limited = stats["limited"]
             st.counters.guard_fallbacks = stats["rejected_hops"]
             if self.records is not None:
-                self.records.ended(st.call_id, hops=stats["hops"], seconds=stats["samples_in"] / 8000)
+                self.records.ended(st.call_id, hops=stats["hops"], seconds=stats["samples_in"] / NB_SR)
         self.closed[ssrc] = st.counters
         while len(self.closed) > MAX_CLOSED:
             self.closed.pop(next(iter(self.closed)))
