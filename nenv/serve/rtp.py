@@ -32,7 +32,6 @@ import select
 import socket
 import threading
 import time
-from dataclasses import dataclass, field
 from typing import Callable
 
 import numpy as np
@@ -42,6 +41,7 @@ from nenv.errors import InputError
 from nenv.serve import udp
 from nenv.serve.load import LoadWatch
 from nenv.serve.jitter import LAW_OF_PT, PlayOut, StreamCounters
+from nenv.serve.relay_state import RelayCounters, RelayStream
 from nenv.serve.rtp_packet import Packetizer, goodbyes, is_rtcp, parse
 from nenv.serve.runtime import CallEngine
 from nenv.settings import NB_SR
@@ -58,41 +58,6 @@ RECEIVE_BUFFER_BYTES = 2**20  # the listening socket's receive buffer (the syste
 EXPIRY_CHECK_S = 0.02  # how often quiet and idle streams are looked for
 TAIL_AFTER_S = 0.2  # a stream quiet this long (ten packet times) has its held-back tail sent, without ending it (a delay spike of the sender's packets longer than this inserts 20 ms of silence; the relay's own busy time does not count)
 TAIL_SAMPLES = 160  # 8 kHz samples of silence that push the tail out (a partial hop and the interpolator's delay)
-
-
-@dataclass
-class _Stream:
-    engine: CallEngine | None  # None in batched mode (the relay's MultiCallEngine holds the call)
-    law: str
-    playout: PlayOut
-    out: Packetizer
-    last_seen: float
-    call_id: str = ""
-    source: tuple = ()  # the transport address (host, port) the stream's packets come from
-    tail_sent: bool = False  # its held-back tail went out during the current quiet spell
-    newcomer: tuple = ()  # another address sending this SSRC while the source may still be sending
-    newcomer_packets: list = field(default_factory=list)  # its packets, held until the source is known to be quiet
-
-    @property
-    def counters(self) -> StreamCounters:
-        return self.playout.counters
-
-
-@dataclass
-class RelayCounters:
-    malformed: int = 0
-    oversized: int = 0
-    wrong_payload_type: int = 0
-    not_allowed: int = 0
-    over_stream_limit: int = 0
-    streams_opened: int = 0
-    streams_closed: int = 0
-    ssrc_conflicts: int = 0  # packets dropped: an SSRC in use by another sender (collision or loop)
-    send_errors: int = 0  # output packets the system refused to send (they are counted as sent for numbering)
-    goodbyes: int = 0  # streams closed at once by their sender's RTCP BYE
-    late_rounds: int = 0  # rounds of receiving and stepping busier than LATE_AFTER_STEPS steps (nenv.serve.load)
-    longest_round_ms: float = 0.0  # the longest round of all (packets that arrived meanwhile waited that long to be read)
-    system_drops: int | None = None  # datagrams the system dropped unread, the socket buffer full (Linux; None where unknown)
 
 
 class Relay:
@@ -160,7 +125,7 @@ class Relay:
             self.rtcp_sock.close()
             self.rtcp_sock = None
         self.out = self.sock if symmetric else socket.socket(out_family, socket.SOCK_DGRAM)
-        self.streams: dict[int, _Stream] = {}
+        self.streams: dict[int, RelayStream] = {}
         self.closed: dict[int, StreamCounters] = {}
         self.counters = RelayCounters()
         self._stop = threading.Event()
@@ -180,7 +145,7 @@ class Relay:
             self.records = CallRecords(writer, group=group)
             self.multi.on_rejected = self.records.rejected
         self._last_step = self._last_expiry = time.monotonic()
-        self._by_call: dict[str, _Stream] = {}
+        self._by_call: dict[str, RelayStream] = {}
         self.load = LoadWatch(self.counters, self._system_drops, step_s=tick_s, notice=notice)
 
     # ---- lifecycle ---------------------------------------------------------------------
@@ -308,7 +273,7 @@ class Relay:
                 return
             engine = CallEngine(system=self.make_system()) if self.multi is None else None
             out = Packetizer.starting_at_random(self.pt_out, OUT_SAMPLES)
-            st = _Stream(engine, LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), out, time.monotonic(), source=addr)
+            st = RelayStream(engine, LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), out, time.monotonic(), source=addr)
             if engine is not None:
                 self._count_fallbacks(st)  # the engine keeps no per-hop verdicts: counted here
             else:
@@ -322,7 +287,7 @@ class Relay:
         for x in st.playout.push(pkt):
             self._feed(st, x)
 
-    def _hold_newcomer(self, st: _Stream, pkt, addr: tuple[str, int]) -> None:
+    def _hold_newcomer(self, st: RelayStream, pkt, addr: tuple[str, int]) -> None:
         if st.newcomer != addr:  # a third address: the earlier newcomer's packets go
             self.counters.ssrc_conflicts += len(st.newcomer_packets)
             st.newcomer, st.newcomer_packets = addr, []
@@ -331,7 +296,7 @@ class Relay:
             st.newcomer_packets.pop(0)
             self.counters.ssrc_conflicts += 1
 
-    def _follow_newcomer(self, st: _Stream, addr: tuple[str, int]) -> None:
+    def _follow_newcomer(self, st: RelayStream, addr: tuple[str, int]) -> None:
         """The stream's packets now come from ``addr``: play what that address sent while it was held."""
         held = st.newcomer_packets if st.newcomer == addr else []
         if st.newcomer and st.newcomer != addr:
@@ -359,7 +324,7 @@ class Relay:
                 self.counters.goodbyes += 1
 
     @staticmethod
-    def _count_fallbacks(st: _Stream) -> None:
+    def _count_fallbacks(st: RelayStream) -> None:
         est = getattr(st.engine.system, "estimator", None)
         if hasattr(est, "listener"):
 
@@ -368,17 +333,17 @@ class Relay:
 
             est.listener = listen
 
-    def _feed(self, st: _Stream, x: np.ndarray) -> None:
+    def _feed(self, st: RelayStream, x: np.ndarray) -> None:
         if st.engine is not None:
             self._emit(st, st.engine.feed(x))
         else:
             self.multi.feed(st.call_id, x)  # processed, with every other stream, at the next step
 
     # ---- packets out ---------------------------------------------------------------------
-    def _emit(self, st: _Stream, y: np.ndarray, *, final: bool = False) -> None:
+    def _emit(self, st: RelayStream, y: np.ndarray, *, final: bool = False) -> None:
         self._send(st, to_int16(y).astype(">i2").tobytes(), final=final)
 
-    def _send(self, st: _Stream, pcm: bytes, *, final: bool = False) -> None:
+    def _send(self, st: RelayStream, pcm: bytes, *, final: bool = False) -> None:
         """Send whole packets of the stream's pending output plus ``pcm`` (big-endian int16); with
         ``final`` the rest too, as a last, shorter packet."""
         for packet in st.out.packets(pcm, final=final):
