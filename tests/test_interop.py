@@ -101,15 +101,15 @@ def _wait_bound(p: subprocess.Popen, port: int, *, at_least: float, seconds: flo
     """Wait ``at_least`` seconds (the tool's start-up), and on until the receiver has bound its UDP
     ``port`` (Linux lists bound sockets in /proc/net/udp, the port in hex after the address): on a
     busy machine the pause alone could end before anyone listened. Elsewhere, the pause alone."""
+    from nenv.serve import udp
+
     t0 = time.monotonic()
     time.sleep(at_least)
-    tables = [Path("/proc/net/udp"), Path("/proc/net/udp6")]
-    if not tables[0].exists():
+    if udp.sockets() is None:
         return
     want = f":{port:04X}"
     while time.monotonic() - t0 < seconds:
-        local = [line.split()[1] for t in tables if t.exists() for line in t.read_text().splitlines()[1:]]
-        if any(a.endswith(want) for a in local):
+        if any(cols[1].endswith(want) for cols in udp.sockets()):
             return
         assert p.poll() is None, f"the receiver exited before listening: {p.stderr.read().decode(errors='replace')[-500:]}"
         time.sleep(0.05)
