@@ -356,3 +356,40 @@ def test_the_network_runs_through_bound_buffers_exactly_as_a_plain_session_run(r
         t.join()
     for i in range(4):
         np.testing.assert_array_equal(np.concatenate(got[i]), want_c[i:40:4].astype(np.float64))
+
+
+def test_an_engine_has_the_network_ready_before_its_first_hop(call_audio, monkeypatch, tmp_path):
+    """Making onnxruntime's session on a call's first hop made that hop take 30-300 ms (three hops'
+    time and more); an engine makes and runs the session when it is made. Checked by taking
+    onnxruntime's session away once the engines exist: their first hops must not need it. A broken
+    model.onnx is refused when the engine is made, not on its first hop."""
+    import shutil
+
+    import onnxruntime
+
+    from nenv.chain import checkpoint
+    from nenv.errors import ConfigError
+    from nenv.serve.multicall import MultiCallEngine
+
+    path = checkpoint.default_path()
+    if path is None:
+        pytest.skip("no default model")
+    _, x = call_audio
+    want = CallEngine(checkpoint.load(path)).feed(x[:480])
+    one = CallEngine(checkpoint.load(path))  # fresh loads: no session made by an earlier test
+    many = MultiCallEngine(checkpoint.load(path))
+
+    def no_session(*args, **kwargs):
+        raise AssertionError("a session was made during a call")
+
+    monkeypatch.setattr(onnxruntime, "InferenceSession", no_session)
+    np.testing.assert_array_equal(one.feed(x[:480]), want)
+    many.open("a")
+    many.feed("a", x[:480])
+    assert many.step()["a"].size > 0
+    monkeypatch.undo()
+    broken = tmp_path / "broken"
+    shutil.copytree(path, broken)
+    (broken / "model.onnx").write_bytes((path / "model.onnx").read_bytes()[:1000])
+    with pytest.raises(ConfigError, match="cannot load"):
+        CallEngine(checkpoint.load(broken))

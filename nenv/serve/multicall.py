@@ -85,8 +85,8 @@ class MultiCallEngine:
 
     def warm_up(self) -> None:
         """Run one step of a silent call that is then forgotten, so the first real call does not wait
-        for what a first step does once (the network's session and its first run: 0.05-0.3 s). Call it
-        with no call open; nothing of it stays."""
+        for what a first step does once (its tables and the network's first batched run; the network's
+        session is made with the engine). Call it with no call open; nothing of it stays."""
         if self._calls:
             raise ValueError("warm_up() runs before any call is open")
         self.open(_WARM_UP)

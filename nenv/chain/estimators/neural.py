@@ -56,6 +56,7 @@ class NeuralEstimator(EnvelopeEstimator):
     name = "neural"
 
     def __init__(self, checkpoint: Checkpoint, *, guard: bool = True, keep_decisions: bool = True, low_band: bool = False):
+        checkpoint.prepare()  # the network is ready before a call's first hop
         self.checkpoint = checkpoint
         self.keep_decisions = keep_decisions
         self.order = checkpoint.features.wb_order
