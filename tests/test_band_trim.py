@@ -172,6 +172,10 @@ def test_a_panel_key_says_which_model_and_level_was_heard(tmp_path):
     assert key["model"] == {"folder": str(folder), "record_id": info["record_id"], "band_trim_db": -4.5}
     assert json.loads((tmp_path / "p" / "key.json").read_text())["model"]["band_trim_db"] == -4.5
     assert "model" not in panel.prepare([str(ARCTIC[0])], tmp_path / "q", systems=["imaging"])
+    # the folder's own level asked again would be the same system under a second name
+    with pytest.raises(InputError, match="-4.5 is the model folder's own level"):
+        panel.prepare([str(ARCTIC[0])], tmp_path / "r", systems=["neural"], model=folder, band_trims=[-6.0, -4.5])
+    assert not (tmp_path / "r").exists()  # refused before anything was written
 
 
 def test_the_evaluation_table_says_when_the_band_is_not_at_its_trained_level(tmp_path):

@@ -119,6 +119,8 @@ def prepare(
     # label -> (system, band trim in dB or None for the model folder's own level)
     runs = {s: (s, None) for s in asked}
     for t in dict.fromkeys(check_trim(t, what="band_trims (--band-trim)", error=InputError) for t in band_trims):
+        if t == model.band_trim_db:  # listeners would hear the same system twice under two names
+            raise InputError(f"--band-trim {t:g} is the model folder's own level: its {' and '.join(with_model)} already play at it; ask only for other levels")
         runs.update({f"{s} {t:+g} dB": (s, t) for s in with_model})
     asked = list(runs)
     refs = [(n, prepare_reference(p)) for n, p in zip(names, references)]  # fail early, before any work
