@@ -730,3 +730,81 @@ def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch)
     monkeypatch.setattr(rtp, "RECEIVE_BUFFER_BYTES", 2**30)  # more than net.core.rmem_max allows (4 MiB on the development machines)
     res = run()
     assert res.exit_code == 0 and "note: the system allows a receive buffer of only" in res.output and "net.core.rmem_max" in res.output
+
+
+def test_the_system_stamps_when_a_datagram_arrived_not_when_it_is_read():
+    """udp.receive_stamped: the arrival (SO_TIMESTAMPNS, Linux) on the monotonic clock lies between the
+    moments around the send, however long the datagram then waited; BlockingIOError when none waits."""
+    from nenv.serve import udp
+
+    r = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    r.bind(("127.0.0.1", 0))
+    r.setblocking(False)
+    if not udp.stamp_arrivals(r):
+        pytest.skip("this system does not stamp arrivals")
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    before = time.monotonic()
+    tx.sendto(b"first", r.getsockname())
+    after = time.monotonic()
+    time.sleep(0.1)
+    data, addr, arrived = udp.receive_stamped(r)
+    assert data == b"first" and addr[1] == tx.getsockname()[1]
+    assert before - 1e-3 <= arrived <= after + 1e-3 and time.monotonic() - arrived >= 0.1
+    with pytest.raises(BlockingIOError):
+        udp.receive_stamped(r)
+    r.close()
+    tx.close()
+
+
+def test_a_relay_that_cannot_keep_up_still_hears_a_stream_go_quiet(monkeypatch):
+    """Sustained overload: a busy stream sends faster than the relay handles its packets, so the
+    listening socket never empties. Another stream's end must still be seen: how long a stream has
+    been quiet is counted up to the arrival of the last datagram handled (stamped by the system), not
+    up to the last moment the socket was found empty, which under overload never comes (before, the
+    ended stream kept its tail and stayed open until the backlog cleared)."""
+    from nenv.serve import udp
+
+    probe = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    if not udp.stamp_arrivals(probe):
+        pytest.skip("this system does not stamp arrivals")
+    probe.close()
+    monkeypatch.setattr(rtp, "RECEIVE_BURST", 4)
+    rx = _receiver()
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), idle_timeout_s=30.0)
+    handle, busy = relay.handle, {"n": 0}
+    checked = __import__("threading").Event()
+
+    def slow_handle(data, addr, heard=None):  # the busy stream's packets take 3 ms each: about 330 a second
+        handle(data, addr, heard)
+        if rtp_packet.parse(data).ssrc == 2:
+            time.sleep(0.003)
+            busy["n"] += 1
+            if busy["n"] == 300:  # arrived 0.3 s or more after the quiet stream's last packet
+                busy["quiet_tail_sent"] = relay.streams[1].tail_sent
+                checked.set()
+
+    relay.handle = slow_handle
+    relay.start()
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+
+    def send(ssrc, k):
+        tx.sendto(rtp_packet.build(payload_type=0, seq=k, timestamp=160 * k, ssrc=ssrc, payload=b"\x55" * 160), relay.address)
+
+    for k in range(5):  # the stream that goes quiet
+        send(1, k)
+    deadline = time.monotonic() + 20.0  # its first packet makes its engine (the kernels load): wait until all five are in
+    while (relay.streams.get(1) is None or relay.streams[1].counters.packets < 5) and time.monotonic() < deadline:
+        time.sleep(0.01)
+    start = time.monotonic()
+    for j in range(60):  # the busy stream: 1000 packets a second, in bursts of 10 every 10 ms, for 0.6 s
+        for i in range(10):
+            send(2, 10 * j + i)
+        time.sleep(max(0.0, start + 0.01 * (j + 1) - time.monotonic()))
+    assert checked.wait(20.0), "the relay never handled the busy stream's 300th packet"
+    while busy["n"] < 600 and time.monotonic() < deadline + 20.0:  # the backlog drains: nothing was lost
+        time.sleep(0.05)
+    relay.stop()
+    tx.close()
+    rx.close()
+    assert busy["quiet_tail_sent"]  # heard as quiet (its held-back tail sent) while the backlog lasted
+    assert relay.closed[1].packets == 5 and relay.closed[2].packets == 600

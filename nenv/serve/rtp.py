@@ -115,12 +115,14 @@ class Relay:
         self.receive_buffer = self.sock.getsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF)
         self.sock.bind(listen_at)
         self.sock.setblocking(False)  # serve() waits in select and then reads every datagram waiting
+        udp.stamp_arrivals(self.sock)  # see _receive_all
         self.address = self.sock.getsockname()
         # RTCP: on the RTP port itself (RFC 5761) and, where it is free, on the port above (RFC 3550 section 11)
         self.rtcp_sock: socket.socket | None = socket.socket(family, socket.SOCK_DGRAM)
         try:
             self.rtcp_sock.bind((self.address[0], self.address[1] + 1) + tuple(self.address[2:]))
             self.rtcp_sock.setblocking(False)
+            udp.stamp_arrivals(self.rtcp_sock)
         except OSError:
             self.rtcp_sock.close()
             self.rtcp_sock = None
@@ -177,11 +179,12 @@ class Relay:
                 wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - time.monotonic())
                 ready, _, _ = select.select([self.sock] + ([self.rtcp_sock] if self.rtcp_sock else []), [], [], wait)
                 looked = time.monotonic()  # what arrived before this waits in a ready socket
-                emptied = True
+                now_heard = looked
                 for sock in ready:
-                    emptied = self._receive_all(sock, heard) and emptied
-                if emptied:
-                    heard = looked
+                    last = self._receive_all(sock, heard)
+                    if last is not None:  # datagrams still wait: heard only up to the last one handled
+                        now_heard = min(now_heard, last)
+                heard = max(heard, now_heard)
                 if self.multi is not None and time.monotonic() - self._last_step >= self.tick:
                     self.step()
                 if time.monotonic() - self._last_expiry >= EXPIRY_CHECK_S:
@@ -190,16 +193,22 @@ class Relay:
         finally:
             self._shutdown()
 
-    def _receive_all(self, sock: socket.socket, heard: float) -> bool:
-        """Handle every datagram waiting in ``sock`` (up to RECEIVE_BURST), without blocking; True
-        when the socket was left empty. Each arrived after ``heard`` (see :meth:`handle`)."""
-        for _ in range(RECEIVE_BURST):
+    def _receive_all(self, sock: socket.socket, heard: float) -> float | None:
+        """Handle the datagrams waiting in ``sock`` (up to RECEIVE_BURST; each arrived after ``heard``).
+        None if the socket was left empty, else the arrival of the last one handled (all before it were:
+        first in, first out), or ``heard`` without arrival stamps. docs/rtp-relay.md: overload."""
+        for _ in range(RECEIVE_BURST - 1):
             try:
                 data, addr = sock.recvfrom(65535)
             except (BlockingIOError, InterruptedError):
-                return True
+                return None
             self.handle(data, addr, heard)
-        return False
+        try:
+            data, addr, arrived = udp.receive_stamped(sock)
+        except (BlockingIOError, InterruptedError):
+            return None
+        self.handle(data, addr, heard)
+        return heard if arrived is None else arrived
 
     def step(self) -> None:
         """Batched mode: run every queued hop of every stream and send what is ready."""
