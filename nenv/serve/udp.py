@@ -13,8 +13,10 @@ wall-clock time), and :func:`receive_stamped` gives that moment on the monotonic
 from __future__ import annotations
 
 import os
+import platform
 import socket
 import struct
+import sys
 import time
 
 from nenv.errors import InputError
@@ -59,8 +61,10 @@ def dropped(*socks: socket.socket) -> int | None:
     return sum(int(cols[_DROPS]) for cols in mine) if {cols[_INODE] for cols in mine} == inodes else None
 
 
-_SO_TIMESTAMPNS = getattr(socket, "SO_TIMESTAMPNS", 35 if os.name == "posix" and os.uname().sysname == "Linux" else None)
-_STAMP = struct.Struct("@qq")  # struct timespec: seconds, nanoseconds
+# Python's socket module has no name for it: 35 is SO_TIMESTAMPNS in Linux's asm-generic/socket.h, which
+# these architectures use (alpha, parisc and sparc number it otherwise: no stamps there)
+_SO_TIMESTAMPNS = getattr(socket, "SO_TIMESTAMPNS", 35 if sys.platform.startswith("linux") and platform.machine() in {"x86_64", "aarch64", "ppc64le", "s390x", "riscv64"} else None)
+_STAMP = struct.Struct("@qq")  # struct timespec of a 64-bit system: seconds, nanoseconds
 _ANCILLARY = socket.CMSG_SPACE(_STAMP.size) if hasattr(socket, "CMSG_SPACE") else 0
 
 
@@ -87,7 +91,7 @@ def receive_stamped(sock: socket.socket) -> tuple[bytes, tuple, float | None]:
     data, ancillary, _, addr = sock.recvmsg(65535, _ANCILLARY)
     mono, wall = time.monotonic(), time.time()
     for level, kind, value in ancillary:
-        if level == socket.SOL_SOCKET and kind == _SO_TIMESTAMPNS and len(value) >= _STAMP.size:
+        if level == socket.SOL_SOCKET and kind == _SO_TIMESTAMPNS and len(value) == _STAMP.size:
             seconds, nanoseconds = _STAMP.unpack_from(value)
             return data, addr, min(mono, mono - (wall - (seconds + nanoseconds * 1e-9)))
     return data, addr, None
