@@ -732,28 +732,82 @@ def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch)
     assert res.exit_code == 0 and "note: the system allows a receive buffer of only" in res.output and "net.core.rmem_max" in res.output
 
 
-def test_the_system_stamps_when_a_datagram_arrived_not_when_it_is_read():
-    """udp.receive_stamped: the arrival (SO_TIMESTAMPNS, Linux) on the monotonic clock lies between the
-    moments around the send, however long the datagram then waited; BlockingIOError when none waits."""
+def test_the_system_tells_when_a_datagram_arrived_and_how_many_the_socket_dropped():
+    """udp.receive_detailed: the arrival (SO_TIMESTAMPNS, Linux) on the monotonic clock lies between the
+    moments around the send, however long the datagram then waited; the drop count (SO_RXQ_OVFL) a
+    datagram queued after an overflow carries equals the system's table (/proc/net/udp); BlockingIOError
+    when none waits."""
     from nenv.serve import udp
 
     r = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    r.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 1)  # the system's minimum: a few datagrams
     r.bind(("127.0.0.1", 0))
     r.setblocking(False)
-    if not udp.stamp_arrivals(r):
-        pytest.skip("this system does not stamp arrivals")
+    if not udp.detail_arrivals(r):
+        pytest.skip("this system gives no arrival details")
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     before = time.monotonic()
     tx.sendto(b"first", r.getsockname())
     after = time.monotonic()
     time.sleep(0.1)
-    data, addr, arrived = udp.receive_stamped(r)
-    assert data == b"first" and addr[1] == tx.getsockname()[1]
+    data, addr, arrived, drops = udp.receive_detailed(r)
+    assert data == b"first" and addr[1] == tx.getsockname()[1] and drops == 0
     assert before - 1e-3 <= arrived <= after + 1e-3 and time.monotonic() - arrived >= 0.1
+    for _ in range(100):  # far more than the buffer holds
+        tx.sendto(b"x" * 172, r.getsockname())
+    while True:
+        try:
+            udp.receive_detailed(r)
+        except BlockingIOError:
+            break
+    dropped = udp.dropped(r)
+    assert dropped and dropped > 50
+    tx.sendto(b"after", r.getsockname())
+    assert udp.receive_detailed(r)[::3] == (b"after", dropped)
     with pytest.raises(BlockingIOError):
-        udp.receive_stamped(r)
+        udp.receive_detailed(r)
     r.close()
     tx.close()
+
+
+def test_a_running_relay_counts_drops_without_reading_the_hosts_socket_table(monkeypatch):
+    """The system's table of UDP sockets lists every socket of the host: with 19,000 of them (a gateway
+    holds that many RTP ports) reading it took 263 ms, and the relay read it once a minute while
+    serving. Now it reads each datagram's drop count instead and the table only when it stops: the
+    notice tells of the drops while the table is never read."""
+    from nenv.serve import udp
+
+    probe = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    detailed = udp.detail_arrivals(probe)
+    probe.close()
+    if not detailed:
+        pytest.skip("this system gives no per-datagram drop count")
+    monkeypatch.setattr(load, "NOTICE_EVERY_S", 0.0)  # look at the load after every round
+    monkeypatch.setattr(rtp, "RECEIVE_BUFFER_BYTES", 1)
+    reads = []
+    table = udp.sockets
+    monkeypatch.setattr(udp, "sockets", lambda: reads.append(1) or table())
+    told = []
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9), notice=told.append)
+    relay.out.close()
+    relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for seq in range(100):  # before the relay reads anything: most are dropped
+        tx.sendto(rtp_packet.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=14, payload=b"\x7f" * 160), relay.address)
+    relay.start()
+    time.sleep(0.3)
+    tx.sendto(rtp_packet.build(payload_type=0, seq=100, timestamp=16000, ssrc=14, payload=b"\x7f" * 160), relay.address)  # queued after the drops
+    deadline = time.time() + 10.0
+    while not any("dropped by the system" in t for t in told) and time.time() < deadline:
+        time.sleep(0.02)
+    serving_reads = len(reads)
+    relay.stop()
+    tx.close()
+    assert serving_reads == 0 and len(reads) == 1  # the table only once, when the relay stopped
+    drops = relay.counters.system_drops
+    assert drops > 0 and relay.closed[14].packets + drops == 101
+    said = [t for t in told if "dropped by the system" in t]
+    assert said and f"{drops} datagrams dropped by the system unread" in said[0]
 
 
 def test_a_relay_that_cannot_keep_up_still_hears_a_stream_go_quiet(monkeypatch):
@@ -765,9 +819,10 @@ def test_a_relay_that_cannot_keep_up_still_hears_a_stream_go_quiet(monkeypatch):
     from nenv.serve import udp
 
     probe = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
-    if not udp.stamp_arrivals(probe):
-        pytest.skip("this system does not stamp arrivals")
+    detailed = udp.detail_arrivals(probe)
     probe.close()
+    if not detailed:
+        pytest.skip("this system does not stamp arrivals")
     monkeypatch.setattr(rtp, "RECEIVE_BURST", 4)
     rx = _receiver()
     relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=rx.getsockname(), idle_timeout_s=30.0)

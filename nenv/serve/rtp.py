@@ -115,14 +115,12 @@ class Relay:
         self.receive_buffer = self.sock.getsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF)
         self.sock.bind(listen_at)
         self.sock.setblocking(False)  # serve() waits in select and then reads every datagram waiting
-        udp.stamp_arrivals(self.sock)  # see _receive_all
         self.address = self.sock.getsockname()
         # RTCP: on the RTP port itself (RFC 5761) and, where it is free, on the port above (RFC 3550 section 11)
         self.rtcp_sock: socket.socket | None = socket.socket(family, socket.SOCK_DGRAM)
         try:
             self.rtcp_sock.bind((self.address[0], self.address[1] + 1) + tuple(self.address[2:]))
             self.rtcp_sock.setblocking(False)
-            udp.stamp_arrivals(self.rtcp_sock)
         except OSError:
             self.rtcp_sock.close()
             self.rtcp_sock = None
@@ -148,7 +146,8 @@ class Relay:
             self.multi.on_rejected = self.records.rejected
         self._last_step = self._last_expiry = time.monotonic()
         self._by_call: dict[str, RelayStream] = {}
-        self.load = LoadWatch(self.counters, self._system_drops, step_s=tick_s, notice=notice)
+        self.drops = udp.Drops(self.sock, self.rtcp_sock)  # also asks for arrival stamps (see _receive_all)
+        self.load = LoadWatch(self.counters, self.drops.running, step_s=tick_s, notice=notice)
 
     # ---- lifecycle ---------------------------------------------------------------------
     def start(self) -> "Relay":
@@ -196,18 +195,19 @@ class Relay:
     def _receive_all(self, sock: socket.socket, heard: float) -> float | None:
         """Handle the datagrams waiting in ``sock`` (up to RECEIVE_BURST; each arrived after ``heard``).
         None if the socket was left empty, else the arrival of the last one handled (all before it were:
-        first in, first out), or ``heard`` without arrival stamps. docs/rtp-relay.md: overload."""
-        for _ in range(RECEIVE_BURST - 1):
+        first in, first out), or ``heard`` without arrival stamps. The first and last reads also bring
+        the socket's drop count (udp.receive_detailed). docs/rtp-relay.md: overload."""
+        arrived = None
+        for i in range(RECEIVE_BURST):
             try:
-                data, addr = sock.recvfrom(65535)
+                if i == 0 or i == RECEIVE_BURST - 1:
+                    data, addr, arrived, drops = udp.receive_detailed(sock)
+                    self.drops.note(sock, drops)
+                else:
+                    data, addr = sock.recvfrom(65535)
             except (BlockingIOError, InterruptedError):
                 return None
             self.handle(data, addr, heard)
-        try:
-            data, addr, arrived = udp.receive_stamped(sock)
-        except (BlockingIOError, InterruptedError):
-            return None
-        self.handle(data, addr, heard)
         return heard if arrived is None else arrived
 
     def step(self) -> None:
@@ -225,14 +225,10 @@ class Relay:
             self._send(st, pcm[pos : pos + 2 * y.size], final=st.tail_sent)  # a quiet stream's last, shorter packet goes too
             pos += 2 * y.size
 
-    def _system_drops(self) -> int | None:
-        """Datagrams the system dropped unread for the relay's listening sockets (None where unknown)."""
-        return udp.dropped(*[s for s in (self.sock, self.rtcp_sock) if s is not None])
-
     def _shutdown(self) -> None:
         for ssrc in list(self.streams):
             self._close(ssrc)
-        self.counters.system_drops = self._system_drops()
+        self.counters.system_drops = self.drops.final()
         if self.records is not None:
             self.records.close()
         self.sock.close()

@@ -7,7 +7,10 @@ relay can see it; Linux counts such drops per socket (the ``drops`` column of ``
 
 When the relay reads a socket that stays busy, the moment a datagram *arrived* can lie well before
 the moment it is read; the system stamps each datagram on arrival (``SO_TIMESTAMPNS``, Linux, in
-wall-clock time), and :func:`receive_stamped` gives that moment on the monotonic clock.
+wall-clock time), and :func:`receive_detailed` gives that moment on the monotonic clock, with the
+socket's drop count (``SO_RXQ_OVFL``). That count costs nothing to read, where ``/proc/net/udp`` lists
+every UDP socket of the host (a gateway may hold tens of thousands: reading it then takes a quarter
+of a second), so a running relay uses the first and reads the table only when it stops.
 """
 
 from __future__ import annotations
@@ -61,37 +64,74 @@ def dropped(*socks: socket.socket) -> int | None:
     return sum(int(cols[_DROPS]) for cols in mine) if {cols[_INODE] for cols in mine} == inodes else None
 
 
-# Python's socket module has no name for it: 35 is SO_TIMESTAMPNS in Linux's asm-generic/socket.h, which
-# these architectures use (alpha, parisc and sparc number it otherwise: no stamps there)
-_SO_TIMESTAMPNS = getattr(socket, "SO_TIMESTAMPNS", 35 if sys.platform.startswith("linux") and platform.machine() in {"x86_64", "aarch64", "ppc64le", "s390x", "riscv64"} else None)
+# Python's socket module names neither option: 35 and 40 are SO_TIMESTAMPNS and SO_RXQ_OVFL in Linux's
+# asm-generic/socket.h, which these architectures use (alpha, parisc and sparc number them otherwise)
+_GENERIC = sys.platform.startswith("linux") and platform.machine() in {"x86_64", "aarch64", "ppc64le", "s390x", "riscv64"}
+_SO_TIMESTAMPNS = getattr(socket, "SO_TIMESTAMPNS", 35 if _GENERIC else None)
+_SO_RXQ_OVFL = getattr(socket, "SO_RXQ_OVFL", 40 if _GENERIC else None)
 _STAMP = struct.Struct("@qq")  # struct timespec of a 64-bit system: seconds, nanoseconds
-_ANCILLARY = socket.CMSG_SPACE(_STAMP.size) if hasattr(socket, "CMSG_SPACE") else 0
+_DROPS_SEEN = struct.Struct("@I")  # the socket's drop count when the datagram was queued
+_ANCILLARY = socket.CMSG_SPACE(_STAMP.size) + socket.CMSG_SPACE(_DROPS_SEEN.size) if hasattr(socket, "CMSG_SPACE") else 0
 
 
-def stamp_arrivals(sock: socket.socket) -> bool:
-    """Ask the system to stamp each datagram ``sock`` receives with its arrival time; False where it
-    cannot (then :func:`receive_stamped` gives no time)."""
-    if _SO_TIMESTAMPNS is None or not _ANCILLARY:
+def detail_arrivals(sock: socket.socket) -> bool:
+    """Ask the system to give each datagram ``sock`` receives with its arrival time and the socket's
+    count of datagrams dropped so far (Linux: SO_TIMESTAMPNS, SO_RXQ_OVFL); False where it cannot
+    (then :func:`receive_detailed` gives neither)."""
+    if _SO_TIMESTAMPNS is None or _SO_RXQ_OVFL is None or not _ANCILLARY:
         return False
     try:
         sock.setsockopt(socket.SOL_SOCKET, _SO_TIMESTAMPNS, 1)
+        sock.setsockopt(socket.SOL_SOCKET, _SO_RXQ_OVFL, 1)
     except OSError:
         return False
     return True
 
 
-def receive_stamped(sock: socket.socket) -> tuple[bytes, tuple, float | None]:
-    """One datagram of a non-blocking socket: ``(data, address, arrival)``, the arrival on the
-    :func:`time.monotonic` clock (None without a stamp: see :func:`stamp_arrivals`). The stamp is
-    wall-clock time, moved to the monotonic clock by the two clocks' offset when it is read and never
-    later than that read. Raises BlockingIOError when nothing waits, as ``recvfrom`` does."""
+def receive_detailed(sock: socket.socket) -> tuple[bytes, tuple, float | None, int | None]:
+    """One datagram of a non-blocking socket: ``(data, address, arrival, drops)``. ``arrival`` is on the
+    :func:`time.monotonic` clock: the system's wall-clock stamp moved by the two clocks' offset when it
+    is read, never later than that read. ``drops`` is how many datagrams the socket had dropped (buffer
+    full) when this one was queued: a count that only grows, and lags the drops after it. Both None
+    where the system gives no details (:func:`detail_arrivals`). Raises BlockingIOError when nothing
+    waits, as ``recvfrom`` does."""
     if not _ANCILLARY:
         data, addr = sock.recvfrom(65535)
-        return data, addr, None
+        return data, addr, None, None
     data, ancillary, _, addr = sock.recvmsg(65535, _ANCILLARY)
     mono, wall = time.monotonic(), time.time()
+    arrival, drops = None, None
     for level, kind, value in ancillary:
-        if level == socket.SOL_SOCKET and kind == _SO_TIMESTAMPNS and len(value) == _STAMP.size:
+        if level != socket.SOL_SOCKET:
+            continue
+        if kind == _SO_TIMESTAMPNS and len(value) == _STAMP.size:
             seconds, nanoseconds = _STAMP.unpack_from(value)
-            return data, addr, min(mono, mono - (wall - (seconds + nanoseconds * 1e-9)))
-    return data, addr, None
+            arrival = min(mono, mono - (wall - (seconds + nanoseconds * 1e-9)))
+        elif kind == _SO_RXQ_OVFL and len(value) == _DROPS_SEEN.size:
+            (drops,) = _DROPS_SEEN.unpack_from(value)
+    if arrival is not None and drops is None:
+        drops = 0  # the system sends the count only once the socket has dropped something
+    return data, addr, arrival, drops
+
+
+class Drops:
+    """The system's count of datagrams dropped unread (buffer full) for a relay's listening sockets:
+    while serving, as last seen on a datagram (:meth:`note`; a lower bound that lags a little, and
+    never a read of the host's whole socket table), and from that table when the relay stops. Where
+    the system gives no per-datagram count, both read the table."""
+
+    def __init__(self, *socks: socket.socket | None):
+        self.socks = [s for s in socks if s is not None]
+        self.seen = {s: 0 for s in self.socks if detail_arrivals(s)}
+        self.detailed = len(self.seen) == len(self.socks)
+
+    def note(self, sock: socket.socket, drops: int | None) -> None:
+        """The count a datagram of ``sock`` came with (:func:`receive_detailed`)."""
+        if drops is not None and sock in self.seen:
+            self.seen[sock] = max(self.seen[sock], drops)
+
+    def running(self) -> int | None:
+        return sum(self.seen.values()) if self.detailed else self.final()
+
+    def final(self) -> int | None:
+        return dropped(*self.socks)
