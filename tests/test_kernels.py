@@ -265,6 +265,35 @@ def test_first_process_compiles_and_says_so_later_ones_load_the_cache(tmp_path):
     assert any(tmp_path.rglob("*.nbi")), "numba wrote no cache index"
 
 
+def test_engines_made_in_several_threads_at_once_all_start():
+    """A gateway may make its engines in several threads at start-up. Each engine warms the kernels;
+    two warm-ups at once used to collide (the first to finish forbids compiling, and the other's
+    next compile call raised "compilation disabled"). A fresh process, four threads released together."""
+    import json
+    import subprocess
+    import sys
+
+    code = """
+import threading
+from nenv.serve.runtime import CallEngine
+barrier, errors, outs = threading.Barrier(4), [], []
+def make():
+    barrier.wait()
+    try:
+        outs.append(CallEngine(method="imaging").feed([0.1] * 160).size)
+    except Exception as e:
+        errors.append(repr(e))
+threads = [threading.Thread(target=make) for _ in range(4)]
+[t.start() for t in threads]
+[t.join() for t in threads]
+print(json.dumps([errors, outs]))
+"""
+    r = subprocess.run([sys.executable, "-c", "import json" + code], capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    errors, outs = json.loads(r.stdout)
+    assert errors == [] and len(outs) == 4 and len(set(outs)) == 1 and outs[0] > 0, r.stdout
+
+
 def test_mismatch_equals_the_numpy_formula(rng):
     # Reference: numpy's float32 log10 of the ratios, mean removed, RMS. The kernel takes each log in
     # single precision too, with the C library's log10f: the two agree to about a unit in the last

@@ -132,6 +132,14 @@ def warm(*, notice=None) -> float:
     """
     if "s" in _warm:
         return 0.0
+    with _warm_lock:  # engines made in several threads at once: one compiles or loads, the others wait
+        return 0.0 if "s" in _warm else _warm_up(notice)
+
+
+_warm_lock = threading.Lock()
+
+
+def _warm_up(notice) -> float:
     said = threading.Event()
 
     def tell() -> None:
