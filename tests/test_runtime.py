@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -393,3 +395,47 @@ def test_an_engine_has_the_network_ready_before_its_first_hop(call_audio, monkey
     (broken / "model.onnx").write_bytes((path / "model.onnx").read_bytes()[:1000])
     with pytest.raises(ConfigError, match="cannot load"):
         CallEngine(checkpoint.load(broken))
+
+
+def test_engines_made_in_several_threads_share_one_session_and_all_run(call_audio, monkeypatch):
+    """Engines of one model made in several threads at once (a gateway's start-up): one onnxruntime
+    session is made, even when making it takes long enough for every thread to ask (here 50 ms more),
+    and each thread's engine runs as one made alone does."""
+    import threading
+
+    import onnxruntime
+
+    from nenv.chain import checkpoint
+
+    path = checkpoint.default_path()
+    if path is None:
+        pytest.skip("no default model")
+    _, x = call_audio
+    want = CallEngine(checkpoint.load(path)).feed(x[:800])
+    made = []
+    real = onnxruntime.InferenceSession
+
+    def slow_session(*args, **kwargs):
+        made.append(1)
+        time.sleep(0.05)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(onnxruntime, "InferenceSession", slow_session)
+    model = checkpoint.load(path)  # no session yet
+    barrier, got, errors = threading.Barrier(4), [], []
+
+    def run():
+        barrier.wait()
+        try:
+            got.append(CallEngine(model).feed(x[:800]))
+        except Exception as e:  # collected: an exception in a thread would not fail the test
+            errors.append(repr(e))
+
+    threads = [threading.Thread(target=run) for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert errors == [] and len(got) == 4 and len(made) == 1
+    for y in got:
+        np.testing.assert_array_equal(y, want)

@@ -75,24 +75,32 @@ class Checkpoint:
     band_trim_db: float = 0.0  # level of the added high band against the trained level (the folder's calibration)
     _session: object = field(default=None, repr=False)
     _bound: threading.local = field(default_factory=threading.local, init=False, repr=False, compare=False)  # per thread: IOBinding buffers (predict); a copy (dataclasses.replace) starts its own
+    _lock: threading.Lock = field(default_factory=threading.Lock, init=False, repr=False, compare=False)  # making the session
 
     def session(self):
-        """The onnxruntime session (created on first use)."""
+        """The onnxruntime session (created on first use, once even when threads ask at the same time;
+        a model file that fails its checks is refused at every use, never kept)."""
         if self._session is None:
-            import onnxruntime as ort
-
-            try:
-                self._session = ort.InferenceSession(str(self.path / MODEL_FILE), sess_options=session_options(flush_denormals=self.flush_denormals), providers=["CPUExecutionProvider"])
-            except Exception as e:  # onnxruntime raises its own Fail / InvalidProtobuf types
-                raise ConfigError(f"cannot load '{self.path / MODEL_FILE}': {str(e).splitlines()[0]}") from e
-            meta = self._session.get_modelmeta().custom_metadata_map
-            if META_FEATURES not in meta:
-                raise ConfigError(f"'{self.path / MODEL_FILE}' has no nenv feature settings in its metadata: not a nenv model")
-            embedded = FeatureSettings.from_dict(json.loads(meta[META_FEATURES]))
-            FeatureSettings().check_compatible(embedded, what=f"the model '{self.path / MODEL_FILE}'")
-            if embedded != self.features:
-                raise ConfigError(f"'{self.path / MODEL_FILE}' and '{self.path / SETTINGS_FILE}' disagree on the feature settings")
+            with self._lock:
+                if self._session is None:
+                    self._session = self._open_session()
         return self._session
+
+    def _open_session(self):
+        import onnxruntime as ort
+
+        try:
+            session = ort.InferenceSession(str(self.path / MODEL_FILE), sess_options=session_options(flush_denormals=self.flush_denormals), providers=["CPUExecutionProvider"])
+        except Exception as e:  # onnxruntime raises its own Fail / InvalidProtobuf types
+            raise ConfigError(f"cannot load '{self.path / MODEL_FILE}': {str(e).splitlines()[0]}") from e
+        meta = session.get_modelmeta().custom_metadata_map
+        if META_FEATURES not in meta:
+            raise ConfigError(f"'{self.path / MODEL_FILE}' has no nenv feature settings in its metadata: not a nenv model")
+        embedded = FeatureSettings.from_dict(json.loads(meta[META_FEATURES]))
+        FeatureSettings().check_compatible(embedded, what=f"the model '{self.path / MODEL_FILE}'")
+        if embedded != self.features:
+            raise ConfigError(f"'{self.path / MODEL_FILE}' and '{self.path / SETTINGS_FILE}' disagree on the feature settings")
+        return session
 
     def prepare(self) -> None:
         """Make the session and run it once on one zero row (bound for this thread), so that a call's
