@@ -863,3 +863,48 @@ def test_a_relay_that_cannot_keep_up_still_hears_a_stream_go_quiet(monkeypatch):
     rx.close()
     assert busy["quiet_tail_sent"]  # heard as quiet (its held-back tail sent) while the backlog lasted
     assert relay.closed[1].packets == 5 and relay.closed[2].packets == 600
+
+
+def test_relays_that_share_a_port_each_take_whole_streams():
+    """--shared-port (SO_REUSEPORT): two relays listen on one port, and the system hands each sender's
+    datagrams (by source address and port) to one of them: every stream is relayed whole by exactly
+    one relay, and with twenty senders both relays get some (all twenty to one has odds 2 in 2**20).
+    Without the option a second relay cannot listen there."""
+    import sys
+
+    from nenv.errors import InputError
+
+    if not (sys.platform.startswith("linux") and hasattr(socket, "SO_REUSEPORT")):
+        with pytest.raises(InputError, match="SO_REUSEPORT"):
+            rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9), shared_port=True)
+        pytest.skip("this system does not spread a shared port over its sockets")
+    with socket.socket(socket.AF_INET, socket.SOCK_DGRAM) as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    relays = [rtp.Relay(lambda: pipeline.make_system("imaging"), listen=("127.0.0.1", port), send_to=("127.0.0.1", 9), shared_port=True) for _ in range(2)]
+    with pytest.raises(OSError):
+        rtp.Relay(lambda: pipeline.make_system("imaging"), listen=("127.0.0.1", port), send_to=("127.0.0.1", 9))
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+
+    res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", f"127.0.0.1:{port}", "--method", "imaging"])
+    assert res.exit_code == 2 and "must all be started with --shared-port" in res.output  # the command says how
+    for r in relays:
+        r.out.close()
+        r.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+        r.start()
+    senders = [socket.socket(socket.AF_INET, socket.SOCK_DGRAM) for _ in range(20)]
+    for k in range(3):
+        for ssrc, tx in enumerate(senders, start=100):
+            tx.sendto(rtp_packet.build(payload_type=0, seq=k, timestamp=160 * k, ssrc=ssrc, payload=b"\x55" * 160), ("127.0.0.1", port))
+    deadline = time.time() + 20.0
+    while sum(st.counters.packets for r in relays for st in list(r.streams.values())) < 60 and time.time() < deadline:
+        time.sleep(0.02)
+    for r in relays:
+        r.stop()
+    for tx in senders:
+        tx.close()
+    got = [set(r.closed) for r in relays]
+    assert got[0] | got[1] == set(range(100, 120)) and not got[0] & got[1] and got[0] and got[1]
+    assert all(c.packets == 3 for r in relays for c in r.closed.values())

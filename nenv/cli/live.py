@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import errno
 import os
 import select
 import sys
@@ -149,6 +150,7 @@ def relay(
     model: Annotated[Optional[Path], typer.Option(help="Model folder (default: $NENV_MODEL, else the shipped model).")] = None,
     step_ms: Annotated[float, typer.Option(min=5.0, max=100.0, help="Neural method: all streams are extended together every this many ms (a packet waits at most one step; 10 halves the wait for more CPU per call).")] = 20.0,
     symmetric: Annotated[bool, typer.Option("--symmetric", help="Send from the listening port (symmetric RTP, which many gateways and NATs expect).")] = False,
+    shared_port: Annotated[bool, typer.Option("--shared-port", help="Let other relays started with this option listen on the same port (one per core): the system gives each sender's packets to one of them.")] = False,
     low_band: LowBandOpt = False,
     hold_freed_memory: Annotated[bool, typer.Option("--hold-freed-memory", help="Let this process keep the memory a batched step frees (glibc raises its own heap thresholds once): a fifth less time per step with many streams.")] = False,
     record: Annotated[Optional[Path], typer.Option(help="Append the guard's record to this JSON Lines file while the relay runs, each stream under its call id (neural only).")] = None,
@@ -179,12 +181,13 @@ def relay(
         # the neural system runs every stream in one batched engine (one pass per hop for all calls)
         r = rtp.Relay(lambda: pipeline.make_system(method, model=ck, low_band=low_band), listen=_hostport(listen, "--listen"), send_to=_hostport(to, "--to"),
                       payload_type_out=payload_type, allowed_sources=list(allow) or None, max_streams=max_streams, idle_timeout_s=idle_timeout,
-                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0, symmetric=symmetric, low_band=low_band,
+                      batch_model=ck if method == "neural" else None, tick_s=step_ms / 1000.0, symmetric=symmetric, shared_port=shared_port, low_band=low_band,
                       notice=lambda text: _say(f"relay: {text}"), record=record, group=group)
     except OSError as e:
-        raise InputError(f"cannot listen on {listen}: {e.strerror or e}") from e
+        shared = " (relays meant to share a port must all be started with --shared-port)" if e.errno == errno.EADDRINUSE else ""
+        raise InputError(f"cannot listen on {listen}: {e.strerror or e}{shared}") from e
     host = f"[{r.address[0]}]" if ":" in r.address[0] else r.address[0]
-    _say(f"relaying RTP from {host}:{r.address[1]} to {to} (method={method}{' with the low band' if low_band else ''}{f', band {ck.band_trim_db:+g} dB by the model folder' if ck is not None and ck.band_trim_db else ''}, output payload type {payload_type}{', symmetric' if symmetric else ''}); stop with Ctrl-C")
+    _say(f"relaying RTP from {host}:{r.address[1]} to {to} (method={method}{' with the low band' if low_band else ''}{f', band {ck.band_trim_db:+g} dB by the model folder' if ck is not None and ck.band_trim_db else ''}, output payload type {payload_type}{', symmetric' if symmetric else ''}{', port shared' if shared_port else ''}); stop with Ctrl-C")
     if r.receive_buffer < rtp.RECEIVE_BUFFER_BYTES:
         _say(f"note: the system allows a receive buffer of only {r.receive_buffer // 1024} KiB (net.core.rmem_max); under load, packets that arrive "
              f"during a step may be dropped: raise net.core.rmem_max to {rtp.RECEIVE_BUFFER_BYTES} or more")

@@ -78,6 +78,7 @@ class Relay:
         low_band: bool = False,
         tick_s: float = 0.02,
         symmetric: bool = False,
+        shared_port: bool = False,
         notice: Callable[[str], None] | None = None,
         record: str | None = None,
         group: str | None = None,
@@ -88,7 +89,8 @@ class Relay:
         one tick per usual 20 ms packet time by default, ``0.01`` halves that wait for about twice
         the fixed cost per second). ``symmetric``: send from the listening socket (symmetric RTP, which
         many gateways and NATs expect); the destination must then be of the listening address's
-        family. Addresses may be IPv4 or IPv6. ``record``: append the guard's decisions to this record
+        family. Addresses may be IPv4 or IPv6. ``shared_port``: several relays (one per core) may listen on
+        the same port; each sender's packets go to one of them (:func:`nenv.serve.udp.listener`). ``record``: append the guard's decisions to this record
         file (JSON Lines, :mod:`nenv.report.records`; batched neural only), each stream as a source named
         by its call id, with ``group``."""
         if not 96 <= payload_type_out <= 127:
@@ -109,20 +111,15 @@ class Relay:
         family, listen_at = udp.resolve(listen)
         if symmetric and family != out_family:
             raise InputError("symmetric RTP sends from the listening socket: give the listen and destination addresses in one family (both IPv4 or both IPv6)")
-        self.sock = socket.socket(family, socket.SOCK_DGRAM)
-        self.sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, RECEIVE_BUFFER_BYTES)
+        # non-blocking: serve() waits in select and then reads every datagram waiting
+        self.sock = udp.listener(family, listen_at, receive_buffer=RECEIVE_BUFFER_BYTES, shared=shared_port)
         # what the system granted, as it reports it (Linux counts its bookkeeping: twice the size asked for)
         self.receive_buffer = self.sock.getsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF)
-        self.sock.bind(listen_at)
-        self.sock.setblocking(False)  # serve() waits in select and then reads every datagram waiting
         self.address = self.sock.getsockname()
         # RTCP: on the RTP port itself (RFC 5761) and, where it is free, on the port above (RFC 3550 section 11)
-        self.rtcp_sock: socket.socket | None = socket.socket(family, socket.SOCK_DGRAM)
         try:
-            self.rtcp_sock.bind((self.address[0], self.address[1] + 1) + tuple(self.address[2:]))
-            self.rtcp_sock.setblocking(False)
+            self.rtcp_sock: socket.socket | None = udp.listener(family, (self.address[0], self.address[1] + 1) + tuple(self.address[2:]), shared=shared_port)
         except OSError:
-            self.rtcp_sock.close()
             self.rtcp_sock = None
         self.out = self.sock if symmetric else socket.socket(out_family, socket.SOCK_DGRAM)
         self.streams: dict[int, RelayStream] = {}

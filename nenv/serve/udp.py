@@ -39,6 +39,28 @@ def resolve(address: tuple[str, int]) -> tuple[int, tuple]:
     return info[0][0], info[0][4]
 
 
+def listener(family: int, address: tuple, *, receive_buffer: int = 0, shared: bool = False) -> socket.socket:
+    """A non-blocking UDP socket bound to ``address``, with a receive buffer of ``receive_buffer`` bytes
+    asked for (the system caps it; 0: the system's default). ``shared``: other processes of this user
+    may bind the same port (SO_REUSEPORT), and the system hands each sender's datagrams (by source
+    address and port) to one of them. Raises OSError as ``bind`` does, InputError where the system
+    does not share a port that way (Linux does; elsewhere SO_REUSEPORT may give every datagram to one)."""
+    if shared and not (sys.platform.startswith("linux") and hasattr(socket, "SO_REUSEPORT")):
+        raise InputError("sharing a port among relays needs Linux's SO_REUSEPORT, which spreads senders over them")
+    sock = socket.socket(family, socket.SOCK_DGRAM)
+    try:
+        if receive_buffer:
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, receive_buffer)
+        if shared:
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEPORT, 1)
+        sock.bind(address)
+        sock.setblocking(False)
+    except OSError:
+        sock.close()
+        raise
+    return sock
+
+
 def sockets() -> list[list[str]] | None:
     """The system's table of UDP sockets, IPv4 and IPv6, one list of columns per socket (Linux:
     local address:port in hex at 1, inode at 9, drops at 12); None where the system keeps none."""
