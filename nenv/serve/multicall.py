@@ -39,7 +39,10 @@ class _Call:
 
 
 class MultiCallEngine:
-    """Batched streaming extension for many calls sharing one model (or one model-free method)."""
+    """Batched streaming extension for many calls sharing one model (or one model-free method).
+
+    Not thread-safe: open, feed, step and close from one thread (or under one lock). Engines in
+    different threads are independent and may share one loaded model."""
 
     def __init__(self, model=None, *, method: str = "neural", guard: bool = True, system: System | None = None, low_band: bool = False):
         """``model``: a checkpoint (loaded, a folder, or None for the shipped model) for 'neural' and

@@ -75,7 +75,10 @@ class OutputGate:
 
 
 class CallEngine:
-    """Streaming narrowband -> wideband conversion for one call."""
+    """Streaming narrowband -> wideband conversion for one call.
+
+    One thread at a time per engine; engines in different threads may share one loaded model (its
+    session is made once, and each thread runs it through buffers of its own)."""
 
     latency_ms = ALGORITHMIC_LATENCY_MS
 
