@@ -263,3 +263,36 @@ def test_rejected_hops_are_merged_into_listening_spans():
     np.testing.assert_allclose(audit.segments([1.0, 1.01, 1.15, 1.2]), [(0.8, 1.22), (0.95, 1.41)], atol=1e-12)
     np.testing.assert_allclose(audit.segments([0.05, 0.06]), [(0.0, 0.27)], atol=1e-12)
     assert audit.segments([]) == []
+
+
+def _limited_files(max_bytes: int):
+    """preexec_fn: the child may not grow any file beyond ``max_bytes`` (writes then fail with EFBIG,
+    as on a full disk; Python ignores the SIGXFSZ that comes with it)."""
+    import resource
+
+    return lambda: resource.setrlimit(resource.RLIMIT_FSIZE, (max_bytes, max_bytes))
+
+
+def test_a_record_that_cannot_be_written_stops_recording_not_the_call(tmp_path):
+    """A live call whose guard record hits a full disk (here a file-size limit) keeps its audio whole;
+    recording stops at the first failed line, the process says so at once and at the end (exit
+    status 2), and the record holds every whole line written before, with the lost ones counted."""
+    import re
+    import subprocess
+    import sys
+
+    from nenv.media.audio import to_int16
+
+    t = np.arange(8000 * 2) / 8000
+    tone = to_int16(0.2 * np.sin(2 * np.pi * 1000 * t)).astype("<i2").tobytes()  # nearly every one of 200 hops is rejected
+    rec_path = tmp_path / "live.jsonl"
+    r = subprocess.run([sys.executable, "-m", "nenv", "stream", "--record", str(rec_path), "--call-id", "call-9"], input=tone,
+                       capture_output=True, preexec_fn=_limited_files(20000), timeout=300)
+    err = r.stderr.decode()
+    assert len(r.stdout) == 2 * len(tone)  # the call's audio, all of it
+    assert r.returncode == 2 and err.count("recording stopped, the audio goes on") == 1, err
+    lost = int(re.search(r"incomplete: (\d+) lines not written \(File too large\)", err).group(1))
+    rec = records.read([rec_path])
+    assert len(rec.headers) == 1 and rec.summaries == [] and rec.skipped_lines <= 1 and len(rec.rejects) >= 5
+    rejected = int(re.search(r"guard: (\d+) of 200 hops", err).group(1))  # the call's own count, printed at its end
+    assert rejected > 150 and len(rec.rejects) + lost == rejected + 1  # every reject line and the summary: written whole, or counted lost

@@ -24,7 +24,7 @@ from tests.conftest import ARCTIC
 
 runner = CliRunner()
 TABLE = Path(__file__).resolve().parents[1] / "docs" / "bad-input.md"
-ROWS = [f"F{i}" for i in range(1, 16)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 10)]
+ROWS = [f"F{i}" for i in range(1, 17)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 10)]
 
 
 def _run(*args):
@@ -222,6 +222,22 @@ def test_f14_output_that_is_an_input(tmp_path, speech):
     _refused(_run("extend", tmp_path / "call.wav", tmp_path / "wide.wav", tmp_path, "--overwrite"), "replaced by its own output")
     assert {p.name: p.read_bytes() for p in tmp_path.iterdir() if p.name != "extend-report.csv"} == before
     _no_output(tmp_path)
+
+
+def test_f16_record_that_cannot_be_written(tmp_path, speech):
+    """A full disk under the record (here a file-size limit on the process: writes fail with EFBIG):
+    extend stops with one line and leaves no output. The live paths keep their audio (row F16; their
+    tests are in test_audit.py and test_rtp.py)."""
+    import resource
+    import subprocess
+    import sys
+
+    sf.write(tmp_path / "call.wav", speech, 8000)
+    r = subprocess.run([sys.executable, "-m", "nenv", "extend", str(tmp_path / "call.wav"), str(tmp_path / "out.wav"), "--record", str(tmp_path / "rec.jsonl")],
+                       capture_output=True, text=True, timeout=300, preexec_fn=lambda: resource.setrlimit(resource.RLIMIT_FSIZE, (500, 500)))
+    err = r.stderr.strip()
+    assert r.returncode == 2 and err.startswith("nenv: error: cannot write the record") and "File too large" in err and len(err.splitlines()) == 1, err
+    assert not (tmp_path / "out.wav").exists()
 
 
 def test_f15_record_file_that_is_not_a_record(tmp_path, speech):

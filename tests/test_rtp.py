@@ -908,3 +908,44 @@ def test_relays_that_share_a_port_each_take_whole_streams():
     got = [set(r.closed) for r in relays]
     assert got[0] | got[1] == set(range(100, 120)) and not got[0] & got[1] and got[0] and got[1]
     assert all(c.packets == 3 for r in relays for c in r.closed.values())
+
+
+def test_a_relay_whose_record_cannot_be_written_keeps_relaying(tmp_path):
+    """--record on a full disk: the first failed line stops the record (the notice says so once) and
+    every stream goes on; the lines lost are counted for the closing report."""
+    import errno
+
+    from nenv.chain import checkpoint
+
+    model = checkpoint.load(checkpoint.default_path())
+    rx = _receiver()
+    told = []
+    relay = rtp.Relay(lambda: None, send_to=rx.getsockname(), idle_timeout_s=0.5, batch_model=model, record=str(tmp_path / "rec.jsonl"), notice=told.append)
+    fh = relay.records.writer._fh
+
+    class Full:  # the record's file once the disk is full
+        def write(self, text):
+            raise OSError(errno.ENOSPC, "No space left on device")
+
+        flush = fileno = write
+
+        def close(self):
+            fh.close()
+
+    relay.records.writer._fh = Full()
+    relay.start()
+    tone = g711.encode(0.2 * np.sin(2 * np.pi * 1000 * np.arange(8000) / 8000), law="mulaw")  # the guard rejects nearly every hop
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    for k in range(50):
+        tx.sendto(rtp_packet.build(payload_type=0, seq=k, timestamp=160 * k, ssrc=15, payload=tone[160 * k : 160 * (k + 1)].tobytes()), relay.address)
+        time.sleep(0.005)
+    got = _collect(rx, 10.0)
+    relay.stop()
+    tx.close()
+    rx.close()
+    c = relay.closed[15]
+    assert c.packets == 50 and c.guard_fallbacks > 50
+    assert _samples_in_order(got).size == 2 * 8000 + 2 * rtp.TAIL_SAMPLES  # every sample out (and the tail's silence)
+    assert [t for t in told if "guard record" in t] == [f"cannot write the guard record '{tmp_path / 'rec.jsonl'}' (No space left on device): recording stopped, the audio goes on"]
+    w = relay.records.writer
+    assert w.unwritten == c.guard_fallbacks + 1 and "incomplete" in w.incomplete()  # every reject line and the summary

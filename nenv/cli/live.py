@@ -54,7 +54,8 @@ def stream(
     engine = CallEngine(system=pipeline.make_system(method, model=model, excitation=excitation, low_band=low_band))
     if getattr(engine.system, "band_trim_db", 0.0):
         _say(f"nenv: note: {band_note(engine.system.band_trim_db, given=False)}")
-    tally, writer = watch(engine.system, record, source=call_id, group=group, n_hops=2**62)
+    # a record that cannot be written (a full disk) must not cut the call: recording stops, the audio goes on
+    tally, writer = watch(engine.system, record, source=call_id, group=group, n_hops=2**62, keep_going=True, on_failure=lambda m: _say(f"nenv: {m}"))
     out = sys.stdout.buffer
     fd = sys.stdin.fileno()
 
@@ -123,6 +124,8 @@ def stream(
             sig.signal(s, sig.SIG_IGN if stopping else h)
     if reader_gone:
         raise OutputError("standard output was closed by its reader before the call ended: the rest of the extended audio was not delivered")
+    if writer is not None and writer.incomplete():
+        raise OutputError(writer.incomplete())
 
 
 def _hostport(text: str, what: str) -> tuple[str, int]:
@@ -207,3 +210,5 @@ def relay(
     drops = "unknown" if r.counters.system_drops is None else r.counters.system_drops
     _say(f"relay load: the longest round {r.counters.longest_round_ms:.0f} ms, {r.counters.late_rounds} longer than {LATE_AFTER_STEPS} steps of {step_ms:g} ms; "
          f"datagrams the system dropped unread, its socket buffer full: {drops}")
+    if r.records is not None and r.records.writer.incomplete():
+        raise OutputError(r.records.writer.incomplete())

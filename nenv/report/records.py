@@ -68,15 +68,25 @@ def check_appendable(path: str | os.PathLike) -> Path:
 
 
 class RecordWriter:
-    """Appends one session's decisions to a record file (new, or a record already)."""
+    """Appends one session's decisions to a record file (new, or a record already).
 
-    def __init__(self, path: str | os.PathLike, *, checkpoint, context: int, band_trim_db: float = 0.0):
+    A line that cannot be written (a full disk, a file-size limit) raises OutputError, unless
+    ``keep_going`` (a live call or relay, whose audio matters more than its record): then recording
+    stops at the first failure, ``on_failure(message)`` is told once, and :attr:`failed` (the system's
+    reason) and :attr:`unwritten` (lines not written since) say what the record lacks. The file keeps every
+    whole line written before; :func:`read` skips a last line the failure cut.
+    """
+
+    def __init__(self, path: str | os.PathLike, *, checkpoint, context: int, band_trim_db: float = 0.0, keep_going: bool = False, on_failure=None):
         p = check_appendable(path)
         try:
             self._fh = open(p, "a", encoding="utf-8")
         except OSError as e:
             raise OutputError(f"cannot write the record '{p}': {e.strerror or e}") from e
         self.path = p
+        self.keep_going, self.on_failure = keep_going, on_failure
+        self.failed: str | None = None
+        self.unwritten = 0
         self.limits = checkpoint.limits.to_dict()
         names = [f"{n}@t-{k}" for k in range(context, 0, -1) for n in INPUT_NAMES] + [f"{n}@t" for n in INPUT_NAMES]
         self._write(
@@ -96,10 +106,21 @@ class RecordWriter:
         )
 
     def _write(self, obj: dict, *, sync: bool = False) -> None:
-        self._fh.write(json.dumps(obj, separators=(",", ":")) + "\n")
-        self._fh.flush()
-        if sync:
-            os.fsync(self._fh.fileno())
+        if self.failed is not None:
+            self.unwritten += 1
+            return
+        try:
+            self._fh.write(json.dumps(obj, separators=(",", ":")) + "\n")
+            self._fh.flush()
+            if sync:
+                os.fsync(self._fh.fileno())
+        except OSError as e:
+            reason = e.strerror or str(e)
+            self.failed, self.unwritten = reason, 1
+            if not self.keep_going:
+                raise OutputError(f"cannot write the record '{self.path}': {reason}") from e
+            if self.on_failure is not None:
+                self.on_failure(f"cannot write the guard record '{self.path}' ({reason}): recording stopped, the audio goes on")
 
     def hops(self, *, source: str, group: str | None, first_hop: int, dec: Decisions, x: np.ndarray, a_nb: np.ndarray) -> None:
         """Write a line for every rejected hop among ``dec`` (hops first_hop, first_hop+1, ...)."""
@@ -126,7 +147,15 @@ class RecordWriter:
         self._write({"type": "summary", "source": source, "group": group, "hops": tally.hops, "rejected": tally.rejected, "by_reason": dict(sorted(tally.by_reason.items())), "seconds": round(seconds, 3), "output": output}, sync=True)
 
     def close(self) -> None:
-        self._fh.close()
+        try:
+            self._fh.close()  # flushes what a failed write left in the buffer: it may fail again
+        except OSError:
+            if self.failed is None:
+                raise
+
+    def incomplete(self) -> str | None:
+        """None if every line was written, else what the record lacks (for the closing report)."""
+        return None if self.failed is None else f"the guard record '{self.path}' is incomplete: {self.unwritten} lines not written ({self.failed})"
 
 
 class CallRecords:

@@ -138,7 +138,8 @@ class Relay:
         if record is not None:
             from nenv.report.records import CallRecords, RecordWriter
 
-            writer = RecordWriter(record, checkpoint=batch_model, context=batch_model.features.context, band_trim_db=batch_model.band_trim_db)
+            writer = RecordWriter(record, checkpoint=batch_model, context=batch_model.features.context, band_trim_db=batch_model.band_trim_db,
+                                  keep_going=True, on_failure=notice)  # a full disk stops the record, never the calls
             self.records = CallRecords(writer, group=group)
             self.multi.on_rejected = self.records.rejected
         self._last_step = self._last_expiry = time.monotonic()

@@ -211,8 +211,9 @@ def _oracle_reference(reference, x: np.ndarray) -> np.ndarray:
     return ref * (float(np.sqrt(np.dot(x[:n], x[:n]) / num)) if num > 0 else 1.0)
 
 
-def watch(system, record, *, source: str, group: Optional[str], n_hops: int):
-    """Count the guard's verdicts on the first ``n_hops`` hops (and write rejected ones to ``record``).
+def watch(system, record, *, source: str, group: Optional[str], n_hops: int, keep_going: bool = False, on_failure=None):
+    """Count the guard's verdicts on the first ``n_hops`` hops (and write rejected ones to ``record``;
+    ``keep_going``, ``on_failure``: what a failed write does, :class:`nenv.report.records.RecordWriter`).
 
     Returns ``(tally, writer)``: a :class:`nenv.chain.guard.Tally` (None for systems without a guard)
     and a :class:`nenv.report.records.RecordWriter` (None without ``record``). Nothing is kept per hop,
@@ -231,7 +232,8 @@ def watch(system, record, *, source: str, group: Optional[str], n_hops: int):
     if record is not None:
         from nenv.report.records import RecordWriter
 
-        writer = RecordWriter(record, checkpoint=est.checkpoint, context=est.checkpoint.features.context, band_trim_db=getattr(system, "band_trim_db", 0.0))
+        writer = RecordWriter(record, checkpoint=est.checkpoint, context=est.checkpoint.features.context, band_trim_db=getattr(system, "band_trim_db", 0.0),
+                              keep_going=keep_going, on_failure=on_failure)
     tally = Tally(limit=n_hops)
 
     def listen(first_hop, dec, x, a_nb):
