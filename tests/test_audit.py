@@ -291,7 +291,7 @@ def test_a_record_that_cannot_be_written_stops_recording_not_the_call(tmp_path):
     err = r.stderr.decode()
     assert len(r.stdout) == 2 * len(tone)  # the call's audio, all of it
     assert r.returncode == 2 and err.count("recording stopped, the audio goes on") == 1, err
-    lost = int(re.search(r"incomplete: (\d+) lines not written \(File too large\)", err).group(1))
+    lost = int(re.search(r"incomplete: (\d+) lines? not written \(File too large\)", err).group(1))
     rec = records.read([rec_path])
     assert len(rec.headers) == 1 and rec.summaries == [] and rec.skipped_lines <= 1 and len(rec.rejects) >= 5
     rejected = int(re.search(r"guard: (\d+) of 200 hops", err).group(1))  # the call's own count, printed at its end

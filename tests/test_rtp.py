@@ -714,6 +714,33 @@ def test_relay_command_writes_the_guard_record_it_is_given(monkeypatch, tmp_path
     assert len(records.read([path]).headers) == 1  # refused before anything was appended
 
 
+def test_relay_command_ends_with_status_2_when_its_record_could_not_be_written(monkeypatch, tmp_path):
+    """The relay keeps serving when its record fails (test_a_relay_whose_record_cannot_be_written_keeps_relaying);
+    the command says so when it happens and, at the end, how much the record lacks, with status 2."""
+    import errno
+
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+    from nenv.report import records
+
+    def serve(self):  # one call ends after the disk has filled, then the relay stops
+        def full(*args):
+            raise OSError(errno.ENOSPC, "No space left on device")
+
+        self.records.writer._fh.write = full
+        self.records.ended("call-1", hops=10, seconds=0.1)
+        self._shutdown()
+
+    monkeypatch.setattr(rtp.Relay, "serve", serve)
+    path = tmp_path / "guard.jsonl"
+    res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--record", str(path)])
+    assert res.exit_code == 2, res.output
+    assert "relay: cannot write the guard record" in res.output and "recording stopped, the audio goes on" in res.output
+    assert f"the guard record '{path}' is incomplete: 1 line not written (No space left on device)" in res.output
+    assert len(records.read([path]).headers) == 1  # the header, written before the disk filled
+
+
 def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch):
     from typer.testing import CliRunner
 

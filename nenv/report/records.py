@@ -38,6 +38,7 @@ from nenv.errors import InputError, OutputError
 from nenv.chain.features import INPUT_NAMES
 from nenv.chain.guard import CHECK_NAMES, Decisions, Tally, reason_names
 from nenv.settings import HOP_NB, NB_SR
+from nenv.words import count
 
 SCHEMA = "nenv-guard-record"
 VERSION = 1
@@ -155,7 +156,7 @@ class RecordWriter:
 
     def incomplete(self) -> str | None:
         """None if every line was written, else what the record lacks (for the closing report)."""
-        return None if self.failed is None else f"the guard record '{self.path}' is incomplete: {self.unwritten} lines not written ({self.failed})"
+        return None if self.failed is None else f"the guard record '{self.path}' is incomplete: {count(self.unwritten, 'line')} not written ({self.failed})"
 
 
 class CallRecords:
