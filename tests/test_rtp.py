@@ -822,17 +822,18 @@ def test_a_running_relay_counts_drops_without_reading_the_hosts_socket_table(mon
     for seq in range(100):  # before the relay reads anything: most are dropped
         tx.sendto(rtp_packet.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=14, payload=b"\x7f" * 160), relay.address)
     relay.start()
-    time.sleep(0.3)
-    tx.sendto(rtp_packet.build(payload_type=0, seq=100, timestamp=16000, ssrc=14, payload=b"\x7f" * 160), relay.address)  # queued after the drops
-    deadline = time.time() + 10.0
+    sent, deadline = 100, time.time() + 20.0
     while not any("dropped by the system" in t for t in told) and time.time() < deadline:
-        time.sleep(0.02)
+        time.sleep(0.1)  # one more packet now and then: the first that finds room carries the count of those dropped before it
+        tx.sendto(rtp_packet.build(payload_type=0, seq=sent, timestamp=160 * sent, ssrc=14, payload=b"\x7f" * 160), relay.address)
+        sent += 1
+    time.sleep(0.2)
     serving_reads = len(reads)
     relay.stop()
     tx.close()
     assert serving_reads == 0 and len(reads) == 1  # the table only once, when the relay stopped
     drops = relay.counters.system_drops
-    assert drops > 0 and relay.closed[14].packets + drops == 101
+    assert drops > 0 and relay.closed[14].packets + drops == sent
     said = [t for t in told if "dropped by the system" in t]
     assert said and f"{drops} datagrams dropped by the system unread" in said[0]
 
