@@ -779,7 +779,7 @@ def test_the_system_tells_when_a_datagram_arrived_and_how_many_the_socket_droppe
     time.sleep(0.1)
     data, addr, arrived, drops = udp.receive_detailed(r)
     assert data == b"first" and addr[1] == tx.getsockname()[1] and drops == 0
-    assert before - 1e-3 <= arrived <= after + 1e-3 and time.monotonic() - arrived >= 0.1
+    assert before - 2e-3 <= arrived <= after + 2e-3 and time.monotonic() - arrived >= 0.1  # a few ms are ample: quiet is counted in tenths of a second
     for _ in range(100):  # far more than the buffer holds
         tx.sendto(b"x" * 172, r.getsockname())
     while True:
