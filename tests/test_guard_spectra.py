@@ -95,19 +95,19 @@ def test_verdicts_follow_the_documented_rules_alone_or_in_a_batch(rng):
         level = rng.uniform(-60, 30, 1)
         gain = rng.uniform(0.01, 2.0, 1)
         novelty = rng.uniform(0.0, 6.0, 1)
-        edge = trial % 12
+        edge, turn = trial % 12, trial // 12  # turn: which of an edge's bad values (each edge recurs every 12 trials)
         if edge == 1:
-            ceps[0, rng.integers(20)] = bad[trial % 3]
+            ceps[0, rng.integers(20)] = bad[turn % 3]
         elif edge == 2:
-            level[0] = bad[trial % 3]
+            level[0] = bad[turn % 3]
         elif edge == 3:
-            gain[0] = [0.0, -1.0, np.nan, np.inf][trial % 4]
+            gain[0] = [0.0, -1.0, np.nan, np.inf][turn % 4]
         elif edge == 4:
-            a[0, rng.integers(1, 17)] = bad[trial % 3]
+            a[0, rng.integers(1, 17)] = bad[turn % 3]
         elif edge == 5:
-            k[0, rng.integers(16)] = bad[trial % 3]
+            k[0, rng.integers(16)] = bad[turn % 3]
         elif edge == 6:
-            k[0, rng.integers(16)] = rng.choice([1.0, -1.0, 0.9995, -0.9985])
+            k[0, rng.integers(16)] = rng.choice([1.0, -1.0, 0.9995, -0.9985, 1 - guard.limits.stability_margin])  # the last exactly on the limit: unstable
         elif edge == 7:
             novelty[0] = np.nan
         elif edge == 8:
