@@ -107,6 +107,65 @@ def test_flush_plays_what_waits_and_declares_the_gaps_lost():
     assert c.lost_packets == 3 and c.filled_samples == 3 * N and y.size == 5 * N and not po.held  # packet 0 played on arrival
 
 
+def test_a_copy_of_a_waiting_packet_is_counted_and_played_once():
+    pkts = _stream(100, 0, 4)
+    po = PlayOut(pkts[0], window=3)
+    y = _play(po, [pkts[0], pkts[2], pkts[2], pkts[1], pkts[3]])  # 2 waits for 1; its copy arrives meanwhile
+    c = po.counters
+    assert c.late_or_duplicate == 1 and c.packets == 4 and c.lost_packets == 0 and y.size == 4 * N
+
+
+def test_the_sequence_limits_of_rfc_3550_exactly():
+    """RFC 3550 appendix A.1 (``update_seq``): ``udelta < MAX_DROPOUT`` is in order (a gap that may
+    fill), ``udelta <= RTP_SEQ_MOD - MAX_MISORDER`` a very large jump (a probable restart), anything
+    else late or a copy. So 2999 ahead waits as a gap and 3000 ahead is a restart candidate; 99 behind
+    is late and 100 behind a restart candidate."""
+    from nenv.serve.jitter import MAX_DROPOUT, MAX_MISORDER
+
+    assert (MAX_DROPOUT, MAX_MISORDER) == (3000, 100)  # the RFC's values
+    for ahead, waits in ((MAX_DROPOUT - 1, True), (MAX_DROPOUT, False)):
+        po = PlayOut(_pkt(1000, 0), window=3)
+        _play(po, [_pkt(1000, 0), _pkt(1001 + ahead, N * (1 + ahead))])
+        assert (len(po.held) == 1 and po.candidate is None and po.counters.arrived_early == 1) == waits, ahead
+        assert (po.candidate is not None and not po.held) == (not waits), ahead
+    for behind, late in ((MAX_MISORDER - 1, True), (MAX_MISORDER, False)):
+        po = PlayOut(_pkt(1000, 0), window=3)
+        _play(po, [_pkt(1000, 0), _pkt(1001 - behind, 0)])  # next expected: 1001
+        assert (po.counters.late_or_duplicate == 1 and po.candidate is None) == late, behind
+        assert (po.candidate is not None) == (not late), behind
+
+
+def test_gaps_of_exactly_a_second_are_filled_and_longer_ones_are_not():
+    """MAX_FILL (8000 samples, 1 s) is the longest span filled with silence, for suppressed silence
+    (consecutive packets) and for lost packets alike."""
+    po = PlayOut(_pkt(0, 0), window=0)
+    y = _play(po, [_pkt(0, 0), _pkt(1, N + MAX_FILL)])  # suppressed silence of exactly MAX_FILL
+    assert y.size == 2 * N + MAX_FILL and po.counters.silence_filled == MAX_FILL and po.counters.timing_restarts == 0
+    ts = 2 * N + MAX_FILL
+    y = _play(po, [_pkt(3, ts + MAX_FILL)])  # packet 2 lost: its span and the pause, MAX_FILL together
+    assert po.counters.lost_packets == 1 and po.counters.filled_samples == MAX_FILL and y.size == MAX_FILL + N
+    ts += MAX_FILL + N
+    y = _play(po, [_pkt(5, ts + MAX_FILL + 1)])  # packet 4 lost, a span one sample longer: not filled
+    assert po.counters.lost_packets == 2 and po.counters.filled_samples == MAX_FILL and y.size == N
+
+
+@pytest.mark.parametrize("first", [64999, 1000])
+def test_after_a_loss_the_nearest_waiting_packet_plays_first_even_across_the_wrap(first):
+    """Distance in sequence numbers is counted modulo 2**16 (RFC 3550 appendix A.1): packet first+1 is
+    lost, first+1502 (past the wrap when first is 64999) arrives before first+2; first+2 is the
+    nearest and plays first."""
+    lost, near, far = ((first + d) & 0xFFFF for d in (1, 2, 1502))
+    po = PlayOut(_pkt(first, 0), window=1)
+    values = {first: 0.1, near: 0.2, far: 0.3}
+    out = _play(po, [_pkt(first, 0, values[first]), _pkt(far, 1502 * N, values[far]), _pkt(near, 2 * N, values[near])])
+    c = po.counters
+    assert c.lost_packets == 1 and c.filled_samples == N and out.size == 3 * N and list(po.held) == [far]
+    decoded = {s: g711.decode(g711.encode(np.full(N, v), law="mulaw"), law="mulaw") for s, v in values.items()}
+    np.testing.assert_array_equal(out, np.concatenate([decoded[first], np.zeros(N), decoded[near]]))
+    tail = np.concatenate(po.flush())  # 1499 packets lost before the far one; their span (over a second) is not filled
+    assert c.lost_packets == 1 + 1499 and np.array_equal(tail, decoded[far]) and lost not in values
+
+
 def test_an_rtcp_bye_ends_its_stream_at_once_and_the_first_packet_out_carries_the_marker():
     """RFC 3550 section 6.6 (BYE), RFC 5761 section 4 (RTCP on the RTP port, told apart by the second
     octet), RFC 3551 section 4.1 (marker bit on the first packet). Driven through Relay.handle: no
@@ -126,7 +185,9 @@ def test_an_rtcp_bye_ends_its_stream_at_once_and_the_first_packet_out_carries_th
         relay.handle(build(payload_type=0, seq=i, timestamp=N * i, ssrc=0xAB, payload=_pkt(i, 0).payload), sender)
     relay.handle(build(payload_type=0, seq=0, timestamp=0, ssrc=0xCD, payload=_pkt(0, 0).payload), sender)
     receiver_report = bytes([0x80, 201]) + (1).to_bytes(2, "big") + (0xAB).to_bytes(4, "big")  # RR, no report blocks
-    relay.handle(receiver_report + bye([0xAB]), ("127.0.0.1", 40001))  # compound RR + BYE, from the RTCP port
+    goodbye = bytes([0x81, 203, 0, 1]) + (0xAB).to_bytes(4, "big")  # RFC 3550 section 6.6: V=2, SC=1, PT=BYE (203), length 1
+    assert bye([0xAB]) == goodbye
+    relay.handle(receiver_report + goodbye, ("127.0.0.1", 40001))  # compound RR + BYE, from the RTCP port
     assert 0xAB not in relay.streams and 0xAB in relay.closed and 0xCD in relay.streams  # the other stream goes on
     assert relay.counters.goodbyes == 1 and relay.counters.malformed == 0
     relay.handle(bye([0xCD]), ("127.0.0.2", 40001))  # a BYE from another host does not end a stream

@@ -5,7 +5,7 @@ Pure logic, no sockets and no clock, so every rule is tested packet by packet
 order and returns the 8 kHz audio to play, in order: decoded payloads, silence for lost
 packets and for suppressed silence. Sequence numbers are judged as in RFC 3550 appendix
 A.1: a packet up to ``MAX_DROPOUT`` ahead of the next expected one is in order (with a
-gap), one up to ``MAX_MISORDER`` behind is late or a copy, and anything farther is a
+gap), one fewer than ``MAX_MISORDER`` behind is late or a copy, and anything farther is a
 probable restart of the sender's numbering, followed once the next packet confirms it
 (the two are played; nothing is counted lost).
 """
@@ -22,7 +22,7 @@ from nenv.serve.rtp_packet import RtpPacket
 LAW_OF_PT = {0: "mulaw", 8: "alaw"}  # RFC 3551 static payload types: PCMU, PCMA
 MAX_FILL = 8000  # samples: longest gap filled with silence (1 s); a longer timestamp jump restarts the timing
 MAX_DROPOUT = 3000  # RFC 3550 appendix A.1: a larger jump ahead is no longer a gap but a probable restart
-MAX_MISORDER = 100  # RFC 3550 appendix A.1: a packet this far behind is late; farther, a probable restart
+MAX_MISORDER = 100  # RFC 3550 appendix A.1: a packet fewer behind is late; this far or farther, a probable restart
 
 
 @dataclass
