@@ -73,6 +73,20 @@ def test_compand_is_idempotent_and_bounded(rng):
         assert snr > 30
 
 
+def test_compand_is_the_codecs_round_trip_and_none_rounds_to_16_bits(rng):
+    """compand against audioop's encoder and decoder (A-law for every sample, mu-law where audioop's
+    rounding agrees: non-negative samples; see the module doc); 'none' is 16-bit rounding alone:
+    x 32768, half to even, saturated (the WAV convention of soundfile and scipy.io.wavfile)."""
+    y = np.concatenate([rng.uniform(-1, 1, 5000), [-1.0, 0.0, 1.0, 0.5 / 32768, 1.5 / 32768]])
+    q = np.clip(np.round(y * 32768), -32768, 32767).astype(np.int16)
+    np.testing.assert_array_equal(g711.compand(y, law="none"), q / 32768.0)
+    a = np.frombuffer(audioop.alaw2lin(audioop.lin2alaw(q.tobytes(), 2), 2), dtype=np.int16)
+    np.testing.assert_array_equal(g711.compand(y, law="alaw"), a / 32768.0)
+    u = np.frombuffer(audioop.ulaw2lin(audioop.lin2ulaw(q.tobytes(), 2), 2), dtype=np.int16)
+    pos = q >= 0
+    np.testing.assert_array_equal(g711.compand(y, law="mulaw")[pos], u[pos] / 32768.0)
+
+
 def test_unknown_law_is_refused():
     from nenv.errors import InputError
 

@@ -25,6 +25,11 @@ def test_parse_and_build_round_trip_with_csrc_extension_and_padding():
     assert p.payload_type == 8 and p.seq == 7 and p.payload == b"\xd5\xd5\xd5"
     for bad in (b"", b"\x80\x00", bytes([0x40]) + raw[1:], raw[:14], head[:12] + b"\x00" * 3 + b"\xff"):
         assert rtp_packet.parse(bad) is None
+    # a header alone is a valid packet with no payload, and so is one whose padding is all that follows the header
+    assert rtp_packet.parse(rtp_packet.build(payload_type=0, seq=1, timestamp=0, ssrc=1, payload=b"")).payload == b""
+    assert rtp_packet.parse(bytes([0x80 | 0x20]) + head[1:12] + b"\x00\x00\x00\x04").payload == b""
+    # RFC 5761 section 4: on a shared port, a second octet of 192-223 is RTCP, anything else RTP
+    assert [rtp_packet.is_rtcp(bytes([0x80, t])) for t in (191, 192, 200, 223, 224)] == [False, True, True, True, False]
 
 
 
