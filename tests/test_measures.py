@@ -33,6 +33,33 @@ def test_gain_of_two_is_six_db_everywhere(arctic_refs, rng):
     assert measures.high_band_level_error(ref, ref / 2) == pytest.approx(-6.0206, abs=1e-6)
 
 
+def test_envelope_spectra_are_order_16_lpc_envelopes_by_scipy(arctic_refs):
+    """The smoothed spectra lsd_envelope compares, against scipy on every frame of a real sentence:
+    each Hann-windowed frame's autocorrelation (numpy.correlate; lag 0 raised by 1e-9 of itself, as
+    nenv does so that digital silence stays defined), the normal equations
+    (scipy.linalg.solve_toeplitz), the prediction error as the gain, |1/A| on the grid
+    (scipy.signal.freqz)."""
+    from scipy import linalg, signal
+
+    _, ref = arctic_refs[0]
+    got = measures.envelope_spectra(ref)
+    fr = measures.frames(ref)
+    w = signal.get_window("hann", measures.N_FFT)  # periodic Hann, as the module's doc says
+    f = np.fft.rfftfreq(measures.N_FFT, 1 / 16000)
+    checked = 0
+    for i in range(fr.shape[0]):
+        x = fr[i] * w
+        r = np.correlate(x, x, mode="full")[x.size - 1 : x.size + measures.ENVELOPE_ORDER]
+        if r[0] == 0:
+            continue
+        r[0] *= 1.0 + 1e-9
+        a = np.r_[1.0, -linalg.solve_toeplitz(r[:-1], r[1:])]
+        want = (r @ a) / np.sum(w * w) * np.abs(signal.freqz([1.0], a, worN=f, fs=16000)[1]) ** 2
+        np.testing.assert_allclose(got[i], want, rtol=1e-6, err_msg=f"frame {i}")
+        checked += 1
+    assert checked > 0.9 * fr.shape[0]
+
+
 def test_high_band_measures_ignore_the_low_band(rng):
     t = np.arange(32000) / 16000
     ref = 0.1 * np.sin(2 * np.pi * 1000 * t) + 0.01 * rng.standard_normal(t.size)
@@ -49,6 +76,35 @@ def test_an_empty_band_costs_the_floor_distance(rng):
     lp = signal.sosfilt(signal.butter(12, 3000, fs=16000, output="sos"), ref)
     d = measures.lsd(ref, lp)
     assert 20 < d <= measures.FLOOR_DB
+
+
+@pytest.mark.parametrize("band", [measures.HIGH_BAND, measures.FULL_BAND])
+def test_lsd_follows_its_definition_on_librosas_stft(arctic_refs, band):
+    """The module's definition applied to librosa's STFT (512-point periodic Hann, hop 160, centred
+    with zero padding): power |X|^2 / sum(w^2); frames within 40 dB of the loudest reference frame;
+    power below 80 dB under the loudest reference bin raised to that floor in both signals; per frame
+    the RMS over the band's bins of the dB difference, then the mean. The estimate is the reference
+    low-passed at 3 kHz, so the high band compares largely at the floor."""
+    import librosa
+    from scipy import signal
+
+    _, ref = arctic_refs[1]
+    est = signal.sosfilt(signal.butter(10, 3000, fs=16000, output="sos"), ref)
+    w = signal.get_window("hann", 512)
+
+    def power(y):
+        return np.abs(librosa.stft(y, n_fft=512, hop_length=160, window="hann", center=True, pad_mode="constant")).T ** 2 / np.sum(w * w)
+
+    p_ref, p_est = power(ref), power(est)
+    e = p_ref.sum(axis=1)
+    active = e >= e.max() * 10 ** (-40 / 10)
+    floor = p_ref.max() * 10 ** (-80 / 10)
+    f = np.fft.rfftfreq(512, 1 / 16000)
+    sel = (f >= band[0]) & (f <= band[1])
+    d = 10 * np.log10(np.maximum(p_ref[active][:, sel], floor) / np.maximum(p_est[active][:, sel], floor))
+    want = np.mean(np.sqrt(np.mean(d**2, axis=1)))
+    assert 0.5 < active.mean() < 1.0  # the rule leaves some frames out of this sentence
+    assert measures.lsd(ref, est, band=band) == pytest.approx(want, rel=1e-9)
 
 
 def _band_noise(rng, n, lo, hi):
