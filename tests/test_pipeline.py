@@ -241,3 +241,11 @@ def test_short_subframes_equal_scipy_lfilter(rng):
     syn.k_prev[0], syn.log_g_prev[0] = k, np.log(0.5)
     out = syn.process(u, k=np.tile(k, (6, 1)), gain=np.full(6, 0.5))
     np.testing.assert_allclose(out, signal.lfilter([0.5], a, u), rtol=1e-9, atol=1e-12)
+
+
+@pytest.mark.parametrize("x", [np.zeros(0), np.zeros((2, 800)), np.zeros((800, 1))], ids=["empty", "two-rows", "column"])
+def test_extend_refuses_what_is_not_a_non_empty_mono_signal(x):
+    from nenv.errors import InputError
+
+    with pytest.raises(InputError, match="non-empty mono"):
+        pipeline.extend(x, system=pipeline.make_system("unextended"))
