@@ -258,6 +258,7 @@ def test_output_is_exactly_twice_as_long_for_every_length_within_two_hops(rng):
     little padding shows)."""
     x = 0.5 * rng.uniform(-1, 1, 400)
     for n in range(1, 161):
-        y = pipeline.extend(x[:n], system=pipeline.make_system("unextended")).y
-        assert y.shape == (2 * n,), n
+        out = pipeline.extend(x[:n], system=pipeline.make_system("unextended"))
+        y = out.y
+        assert y.shape == (2 * n,) and out.sr == 16000, n
         assert np.any(y[-4:] != 0), n  # the end is there: samples of the input, interpolated
