@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from scipy import signal
 
 from nenv.dsp import cepstrum, lpc
@@ -163,3 +164,11 @@ def test_codebook_cell_and_novelty_by_hand():
     np.testing.assert_array_equal(cell[:2], [0, 1])
     np.testing.assert_allclose(dist[:2], [5 / np.sqrt(2), 1 / np.sqrt(2)], rtol=1e-12)
     assert dist[2] > 1e5
+
+
+def test_band_bins_include_both_edges_and_refuse_an_empty_band():
+    """The rfft grid of 512 points at 16 kHz has a bin every 31.25 Hz (numpy.fft.rfftfreq)."""
+    assert cepstrum.band_bins(300.0, 3400.0, n_fft=512, sr=16000) == (10, 108)  # 312.5 .. 3375 Hz
+    assert cepstrum.band_bins(62.5, 4000.0, n_fft=512, sr=16000) == (2, 128)  # both edges on a bin: both in
+    with pytest.raises(ValueError, match="no bin"):
+        cepstrum.band_bins(40.0, 60.0, n_fft=512, sr=16000)  # between 31.25 and 62.5 Hz
