@@ -64,6 +64,38 @@ def test_context_stacking_is_chunk_invariant(rng):
     np.testing.assert_array_equal(whole[0], np.tile(f[0], 4))
 
 
+def test_level_targets_are_band_powers_per_sample(rng):
+    """The training targets' levels (wideband_targets, low_band_target) against textbook values: a
+    sine of amplitude A carries power A^2/2 per sample, all of it in the band that holds its
+    frequency (Parseval); white noise of variance s^2 carries s^2 (8000 - 3400) / 8000 above 3.4 kHz;
+    a tone outside the band adds nothing; the narrowband frame energy is subtracted in dB."""
+    from nenv.chain.features import low_band_target, wideband_targets
+
+    t = np.arange(32000)
+    a = 0.3
+    want = 10 * np.log10(a * a / 2)  # -13.47 dB
+
+    def frames(x):
+        return lpc.frame(x, frame_length=480, hop_length=160)
+
+    def level(x, nb_db=0.0):
+        f = frames(x)
+        return wideband_targets(f, np.full(f.shape[0], nb_db), settings=FeatureSettings())[1]
+
+    high, low, off = (a * np.sin(2 * np.pi * f * t / 16000 + 0.3) for f in (5000, 150, 1000))
+    assert np.median(level(high)) == pytest.approx(want, abs=0.02)
+    assert np.median(level(high + 3 * off)) == pytest.approx(want, abs=0.02)  # a strong 1 kHz tone is not in the band
+    assert np.median(level(3 * off)) < want - 40
+    np.testing.assert_allclose(level(high, nb_db=6.0), level(high) - 6.0, atol=1e-9)
+    noise = 0.2 * rng.standard_normal(t.size)
+    assert np.mean(level(noise)) == pytest.approx(10 * np.log10(0.04 * 4600 / 8000), abs=0.3)
+    f = frames(low + 3 * off)
+    assert np.median(low_band_target(f, np.zeros(f.shape[0]))) == pytest.approx(want, abs=0.05)  # 50-300 Hz
+    np.testing.assert_allclose(low_band_target(f, np.full(f.shape[0], 6.0)), low_band_target(f, np.zeros(f.shape[0])) - 6.0, atol=1e-9)
+    f = frames(high)
+    assert np.median(low_band_target(f, np.full(f.shape[0], 6.0))) < want - 40
+
+
 def test_envelope_gain_gives_the_requested_high_band_power(rng):
     # Parseval: for a unit-power white excitation through G/A, the 3.4-8 kHz power of the
     # output must be nb_power * 10^(level/10). Checked by filtering real noise (scipy.signal.lfilter).
