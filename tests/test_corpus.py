@@ -64,9 +64,19 @@ def test_scan_and_speaker_rules(tmp_path):
     assert [Path(f.path).name for f in found] == ["x.wav", "y.flac", "z.ogg", "v.aiff", "w.mp3"]
     assert [f.speaker for f in found] == ["a/s1", "a/s1", "a/s2", "a/s3", "a/s3"]
     assert [f.speaker for f in corpus.scan(tmp_path, speaker_rule="depth:0")] == ["a"] * 5
+    assert [f.speaker for f in corpus.scan(tmp_path, speaker_rule="depth:1")] == ["s1", "s1", "s2", "s3", "s3"]
+    assert [f.speaker for f in corpus.scan(tmp_path, speaker_rule="depth:2")] == ["a/s1", "a/s1", "a/s2", "a/s3", "a/s3"]  # too deep: the parent
+    (tmp_path / "flat").mkdir()
+    sf.write(tmp_path / "flat" / "solo.wav", np.zeros(1600), 16000)
+    for rule in ("parent", "depth:0"):  # a file right in the root is its own speaker
+        assert [f.speaker for f in corpus.scan(tmp_path / "flat", speaker_rule=rule)] == ["solo"]
     man = tmp_path / "m.csv"
     man.write_text("path,speaker\na/s1/x.wav,alice\na/s2/z.ogg,bob\n")
     assert [(f.speaker) for f in corpus.scan(tmp_path, manifest=str(man))] == ["alice", "bob"]
+    for text in ("file,who\na/s1/x.wav,alice\n", "path,speaker\n"):  # other columns; a header alone
+        man.write_text(text)
+        with pytest.raises(ConfigError, match="columns path,speaker"):
+            corpus.scan(tmp_path, manifest=str(man))
     with pytest.raises(InputError, match="no audio files"):
         corpus.scan(tmp_path / "b")
     with pytest.raises(InputError, match="does not exist"):
@@ -120,6 +130,25 @@ def test_named_speakers_go_where_the_recipe_says():
         corpus.split_speakers(reps, val_fraction=0.2, seed=0, val_speakers=["zz"])
     with pytest.raises(ConfigError, match="both"):
         corpus.split_speakers(reps, val_fraction=0.2, seed=0, val_speakers=["a"], train_speakers=["a"])
+
+
+def test_split_keeps_a_speaker_on_each_side_at_the_edges():
+    """The draw's limits: at least one validation speaker unless the recipe names some, at least one
+    training speaker unless it names some, and two speakers are enough."""
+    reps = [corpus.FileReport(path=f"{s}/{i}.wav", speaker=s) for s in "abcdefghij" for i in range(3)]
+
+    def speakers(val_fraction, **named):
+        tr, va = corpus.split_speakers(reps if named.pop("all", True) else reps[:6], val_fraction=val_fraction, seed=0, **named)
+        return {r.speaker for r in tr}, {r.speaker for r in va}
+
+    tr, va = speakers(0.2, all=False)  # two speakers: one each
+    assert len(tr) == len(va) == 1 and tr | va == {"a", "b"}
+    assert len(speakers(0.0)[1]) == 1  # none asked for: still one to validate on
+    assert len(speakers(1.0)[0]) == 1  # all asked for: still one to train on
+    assert speakers(1.0, train_speakers=["c"])[0] == {"c"}  # a named training speaker is enough
+    assert speakers(0.0, val_speakers=["a"])[1] == {"a"}  # a named validation speaker is enough
+    with pytest.raises(ConfigError, match="no speaker for training"):
+        speakers(0.2, val_speakers=list("abcdefghij"))
 
 
 def test_the_same_recording_gives_the_same_training_pairs_wherever_it_lies(tmp_path):

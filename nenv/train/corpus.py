@@ -66,7 +66,8 @@ def scan(root: str | os.PathLike, *, speaker_rule: str = "parent", manifest: str
     """Every audio file below ``root`` (sorted; ``AUDIO_SUFFIXES``, hidden files and folders skipped), with a speaker id.
 
     The id comes from the path (``parent``: the folder holding the file, relative to
-    root; ``depth:N``: the N-th folder below root) or from a manifest CSV with the
+    root; ``depth:N``: the N-th folder below root, counted from 0, or the folder holding the file
+    when it lies less deep; a file right in root is its own speaker) or from a manifest CSV with the
     columns ``path,speaker`` (paths relative to root or absolute).
     """
     r = Path(root)
