@@ -86,3 +86,24 @@ def test_groups_follow_the_source_label_or_the_median_f0_rule():
         y, _ = sf.read(HELDOUT / f"{r['clip']}.flac")
         f0 = median_f0(y)
         assert abs(f0 - recorded) <= 3 and r["group"] == ("female" if f0 > F0_SPLIT_HZ else "male"), (r["clip"], f0)
+
+
+def test_the_groups_file_is_read_as_its_header_says(tmp_path):
+    """read_groups: columns found by the header in any order, other columns ignored, spaces trimmed,
+    a row without a group left out (its clip then counts in no group), the set's own clips.csv read
+    as is; a file without both columns refused."""
+    from nenv.errors import InputError
+    from nenv.report.evaluate import group_of, read_groups
+
+    p = tmp_path / "g.csv"
+    p.write_text("speaker,group,clip\ns1, female ,a0007\ns2,,a0009\ns3,male,calls/b12\n")
+    g = read_groups(p)
+    assert g == {"a0007": "female", "calls/b12": "male"}
+    assert group_of("a0007", g) == "female" and group_of("a0009", g) is None and group_of("other/calls/b12", g) is None
+    assert group_of("x/b12", {"b12": "male"}) == "male"  # else the clip's last path part
+    sets = read_groups(HELDOUT / "clips.csv")
+    assert {r["clip"]: r["group"] for r in _clips()} == sets
+    for text in ("clip,speaker\na0007,s1\n", "clip,group\n", ""):
+        p.write_text(text)
+        with pytest.raises(InputError, match="columns clip and group"):
+            read_groups(p)

@@ -89,6 +89,31 @@ def test_fold_mirrors_and_modulate_shifts(rng):
     assert {2400, 4400} <= peaks["modulate"]  # 1 kHz +- the 3.4 kHz shift
 
 
+@pytest.mark.parametrize("method", ["rectify", "fold", "modulate"])
+@pytest.mark.parametrize("whiten", [False, True])
+def test_each_excitation_is_the_same_in_any_chunks_and_modulation_keeps_its_phase(method, whiten, rng):
+    """Hops fed in uneven chunks give the one-pass excitation exactly; the modulator's carrier runs
+    on across chunks: without whitening its output is the interpolated residual times
+    2 cos(2 pi 3400 n / 16000), n counted from the call's first sample (the shift's documented default)."""
+    e = rng.standard_normal(HOP_NB * 30)
+    whole, rms = ExcitationExtender(method, whiten=whiten).process(e)
+    ext = ExcitationExtender(method, whiten=whiten)
+    parts, cuts = [], [0, 1, 4, 5, 13, 30]
+    for a, b in zip(cuts[:-1], cuts[1:]):
+        parts.append(ext.process(e[a * HOP_NB : b * HOP_NB]))
+    np.testing.assert_array_equal(np.concatenate([u for u, _ in parts]), whole)
+    np.testing.assert_array_equal(np.concatenate([r for _, r in parts]), rms)
+    if method == "modulate" and not whiten:
+        from nenv.dsp.excitation import DEFAULT_SHIFT_HZ
+
+        assert DEFAULT_SHIFT_HZ == 3400.0
+        carrier = 2 * np.cos(2 * np.pi * DEFAULT_SHIFT_HZ * np.arange(whole.size) / 16000)
+        from nenv.dsp.synthesis import UPSAMPLER_HISTORY, upsample_rows
+
+        interpolated = upsample_rows(e[None, :], np.zeros((1, UPSAMPLER_HISTORY)))[0]  # from silence, as a new call
+        np.testing.assert_allclose(whole, interpolated * carrier, rtol=0, atol=1e-12)
+
+
 def test_synthesis_stays_bounded_whatever_reflection_coefficients_it_is_given(rng):
     # The guard rejects unstable envelopes before synthesis; the synthesis is the second line: |k| is
     # clamped below 1 (MAX_REFLECTION) and NaN taken as 0, so even coefficients of 1.2 and -3 give a
