@@ -101,9 +101,37 @@ def test_the_groups_file_is_read_as_its_header_says(tmp_path):
     assert g == {"a0007": "female", "calls/b12": "male"}
     assert group_of("a0007", g) == "female" and group_of("a0009", g) is None and group_of("other/calls/b12", g) is None
     assert group_of("x/b12", {"b12": "male"}) == "male"  # else the clip's last path part
+    p.write_text("clip,group\na0007,female\n")  # just the two columns
+    assert read_groups(p) == {"a0007": "female"}
     sets = read_groups(HELDOUT / "clips.csv")
     assert {r["clip"]: r["group"] for r in _clips()} == sets
     for text in ("clip,speaker\na0007,s1\n", "clip,group\n", ""):
         p.write_text(text)
         with pytest.raises(InputError, match="columns clip and group"):
             read_groups(p)
+
+
+def test_means_per_system_and_per_group_are_the_plain_means_of_their_clips():
+    """evaluate.means against numpy means of hand-picked clips: each (law, system) over all its clips,
+    then each group's, a clip outside every group under "(no group)"; NaN left out of a mean."""
+    from dataclasses import fields
+
+    from nenv.report.evaluate import Row, means
+    from nenv.report.measures import Scores
+
+    names = [f.name for f in fields(Scores)]
+
+    def sc(v):
+        return Scores(**{m: float(v) for m in names})
+
+    values = {("a", "neural"): 1.0, ("b", "neural"): 2.0, ("c", "neural"): 6.0, ("d", "neural"): np.nan,
+              ("a", "codebook"): 10.0, ("b", "codebook"): 20.0, ("c", "codebook"): 30.0, ("d", "codebook"): 40.0}
+    rows = [Row(clip, "mulaw", system, sc(v)) for (clip, system), v in values.items()]
+    groups = {"a": "female", "b": "male", "c": "female"}  # d is in no group
+    got = {(r.clip, r.system): r.scores.lsd_high for r in means(rows, groups)}
+    want = {("mean", "neural"): 3.0, ("mean female", "neural"): 3.5, ("mean male", "neural"): 2.0, ("mean (no group)", "neural"): np.nan,
+            ("mean", "codebook"): 25.0, ("mean female", "codebook"): 20.0, ("mean male", "codebook"): 20.0, ("mean (no group)", "codebook"): 40.0}
+    assert set(got) == set(want)
+    for k, v in want.items():
+        assert (np.isnan(got[k]) and np.isnan(v)) or got[k] == v, k
+    assert [r.clip for r in means(rows)] == ["mean", "mean"]  # without groups: one mean per system
