@@ -240,8 +240,8 @@ def test_silence_with_a_click(tmp_path):
 def test_sources_are_listed_worst_first_and_totals_add_up():
     rec = records.Records(
         summaries=[
-            {"source": "b", "group": "g1", "hops": 100, "rejected": 10, "by_reason": {"level": 3, "novel": 7}},
-            {"source": "c", "group": "g2", "hops": 100, "rejected": 50, "by_reason": {"level": 4}},
+            {"source": "b", "group": "g1", "hops": 20, "rejected": 10, "by_reason": {"level": 3, "novel": 7}},
+            {"source": "c", "group": "g2", "hops": 400, "rejected": 50, "by_reason": {"level": 4}},
             {"source": "a", "group": "g1", "hops": 100, "rejected": 0, "by_reason": {}},
         ],
         rejects=[{"source": "killed", "group": "g2", "hop": 5, "reasons": ["level", "mismatch"]}],
@@ -249,10 +249,11 @@ def test_sources_are_listed_worst_first_and_totals_add_up():
     rows = audit.table(rec)
     # highest rejection rate first; a source whose session died before its summary (hops unknown) and
     # the sources with none rejected after, by name
-    assert [r.source for r in rows] == ["c", "b", "a", "killed"]
+    assert [r.source for r in rows] == ["b", "c", "a", "killed"]  # 10 of 20 hops is worse than 50 of 400
+    assert (rows[0].rate, rows[1].rate, rows[2].rate) == (0.5, 0.125, 0.0) and np.isnan(rows[3].rate)
     assert rows[3].hops == 0 and rows[3].rejected == 1 and rows[3].by_reason == {"level": 1, "mismatch": 1}
     (total,) = audit.totals(rows)
-    assert (total.hops, total.rejected) == (300, 61) and total.by_reason == {"level": 8, "novel": 7, "mismatch": 1}
+    assert (total.hops, total.rejected) == (520, 61) and total.by_reason == {"level": 8, "novel": 7, "mismatch": 1}
     by_group = {t.source: t for t in audit.totals(rows, key=lambda r: r.group)}
     assert by_group["g1"].rejected == 10 and by_group["g2"].by_reason == {"level": 5, "mismatch": 1}
 
