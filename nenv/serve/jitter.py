@@ -4,7 +4,7 @@ Pure logic, no sockets and no clock, so every rule is tested packet by packet
 (``tests/test_jitter.py``). :class:`PlayOut` takes the packets of one SSRC in arrival
 order and returns the 8 kHz audio to play, in order: decoded payloads, silence for lost
 packets and for suppressed silence. Sequence numbers are judged as in RFC 3550 appendix
-A.1: a packet up to ``MAX_DROPOUT`` ahead of the next expected one is in order (with a
+A.1: a packet fewer than ``MAX_DROPOUT`` ahead of the next expected one is in order (with a
 gap), one fewer than ``MAX_MISORDER`` behind is late or a copy, and anything farther is a
 probable restart of the sender's numbering, followed once the next packet confirms it
 (the two are played; nothing is counted lost).
@@ -21,7 +21,7 @@ from nenv.serve.rtp_packet import RtpPacket
 
 LAW_OF_PT = {0: "mulaw", 8: "alaw"}  # RFC 3551 static payload types: PCMU, PCMA
 MAX_FILL = 8000  # samples: longest gap filled with silence (1 s); a longer timestamp jump restarts the timing
-MAX_DROPOUT = 3000  # RFC 3550 appendix A.1: a larger jump ahead is no longer a gap but a probable restart
+MAX_DROPOUT = 3000  # RFC 3550 appendix A.1: a jump ahead this large or larger is no longer a gap but a probable restart
 MAX_MISORDER = 100  # RFC 3550 appendix A.1: a packet fewer behind is late; this far or farther, a probable restart
 
 
@@ -85,7 +85,7 @@ class PlayOut:
             c.packets += 2
             c.resyncs += 1
             return out + self._drain(force=False)
-        c.late_or_duplicate += 1  # behind the play-out point, within MAX_MISORDER
+        c.late_or_duplicate += 1  # behind the play-out point, by fewer than MAX_MISORDER
         return []
 
     def pad(self, n: int) -> list[np.ndarray]:
