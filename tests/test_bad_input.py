@@ -262,6 +262,18 @@ def test_f15_record_file_that_is_not_a_record(tmp_path, speech):
 # ---- content -------------------------------------------------------------------------------
 
 
+def test_degrade_refuses_digital_silence_but_not_a_quiet_recording(tmp_path):
+    """degrade makes test calls from wideband recordings: an all-zero file cannot be one; a very quiet
+    one (a single sample of 1 LSB) can."""
+    sf.write(tmp_path / "zero.wav", np.zeros(16000), 16000, subtype="PCM_16")
+    _refused(_run("degrade", tmp_path / "zero.wav", tmp_path / "nb.wav"), "digital silence")
+    assert not (tmp_path / "nb.wav").exists()
+    quiet = np.zeros(16000)
+    quiet[8000] = 1 / 32768
+    sf.write(tmp_path / "quiet.wav", quiet, 16000, subtype="PCM_16")
+    assert _run("degrade", tmp_path / "quiet.wav", tmp_path / "nb.wav").exit_code == 0 and (tmp_path / "nb.wav").exists()
+
+
 @pytest.mark.parametrize("method", ["neural", "codebook", "imaging", "unextended"])
 def test_c1_digital_silence_gives_silence_of_twice_the_length(tmp_path, method):
     """A silent leg is common in a call archive: it is extended like any file (exit 0), to exact zeros

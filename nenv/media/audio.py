@@ -167,30 +167,6 @@ def _wav_truncation(path: Path, frames: int) -> str | None:
     return None
 
 
-def validate(y: np.ndarray, *, sr: int, name: str = "signal") -> None:
-    """Check that ``y`` is a usable mono signal at a supported rate.
-
-    Parameters
-    ----------
-    y : np.ndarray [shape=(n,)]
-    sr : int [Hz]
-    name : str, used in messages
-
-    Raises
-    ------
-    InputError
-    """
-    if y.ndim != 1:
-        raise InputError(f"{name}: expected a mono signal, got an array of shape {y.shape}")
-    if y.size == 0:
-        raise InputError(f"{name}: holds no samples")
-    if not np.all(np.isfinite(y)):
-        bad = int(np.count_nonzero(~np.isfinite(y)))
-        raise InputError(f"{name}: {count(bad, 'sample')} {'is' if bad == 1 else 'are'} NaN or infinite")
-    if not SUPPORTED_SR[0] <= sr <= SUPPORTED_SR[1]:
-        raise InputError(f"{name}: sr={sr} Hz is outside the supported range {SUPPORTED_SR[0]}..{SUPPORTED_SR[1]} Hz")
-
-
 def is_silent(y: np.ndarray) -> bool:
     """True if every sample is exactly zero (digital silence)."""
     return not np.any(y)
