@@ -105,6 +105,16 @@ def test_f5_truncated_file(tmp_path, speech):
     res = _run("extend", tmp_path / "cut.wav", tmp_path / "out.wav")
     _extended(res, tmp_path / "out.wav", 10000)
     assert "truncated" in res.stderr and "24000" in res.stderr
+    # the same with an odd-sized chunk before the audio (RIFF pads it to an even length), as recorders
+    # write; and a whole file says nothing of truncation
+    listed = data[:36] + b"LIST" + (5).to_bytes(4, "little") + b"INFOx\x00" + data[36:]
+    (tmp_path / "cut2.wav").write_bytes(listed[: 58 + 2 * 10000 + 1])
+    res = _run("extend", tmp_path / "cut2.wav", tmp_path / "out3.wav")
+    _extended(res, tmp_path / "out3.wav", 10000)
+    assert "truncated" in res.stderr and "24000" in res.stderr
+    res = _run("extend", tmp_path / "whole.wav", tmp_path / "out4.wav")
+    _extended(res, tmp_path / "out4.wav", 24000)
+    assert "is truncated" not in res.stderr  # (the folder of this test is named after it)
     # a truncated FLAC: libsndfile fails part-way through; the output is not written
     sf.write(tmp_path / "whole.flac", speech, 8000)
     data = (tmp_path / "whole.flac").read_bytes()
