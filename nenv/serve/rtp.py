@@ -62,6 +62,7 @@ TAIL_SAMPLES = 160  # 8 kHz samples of silence that push the tail out (a partial
 
 class Relay:
     """Receive PCMU/PCMA RTP, send L16/16000 RTP; see the module docstring."""
+    clock = staticmethod(time.monotonic)  # the relay's time (arrival stamps are on it); tests that drive handle() and _expire() by hand set their own
 
     def __init__(
         self,
@@ -142,7 +143,7 @@ class Relay:
                                   keep_going=True, on_failure=notice)  # a full disk stops the record, never the calls
             self.records = CallRecords(writer, group=group)
             self.multi.on_rejected = self.records.rejected
-        self._last_step = self._last_expiry = time.monotonic()
+        self._last_step = self._last_expiry = self.clock()
         self._by_call: dict[str, RelayStream] = {}
         self.drops = udp.Drops(self.sock, self.rtcp_sock)  # also asks for arrival stamps (see _receive_all)
         self.load = LoadWatch(self.counters, self.drops.running, step_s=tick_s, notice=notice)
@@ -170,23 +171,23 @@ class Relay:
             self._shutdown()
 
     def serve(self) -> None:
-        heard = time.monotonic()  # every packet that arrived before this has been handled
+        heard = self.clock()  # every packet that arrived before this has been handled
         try:
             while not self._stop.is_set():
-                wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - time.monotonic())
+                wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - self.clock())
                 ready, _, _ = select.select([self.sock] + ([self.rtcp_sock] if self.rtcp_sock else []), [], [], wait)
-                looked = time.monotonic()  # what arrived before this waits in a ready socket
+                looked = self.clock()  # what arrived before this waits in a ready socket
                 now_heard = looked
                 for sock in ready:
                     last = self._receive_all(sock, heard)
                     if last is not None:  # datagrams still wait: heard only up to the last one handled
                         now_heard = min(now_heard, last)
                 heard = max(heard, now_heard)
-                if self.multi is not None and time.monotonic() - self._last_step >= self.tick:
+                if self.multi is not None and self.clock() - self._last_step >= self.tick:
                     self.step()
-                if time.monotonic() - self._last_expiry >= EXPIRY_CHECK_S:
+                if self.clock() - self._last_expiry >= EXPIRY_CHECK_S:
                     self._expire(heard)
-                self.load.round(time.monotonic() - looked)
+                self.load.round(self.clock() - looked)
         finally:
             self._shutdown()
 
@@ -210,7 +211,7 @@ class Relay:
 
     def step(self) -> None:
         """Batched mode: run every queued hop of every stream and send what is ready."""
-        self._last_step = time.monotonic()
+        self._last_step = self.clock()
         if self.multi is None:
             return
         out = [(self._by_call[call_id], y) for call_id, y in self.multi.step().items() if y.size]
@@ -263,7 +264,7 @@ class Relay:
             # unless the first source has gone quiet (a sender that restarted on a new port, or whose NAT
             # binding changed): its packets are held until REBIND_AFTER_S after the source's last packet,
             # then followed (nothing lost) or, if the source spoke again meanwhile, dropped as conflicts
-            if (time.monotonic() if heard is None else heard) - st.last_seen < REBIND_AFTER_S:
+            if (self.clock() if heard is None else heard) - st.last_seen < REBIND_AFTER_S:
                 self._hold_newcomer(st, pkt, addr)
                 return
             self._follow_newcomer(st, addr)
@@ -276,7 +277,7 @@ class Relay:
                 return
             engine = CallEngine(system=self.make_system()) if self.multi is None else None
             out = Packetizer.starting_at_random(self.pt_out, OUT_SAMPLES)
-            st = RelayStream(engine, LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), out, time.monotonic(), source=addr)
+            st = RelayStream(engine, LAW_OF_PT[pkt.payload_type], PlayOut(pkt, window=self.window), out, self.clock(), source=addr)
             if engine is not None:
                 self._count_fallbacks(st)  # the engine keeps no per-hop verdicts: counted here
             else:
@@ -285,7 +286,7 @@ class Relay:
                 self._by_call[st.call_id] = st
             self.streams[pkt.ssrc] = st
             self.counters.streams_opened += 1
-        st.last_seen = time.monotonic()
+        st.last_seen = self.clock()
         st.tail_sent = False
         for x in st.playout.push(pkt):
             self._feed(st, x)
@@ -307,7 +308,7 @@ class Relay:
         st.newcomer, st.newcomer_packets = (), []
         st.source = addr
         st.counters.source_changes += 1
-        st.last_seen = time.monotonic()
+        st.last_seen = self.clock()
         st.tail_sent = False
         for pkt in held:
             for x in st.playout.push(pkt):
@@ -364,7 +365,7 @@ class Relay:
         Quiet is measured up to ``heard`` (default: now), the last moment every packet that had
         arrived was handled: time the relay itself spent busy (a long step, with packets waiting in
         the socket) is not the sender's silence, and inserts none."""
-        now = self._last_expiry = time.monotonic()
+        now = self._last_expiry = self.clock()
         heard = now if heard is None else heard
         for ssrc, st in list(self.streams.items()):
             if st.newcomer and heard - st.last_seen >= REBIND_AFTER_S:  # the source stayed quiet: follow the newcomer
