@@ -47,8 +47,10 @@ def test_synthesis_equals_scipy_lfilter_for_fixed_coefficients(rng):
     syn = AllPoleSynthesizer(order=16)
     k, _ = lpc.reflection(a)
     syn.k_prev[0], syn.log_g_prev[0] = k, np.log(0.3)  # start as if the previous frame had the same envelope
-    out = np.concatenate([syn.process(u[i * 480 : (i + 1) * 480], k=np.tile(k, (3, 1)), gain=np.full(3, 0.3)) for i in range(4)])
-    np.testing.assert_allclose(out, signal.lfilter([0.3], a, u), rtol=1e-9, atol=1e-12)
+    cuts = np.cumsum([0, 1, 0, 3, 2, 6])  # hops per call, one and none included
+    out = [syn.process(u[s * HOP_WB : e * HOP_WB], k=np.tile(k, (e - s, 1)), gain=np.full(e - s, 0.3)) for s, e in zip(cuts[:-1], cuts[1:])]
+    assert [o.size for o in out] == [HOP_WB * n for n in (1, 0, 3, 2, 6)]
+    np.testing.assert_allclose(np.concatenate(out), signal.lfilter([0.3], a, u), rtol=1e-9, atol=1e-12)
 
 
 def test_synthesis_has_no_click_at_envelope_changes(rng):
