@@ -442,9 +442,10 @@ def test_m4_model_of_another_feature_version(tmp_path, call):
 
 @pytest.mark.parametrize(
     "text, needle",
-    [("epochz = 3\n", "epochz"), ('epochs = "3"\n', "epochs"), ("hidden = 64\n", "hidden"), ("[section]\nx = 1\n", "flat"), ("\x00\x01", "TOML")],
+    [("epochz = 3\n", "epochz"), ('epochs = "3"\n', "epochs"), ("hidden = 64\n", "hidden"), ("[section]\nx = 1\n", "flat"), ("\x00\x01", "TOML"),
+     ("guard_percentile = 150\n", "guard_percentile' must be more than 50 and at most 100"), ("learning_rate = nan\n", "finite")],
 )
-def test_m5_config_unknown_keys_and_wrong_types(tmp_path, text, needle):
+def test_m5_config_unknown_keys_wrong_types_and_values_out_of_range(tmp_path, text, needle):
     cfg = tmp_path / "recipe.toml"
     cfg.write_text(text)
     _refused(_run("train", "--config", cfg, "--out", tmp_path / "m"), needle)

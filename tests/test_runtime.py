@@ -245,6 +245,25 @@ def test_loading_a_model_leaves_the_floating_point_mode_alone():
     assert tiny[0] > 0 and (tiny * 1.0)[0] > 0
 
 
+def test_the_network_runs_on_one_thread_that_never_spins_and_flushes_denormals_only_when_asked():
+    """A gateway runs many calls per core: each session uses the calling thread alone (onnxruntime's
+    intra- and inter-op pools of one, sequential) and never spin-waits between hops; flushing
+    denormals changes the thread's arithmetic for the whole process, so it is set only when asked."""
+    import onnxruntime as ort
+
+    from nenv.chain.checkpoint import session_options
+
+    for flush in (False, True):
+        so = session_options(flush_denormals=flush)
+        assert (so.intra_op_num_threads, so.inter_op_num_threads, so.execution_mode) == (1, 1, ort.ExecutionMode.ORT_SEQUENTIAL)
+        assert so.get_session_config_entry("session.intra_op.allow_spinning") == so.get_session_config_entry("session.inter_op.allow_spinning") == "0"
+        if flush:
+            assert so.get_session_config_entry("session.set_denormal_as_zero") == "1"
+        else:
+            with pytest.raises(Exception, match="set_denormal_as_zero"):  # not set at all
+                so.get_session_config_entry("session.set_denormal_as_zero")
+
+
 def test_a_long_call_keeps_no_verdicts_unless_asked(call_audio):
     """Memory must not grow with a call's length: the streaming engine keeps no per-hop verdicts by default."""
     from nenv.chain import checkpoint

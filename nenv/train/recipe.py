@@ -6,6 +6,7 @@ is refused with a message naming the key.
 
 from __future__ import annotations
 
+import math
 import os
 import tomllib
 import typing
@@ -143,20 +144,68 @@ def load(path: str | os.PathLike | None, *, overrides: typing.Sequence[str] = ()
     return recipe
 
 
+# Allowed values of the numeric keys: (lowest, highest, lowest allowed, highest allowed); None = no bound.
+# Every number must also be finite (TOML can spell nan and inf).
+LIMITS: dict[str, tuple[float | None, float | None, bool, bool]] = {
+    "min_active_s": (0, None, True, True),
+    "max_clipped_fraction": (0, 1, True, True),
+    "min_cutoff_hz": (0, 8000, False, True),
+    "val_fraction": (0, 1, False, False),
+    "split_seed": (0, None, True, True),
+    "max_files": (0, None, True, True),  # 0: every file
+    "copies": (1, None, True, True),
+    "warp_max": (1.0, 1.3, True, True),  # 1.0: off
+    "level_min_dbov": (None, 0, True, True),
+    "level_max_dbov": (None, 0, True, True),
+    "noise_probability": (0, 1, True, True),
+    "active_range_db": (0, None, False, True),
+    "workers": (1, None, True, True),
+    "context": (0, None, True, True),
+    "dropout": (0, 1, True, False),
+    "epochs": (1, None, True, True),
+    "batch_size": (1, None, True, True),
+    "learning_rate": (0, None, False, True),
+    "weight_decay": (0, None, True, True),
+    "patience": (1, None, True, True),
+    "level_weight": (0, None, True, True),
+    "over_weight": (0, None, True, True),
+    "seed": (0, None, True, True),
+    "threads": (1, None, True, True),
+    "codebook_size": (2, None, True, True),
+    "stability_margin": (0, 1, True, False),
+    "level_margin_db": (0, None, True, True),
+    "guard_percentile": (50, 100, False, True),  # the guard's range spans the central part of the training values
+}
+
+
+def within(value: float, lo: float | None, hi: float | None, lo_in: bool, hi_in: bool) -> bool:
+    """Whether ``value`` lies in the range (a NaN lies in none)."""
+    above = lo is None or (value >= lo if lo_in else value > lo)
+    below = hi is None or (value <= hi if hi_in else value < hi)
+    return bool(above and below)
+
+
+def range_words(lo: float | None, hi: float | None, lo_in: bool, hi_in: bool) -> str:
+    """A range in words: 'at least 1', 'more than 0 and at most 8000', ..."""
+    parts = ([f"{'at least' if lo_in else 'more than'} {lo:g}"] if lo is not None else []) + ([f"{'at most' if hi_in else 'less than'} {hi:g}"] if hi is not None else [])
+    return " and ".join(parts)
+
+
 def _validate(r: Recipe) -> None:
     from nenv.dsp.g711 import LAWS
 
     bad = [law for law in r.laws if law not in LAWS]
     if bad or not r.laws:
         raise ConfigError(f"recipe key 'laws' must list some of {LAWS}, got {r.laws}")
-    if not 0 < r.val_fraction < 1:
-        raise ConfigError(f"recipe key 'val_fraction' must lie between 0 and 1, got {r.val_fraction}")
-    if r.context < 0 or r.copies < 1 or r.epochs < 1 or r.batch_size < 1 or r.codebook_size < 2 or not r.hidden:
-        raise ConfigError("recipe keys context >= 0, copies >= 1, epochs >= 1, batch_size >= 1, codebook_size >= 2 and a non-empty hidden list are required")
+    for key, value in asdict(r).items():
+        if isinstance(value, float) and not math.isfinite(value):
+            raise ConfigError(f"recipe key '{key}' must be a finite number, got {value}")
+        if key in LIMITS and not within(value, *LIMITS[key]):
+            raise ConfigError(f"recipe key '{key}' must be {range_words(*LIMITS[key])}, got {value:g}")
+    if not r.hidden or min(r.hidden) < 1:
+        raise ConfigError(f"recipe key 'hidden' must list the width of each hidden layer, each at least 1, got {r.hidden}")
     if not (r.speaker_rule == "parent" or r.speaker_rule.startswith("depth:") and r.speaker_rule[6:].isdigit()):
         raise ConfigError(f"recipe key 'speaker_rule' must be 'parent' or 'depth:N', got {r.speaker_rule!r}")
-    if not 1.0 <= r.warp_max <= 1.3:
-        raise ConfigError(f"recipe key 'warp_max' must lie between 1.0 (off) and 1.3, got {r.warp_max}")
     if r.loss not in ("cepstra", "spectrum"):
         raise ConfigError(f"recipe key 'loss' must be 'cepstra' or 'spectrum', got {r.loss!r}")
     from nenv.chain.checkpoint import check_trim
