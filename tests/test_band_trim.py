@@ -101,6 +101,21 @@ def test_a_bad_calibration_is_refused_naming_the_file(tmp_path, value):
         checkpoint.load(folder)
 
 
+def test_the_calibration_range_includes_its_ends_and_a_folder_without_one_is_at_the_trained_level(tmp_path):
+    """TRIM_RANGE_DB runs from -40 to 12 dB, both ends allowed; a folder written before calibrations
+    existed (no 'calibration' in nenv.json) ships its band at the trained level."""
+    for value in (-40, 12, -40.0, 12.0):
+        assert checkpoint.check_trim(value, what="t") == float(value)
+    for value in (-40.001, 12.001):
+        with pytest.raises(ConfigError, match="from -40 to 12"):
+            checkpoint.check_trim(value, what="t")
+    folder = _calibrated(tmp_path, 0.0)
+    info = json.loads((folder / "nenv.json").read_text())
+    del info["calibration"]
+    (folder / "nenv.json").write_text(json.dumps(info))
+    assert checkpoint.load(folder).band_trim_db == 0.0
+
+
 def test_a_calibration_that_is_not_a_table_is_refused(tmp_path):
     folder = _calibrated(tmp_path, 0.0)
     info = json.loads((folder / "nenv.json").read_text())

@@ -92,6 +92,59 @@ def test_post_screening_follows_the_15_percent_rule(tmp_path):
     (tmp_path / "t20").mkdir()
     files, key = _write_panel(tmp_path / "t20", {"E": {**twenty, "reference": [80] * 3 + [100] * 17}, "F": {**twenty, "reference": [80] * 4 + [100] * 16}})
     assert list(verdicts.screen(verdicts.read(files, key))) == ["F"]
+    # the same edge for the anchor; and a rating of exactly 90 is neither below 90 nor above it
+    (tmp_path / "a20").mkdir()
+    files, key = _write_panel(tmp_path / "a20", {"G": {**twenty, "unextended": [95] * 3 + [20] * 17}, "H": {**twenty, "unextended": [95] * 4 + [20] * 16},
+                                                 "I": {**twenty, "reference": [90] * 20, "unextended": [90] * 20}})
+    assert list(verdicts.screen(verdicts.read(files, key))) == ["H"]
+
+
+def test_pairs_need_two_shared_trials_and_the_default_system_meets_every_other(tmp_path):
+    """Paired differences: each system against the anchor, and the default system against each other
+    system; a pair rated on fewer than two shared trials has no interval and is left out. Identical
+    ratings differ by nothing: both tests give p = 1 (scipy.stats.ttest_rel would give NaN)."""
+    scores = {"A": {"reference": [100, 100], "unextended": [20, 30], "neural": [50, 60], "codebook": [50, 60]}}
+    files, key = _write_panel(tmp_path, scores, systems=("reference", "unextended", "neural", "codebook"))
+    a = verdicts.analyse(verdicts.read(files, key))
+    pairs = {(p.a, p.b): p for p in a.paired}
+    assert set(pairs) == {("reference", "unextended"), ("codebook", "unextended"), ("neural", "unextended"), ("neural", "reference"), ("neural", "codebook")}
+    same = pairs[("neural", "codebook")]
+    assert (same.difference.mean, same.difference.n, same.t_p, same.wilcoxon_p) == (0.0, 2, 1.0, 1.0)
+    # the same difference on every trial (30, 30): no spread, so the t-test's p is 0; Wilcoxon's exact
+    # two-sided p for two positive differences is 2 / 2**2 = 0.5
+    steady = pairs[("neural", "unextended")]
+    assert (steady.difference.mean, steady.t_p, steady.wilcoxon_p) == (30.0, 0.0, 0.5)
+    # the ends of the scale are ratings like any other
+    (tmp_path / "ends").mkdir()
+    files_e, key_e = _write_panel(tmp_path / "ends", {"A": {"reference": [100, 100], "unextended": [0, 0], "neural": [0, 100]}})
+    assert sorted(r.score for r in verdicts.read(files_e, key_e)) == [0, 0, 0, 100, 100, 100]
+    assert list(a.overall) == ["reference", "unextended", "codebook", "neural"]  # reference, anchor, then by name
+    b = verdicts.analyse(verdicts.read(files, key), default_system="codebook")
+    assert ("codebook", "neural") in {(p.a, p.b) for p in b.paired} and ("neural", "codebook") not in {(p.a, p.b) for p in b.paired}
+    # a trial the listener left without rating one system (a session that ended early) pairs nothing for it
+    data = json.loads(files[0].read_text())
+    data["ratings"] = [r for r in data["ratings"] if r["stimulus"] != "codebook-1"]
+    files[0].write_text(json.dumps(data))
+    c = {(p.a, p.b): p for p in verdicts.analyse(verdicts.read(files, key)).paired}
+    assert ("neural", "codebook") not in c and c[("neural", "unextended")].difference.n == 2  # codebook has one trial left
+    (tmp_path / "one").mkdir()
+    files, key = _write_panel(tmp_path / "one", {"A": {"reference": [100], "unextended": [20], "neural": [50]}})
+    assert verdicts.analyse(verdicts.read(files, key)).paired == []  # one trial: no interval, no test
+
+
+def test_an_empty_interval_and_a_panel_whose_listeners_were_all_excluded_say_so(tmp_path):
+    from nenv.errors import InputError
+
+    empty = verdicts.Interval.of([])
+    assert empty.n == 0 and math.isnan(empty.mean) and empty.text() == "-"
+    one = verdicts.Interval.of([42.0])
+    assert (one.mean, one.n, one.text()) == (42.0, 1, "42.0") and math.isnan(one.low)
+    files, key = _write_panel(tmp_path, {"A": {"reference": [50, 50], "unextended": [20, 20], "neural": [40, 40]}})
+    a = verdicts.analyse(verdicts.read(files, key))
+    assert a.listeners == [] and "nothing to report" in verdicts.to_markdown(a) and "excluded A" in verdicts.to_markdown(a)
+    (tmp_path / "list.json").write_text("[1, 2]")  # JSON, but not a key
+    with pytest.raises(InputError, match="not a panel key"):
+        verdicts.load_key(tmp_path / "list.json")
 
 
 def test_results_of_another_panel_or_out_of_range_are_refused(tmp_path):

@@ -245,6 +245,14 @@ def test_loading_a_model_leaves_the_floating_point_mode_alone():
     assert tiny[0] > 0 and (tiny * 1.0)[0] > 0
 
 
+def test_the_network_takes_a_batch_of_no_rows():
+    from nenv.chain import checkpoint
+
+    ck = checkpoint.load(checkpoint.default_path())
+    ceps, level = ck.predict(np.zeros((0, ck.features.input_dim)))
+    assert ceps.shape == (0, ck.features.n_wb_ceps) and level.shape == (0,)
+
+
 def test_the_network_runs_on_one_thread_that_never_spins_and_flushes_denormals_only_when_asked():
     """A gateway runs many calls per core: each session uses the calling thread alone (onnxruntime's
     intra- and inter-op pools of one, sequential) and never spin-waits between hops; flushing
