@@ -72,6 +72,35 @@ def test_bad_samples_do_not_poison_the_call(call_audio):
     y3 = eng.feed(x[1600:4000])
     assert all(np.all(np.isfinite(y)) for y in (y1, y2, y3))
     assert eng.bad_samples == 10
+    # each bad sample is a zero: the call goes on exactly as if those samples had been silent
+    fixed = x[:4000].copy()
+    fixed[900:910] = 0.0
+    want = pipeline.extend(fixed, system=pipeline.make_system("imaging")).y
+    got = np.concatenate([y1, y2, y3, eng.flush()])
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
+
+
+def test_streaming_counts_the_samples_it_limits_as_offline_extension_does(call_audio):
+    """A call loud enough to clip: the peak limiter's count is the same offline, streamed and batched."""
+    from nenv.serve.multicall import MultiCallEngine
+
+    _, x = call_audio
+    loud = np.clip(8.0 * x[:16000], -1.0, 1.0)  # 18 dB hotter, clipped at full scale like a hot line
+    want = pipeline.extend(loud, system=pipeline.make_system("neural")).n_limited
+    assert want > 0
+    eng = CallEngine()
+    for i in range(0, loud.size, 160):
+        eng.feed(loud[i : i + 160])
+    assert eng.flush().size > 0 and eng.flush().size == 0  # a second flush has nothing left to give
+    with pytest.raises(RuntimeError, match="flushed"):
+        eng.feed(loud[:160])
+    many, stats = MultiCallEngine(), {}
+    many.open("a")
+    for i in range(0, loud.size, 160):
+        many.feed("a", loud[i : i + 160])
+        many.step()
+    many.close("a", stats=stats)
+    assert eng.limited == stats["limited"] == want
 
 
 def test_integer_pcm_is_refused_with_the_conversion_to_use(call_audio):
