@@ -86,12 +86,53 @@ def test_pairs_analysis_reproduces_a_worked_example_and_screens_a_listener_who_h
     assert rows[0] == "listener,trial,clip,first,second,score,seconds" and len(rows) == 1 + 18
 
 
+def test_pairs_screening_at_exactly_half_and_the_tests_at_their_edges(tmp_path):
+    """Our screening rule keeps a listener who rated the original better in at least half of the control
+    pairs: 2 of 4 kept, 1 of 4 excluded. The scale's ends (-3, +3) are ratings like any other."""
+    def listener(control):  # four clips, each with (U, N), (N, U) and one control pair (R, U)
+        out = {}
+        for i, c in enumerate(control):
+            out.update({(f"c{i}", U, N): 1, (f"c{i}", N, U): -1, (f"c{i}", R, U): -c})  # (R, U) negated: the original's score is c
+        return out
+
+    files, key = _write(tmp_path, {"half": listener([3, 1, 0, -3]), "quarter": listener([3, 0, 0, -1]), "all": listener([3, 3, 3, 3])})
+    a = ccr.analyse(ccr.read(files, key))
+    assert a.listeners == ["all", "half"] and list(a.excluded) == ["quarter"] and "1 of 4" in a.excluded["quarter"]
+    neural = next(p for p in a.preferences if p.system == N)
+    # every unit is (+1 - -1) / 2 = 1: the same value throughout, so the t-test's p is 0 (no spread),
+    # Wilcoxon's exact p for eight positive units 2 / 2**8
+    assert (neural.cmos.mean, neural.cmos.n, neural.t_p) == (1.0, 8, 0.0) and neural.wilcoxon_p == pytest.approx(2 / 2**8)
+    # one unit: no interval, no tests; units of 0 throughout: both tests p = 1
+    (tmp_path / "one").mkdir()
+    files, key = _write(tmp_path / "one", {"L": {("c0", U, N): 2, ("c0", R, U): -3}})
+    one = next(p for p in ccr.analyse(ccr.read(files, key)).preferences if p.system == N)
+    assert one.cmos.n == 1 and math.isnan(one.t_p) and math.isnan(one.wilcoxon_p)
+    (tmp_path / "zero").mkdir()
+    files, key = _write(tmp_path / "zero", {"L": {("c0", U, N): 0, ("c1", U, N): 0, ("c0", R, U): -3}})
+    zero = next(p for p in ccr.analyse(ccr.read(files, key)).preferences if p.system == N)
+    assert (zero.cmos.n, zero.t_p, zero.wilcoxon_p) == (2, 1.0, 1.0)
+    # a panel whose listeners were all excluded says so
+    (tmp_path / "deaf").mkdir()
+    files, key = _write(tmp_path / "deaf", {"L": {("c0", U, N): 1, ("c0", R, U): 3}})
+    md = ccr.to_markdown(ccr.analyse(ccr.read(files, key)))
+    assert "excluded L" in md and "nothing to report" in md
+
+
+def test_only_a_pair_with_the_unextended_signal_on_one_side_is_a_rating_against_it():
+    def rating(first, second, score):
+        return ccr.PairRating("L", "t1", "c0", first, second, score, 1.0)
+
+    assert rating(U, N, 2).against_anchor() == (N, 2) and rating(N, U, 2).against_anchor() == (N, -2)
+    assert rating(U, U, 2).against_anchor() is None and rating(N, "codebook", 2).against_anchor() is None
+
+
 def test_pairs_results_that_do_not_fit_the_key_are_refused(tmp_path):
     files, key = _write(tmp_path, {"A": _listener((1, -1), (0, 0), (-2, 2))})
     data = json.loads(files[0].read_text())
     for change, message in (
         (lambda d: d.update(panel="other"), "another panel"),
         (lambda d: d["ratings"][0].update(score=4), "not one of the steps"),
+        (lambda d: d["ratings"][0].update(score=-4), "not one of the steps"),
         (lambda d: d["ratings"][0].update(score=1.5), "not one of the steps"),
         (lambda d: d["ratings"][0].update(trial="t99"), "not in the key"),
         (lambda d: d["ratings"].append(dict(d["ratings"][0])), "rated twice"),
