@@ -213,3 +213,32 @@ def test_streamed_file_equals_offline_pipeline(tmp_path):
     streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="neural"))
     offline = pipeline.extend(x, system=pipeline.make_system("neural"))
     assert sf.read(tmp_path / "y.wav", dtype="int16")[0].tobytes() == audio.to_int16(offline.y).tobytes()
+
+
+def test_a_file_result_reports_its_length_and_progress_to_the_last_sample(tmp_path):
+    x = _telephone(1, 12.5)  # more than one block of BLOCK_S seconds
+    src = tmp_path / "x.wav"
+    sf.write(src, x, 8000, subtype="FLOAT")
+    seen = []
+    res = streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="imaging"), on_progress=lambda done, total: seen.append((done, total)))
+    assert res.seconds == x.size / 8000 and 0 < res.wall_s < 600 and seen[-1] == (x.size, x.size) and len(seen) == 2
+    assert [d for d, _ in seen] == [int(streamfile.BLOCK_S * 8000), x.size]
+
+
+def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
+    """The oracle's reference is scaled so that its own telephone band has the narrowband input's power:
+    an input 6 dB under the reference's telephone version gives the reference at half its amplitude."""
+    from nenv.errors import InputError
+    from nenv.report.evaluate import prepare_reference
+
+    ref = prepare_reference(ARCTIC[0])
+    x = 0.5 * channel.telephone(ref, sr=16000, level_dbov=None)
+    np.testing.assert_allclose(streamfile._oracle_reference(ARCTIC[0], x), 0.5 * ref, rtol=1e-12, atol=1e-15)
+    src = tmp_path / "x.wav"
+    sf.write(src, x, 8000, subtype="FLOAT")
+    with pytest.raises(InputError, match="needs --reference"):
+        streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="oracle"))
+    with pytest.raises(InputError, match="oracle and true-band only"):
+        streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="imaging"), reference=ARCTIC[0])
+    res = streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="oracle"), reference=ARCTIC[0])
+    assert res.seconds == x.size / 8000 and (tmp_path / "y.wav").exists()

@@ -439,3 +439,15 @@ def test_pairs_scored_in_worker_processes_match_those_scored_in_turn(folders):
 
     res = run_bounded([sys.executable, "-c", PARALLEL_SCRIPT, str(folders)], cwd=Path(__file__).resolve().parents[1])
     assert res.returncode == 0 and "same 2" in res.stdout, res.stderr[-3000:]
+
+
+def test_a_channel_choice_applies_to_multichannel_files_only(tmp_path):
+    """--channel picks a channel of a stereo recording; a mono file beside it is read as it is (asking
+    a mono file for its second channel would otherwise refuse it)."""
+    rng = np.random.default_rng(5)
+    left, right = (0.1 * rng.standard_normal((2, 1600))).astype(np.float32).astype(np.float64)  # exact in the file's 32-bit floats
+    sf.write(tmp_path / "stereo.wav", np.stack([left, right], axis=1), 16000, subtype="FLOAT")
+    sf.write(tmp_path / "mono.wav", left, 16000, subtype="FLOAT")
+    np.testing.assert_array_equal(pairs._load(tmp_path / "stereo.wav", 1, False).y, right)
+    np.testing.assert_array_equal(pairs._load(tmp_path / "mono.wav", 1, False).y, left)
+    np.testing.assert_allclose(pairs._load(tmp_path / "stereo.wav", None, True).y, (left + right) / 2, atol=1e-7)
