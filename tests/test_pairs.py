@@ -187,7 +187,8 @@ def test_measures_command_pairs_folders_and_reports_groups(folders):
     # the extension adds a band the unextended input lacks: its high-band level is far nearer the reference's
     hb = {o: float(r["level_error_high"]) for (_, o), r in scored.items()}
     assert hb[str(folders / "nb")] < hb[str(folders / "sys")] - 6
-    assert (folders / "t" / "table.md").read_text().count("**mean") == 4
+    table = (folders / "t" / "table.md").read_text()
+    assert table.count("**mean") == 4 and table.count("**mean male**") == 2  # each output's mean over all clips, and over the male group's
     assert not (folders / "t" / "alignment.png").exists()  # one offset and one gain served every pair: nothing to draw
 
 
