@@ -110,13 +110,22 @@ def test_batch_refusals(tree, tmp_path):
     assert not any((tmp_path / f"o{i}").exists() for i in range(2, 7))
 
 
+def test_a_batchs_throughput_counts_only_the_files_it_extended():
+    done = [streamfile.FileResult("a", "A", seconds=3.0), streamfile.FileResult("b", "B", seconds=2.0)]
+    others = [streamfile.FileResult("c", "C", status="skipped", seconds=60.0), streamfile.FileResult("d", "D", status="failed", seconds=60.0)]
+    s = batch.Summary(done + others, wall_s=10.0)
+    # 2 files in 10 s = 720 files per hour; 5 s of audio in 10 s = 0.5 hours of audio per hour
+    assert s.count("done") == 2 and s.audio_s == 5.0 and s.throughput() == (720.0, 0.5)
+    assert batch.Summary(done, wall_s=0.0).throughput()[0] > 1e9  # no time measured: large, never a division by zero
+
+
 def test_batch_record_holds_every_file(tree, tmp_path):
     rec = tmp_path / "guard.jsonl"
     res = _run("extend", tree / "north", tmp_path / "o", "--jobs", "2", "--record", rec, "--group", "north")
     assert res.exit_code == 0, res.output
     r = records.read([rec])
     assert sorted(Path(s["source"]).name for s in r.summaries) == ["a.wav", "b.flac"]
-    assert [s["hops"] for s in sorted(r.summaries, key=lambda s: s["source"])] == [300, 200]
+    assert [(s["hops"], s["seconds"]) for s in sorted(r.summaries, key=lambda s: s["source"])] == [(300, 3.0), (200, 2.0)]
     assert not list(tmp_path.glob(".guard.jsonl.*"))  # per-file parts were merged and removed
 
 
