@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import csv
+import io
 import os
 import random
 import signal
@@ -117,6 +119,10 @@ def test_a_batchs_throughput_counts_only_the_files_it_extended():
     # 2 files in 10 s = 720 files per hour; 5 s of audio in 10 s = 0.5 hours of audio per hour
     assert s.count("done") == 2 and s.audio_s == 5.0 and s.throughput() == (720.0, 0.5)
     assert batch.Summary(done, wall_s=0.0).throughput()[0] > 1e9  # no time measured: large, never a division by zero
+    # the report: a worker's record part (an internal note) never reaches the notes column
+    r = streamfile.FileResult("a", "A", seconds=3.0, wall_s=0.5, notes=["record:/tmp/.guard.jsonl.part1", "resampled 16000 Hz to 8 kHz"])
+    (row,) = list(csv.DictReader(io.StringIO(batch.Summary([r], wall_s=1.0).to_csv())))
+    assert row["notes"] == "resampled 16000 Hz to 8 kHz" and row["x_real_time"] == "6.0" and row["seconds"] == "3.000"
 
 
 def test_batch_record_holds_every_file(tree, tmp_path):

@@ -174,8 +174,8 @@ def test_measures_command_pairs_folders_and_reports_groups(folders):
     res = _run("measures", folders / "nb", folders / "sys", "--reference", folders / "ref", "--groups", folders / "groups.csv", "--out", folders / "t")
     assert res.exit_code == 0, res.output
     assert "8 kHz: scored as the unextended input" in res.stderr
-    assert "1 file in" in res.stderr and "has no reference" in res.stderr  # sys/f/extra
-    assert "lacks 1 reference clip" in res.stderr  # nb/ and sys/ have no f/a0009
+    assert "1 file in" in res.stderr and "has no reference and is not scored (first: f/extra)" in res.stderr
+    assert "lacks 1 reference clip (first: f/a0009)" in res.stderr  # nb/ and sys/ have no f/a0009
     rows = list(csv.DictReader(open(folders / "t" / "table.csv")))
     scored = {(r["clip"], r["output"]): r for r in rows if not r["clip"].startswith("mean")}
     assert set(scored) == {("m/a0007", str(folders / "nb")), ("m/a0007", str(folders / "sys"))}
