@@ -1,7 +1,7 @@
 """Training recipes: flat, commented TOML files in configs/, with command-line overrides.
 
-Every key must be a field of :class:`Recipe` and have its type; anything else
-is refused with a message naming the key.
+Every key must be a field of :class:`Recipe`, have its type and, for a number, be finite and lie in
+its range (:data:`LIMITS`); anything else is refused with a message naming the key, before any work.
 """
 
 from __future__ import annotations
