@@ -137,6 +137,7 @@ def test_a_third_address_replaces_the_held_one_and_the_held_packets_are_bounded(
         assert len(st.newcomer_packets) <= rtp.MAX_NEWCOMER_PACKETS
     assert len(st.newcomer_packets) == rtp.MAX_NEWCOMER_PACKETS and relay.counters.ssrc_conflicts == 3 + 1 + rtp.MAX_NEWCOMER_PACKETS
     assert [p.seq for p in st.newcomer_packets] == list(range(5 + rtp.MAX_NEWCOMER_PACKETS, 5 + 2 * rtp.MAX_NEWCOMER_PACKETS))
+    assert st.source == A and st.counters.packets == 1  # nothing of the others was played
     relay.clock.t += 0.25
     relay.handle(_packet(0, payload=b"\x90" * N), B)  # B again after the source's silence: C's held packets go, B is followed
     assert st.source == B and relay.counters.ssrc_conflicts == 3 + 1 + 2 * rtp.MAX_NEWCOMER_PACKETS and st.counters.source_changes == 1
