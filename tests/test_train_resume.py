@@ -89,3 +89,28 @@ def test_feature_extraction_on_a_dask_cluster_matches_local(synthetic_corpus, tm
     for name in ("x", "current", "ceps", "level", "a_nb", "group"):
         assert np.array_equal(getattr(local, name), getattr(remote, name)), name
     assert [rep.path for rep in reps] == [f.path for f in corpus.scan(r.corpus)[:4]] and all(rep.duration_s > 0 for rep in reps)
+
+
+def test_a_finished_run_replaces_an_old_model_folder_whole_and_leaves_nothing_beside_it(tmp_path):
+    """`train --force` over an existing model folder: the finished folder takes its place in one rename,
+    the old one goes (only then), and no partial or old folder is left beside it."""
+    from nenv.train import workdir
+
+    out = tmp_path / "model"
+    out.mkdir()
+    (out / "nenv.json").write_text("old")
+    (out / "stale.png").write_text("old figure")
+    work = workdir.partial_folder(out)
+    assert work == tmp_path / ".model.partial"
+    work.mkdir()
+    (work / "nenv.json").write_text("new")
+    workdir.install(work, out)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["model"]
+    assert (out / "nenv.json").read_text() == "new" and not (out / "stale.png").exists()
+    # no folder there yet: moved into place
+    other = tmp_path / "first"
+    work = workdir.partial_folder(other)
+    work.mkdir()
+    (work / "nenv.json").write_text("first")
+    workdir.install(work, other)
+    assert (other / "nenv.json").read_text() == "first" and not work.exists()
