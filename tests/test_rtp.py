@@ -12,6 +12,7 @@ import pytest
 from nenv.dsp import channel, g711
 from nenv.chain import pipeline
 from nenv.serve import load, rtp, rtp_packet
+from tests.test_relay_streams import Sink
 
 
 def test_parse_and_build_round_trip_with_csrc_extension_and_padding():
@@ -515,7 +516,7 @@ def test_datagrams_the_system_drops_unread_are_counted(monkeypatch):
     monkeypatch.setattr(rtp, "RECEIVE_BUFFER_BYTES", 1)  # the system's minimum: a few datagrams
     relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
     relay.out.close()
-    relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+    relay.out = Sink()
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     for seq in range(200):  # before the relay reads anything
         tx.sendto(rtp_packet.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=13, payload=b"\x7f" * 160), relay.address)
@@ -687,7 +688,7 @@ def test_a_running_relay_counts_drops_without_reading_the_hosts_socket_table(mon
     told = []
     relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9), notice=told.append)
     relay.out.close()
-    relay.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+    relay.out = Sink()
     tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     for seq in range(100):  # before the relay reads anything: most are dropped
         tx.sendto(rtp_packet.build(payload_type=0, seq=seq, timestamp=160 * seq, ssrc=14, payload=b"\x7f" * 160), relay.address)
@@ -790,7 +791,7 @@ def test_relays_that_share_a_port_each_take_whole_streams():
     assert res.exit_code == 2 and "must all be started with --shared-port" in res.output  # the command says how
     for r in relays:
         r.out.close()
-        r.out = type("Sink", (), {"sendto": lambda self, d, a: None, "close": lambda self: None})()
+        r.out = Sink()
         r.start()
     senders = [socket.socket(socket.AF_INET, socket.SOCK_DGRAM) for _ in range(20)]
     for k in range(3):

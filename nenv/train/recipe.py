@@ -178,14 +178,14 @@ LIMITS: dict[str, tuple[float | None, float | None, bool, bool]] = {
 }
 
 
-def within(value: float, lo: float | None, hi: float | None, lo_in: bool, hi_in: bool) -> bool:
+def _within(value: float, lo: float | None, hi: float | None, lo_in: bool, hi_in: bool) -> bool:
     """Whether ``value`` lies in the range (a NaN lies in none)."""
     above = lo is None or (value >= lo if lo_in else value > lo)
     below = hi is None or (value <= hi if hi_in else value < hi)
     return bool(above and below)
 
 
-def range_words(lo: float | None, hi: float | None, lo_in: bool, hi_in: bool) -> str:
+def _range_words(lo: float | None, hi: float | None, lo_in: bool, hi_in: bool) -> str:
     """A range in words: 'at least 1', 'more than 0 and at most 8000', ..."""
     parts = ([f"{'at least' if lo_in else 'more than'} {lo:g}"] if lo is not None else []) + ([f"{'at most' if hi_in else 'less than'} {hi:g}"] if hi is not None else [])
     return " and ".join(parts)
@@ -200,8 +200,8 @@ def _validate(r: Recipe) -> None:
     for key, value in asdict(r).items():
         if isinstance(value, float) and not math.isfinite(value):
             raise ConfigError(f"recipe key '{key}' must be a finite number, got {value}")
-        if key in LIMITS and not within(value, *LIMITS[key]):
-            raise ConfigError(f"recipe key '{key}' must be {range_words(*LIMITS[key])}, got {value:g}")
+        if key in LIMITS and not _within(value, *LIMITS[key]):
+            raise ConfigError(f"recipe key '{key}' must be {_range_words(*LIMITS[key])}, got {value:g}")
     if not r.hidden or min(r.hidden) < 1:
         raise ConfigError(f"recipe key 'hidden' must list the width of each hidden layer, each at least 1, got {r.hidden}")
     if not (r.speaker_rule == "parent" or r.speaker_rule.startswith("depth:") and r.speaker_rule[6:].isdigit()):
