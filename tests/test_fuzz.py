@@ -6,6 +6,7 @@ Sane output: finite, never above full scale, exactly twice the input length.
 from __future__ import annotations
 
 import io
+import os
 import subprocess
 import sys
 from pathlib import Path
@@ -115,7 +116,10 @@ def test_atheris_on_the_file_path(tmp_path):
     corpus.mkdir()
     for i, s in enumerate(SEEDS):
         (corpus / f"seed{i}").write_bytes(s)
+    work = tmp_path / "work"
+    work.mkdir()
     res = subprocess.run([sys.executable, str(HERE / "fuzz" / "fuzz_files.py"), str(corpus), "-runs=3000", "-max_len=8192", "-seed=1", "-timeout=20"],
-                         capture_output=True, text=True, timeout=600, cwd=HERE.parent)
+                         capture_output=True, text=True, timeout=600, cwd=HERE.parent, env={**os.environ, "NENV_FUZZ_WORK": str(work)})
     assert res.returncode == 0, res.stderr[-3000:]
     assert "Done 3000 runs" in res.stderr, res.stderr[-2000:]
+    assert (work / "in.bin").exists()  # the scratch files went to the test's folder, not a new one in /tmp

@@ -1,6 +1,8 @@
 """atheris target: any bytes, as an audio file, through ``nenv extend``'s file path.
 
 Run: python tests/fuzz/fuzz_files.py CORPUS_DIR -runs=N   (tests/test_fuzz.py does, with a seed corpus)
+Scratch files go to $NENV_FUZZ_WORK when set (the test gives its own temporary folder, which pytest
+removes), otherwise to a new temporary folder that is left for inspection after a finding.
 
 The property: reading and extending either raises nenv's own error type, or
 writes a 16 kHz file exactly twice as long as the 8 kHz input, finite and
@@ -21,7 +23,7 @@ with atheris.instrument_imports(include=["nenv"]):
 import numpy as np
 import soundfile as sf
 
-WORK = tempfile.mkdtemp(prefix="nenv-fuzz-")
+WORK = os.environ.get("NENV_FUZZ_WORK") or tempfile.mkdtemp(prefix="nenv-fuzz-")
 SRC = os.path.join(WORK, "in.bin")
 DST = os.path.join(WORK, "out.wav")
 OPTS = streamfile.Options(method="imaging", resample=True, mix=True)
