@@ -89,6 +89,7 @@ def test_verdicts_follow_the_documented_rules_alone_or_in_a_batch(rng):
     guard = Guard(GuardLimits(level_min_db=-40.0, level_max_db=10.0, mismatch_max_db=6.0, novelty_max=3.0, stability_margin=1e-3))
     a_nb = _random_models(rng, 1, 10)
     bad = [np.nan, np.inf, -np.inf]
+    seen = {check: [0, 0] for check in (Check.NONFINITE, Check.UNSTABLE, Check.LEVEL, Check.MISMATCH, Check.NOVEL)}  # [passed, failed]
     for trial in range(400):
         k = rng.uniform(-0.999, 0.999, (1, 16))
         a = lpc.from_reflection(k)
@@ -113,10 +114,20 @@ def test_verdicts_follow_the_documented_rules_alone_or_in_a_batch(rng):
             novelty[0] = np.nan
         elif edge == 8:
             level[0] = rng.choice([-40.0, 10.0])  # on the limits: accepted
-        kw = dict(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=a_nb, novelty=novelty, cell=np.array([trial % 7]))
+        elif edge == 9:
+            novelty[0] = guard.limits.novelty_max  # on the limit: accepted
+        hop_nb = a_nb
+        if edge == 10:
+            # an envelope that follows the narrowband one in the telephone band: A_nb(z^2) (the same response
+            # at 16 kHz as A_nb at 8 kHz) with odd taps added, so the mismatch falls on both sides of its limit
+            hop_nb = _random_models(rng, 1, 8)
+            a = np.zeros((1, 17))
+            a[0, ::2] = hop_nb[0]
+            a[0, 1::2] = rng.uniform(-1, 1, 8) * rng.uniform(0.0, 1.0)
+        kw = dict(ceps=ceps, level_db=level, a=a, gain=gain, a_nb=hop_nb, novelty=novelty, cell=np.array([trial % 7]))
         one, k_one = guard.assess(**kw, k=k)
         two_kw = {name: np.concatenate([v, v]) for name, v in kw.items() if name != "a_nb"}
-        two, k_two = guard.assess(**two_kw, a_nb=np.concatenate([a_nb, a_nb]), k=np.concatenate([k, k]))
+        two, k_two = guard.assess(**two_kw, a_nb=np.concatenate([hop_nb, hop_nb]), k=np.concatenate([k, k]))
         for field in Decisions.__dataclass_fields__:
             got, want = getattr(one, field), getattr(two, field)[:1]
             assert got.dtype == want.dtype, (trial, field)
@@ -129,16 +140,19 @@ def test_verdicts_follow_the_documented_rules_alone_or_in_a_batch(rng):
         mismatch = np.inf
         if finite:
             f = np.arange(10, 109) * 31.25  # the 31.25 Hz bins from 300 to 3400 Hz
-            d = 20 * np.log10(np.abs(signal.freqz([1.0], a[0], worN=f, fs=16000)[1])) - 20 * np.log10(np.abs(signal.freqz([1.0], a_nb[0], worN=f, fs=8000)[1]))
+            d = 20 * np.log10(np.abs(signal.freqz([1.0], a[0], worN=f, fs=16000)[1])) - 20 * np.log10(np.abs(signal.freqz([1.0], hop_nb[0], worN=f, fs=8000)[1]))
             mismatch = np.sqrt(np.mean((d - d.mean()) ** 2))
         want = (0 if finite else Check.NONFINITE) | (Check.UNSTABLE if finite and not max_k < 1 - lim.stability_margin else 0)
         want |= Check.LEVEL if np.isfinite(level[0]) and not lim.level_min_db <= level[0] <= lim.level_max_db else 0
         want |= Check.MISMATCH if finite and mismatch > lim.mismatch_max_db else 0
         want |= Check.NOVEL if novelty[0] > lim.novelty_max else 0
         assert one.reasons[0] == want, (trial, one.reasons[0], want)
+        for check in seen:
+            seen[check][bool(want & check)] += 1
         assert one.max_k[0] == max_k
         np.testing.assert_allclose(one.mismatch_db[0], mismatch, rtol=1e-5, atol=1e-5)  # logarithms in single precision
     assert guard.assess(**kw, k=k)[0].rejected.dtype == bool
+    assert all(min(n) >= 10 for n in seen.values()), seen  # every check both passes and fails, often
 
 
 def test_counts_in_messages_agree_in_number():
