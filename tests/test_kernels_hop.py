@@ -67,17 +67,21 @@ def test_hop_measures_equal_their_definitions(rng):
     frames[0] = 0.0  # digital silence
     frames[1, -HOP_NB - 1 :] = np.abs(frames[1, -HOP_NB - 1 :])  # no sign change in the hop
     frames[2, 5] = np.nan  # never reaches here from a file (input checks), but the peak stays numpy's
+    frames[3:8] = rng.standard_normal((5, WIN_NB))  # loud enough that an error 75 dB below stays above the floor
     a, gain = lpc.analyse(frames, order=10, sr=8000)
-    ceps, energy, pred, zcr, xn = kernels.hop_measures(frames, lpc.asymmetric_window(WIN_NB), a, gain, lpc.window_energy(WIN_NB), 10, HOP_NB, -100.0)
     xw = frames * lpc.asymmetric_window(WIN_NB)
     power = np.sum(xw * xw, axis=1) / lpc.window_energy(WIN_NB)
     want_e = np.maximum(10 * np.log10(np.maximum(power, 1e-30)), -100.0)  # numpy.log10
+    # gains that put the prediction gain on both sides of each end of its 0..60 dB range
+    gain[3:8] = 10 ** ((want_e[3:8] - np.array([-5.0, 0.5, 59.5, 60.5, 75.0])) / 20)
+    ceps, energy, pred, zcr, xn = kernels.hop_measures(frames, lpc.asymmetric_window(WIN_NB), a, gain, lpc.window_energy(WIN_NB), 10, HOP_NB, -100.0)
     np.testing.assert_allclose(energy, want_e, rtol=1e-13, atol=1e-12)
     want_err = np.maximum(10 * np.log10(np.maximum(gain**2, 1e-30)), -100.0)
     np.testing.assert_allclose(pred, np.clip(want_e - want_err, 0.0, 60.0), rtol=1e-12, atol=1e-11)
     hop = frames[:, -HOP_NB - 1 :]
     np.testing.assert_array_equal(zcr, (np.signbit(hop[:, 1:]) != np.signbit(hop[:, :-1])).sum(axis=1) / HOP_NB)  # numpy.signbit
     assert zcr[1] == 0.0 and energy[0] == -100.0 and pred[0] == 0.0
+    np.testing.assert_allclose(pred[3:8], [0.0, 0.5, 59.5, 60.0, 60.0], atol=1e-9)
     peak = np.abs(xw).max(axis=1, keepdims=True)
     np.testing.assert_array_equal(xn, (xw / np.where(peak > 0, peak, 1.0)).astype(np.float32))
     np.testing.assert_array_equal(ceps, kernels.to_cepstrum(a, 10))
@@ -108,18 +112,25 @@ def test_voicing_equals_the_window_corrected_normalised_autocorrelation(rng):
 def test_voicing_peak_equals_the_numpy_formula_and_propagates_nan(rng):
     r = rng.normal(0, 1, (50, 148)).astype(np.float32)
     r[:, 0] = np.abs(r[:, 0]) + 0.5
+    r[10:, 1:] *= 0.1  # most rows' peaks inside (0, 1), not clamped
     r[3, 0] = 0.0  # silence
     r[4, 60] = np.nan
     r[5, 1:] = 0.0
     r[5, 20] = 0.9 * r[5, 0] * 0.75  # the first lag is the peak (ratio[0] = 0.75 below)
     ratio = rng.uniform(0.5, 1.0, 128)
     ratio[0] = 0.75
+    for row, lag in zip(range(6, 10), (21, 84, 146, 147)):  # the peak at the second, a middle and the last two lags
+        r[row, 1:] = 0.0
+        r[row, lag] = 0.6 * r[row, 0] * ratio[lag - 20]
+    r[10, 1:] = -np.abs(r[10, 1:]) - 0.01  # every lag anti-correlated: no voicing, 0
     got = kernels.voicing_peak(r, ratio, 20, 147)
     r64 = r.astype(np.float64)
     norm = r64[:, 20:148] / np.where(r64[:, 0] > 0, r64[:, 0], 1.0)[:, None] / ratio[None, :]
     want = np.where(r64[:, 0] > 0, np.minimum(np.maximum(norm.max(axis=1), 0.0), 1.0), 0.0)
     np.testing.assert_array_equal(got[np.arange(50) != 4], want[np.arange(50) != 4])
     assert got[3] == 0.0 and np.isnan(got[4]) and np.isnan(want[4]) and got[5] == pytest.approx(0.9)
+    np.testing.assert_allclose(got[6:10], 0.6, rtol=1e-6)
+    assert got[10] == 0.0 and 0.0 < want[11:].min() and want[11:].max() < 1.0
 
 
 @pytest.mark.parametrize("ready", [True, False])
@@ -147,6 +158,7 @@ def test_nearest_cell_equals_brute_force_distances(rng):
     feats = book.mean + book.std * (cents[rng.integers(0, K, 200)] + rng.normal(0, 0.6, (200, d)))
     feats[0, 2], feats[1, 5], feats[2, 0] = np.nan, np.inf, -np.inf
     feats[3] = book.mean + book.std * cents[9]
+    feats[4:10] = book.mean + book.std * (cents[:6] + rng.normal(0, 0.05, (6, d)))  # close to a cell: squared distances under 1
     cell, dist = book.nearest(feats)
     z = np.nan_to_num((feats - book.mean) / book.std, nan=1e6, posinf=1e6, neginf=-1e6)
     full = np.linalg.norm(z[:, None, :] - cents[None, :, :], axis=2)  # every distance, numpy.linalg.norm
@@ -184,13 +196,14 @@ def test_low_band_level_equals_the_power_spectrum_summed_over_the_band(rng):
     gain = np.exp(rng.normal(-3, 1, 30))
     energy = rng.normal(-30, 8, 30)
     gain[0], gain[1], gain[2] = 0.0, np.inf, np.nan
+    a[3, 5] = np.nan  # a non-finite envelope passes through as well (the guard's "nonfinite" rejects it)
     got = features.low_band_level(a, gain, energy)
     first, last = cepstrum.band_bins(LOW_BAND_HZ[0], LOW_BAND_HZ[1], n_fft=512, sr=WB_SR)
     spec = np.abs(np.fft.rfft(a, n=512, axis=1)[:, first : last + 1]) ** 2  # numpy.fft: |A|^2 on the band's bins
     with np.errstate(divide="ignore", invalid="ignore"):
         want = 10 * np.log10(2.0 * (gain[:, None] ** 2 / spec).sum(axis=1) / 512) - energy
-    np.testing.assert_allclose(got[3:], want[3:], atol=1e-9)
-    assert got[0] == -np.inf and got[1] == np.inf and np.isnan(got[2])
+    np.testing.assert_allclose(got[4:], want[4:], atol=1e-9)
+    assert got[0] == -np.inf and got[1] == np.inf and np.isnan(got[2]) and np.isnan(got[3])
 
 
 def test_low_band_weights_ramp_with_voicing_and_vanish_without_a_gain():
@@ -198,10 +211,10 @@ def test_low_band_weights_ramp_with_voicing_and_vanish_without_a_gain():
     from nenv.settings import LOW_BAND_GAIN_DB
 
     lo, hi = VOICING_GATE
-    v = np.array([0.0, lo, (lo + hi) / 2, hi, 1.0, 0.9, 0.9, 0.9, np.nan])
-    g = np.array([1.0, 1.0, 1.0, 1.0, 1.0, 0.0, np.inf, np.nan, 1.0])
+    v = np.array([0.0, lo, (lo + hi) / 2, hi, 1.0, 0.9, 0.9, 0.9, 0.8, 0.2, np.nan])
+    g = np.array([1.0, 1.0, 1.0, 1.0, 1.0, 0.0, np.inf, np.nan, 1.0, 1.0, 1.0])
     got = low_band_weights(v, g)
     top = 10 ** (LOW_BAND_GAIN_DB / 20)
-    np.testing.assert_allclose(got[:8], [0.0, 0.0, 0.5 * top, top, top, 0.0, 0.0, 0.0], rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(got[:10], [0.0, 0.0, 0.5 * top, top, top, 0.0, 0.0, 0.0, top, 0.0], rtol=1e-12, atol=1e-15)
     want = np.where(np.isfinite(g) & (g > 0), np.clip((v - lo) / (hi - lo), 0.0, 1.0) * top, 0.0)  # the numpy formula
     np.testing.assert_array_equal(got, want)
