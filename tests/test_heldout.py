@@ -135,3 +135,95 @@ def test_means_per_system_and_per_group_are_the_plain_means_of_their_clips():
     for k, v in want.items():
         assert (np.isnan(got[k]) and np.isnan(v)) or got[k] == v, k
     assert [r.clip for r in means(rows)] == ["mean", "mean"]  # without groups: one mean per system
+
+
+def _rttm(path: Path, uri: str, turns: list[tuple[float, float, str]], extra: str = "") -> None:
+    """An RTTM file (NIST's rich transcription format: SPEAKER uri channel onset duration <NA> <NA> name <NA> <NA>)."""
+    lines = [f"SPEAKER {uri} 1 {t0:.3f} {dur:.3f} <NA> <NA> {who} <NA> <NA>" for t0, dur, who in turns]
+    path.write_text("\n".join(lines) + "\n" + extra, encoding="utf-8")
+
+
+def test_meeting_turns_keep_one_unoverlapped_stretch_per_speaker_worked_by_hand(tmp_path, monkeypatch):
+    """The builder's reading of the meeting excerpts, against turns worked out by hand: each speaker's
+    longest turn with every other speaker's overlap cut away (the longer side kept when another speaker
+    talks inside it), the next turn tried when that leaves under MIN_TURN_S, at most MAX_CLIP_S, the
+    group from the speaker id's first letter; an RTTM without its audio file gives nothing."""
+    from nenv.train import heldout
+
+    assert heldout.MIN_TURN_S == 2.5 and heldout.MAX_CLIP_S == 8.0  # the worked numbers below assume these
+    monkeypatch.setattr(heldout, "CODEC2_FILES", ())
+    data = tmp_path / "pyannote_audio-4.0.7" / "tests" / "data"
+    data.mkdir(parents=True)
+    _rttm(data / "m1.rttm", "m1", [
+        (0.0, 5.0, "FEE001"),   # 0-5, MEO002 from 4: 0-4
+        (4.0, 2.0, "MEO002"),
+        (7.0, 10.0, "MEO002"),  # 7-17, FEE001 inside at 9-10: the longer side 10-17 (7 s)
+        (9.0, 1.0, "FEE001"),
+        (20.0, 2.0, "FEO003"),  # 2 s: too short, no other turn
+        (30.0, 2.5, "MEE005"),  # exactly MIN_TURN_S: kept
+        (40.0, 4.0, "MEO006"),  # 40-44 with MEE007 at 41-43: 1 s either side, too short ...
+        (41.0, 2.0, "MEE007"),
+        (50.0, 3.0, "MEO006"),  # ... so its next turn, 50-53
+        (60.0, 12.0, "FEE008"),  # 60-72: cut to MAX_CLIP_S
+    ], extra="SPKR-INFO m1 1 <NA> <NA> <NA> unknown FEE001 <NA> <NA>\nSPEAKER m1 1 80.0\n")
+    (data / "m1.wav").write_bytes(b"")
+    _rttm(data / "gone.rttm", "gone", [(0.0, 9.0, "FEE009")])  # no gone.wav
+    got = [(c.name, c.start_s, c.stop_s, c.speaker, c.group) for c in heldout.candidates(tmp_path) if c.name.startswith("ami_")]
+    assert got == [
+        ("ami_fee008", 60.0, 68.0, "ami/FEE008", "female"),
+        ("ami_meo002", 10.0, 17.0, "ami/MEO002", "male"),
+        ("ami_fee001", 0.0, 4.0, "ami/FEE001", "female"),
+        ("ami_meo006", 50.0, 53.0, "ami/MEO006", "male"),
+        ("ami_mee005", 30.0, 32.5, "ami/MEE005", "male"),
+    ]
+    assert all(c.path == str(data / "m1.wav") and c.licence == "CC-BY-4.0" for c in heldout.candidates(tmp_path) if c.name.startswith("ami_"))
+
+
+def test_candidates_are_found_in_each_source_tree_and_nothing_else(tmp_path, monkeypatch):
+    from nenv.train import heldout
+
+    codec2 = tmp_path / "codec2.wav"
+    codec2.write_bytes(b"")
+    monkeypatch.setattr(heldout, "CODEC2_FILES", ((codec2, "codec2/speech_orig"), (tmp_path / "absent.wav", "codec2/wia")))
+    assert [c.name for c in heldout.candidates(tmp_path / "empty")] == ["arctic_a0007", "arctic_a0009", "codec2_speech_orig"]
+    ps = tmp_path / "pocketsphinx-5.1.1" / "test" / "data"
+    for f in ("librivox/a.wav", "librivox/b.wav", "forever/input_2_16k.wav", "cards/001.wav", "cards/002.wav", "forever/input_3_16k.wav"):
+        (ps / f).parent.mkdir(parents=True, exist_ok=True)
+        (ps / f).write_bytes(b"")
+    pm = tmp_path / "praat_parselmouth-0.4.7" / "tests" / "data"
+    pm.mkdir(parents=True)
+    (pm / "the_north_wind_and_the_sun.wav").write_bytes(b"")
+    found = {c.name: c for c in heldout.candidates(tmp_path)}
+    assert sorted(found) == sorted(["arctic_a0007", "arctic_a0009", "librivox_austen", "ps_forever_2", "ps_cards", "parselmouth_north_wind", "codec2_speech_orig"])
+    assert found["librivox_austen"].path.endswith("b.wav") and found["ps_cards"].path.endswith("002.wav")  # the last of each folder
+    assert found["arctic_a0009"].group == "female" and found["arctic_a0007"].group == "male" and found["ps_cards"].group == ""  # no label: F0 decides
+
+
+def test_the_builder_cuts_checks_and_writes_each_clip_and_lists_what_it_excluded(tmp_path, monkeypatch):
+    """build() on a meeting excerpt made of real speech (the ARCTIC bdl sentence) followed by silence:
+    the speech turn is cut sample-exactly and written, the silent one excluded by the survey with its
+    reason, the two ARCTIC sentences kept whole with their labelled groups."""
+    from nenv.train import heldout
+
+    monkeypatch.setattr(heldout, "CODEC2_FILES", ())
+    speech, sr = sf.read(Path(__file__).parent / "data" / "arctic_a0007.wav")
+    assert sr == 16000
+    data = tmp_path / "src" / "pyannote_audio-4.0.7" / "tests" / "data"
+    data.mkdir(parents=True)
+    y = np.concatenate([speech, np.zeros(4 * sr)])
+    sf.write(data / "m1.wav", y, sr, subtype="PCM_16")
+    _rttm(data / "m1.rttm", "m1", [(0.25, 2.75, "MEE001"), (4.5, 3.0, "FEO002")])
+    rows = heldout.build(tmp_path / "src", tmp_path / "out")
+    assert [r["clip"] for r in rows] == ["arctic_a0007", "arctic_a0009", "ami_mee001"]
+    assert [r["group_from"] for r in rows] == ["source label"] * 3 and [r["group"] for r in rows] == ["male", "female", "male"]
+    cut, cut_sr = sf.read(tmp_path / "out" / "ami_mee001.flac")
+    assert cut_sr == 16000 and cut.size == int(2.75 * sr)
+    np.testing.assert_allclose(cut, sf.read(data / "m1.wav")[0][4000 : 4000 + cut.size], atol=1 / 32768)  # 0.25 s in, FLAC of 16-bit samples
+    whole, _ = sf.read(tmp_path / "out" / "arctic_a0007.flac")
+    assert whole.size == speech.size
+    with open(tmp_path / "out" / "clips.csv", newline="", encoding="utf-8") as fh:
+        assert [r["clip"] for r in csv.DictReader(fh)] == ["arctic_a0007", "arctic_a0009", "ami_mee001"]
+    with open(tmp_path / "out" / "excluded.csv", newline="", encoding="utf-8") as fh:
+        excluded = list(csv.DictReader(fh))
+    assert [r["clip"] for r in excluded] == ["ami_feo002"] and "active" in excluded[0]["excluded"]
+    assert not (tmp_path / "out" / "ami_feo002.flac").exists()

@@ -40,6 +40,7 @@ MIN_TURN_S = 2.5  # seconds: shortest single-speaker turn taken from a meeting e
 MIN_ACTIVE_S = 0.75  # seconds of active speech at least (survey measure)
 F0_SPLIT_HZ = 165.0  # Hz: median F0 above this = female group (rule of thumb for adult voices)
 TESTS_DATA = Path(__file__).resolve().parents[2] / "tests" / "data"
+CODEC2_FILES = ((Path("/usr/share/codec2/raw/speech_orig_16k.wav"), "codec2/speech_orig"), (Path("/usr/share/codec2/wav/wia_16kHz.wav"), "codec2/wia"))  # codec2-examples' two 16 kHz recordings
 
 
 @dataclass(frozen=True)
@@ -113,7 +114,7 @@ def candidates(sources: Path) -> list[Candidate]:
     pm = next(sources.glob("praat_parselmouth-*/tests/data/the_north_wind_and_the_sun.wav"), None)
     if pm is not None:
         c.append(Candidate("parselmouth_north_wind", str(pm), 0, 0, "parselmouth/north_wind", "", "praat-parselmouth 0.4.7 source package (tests/data)", "GPL-3.0-or-later (parselmouth)"))
-    for f, spk in ((Path("/usr/share/codec2/raw/speech_orig_16k.wav"), "codec2/speech_orig"), (Path("/usr/share/codec2/wav/wia_16kHz.wav"), "codec2/wia")):
+    for f, spk in CODEC2_FILES:
         if f.is_file():
             c.append(Candidate(f"codec2_{spk.split('/')[1]}", str(f), 0, 0, spk, "", "codec2-examples (Debian package)", "LGPL-2.1 (codec2)"))
     return c + _ami_turns(sources)
