@@ -196,6 +196,7 @@ def test_candidates_are_found_in_each_source_tree_and_nothing_else(tmp_path, mon
     found = {c.name: c for c in heldout.candidates(tmp_path)}
     assert sorted(found) == sorted(["arctic_a0007", "arctic_a0009", "librivox_austen", "ps_forever_2", "ps_cards", "parselmouth_north_wind", "codec2_speech_orig"])
     assert found["librivox_austen"].path.endswith("b.wav") and found["ps_cards"].path.endswith("002.wav")  # the last of each folder
+    assert all((c.start_s, c.stop_s) == (0, 0) for c in found.values())  # whole files (build cuts them at MAX_CLIP_S)
     assert found["arctic_a0009"].group == "female" and found["arctic_a0007"].group == "male" and found["ps_cards"].group == ""  # no label: F0 decides
 
 
