@@ -53,6 +53,15 @@ def test_alignment_finds_a_known_offset_and_level(extended, offset, gain_db):
     assert a.correlation > 0.9  # normalised by the whole signals' energies: a cut start lowers it a little
 
 
+def test_short_pairs_are_aligned_without_a_drift_and_a_tiny_overlap_is_no_match(extended):
+    ref, _, y = extended
+    assert ref.size < lineup.DRIFT_MIN_S * 16000  # the 4 s sentence: too short to tell a drift
+    a = lineup.align(ref, y)
+    assert a.drift_ms is None and a.rate_ppm is None and a.offset == 0
+    tiny = lineup.align(ref, y[: lineup.LEVEL_BLOCK - 1])  # under one 20 ms level block in common
+    assert (tiny.gain_db, tiny.correlation, tiny.pieces) == (0.0, 0.0, ())
+
+
 def test_an_offset_outside_the_search_range_is_not_found(extended):
     ref, _, y = extended
     a = lineup.align(ref, _shifted(y, 16000, 0.0), max_offset_s=0.5)
