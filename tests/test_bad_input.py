@@ -411,6 +411,22 @@ def test_m1_missing_model(tmp_path, call):
     _no_output(tmp_path)
 
 
+def test_m1_export_needs_both_the_weights_and_the_settings(tmp_path):
+    """`nenv export` of a folder without model.pt, or with it but without nenv.json: refused in one
+    line, the folder's model.onnx untouched."""
+    pytest.importorskip("torch")
+    from nenv.chain.checkpoint import default_path
+
+    m = _model_copy(tmp_path)  # everything but model.pt
+    onnx_before = (m / "model.onnx").read_bytes()
+    _refused(_run("export", m), "needs model.pt and nenv.json")
+    shutil.copy(default_path() / "model.pt", m / "model.pt")
+    (m / "nenv.json").unlink()
+    _refused(_run("export", m), "needs model.pt and nenv.json")
+    assert (m / "model.onnx").read_bytes() == onnx_before
+    assert sorted(f.name for f in m.iterdir()) == ["MODEL.md", "SOURCES.md", "codebook.npz", "evaluation.json", "model.onnx", "model.pt", "record.json"]
+
+
 def test_m2_corrupt_onnx(tmp_path, call):
     m = _model_copy(tmp_path)
     (m / "model.onnx").write_bytes(os.urandom(4096))
