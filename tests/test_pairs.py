@@ -461,3 +461,26 @@ def test_a_channel_choice_applies_to_multichannel_files_only(tmp_path):
     np.testing.assert_array_equal(pairs._load(tmp_path / "stereo.wav", 1, False).y, right)
     np.testing.assert_array_equal(pairs._load(tmp_path / "mono.wav", 1, False).y, left)
     np.testing.assert_allclose(pairs._load(tmp_path / "stereo.wav", None, True).y, (left + right) / 2, atol=1e-7)
+
+
+def test_segment_levels_recover_a_known_level_profile_through_channel_noise(rng):
+    """The output's level re the reference's, second by second, where the truth is made here: 12 s of
+    the ARCTIC bdl sentence (three times), the output the same speech scaled by a profile held over whole
+    seconds plus white noise 10 dB below the speech's mean power. Each side's noise floor is taken out,
+    so the profile comes back within 0.3 dB (measured: 0.14 at most), at the segments' centres; adding the
+    floor instead reads 0.2-7 dB high (most in the quiet -6 dB stretch). A spread over 3 dB is a track;
+    a flat profile is none, nor are fewer than three segments."""
+    speech, sr = sf.read(ARCTIC[0])
+    r = np.tile(speech, 3)[: 12 * sr]
+    profile = np.repeat([0.0, 0.0, 0.0, -6.0, -6.0, -6.0, 4.0, 4.0, 4.0, 0.0, 0.0, 0.0], sr)
+    noise = rng.standard_normal(r.size) * np.sqrt(np.mean(r**2) / 10)
+    at, g = telband.segment_levels(r, r * 10 ** (profile / 20) + noise)
+    np.testing.assert_array_equal(at, (np.arange(12) + 0.5) * sr)
+    np.testing.assert_allclose(g, profile[:: sr], atol=0.3)
+    track = telband.level_track(r, r * 10 ** (profile / 20) + noise, levels=(at, g))
+    assert track is not None and track.size == r.size
+    np.testing.assert_allclose(track[at.astype(int)], g)  # through each segment's level, straight lines between
+    assert telband.level_track(r, 0.5 * r + noise) is None  # one gain serves
+    step = np.repeat([0.0, -8.0, -8.0], sr)
+    assert telband.level_track(r[: 3 * sr], r[: 3 * sr] * 10 ** (step / 20)) is not None  # three segments: enough
+    assert telband.level_track(r[: 2 * sr], r[: 2 * sr] * 10 ** (step[: 2 * sr] / 20)) is None  # two: too few
