@@ -11,6 +11,7 @@ import soundfile as sf
 
 from nenv.train.corpus import exclusions, measure
 from nenv.train.recipe import Recipe
+from tests.conftest import ARCTIC
 
 HELDOUT = Path(__file__).parent / "data" / "heldout"
 
@@ -168,15 +169,15 @@ def test_meeting_turns_keep_one_unoverlapped_stretch_per_speaker_worked_by_hand(
     ], extra="SPKR-INFO m1 1 <NA> <NA> <NA> unknown FEE001 <NA> <NA>\nSPEAKER m1 1 80.0\n")
     (data / "m1.wav").write_bytes(b"")
     _rttm(data / "gone.rttm", "gone", [(0.0, 9.0, "FEE009")])  # no gone.wav
-    got = [(c.name, c.start_s, c.stop_s, c.speaker, c.group) for c in heldout.candidates(tmp_path) if c.name.startswith("ami_")]
-    assert got == [
+    ami = [c for c in heldout.candidates(tmp_path) if c.name.startswith("ami_")]
+    assert [(c.name, c.start_s, c.stop_s, c.speaker, c.group) for c in ami] == [
         ("ami_fee008", 60.0, 68.0, "ami/FEE008", "female"),
         ("ami_meo002", 10.0, 17.0, "ami/MEO002", "male"),
         ("ami_fee001", 0.0, 4.0, "ami/FEE001", "female"),
         ("ami_meo006", 50.0, 53.0, "ami/MEO006", "male"),
         ("ami_mee005", 30.0, 32.5, "ami/MEE005", "male"),
     ]
-    assert all(c.path == str(data / "m1.wav") and c.licence == "CC-BY-4.0" for c in heldout.candidates(tmp_path) if c.name.startswith("ami_"))
+    assert all(c.path == str(data / "m1.wav") and c.licence == "CC-BY-4.0" for c in ami)
 
 
 def test_candidates_are_found_in_each_source_tree_and_nothing_else(tmp_path, monkeypatch):
@@ -207,7 +208,7 @@ def test_the_builder_cuts_checks_and_writes_each_clip_and_lists_what_it_excluded
     from nenv.train import heldout
 
     monkeypatch.setattr(heldout, "CODEC2_FILES", ())
-    speech, sr = sf.read(Path(__file__).parent / "data" / "arctic_a0007.wav")
+    speech, sr = sf.read(ARCTIC[0])  # arctic_a0007
     assert sr == 16000
     data = tmp_path / "src" / "pyannote_audio-4.0.7" / "tests" / "data"
     data.mkdir(parents=True)
@@ -220,8 +221,8 @@ def test_the_builder_cuts_checks_and_writes_each_clip_and_lists_what_it_excluded
     cut, cut_sr = sf.read(tmp_path / "out" / "ami_mee001.flac")
     assert cut_sr == 16000 and cut.size == int(2.75 * sr)
     np.testing.assert_allclose(cut, sf.read(data / "m1.wav")[0][4000 : 4000 + cut.size], atol=1 / 32768)  # 0.25 s in, FLAC of 16-bit samples
-    for name in ("arctic_a0007", "arctic_a0009"):  # whole sentences, sample for sample
-        np.testing.assert_array_equal(sf.read(tmp_path / "out" / f"{name}.flac")[0], sf.read(Path(__file__).parent / "data" / f"{name}.wav")[0])
+    for src in ARCTIC:  # whole sentences, sample for sample
+        np.testing.assert_array_equal(sf.read(tmp_path / "out" / f"{src.stem}.flac")[0], sf.read(src)[0])
     with open(tmp_path / "out" / "clips.csv", newline="", encoding="utf-8") as fh:
         assert [r["clip"] for r in csv.DictReader(fh)] == ["arctic_a0007", "arctic_a0009", "ami_mee001"]
     with open(tmp_path / "out" / "excluded.csv", newline="", encoding="utf-8") as fh:
