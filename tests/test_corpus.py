@@ -281,3 +281,87 @@ def test_augmentation_draws_what_the_recipe_says(monkeypatch):
     assert {p[1] for p in phones} == {"mulaw", "alaw"}
     snrs = [p[2] for p in phones if p[2] is not None]
     assert 5 <= len(snrs) <= 25 and all(25 <= v <= 35 for v in snrs)  # 15 expected of 60
+
+
+def _peak_hz(y, sr=16000):
+    spec = np.abs(np.fft.rfft(y * np.hanning(y.size)))
+    return float(np.fft.rfftfreq(y.size, 1 / sr)[np.argmax(spec)])
+
+
+@pytest.mark.parametrize("sr, factor", [(16000, 1.1), (48000, 0.9), (48000, 1.15)])
+def test_warp_scales_every_frequency_by_its_factor(sr, factor):
+    # Vocal-tract-length perturbation (Jaitly & Hinton 2013) as nenv does it: resampled to 16000/factor
+    # and read as 16 kHz, a 1 kHz tone and a 3 kHz tone come out at factor times their frequency.
+    from nenv.train import dataset
+
+    t = np.arange(2 * sr) / sr
+    for f0 in (1000.0, 3000.0):
+        out = dataset.warp(0.5 * np.sin(2 * np.pi * f0 * t), sr=sr, factor=factor)
+        assert out.size == pytest.approx(2 * 16000 / factor, abs=2)
+        assert _peak_hz(out) == pytest.approx(f0 * factor, abs=1.0)
+
+
+@pytest.mark.parametrize("sr, bottom", [(16000, 1.0), (48000, 1 / 1.2)])
+def test_warp_factors_span_the_recipes_range_where_the_source_fills_8_khz(monkeypatch, sr, bottom):
+    # Factors are drawn in [1/warp_max, warp_max], raised to 16000/sr at least: a 16 kHz source is only
+    # ever stretched upwards (a factor under 1 would leave the top of 0-8 kHz empty), a 48 kHz one both ways.
+    from nenv.chain.features import FeatureSettings
+    from nenv.train import dataset
+
+    factors = []
+    real = dataset.warp
+    monkeypatch.setattr(dataset, "warp", lambda y, *, sr, factor: (factors.append(factor), real(y, sr=sr, factor=factor))[1])
+    y = 0.1 * np.random.default_rng(10).standard_normal(sr // 10)
+    r = recipe.load(None, overrides=["copies=80", "warp_max=1.2", "noise_probability=0"])
+    dataset.pairs_from_signal(y, sr=sr, recipe=r, settings=FeatureSettings(context=r.context), rng=np.random.default_rng(1))
+    assert len(factors) >= 75  # all but the draws within 0.1% of 1
+    assert min(factors) >= bottom - 1e-12 and max(factors) <= 1.2 + 1e-12
+    assert min(factors) < bottom + 0.03 and max(factors) > 1.17  # the range is used end to end
+    factors.clear()
+    dataset.pairs_from_signal(y, sr=sr, recipe=recipe.load(None, overrides=["copies=5", "warp_max=1.0"]), settings=FeatureSettings(context=r.context), rng=np.random.default_rng(1))
+    assert factors == []  # warp_max = 1 means no warping
+
+
+def test_silence_or_a_sliver_gives_no_pairs_with_every_column():
+    from nenv.chain.features import FeatureSettings
+    from nenv.settings import NB_ORDER
+    from nenv.train import dataset
+
+    s = FeatureSettings()
+    r = recipe.load(None, overrides=["copies=2"])
+    for y in (np.zeros(16000), 0.1 * np.ones(100)):
+        p = dataset.pairs_from_signal(y, recipe=r, settings=s, rng=np.random.default_rng(0))
+        assert p.x.shape == (0, s.input_dim) and p.current.shape == (0, s.n_inputs) and p.ceps.shape == (0, s.n_wb_ceps)
+        assert p.level.shape == p.group.shape == p.low.shape == (0,) and p.a_nb.shape == (0, NB_ORDER + 1) and p.seconds == 0.0
+
+
+def test_built_pairs_name_their_file_count_the_audio_and_come_back_whole_from_the_cache(tmp_path, monkeypatch):
+    from nenv.chain.features import FeatureSettings
+    from nenv.train import dataset
+
+    rng = np.random.default_rng(11)
+    paths = []
+    for k, seconds in enumerate((1.0, 0.5)):
+        y = signal.lfilter([1.0], [1.0, -0.9], rng.standard_normal(int(16000 * seconds))) * 0.05
+        paths.append(str(tmp_path / f"f{k}.wav"))
+        sf.write(paths[-1], y, 16000, subtype="PCM_16")
+    r = recipe.load(None, overrides=["copies=3", "warp_max=1.0", "active_range_db=1000"])
+    s = FeatureSettings(context=r.context)
+    import time
+
+    t0 = time.perf_counter()
+    pairs, facts = dataset.build(paths, recipe=r, settings=s, cache_dir=str(tmp_path / "cache"))
+    assert 0 < facts["wall_s"] <= time.perf_counter() - t0
+    one = [dataset.pairs_from_signal(sf.read(p)[0], recipe=r, settings=s, rng=np.random.default_rng(0)).x.shape[0] for p in paths]
+    assert one == [300, 150]  # every hop of every copy (active_range_db=1000 keeps them all)
+    np.testing.assert_array_equal(pairs.group, np.repeat([0, 1], one))
+    assert pairs.seconds == pytest.approx(3 * 1.5) and facts["seconds_audio"] == pairs.seconds
+    assert facts["x_real_time"] == pytest.approx(pairs.seconds / facts["wall_s"], rel=1e-9)
+    assert pairs.low is not None and pairs.low.shape == (450,)
+    assert len(list((tmp_path / "cache").glob("*.npz"))) == 2
+
+    monkeypatch.setattr(dataset, "load_native", lambda path: pytest.fail("read the audio although it was cached"))
+    again, _ = dataset.build(paths, recipe=r, settings=s, cache_dir=str(tmp_path / "cache"))
+    for k in ("x", "current", "ceps", "level", "a_nb", "group", "low"):
+        np.testing.assert_array_equal(getattr(again, k), getattr(pairs, k), err_msg=k)
+    assert again.seconds == pairs.seconds
