@@ -1,17 +1,8 @@
 """A training run from recipe to model folder: survey, split, features, MLP, codebook, guard, export.
 
-The loss (per hop) is, with ``loss = "cepstra"`` (on normalised targets),
-
-    mean((c_pred - c_true)^2) + level_weight * w * (l_pred - l_true)^2,
-    w = over_weight if l_pred > l_true else 1,
-
-or, with ``loss = "spectrum"``, the same level term in dB^2 plus the mean
-squared dB error of the envelope *shape* over 3.4-8 kHz (the cepstral error
-evaluated as a log spectrum on 48 frequencies, its mean removed because the
-level term fixes the band's power). Either way, over-estimating the high-band level costs ``over_weight`` times more than
-under-estimating it by the same amount (the minimiser is an expectile below
-the mean: with over_weight = 4, the 0.2-expectile). Listeners find too loud a
-high band far worse than too quiet a one.
+The loss is :func:`nenv.train.model.training_loss`: the envelope's cepstra (or
+its 3.4-8 kHz shape in dB) and the high-band level, an over-estimated level
+costing ``over_weight`` times an under-estimate.
 """
 
 from __future__ import annotations
@@ -167,7 +158,7 @@ def train(
         import torch
 
         from nenv.train.export import export, metadata_for
-        from nenv.train.model import EnvelopeMLP, ModelConfig
+        from nenv.train.model import EnvelopeMLP, ModelConfig, training_loss
 
         x_mean, x_std = tr.x.mean(axis=0), np.maximum(tr.x.std(axis=0), 1e-6)
         y_tr = np.column_stack([tr.ceps, tr.level])
@@ -184,26 +175,7 @@ def train(
         xv = torch.from_numpy(((va.x - x_mean) / x_std).astype(np.float32))
         yv = torch.from_numpy(((y_va - y_mean) / y_std).astype(np.float32))
 
-        if recipe.loss == "spectrum":
-            # dB error of the shape over 3.4-8 kHz: 20/ln(10) * sum_n dc_n cos(n w), mean removed
-            # (the level term sets the band's power), in dB^2; the level term in dB^2 too.
-            w_hb = np.pi * np.linspace(BAND_EDGE_HZ, WB_SR / 2, 48) / (WB_SR / 2)
-            basis = torch.from_numpy((20 / np.log(10) * np.cos(np.outer(np.arange(1, settings.n_wb_ceps + 1), w_hb)) * y_std[:-1, None]).astype(np.float32))
-            level_scale = float(y_std[-1])
-
-            def loss_fn(pred, target):
-                d = (pred[:, :-1] - target[:, :-1]) @ basis
-                shape = torch.mean((d - d.mean(dim=1, keepdim=True)) ** 2)
-                dl = (pred[:, -1] - target[:, -1]) * level_scale
-                w = torch.where(dl > 0, torch.full_like(dl, recipe.over_weight), torch.ones_like(dl))
-                return shape + recipe.level_weight * torch.mean(w * dl * dl)
-        else:
-
-            def loss_fn(pred, target):
-                ceps = torch.mean((pred[:, :-1] - target[:, :-1]) ** 2)
-                d = pred[:, -1] - target[:, -1]
-                w = torch.where(d > 0, torch.full_like(d, recipe.over_weight), torch.ones_like(d))
-                return ceps + recipe.level_weight * torch.mean(w * d * d)
+        loss_fn = training_loss(recipe.loss, y_std=y_std, level_weight=recipe.level_weight, over_weight=recipe.over_weight)
 
         gen = torch.Generator().manual_seed(recipe.seed)
         history = []
