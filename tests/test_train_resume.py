@@ -114,3 +114,25 @@ def test_a_finished_run_replaces_an_old_model_folder_whole_and_leaves_nothing_be
     (work / "nenv.json").write_text("first")
     workdir.install(work, other)
     assert (other / "nenv.json").read_text() == "first" and not work.exists()
+
+
+def test_a_run_stops_after_patience_epochs_without_gain_and_resumes_stopped(synthetic_corpus, tmp_path, monkeypatch):
+    """A learning rate too small to move the validation loss (by the 1e-5 a gain must exceed): the best
+    epoch stays the first and the run stops `patience` epochs later, not at `epochs`. Killed after that
+    last epoch (in the codebook fit that follows), the resumed run stays stopped: the same four epochs."""
+    r = recipe.load(None, overrides=[f'corpus="{synthetic_corpus}"', *QUICK, "epochs=20", "patience=3", "learning_rate=1e-12"])
+    out = tmp_path / "m"
+
+    def killed(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(loop.Codebook, "fit", killed)
+    with pytest.raises(KeyboardInterrupt):
+        loop.train(r, out)
+    monkeypatch.undo()
+    assert not out.exists() and (loop.partial_folder(out) / loop.RESUME_FILE).is_file()
+    res = loop.train(r, out, resume=True)
+    h, m = res.record["history"], res.record["metrics"]
+    assert [e["epoch"] for e in h] == [1, 2, 3, 4]
+    assert m["best_epoch"] == 1
+    assert max(e["val_loss"] for e in h) - min(e["val_loss"] for e in h) < 1e-5
