@@ -127,6 +127,30 @@ def test_extend_reports_a_short_input_in_milliseconds_and_no_speed(tmp_path):
     assert sf.info(tmp_path / "out.wav").frames == 60
 
 
+@pytest.mark.parametrize("model, shipped, want", [(None, True, "ALL_SYSTEMS"), (None, False, "DEFAULT_SYSTEMS"), ("given", False, "ALL_SYSTEMS")])
+def test_evaluate_compares_every_system_it_can_run_when_none_is_named(tmp_path, monkeypatch, model, shipped, want):
+    """Without --method: with a model (the shipped one, or --model) every system, the model's two included;
+    with none the four that need no model."""
+    from nenv.chain import checkpoint
+    from nenv.report import evaluate as ev
+
+    class Seen(Exception):
+        pass
+
+    def run(references, *, systems, **kwargs):
+        raise Seen(systems)
+
+    shipped_path = checkpoint.default_path()
+    if shipped_path is None:
+        pytest.skip("no shipped default model in this checkout")
+    monkeypatch.setattr(checkpoint, "default_path", lambda: shipped_path if shipped else None)
+    monkeypatch.setattr(ev, "run", run)
+    extra = ["--model", str(shipped_path)] if model else []
+    with pytest.raises(Seen) as seen:
+        _run("evaluate", ARCTIC[0], "--out", tmp_path / "ev", *extra)
+    assert seen.value.args[0] == getattr(ev, want)
+
+
 def test_evaluate_means_per_speaker_group(tmp_path):
     # groups as tests/data/heldout/clips.csv gives them: ARCTIC bdl (a0007) male, slt (a0009) female
     import csv
