@@ -326,6 +326,19 @@ def test_degrade_codes_g711_mu_law_by_default_and_refuses_absurd_noise(tmp_path)
     assert not np.isin(lin.astype(int), grid).all()  # a linear channel does not: the check can fail
     for bad in ("-200", "1000"):
         _assert_user_error(_run("degrade", ARCTIC[0], tmp_path / "x.wav", "--snr-db", bad), "--snr-db")
+    # noise within the range (its edges included): white, set against the wideband speech before the channel,
+    # so 10 dB less SNR is 10 dB more noise in the output; the band-pass then keeps about 3100/8000 of the
+    # noise and most of the speech, so the telephone band's SNR comes out a few dB better (measured 31.6 at 30)
+    for snr in ("-10", "20", "30", "100"):
+        assert _run("degrade", ARCTIC[0], tmp_path / f"n{snr}.wav", "--law", "none", "--snr-db", snr).exit_code == 0
+    clean, _ = sf.read(tmp_path / "lin.wav")
+    noise_db = {snr: 10 * np.log10(np.mean((sf.read(tmp_path / f"n{snr}.wav")[0] - clean) ** 2)) for snr in ("20", "30", "100")}
+    assert noise_db["20"] - noise_db["30"] == pytest.approx(10.0, abs=1.0)  # measured 9.4: the level is set after the noise
+    from nenv.dsp import channel
+
+    band_snr = channel.active_level_dbov(clean, sr=8000) - noise_db["30"]  # dBov is 10 log10 of the mean square (full scale 1.0)
+    assert 30.0 < band_snr < 30.0 + 10 * np.log10(8000 / 3100)
+    assert noise_db["100"] < -100  # at 100 dB the noise is below 16-bit rounding (measured -110 dB; at 30 dB, -58)
 
 
 @pytest.mark.parametrize(
