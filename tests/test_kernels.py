@@ -266,6 +266,26 @@ def test_first_process_compiles_and_says_so_later_ones_load_the_cache(tmp_path):
     assert any(tmp_path.rglob("*.nbi")), "numba wrote no cache index"
 
 
+def test_after_warm_up_every_kernel_is_compiled_once_and_never_compiles_on_a_call():
+    """Compilation must not land on a call: once warm, ``kernels.NAME`` is the compiled function itself,
+    with its one signature, and compiling is off, so arguments of another type fail at once (TypeError)
+    instead of compiling in the middle of a hop. No module but kernels.py (and the loops among
+    themselves) reaches the loops, so nothing calls a kernel around the warm-up."""
+    import re
+    from pathlib import Path
+
+    kernels.warm()
+    for name in kernels.PUBLIC:
+        fn = getattr(kernels.loops, name)
+        assert getattr(kernels, name) is fn, name
+        assert len(fn.signatures) == 1 and not fn._can_compile, name  # numba's Dispatcher
+    with pytest.raises(TypeError, match="No matching definition"):
+        kernels.autocorrelation(np.zeros((2, 8), dtype=np.float32), 2)
+    package = Path(kernels.__file__).resolve().parents[1]
+    reach = [str(f.relative_to(package)) for f in package.rglob("*.py") if f.name != "kernels.py" and not f.name.endswith("_loops.py") and re.search(r"^\s*(from nenv\.dsp(\.\w+_loops)? import .*\w+_loops|import nenv\.dsp\.\w+_loops|from nenv\.dsp\.\w+_loops import)", f.read_text(), re.M)]
+    assert reach == []
+
+
 def test_engines_made_in_several_threads_at_once_all_start():
     """A gateway may make its engines in several threads at start-up. Each engine warms the kernels;
     two warm-ups at once used to collide (the first to finish forbids compiling, and the other's
