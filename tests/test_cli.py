@@ -378,3 +378,31 @@ def test_limited_samples_are_explained(tmp_path):
     assert "were limited" in res.stderr and "telephone band plus added band" in res.stderr
     y, _ = sf.read(tmp_path / "out.wav")
     assert np.abs(y).max() <= 0.99 + 1 / 32768  # the limiter's ceiling (about -0.1 dBFS), one 16-bit step of rounding
+
+
+@pytest.mark.parametrize(
+    "text, want",
+    [
+        ("127.0.0.1:5004", ("127.0.0.1", 5004)),
+        ("[::1]:5004", ("::1", 5004)),
+        ("gateway.example:0", ("gateway.example", 0)),
+        (":6000", ("127.0.0.1", 6000)),
+        ("[fe80::1%eth0]:65535", ("fe80::1%eth0", 65535)),
+        ("[::1:5004", "in brackets"),  # an opening bracket without its closing one
+        ("::1]:5004", "in brackets"),
+        ("::1:5004", "in brackets"),
+        ("127.0.0.1:65536", "must look like HOST:PORT"),
+        ("127.0.0.1", "must look like HOST:PORT"),
+        ("127.0.0.1:-1", "must look like HOST:PORT"),
+        ("[::1]", "e.g. \\[::1\\]:5004"),  # no port: either message shows the form
+    ],
+)
+def test_host_and_port_as_the_relay_reads_them(text, want):
+    from nenv.cli.live import _hostport
+    from nenv.errors import InputError
+
+    if isinstance(want, tuple):
+        assert _hostport(text, "--listen") == want
+    else:
+        with pytest.raises(InputError, match=want):
+            _hostport(text, "--listen")
