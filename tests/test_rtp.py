@@ -160,6 +160,22 @@ def test_dynamic_payload_type_is_required():
         rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=8)
 
 
+@pytest.mark.parametrize("payload_type, ok", [(95, False), (96, True), (127, True), (128, False), (0, False)])
+def test_relay_sends_only_a_dynamic_payload_type(monkeypatch, payload_type, ok):
+    """The command checks its option at the edges too (the engine's own check above saw only 8): the
+    output is wideband PCM, which has no static payload type, so a dynamic one, 96-127 (RFC 3551, section 3)."""
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+
+    monkeypatch.setattr(rtp.Relay, "serve", lambda self: self._shutdown())  # start, report, stop at once
+    res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging", "--payload-type", str(payload_type)])
+    if ok:
+        assert res.exit_code == 0 and "relaying RTP" in res.output, res.output
+    else:
+        assert res.exit_code == 2 and f"--payload-type {payload_type}: dynamic payload types are 96-127" in res.output, res.output
+
+
 @pytest.mark.parametrize("method", ["imaging", "neural", "neural --low-band", "neural --hold-freed-memory"])  # neural: the batched engine
 def test_relay_command_runs_and_stops_on_sigterm(arctic_refs, method):
     import signal
