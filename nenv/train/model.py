@@ -91,9 +91,7 @@ def training_loss(kind: str, *, y_std: np.ndarray, level_weight: float, over_wei
         def spectrum_loss(pred: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
             d = (pred[:, :-1] - target[:, :-1]) @ basis
             shape = torch.mean((d - d.mean(dim=1, keepdim=True)) ** 2)
-            dl = (pred[:, -1] - target[:, -1]) * level_scale
-            w = torch.where(dl > 0, torch.full_like(dl, over_weight), torch.ones_like(dl))
-            return shape + level_weight * torch.mean(w * dl * dl)
+            return shape + level_weight * _asymmetric_square((pred[:, -1] - target[:, -1]) * level_scale, over_weight)
 
         return spectrum_loss
     if kind != "cepstra":
@@ -101,8 +99,12 @@ def training_loss(kind: str, *, y_std: np.ndarray, level_weight: float, over_wei
 
     def cepstra_loss(pred: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
         ceps = torch.mean((pred[:, :-1] - target[:, :-1]) ** 2)
-        d = pred[:, -1] - target[:, -1]
-        w = torch.where(d > 0, torch.full_like(d, over_weight), torch.ones_like(d))
-        return ceps + level_weight * torch.mean(w * d * d)
+        return ceps + level_weight * _asymmetric_square(pred[:, -1] - target[:, -1], over_weight)
 
     return cepstra_loss
+
+
+def _asymmetric_square(d: torch.Tensor, over_weight: float) -> torch.Tensor:
+    """``mean(w * d^2)`` with ``w = over_weight`` where ``d > 0`` (an over-estimate), else 1."""
+    w = torch.where(d > 0, torch.full_like(d, over_weight), torch.ones_like(d))
+    return torch.mean(w * d * d)
