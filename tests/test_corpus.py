@@ -336,6 +336,8 @@ def test_silence_or_a_sliver_gives_no_pairs_with_every_column():
 
 
 def test_built_pairs_name_their_file_count_the_audio_and_come_back_whole_from_the_cache(tmp_path, monkeypatch):
+    import time
+
     from nenv.chain.features import FeatureSettings
     from nenv.train import dataset
 
@@ -347,8 +349,6 @@ def test_built_pairs_name_their_file_count_the_audio_and_come_back_whole_from_th
         sf.write(paths[-1], y, 16000, subtype="PCM_16")
     r = recipe.load(None, overrides=["copies=3", "warp_max=1.0", "active_range_db=1000"])
     s = FeatureSettings(context=r.context)
-    import time
-
     t0 = time.perf_counter()
     pairs, facts = dataset.build(paths, recipe=r, settings=s, cache_dir=str(tmp_path / "cache"))
     assert 0 < facts["wall_s"] <= time.perf_counter() - t0
