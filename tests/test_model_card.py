@@ -19,9 +19,9 @@ N_CLIPS = 5  # per group
 def _table(*, dv=0.5, dp=0.3, ceiling_v=0.9, ceiling_p=0.6, above=(N_CLIPS, N_CLIPS), lsd_gap=2.0, worse_clips=(), worse_by=0.01, level=(-1.0, -1.0)):
     """Scores of unextended, true-band, neural and codebook on N_CLIPS female and N_CLIPS male clips.
 
-    Every neural-vs-unextended difference is the same on each clip except that only ``above[g]``
-    clips of group g score above unextended in ViSQOL (the others tie with it, plus a mirrored
-    loss on one clip so the mean stays ``dv``). ``worse_clips`` get a neural LSD ``worse_by`` above the codebook's.
+    Neural scores ``dp`` above unextended in WB-PESQ on every clip; in ViSQOL only the first ``above[g]``
+    clips of group g score above it (the others tie), by as much as keeps the mean ``dv`` above.
+    ``worse_clips`` get a neural LSD ``worse_by`` above the codebook's.
     Mean rows with absurd values are included: the goals must read the clips only.
     """
     rows = []
@@ -39,7 +39,7 @@ def _table(*, dv=0.5, dp=0.3, ceiling_v=0.9, ceiling_p=0.6, above=(N_CLIPS, N_CL
                 {**common, "system": "neural", "visqol": nv, "pesq_wb": u_p + dp, "lsd_high": lsd_nn, "level_error_high": level[gi]},
                 {**common, "system": "codebook", "visqol": u_v - 0.3, "pesq_wb": u_p - 0.3, "lsd_high": lsd_cb, "level_error_high": -6.0},
             ]
-    # keep the mean difference at dv when some clips only tie: add the missing gain to the clips that win
+    # the clips that win carry the ties' share of the mean difference
     winners = [r for r in rows if r["system"] == "neural" and int(r["clip"][1:]) < above[0 if r["group"] == "female" else 1]]
     missing = dv * (2 * N_CLIPS - len(winners))
     for r in winners:
