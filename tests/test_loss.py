@@ -9,10 +9,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-import torch
 from scipy import optimize, signal
 
-from nenv.train.model import SHAPE_LOSS_POINTS, training_loss
+torch = pytest.importorskip("torch")
+
+from nenv.train.model import SHAPE_LOSS_POINTS, training_loss  # noqa: E402
 
 N_CEPS = 20
 
