@@ -282,6 +282,8 @@ def test_model_commands(trained, synthetic_corpus, tmp_path):
                "--set", "codebook_size=8", "--set", "min_snr_db=0", "--out", m)
     assert res.exit_code == 0, res.output
     assert "held-out speakers" in res.stdout and (m / "model.onnx").is_file()
+    # what the run should not hide is said on stderr, one warning per line (a few minutes of synthetic speech)
+    assert "nenv: warning: only " in res.stderr and "minutes of active speech were kept" in res.stderr, res.stderr
     _assert_user_error(_run("train", "--set", "epochz=2", "--out", tmp_path / "m2"), "epochz")
     _assert_user_error(_run("train", "--set", f"corpus={synthetic_corpus}", "--out", m), "--force")
     (tmp_path / "a-file").write_text("x")

@@ -168,7 +168,11 @@ def test_a_panel_folder_is_not_overwritten_by_accident(tmp_path):
 
     runner = CliRunner()
     args = ["panel", str(ARCTIC[0]), "--out", str(tmp_path / "p"), "--method", "imaging"]
-    assert runner.invoke(app, args).exit_code == 0
+    first = runner.invoke(app, args)
+    assert first.exit_code == 0
+    # the command says what it wrote, what the page holds and how to analyse the results
+    assert "index.html: 1 trial of 3 stimuli (reference, unextended, imaging)" in first.output, first.output
+    assert f"nenv verdicts RESULTS.json... --key {tmp_path / 'p' / 'key.json'}" in first.output
     key = (tmp_path / "p" / "key.json").read_text()
     res = runner.invoke(app, args)
     assert res.exit_code != 0 and "holds a panel already" in res.output

@@ -136,3 +136,26 @@ def test_a_run_stops_after_patience_epochs_without_gain_and_resumes_stopped(synt
     assert [e["epoch"] for e in h] == [1, 2, 3, 4]
     assert m["best_epoch"] == 1
     assert max(e["val_loss"] for e in h) - min(e["val_loss"] for e in h) < 1e-5
+
+
+def test_ctrl_c_in_nenv_train_keeps_the_run_and_the_same_command_with_resume_finishes_it(synthetic_corpus, tmp_path):
+    """Ctrl-C (SIGINT to the terminal's process group) during the epochs: exit status 130 (the shell's
+    128 + SIGINT, common practice), a message naming the kept folder and --resume, no model folder;
+    the same command with --resume then finishes, the kept state consumed."""
+    out = tmp_path / "m"
+    partial = loop.partial_folder(out)
+    quick = [q for q in QUICK if not q.startswith("epochs=")] + ["epochs=6"]
+    cmd = [sys.executable, "-m", "nenv", "train", "--out", str(out), "--set", f"corpus={synthetic_corpus}"] + [a for q in quick for a in ("--set", q)]
+    proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+    deadline = time.monotonic() + 120
+    while not (partial / loop.RESUME_FILE).is_file() and time.monotonic() < deadline and proc.poll() is None:
+        time.sleep(0.01)
+    assert proc.poll() is None, proc.communicate()[1][-2000:]
+    os.killpg(proc.pid, signal.SIGINT)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err[-2000:]
+    assert "training interrupted" in err and str(partial) in err and "--resume" in err, err[-2000:]
+    assert not out.exists() and (partial / loop.RESUME_FILE).is_file()
+    done = subprocess.run(cmd + ["--resume"], cwd=REPO, capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert (out / "model.onnx").is_file() and not partial.exists()
