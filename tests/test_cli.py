@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import json
 import os
+import re
 
 import numpy as np
 import pytest
@@ -276,12 +278,30 @@ def test_model_commands(trained, synthetic_corpus, tmp_path):
     res = _run("survey", synthetic_corpus, "--out", tmp_path / "sv", "--set", "min_snr_db=0")
     assert res.exit_code == 0, res.output
     assert "kept:" in res.stdout and (tmp_path / "sv" / "survey.csv").is_file()
+    assert (tmp_path / "sv" / "survey.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (ISO/IEC 15948)
+    # the summary line agrees with the table it wrote (durations to the table's 4 digits)
+    import csv
+
+    rows = list(csv.DictReader((tmp_path / "sv" / "survey.csv").open()))
+    kept = [r for r in rows if not r["excluded"]]
+    assert 0 < len(kept)
+    said = re.search(r"files: (\d+)  kept: (\d+) \(([\d.]+) min, ([\d.]+) min active, (\d+) speakers\)", res.stdout)
+    assert said, res.stdout
+    assert (int(said[1]), int(said[2]), int(said[5])) == (len(rows), len(kept), len({r["speaker"] for r in kept}))
+    assert float(said[3]) == pytest.approx(sum(float(r["duration_s"]) for r in kept) / 60, abs=0.051)
+    assert float(said[4]) == pytest.approx(sum(float(r["active_s"]) for r in kept) / 60, abs=0.051)
+    assert f"wrote {tmp_path / 'sv' / 'survey.csv'}, {tmp_path / 'sv' / 'survey.png'}" in res.stderr
     # a short training run through the command line, into folders that do not exist yet (as the README's example)
     m = tmp_path / "models" / "quick" / "m"
     res = _run("train", "--config", "configs/small.toml", "--set", f"corpus={synthetic_corpus}", "--set", "epochs=2",
                "--set", "codebook_size=8", "--set", "min_snr_db=0", "--out", m)
     assert res.exit_code == 0, res.output
     assert "held-out speakers" in res.stdout and (m / "model.onnx").is_file()
+    rec = json.loads((m / "record.json").read_text())
+    lsd, level = rec["metrics"]["val_envelope_lsd_high_db"], rec["metrics"]["val_median_level_error_db"]["neural"]
+    assert f"model {rec['record_id']} written to {m}" in res.stdout
+    assert (f"neural {lsd['neural']:.2f} dB vs codebook {lsd['codebook']:.2f} dB; median level error {level:+.2f} dB; "
+            f"guard rejects {100 * rec['metrics']['val_guard_rejection_rate']:.2f}% of hops") in res.stdout, res.stdout
     # what the run should not hide is said on stderr, one warning per line (a few minutes of synthetic speech)
     assert "nenv: warning: only " in res.stderr and "minutes of active speech were kept" in res.stderr, res.stderr
     _assert_user_error(_run("train", "--set", "epochz=2", "--out", tmp_path / "m2"), "epochz")
