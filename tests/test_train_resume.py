@@ -146,7 +146,10 @@ def test_ctrl_c_in_nenv_train_keeps_the_run_and_the_same_command_with_resume_fin
     partial = loop.partial_folder(out)
     quick = [q for q in QUICK if not q.startswith("epochs=")] + ["epochs=6"]
     cmd = [sys.executable, "-m", "nenv", "train", "--out", str(out), "--set", f"corpus={synthetic_corpus}"] + [a for q in quick for a in ("--set", q)]
-    proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+    # a process started in the background by a non-interactive shell inherits SIGINT ignored, and Python
+    # then leaves it ignored (no KeyboardInterrupt): give the command the disposition a terminal's has
+    proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     deadline = time.monotonic() + 120
     while not (partial / loop.RESUME_FILE).is_file() and time.monotonic() < deadline and proc.poll() is None:
         time.sleep(0.01)
