@@ -282,6 +282,19 @@ def test_low_band_with_a_method_that_has_none_is_refused(tmp_path, arctic_refs):
             make()
 
 
+def test_live_commands_refuse_the_low_band_of_a_method_without_one_before_they_start():
+    """The relay makes its systems per stream: unchecked, the refusal would come only with the first
+    call's packet, inside the serving loop. Both live commands refuse at once, in one line, status 2."""
+    import subprocess
+    import sys
+
+    for args in (["stream"], ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0"]):
+        res = subprocess.run([sys.executable, "-m", "nenv", *args, "--method", "imaging", "--low-band"], input=b"", capture_output=True, timeout=120)
+        err = res.stderr.decode().strip().splitlines()
+        assert res.returncode == 2 and res.stdout == b"", res.stderr.decode()[-2000:]
+        assert err[-1].startswith("nenv: error: low_band (--low-band): the imaging method adds no low band"), err
+
+
 def test_evaluate_with_the_low_band_says_so_and_scores_it():
     from nenv.report import evaluate as ev
     from tests.conftest import ARCTIC

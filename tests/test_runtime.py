@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import time
 
 import numpy as np
@@ -355,6 +356,63 @@ def test_stream_prints_the_same_guard_summary_as_extend(tmp_path, call_audio):
     assert ext.returncode == 0
     assert line == [ln for ln in ext.stderr.decode().splitlines() if ln.startswith("guard:")]
     assert line and "200 hops" in line[0]
+
+
+def test_stream_ends_with_its_counts_and_records_the_call_under_its_id(tmp_path, call_audio):
+    """1.25 s in: the end line says 1.25 s in and out; the record's summary holds the call id, the group,
+    125 hops (10 ms each, the tail padding not counted) and the call's length; a 0 dBFS square wave,
+    limited at -0.1 dBFS, is counted."""
+    import json
+
+    from nenv.media.audio import to_int16
+
+    _, x = call_audio
+    res = _nenv("stream", "--method", "neural", "--record", tmp_path / "r.jsonl", "--call-id", "call-12", "--group", "female",
+                input=to_int16(x[:10000]).astype("<i2").tobytes())
+    assert res.returncode == 0, res.stderr
+    assert "stream ended: 1.25 s in, 1.25 s out, 0 samples limited, 0 bad samples" in res.stderr.decode()
+    last = json.loads((tmp_path / "r.jsonl").read_text().splitlines()[-1])
+    assert (last["type"], last["source"], last["group"], last["hops"], last["seconds"]) == ("summary", "call-12", "female", 125, 1.25)
+    loud = np.where(np.arange(4000) % 40 < 20, 32767, -32768).astype("<i2").tobytes()  # 200 Hz, full scale
+    res = _nenv("stream", "--method", "imaging", input=loud)
+    said = re.search(r"stream ended: 0\.50 s in, 0\.50 s out, (\d+) samples? limited, 0 bad samples", res.stderr.decode())
+    assert res.returncode == 0 and said and int(said[1]) > 0, res.stderr
+
+
+def test_stream_writes_each_block_out_at_once_without_the_environment_asking(call_audio):
+    """A live call cannot wait for an output buffer to fill: the stream flushes after every block itself,
+    also where PYTHONUNBUFFERED is not set (some machines set it for every process; it would hide a
+    missing flush). Half a second of input, stdin left open: its extension arrives within 60 s."""
+    import os
+    import select
+    import subprocess
+    import sys
+    import time
+
+    from nenv.chain.pipeline import LATENCY
+    from nenv.media.audio import to_int16
+
+    _, x = call_audio
+    env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}
+    p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--method", "imaging"], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                         stderr=subprocess.PIPE, env=env)
+    try:
+        p.stdin.write(to_int16(x[:4000]).astype("<i2").tobytes())
+        p.stdin.flush()
+        want, got, deadline = 2 * (8000 - LATENCY), b"", time.monotonic() + 60
+        while len(got) < want and time.monotonic() < deadline:
+            if select.select([p.stdout], [], [], 0.5)[0]:
+                chunk = os.read(p.stdout.fileno(), 65536)
+                if not chunk:
+                    break
+                got += chunk
+        assert len(got) == want, f"{len(got)} of {want} bytes while the input stayed open"
+    finally:
+        p.stdin.close()  # end of the call: the tail follows
+        rest = p.stdout.read()
+        p.stderr.read()
+        p.wait(timeout=60)
+    assert p.returncode == 0 and len(got + rest) == 2 * 2 * 4000
 
 
 def test_stream_refuses_a_wav_header_and_a_terminal(tmp_path, call_audio):
