@@ -382,7 +382,8 @@ def test_stream_ends_with_its_counts_and_records_the_call_under_its_id(tmp_path,
 def test_stream_writes_each_block_out_at_once_without_the_environment_asking(call_audio):
     """A live call cannot wait for an output buffer to fill: the stream flushes after every block itself,
     also where PYTHONUNBUFFERED is not set (some machines set it for every process; it would hide a
-    missing flush). Half a second of input, stdin left open: its extension arrives within 60 s."""
+    missing flush). A tenth of a second of input, stdin left open: its extension (less than an output
+    buffer holds) arrives within 60 s."""
     import os
     import select
     import subprocess
@@ -397,9 +398,9 @@ def test_stream_writes_each_block_out_at_once_without_the_environment_asking(cal
     p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--method", "imaging"], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
                          stderr=subprocess.PIPE, env=env)
     try:
-        p.stdin.write(to_int16(x[:4000]).astype("<i2").tobytes())
+        p.stdin.write(to_int16(x[:800]).astype("<i2").tobytes())
         p.stdin.flush()
-        want, got, deadline = 2 * (8000 - LATENCY), b"", time.monotonic() + 60
+        want, got, deadline = 2 * (1600 - LATENCY), b"", time.monotonic() + 60
         while len(got) < want and time.monotonic() < deadline:
             if select.select([p.stdout], [], [], 0.5)[0]:
                 chunk = os.read(p.stdout.fileno(), 65536)
@@ -412,7 +413,7 @@ def test_stream_writes_each_block_out_at_once_without_the_environment_asking(cal
         rest = p.stdout.read()
         p.stderr.read()
         p.wait(timeout=60)
-    assert p.returncode == 0 and len(got + rest) == 2 * 2 * 4000
+    assert p.returncode == 0 and len(got + rest) == 2 * 2 * 800
 
 
 def test_stream_refuses_a_wav_header_and_a_terminal(tmp_path, call_audio):
