@@ -176,6 +176,75 @@ def test_relay_sends_only_a_dynamic_payload_type(monkeypatch, payload_type, ok):
         assert res.exit_code == 2 and f"--payload-type {payload_type}: dynamic payload types are 96-127" in res.output, res.output
 
 
+def test_the_relay_commands_defaults_are_the_ones_the_readme_shows(monkeypatch):
+    """README's command table shows the relay's defaults in its usage line (`[--payload-type 96]` ...);
+    the command, given only --to, must run with exactly those, and with asymmetric, unshared, loopback
+    listening and any source allowed."""
+    import inspect
+    import re
+    from pathlib import Path
+
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+    from nenv.cli.live import relay
+
+    usage = next(line for line in (Path(__file__).parents[1] / "README.md").read_text().splitlines() if line.startswith("| `nenv relay "))
+    shown = dict(re.findall(r"\[--([a-z-]+) ([0-9][0-9.:]*)\]", usage))
+    assert set(shown) == {"listen", "payload-type", "max-streams", "idle-timeout", "step-ms"}, shown
+    made, reuse = [], []
+
+    def serve(self):  # start, look at the listening socket, stop at once
+        if hasattr(socket, "SO_REUSEPORT"):
+            reuse.append(self.sock.getsockopt(socket.SOL_SOCKET, socket.SO_REUSEPORT))
+        made.append(self)
+        self._shutdown()
+
+    monkeypatch.setattr(rtp.Relay, "serve", serve)
+    port = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    port.bind(("127.0.0.1", 0))
+    free = port.getsockname()[1]
+    port.close()  # the documented default listening port (5004) may be taken on a test machine: only its host is checked there
+    res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", f"127.0.0.1:{free}", "--method", "imaging"], catch_exceptions=False)
+    assert res.exit_code == 0 and len(made) == 1, res.output
+    r = made[0]
+    assert (r.pt_out, r.max_streams, r.idle, r.tick) == (int(shown["payload-type"]), int(shown["max-streams"]),
+                                                         float(shown["idle-timeout"]), float(shown["step-ms"]) / 1000)
+    assert r.out is not r.sock and r.allowed is None  # not symmetric; any source
+    assert all(v == 0 for v in reuse)  # the port is not shared unless asked (SO_REUSEPORT off)
+    assert f"output payload type {shown['payload-type']})" in res.output
+    assert inspect.signature(relay).parameters["listen"].default == shown["listen"]
+    # and it ends with its counters, every one zero here
+    assert "relay: 0 streams, 0 malformed, 0 oversized, 0 wrong payload type, 0 not allowed, 0 over the stream limit" in res.output
+
+
+def test_the_relay_command_passes_on_allowed_sources_and_holds_freed_memory_only_when_asked(monkeypatch):
+    """--allow reaches the relay as addresses; glibc's process-wide heap setting is made only with
+    --hold-freed-memory (issue 17: no process-wide side effect unasked); an IPv6 listening address is
+    shown in brackets (RFC 3986's form for a host with a port)."""
+    from typer.testing import CliRunner
+
+    from nenv.cli import app
+    from nenv.serve import memory
+
+    made, held = [], []
+    monkeypatch.setattr(rtp.Relay, "serve", lambda self: made.append(self) or self._shutdown())
+    monkeypatch.setattr(memory, "hold_freed_memory", lambda: held.append(1))
+    base = ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging"]
+    res = CliRunner().invoke(app, base + ["--allow", "127.0.0.2", "--allow", "127.0.0.3"], catch_exceptions=False)
+    assert res.exit_code == 0 and made[-1].allowed == {"127.0.0.2", "127.0.0.3"} and held == [], res.output
+    res = CliRunner().invoke(app, base + ["--hold-freed-memory"], catch_exceptions=False)
+    assert res.exit_code == 0 and held == [1] and made[-1].allowed is None, res.output
+    try:
+        probe = socket.socket(socket.AF_INET6, socket.SOCK_DGRAM)
+        probe.bind(("::1", 0))
+        probe.close()
+    except OSError:
+        pytest.skip("no IPv6 loopback here")
+    res = CliRunner().invoke(app, ["relay", "--to", "[::1]:9", "--listen", "[::1]:0", "--method", "imaging"], catch_exceptions=False)
+    assert res.exit_code == 0 and f"relaying RTP from [::1]:{made[-1].address[1]} to [::1]:9" in res.output, res.output
+
+
 @pytest.mark.parametrize("method", ["imaging", "neural", "neural --low-band", "neural --hold-freed-memory"])  # neural: the batched engine
 def test_relay_command_runs_and_stops_on_sigterm(arctic_refs, method):
     import signal
@@ -633,7 +702,8 @@ def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch)
 
     from nenv.cli import app
 
-    monkeypatch.setattr(rtp.Relay, "serve", lambda self: self._shutdown())  # start, report, stop at once
+    made = []
+    monkeypatch.setattr(rtp.Relay, "serve", lambda self: made.append(self) or self._shutdown())  # start, report, stop at once
     run = lambda: CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging"], catch_exceptions=False)  # noqa: E731
     rmem_max = int(open("/proc/sys/net/core/rmem_max").read()) if os.path.exists("/proc/sys/net/core/rmem_max") else 0
     if rmem_max >= rtp.RECEIVE_BUFFER_BYTES:
@@ -643,7 +713,8 @@ def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch)
         pytest.skip("this system grants even a 1 GiB receive buffer")
     monkeypatch.setattr(rtp, "RECEIVE_BUFFER_BYTES", 2**30)  # more than net.core.rmem_max allows (4 MiB on the development machines)
     res = run()
-    assert res.exit_code == 0 and "note: the system allows a receive buffer of only" in res.output and "net.core.rmem_max" in res.output
+    assert res.exit_code == 0 and f"note: the system allows a receive buffer of only {made[-1].receive_buffer // 1024} KiB" in res.output
+    assert f"raise net.core.rmem_max to {2**30} or more" in res.output
 
 
 def test_the_system_tells_when_a_datagram_arrived_and_how_many_the_socket_dropped():
