@@ -415,6 +415,7 @@ def test_limited_samples_are_explained(tmp_path):
         ("::1:5004", "in brackets"),
         ("127.0.0.1:65536", "must look like HOST:PORT"),
         ("127.0.0.1", "must look like HOST:PORT"),
+        ("5004", "must look like HOST:PORT"),  # a port alone: no host meant, none guessed
         ("127.0.0.1:-1", "must look like HOST:PORT"),
         ("[::1]", "e.g. \\[::1\\]:5004"),  # no port: either message shows the form
     ],

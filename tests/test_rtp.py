@@ -212,7 +212,7 @@ def test_the_relay_commands_defaults_are_the_ones_the_readme_shows(monkeypatch):
                                                          float(shown["idle-timeout"]), float(shown["step-ms"]) / 1000)
     assert r.out is not r.sock and r.allowed is None  # not symmetric; any source
     assert all(v == 0 for v in reuse)  # the port is not shared unless asked (SO_REUSEPORT off)
-    assert f"output payload type {shown['payload-type']})" in res.output
+    assert f"relaying RTP from 127.0.0.1:{free} to 127.0.0.1:9 (method=imaging, output payload type {shown['payload-type']})" in res.output
     assert inspect.signature(relay).parameters["listen"].default == shown["listen"]
     # and it ends with its counters, every one zero here
     assert "relay: 0 streams, 0 malformed, 0 oversized, 0 wrong payload type, 0 not allowed, 0 over the stream limit" in res.output
@@ -235,6 +235,13 @@ def test_the_relay_command_passes_on_allowed_sources_and_holds_freed_memory_only
     assert res.exit_code == 0 and made[-1].allowed == {"127.0.0.2", "127.0.0.3"} and held == [], res.output
     res = CliRunner().invoke(app, base + ["--hold-freed-memory"], catch_exceptions=False)
     assert res.exit_code == 0 and held == [1] and made[-1].allowed is None, res.output
+    # the options' documented ranges, both ends: --max-streams from 1, --step-ms 5-100
+    for option, value, attribute, want in (("--max-streams", "1", "max_streams", 1), ("--step-ms", "5", "tick", 0.005), ("--step-ms", "100", "tick", 0.1)):
+        res = CliRunner().invoke(app, base + [option, value], catch_exceptions=False)
+        assert res.exit_code == 0 and getattr(made[-1], attribute) == want, res.output
+    for option, value in (("--max-streams", "0"), ("--step-ms", "4.9"), ("--step-ms", "100.1")):
+        res = CliRunner().invoke(app, base + [option, value])
+        assert res.exit_code == 2 and f"Invalid value for '{option}'" in res.output, res.output
     try:
         probe = socket.socket(socket.AF_INET6, socket.SOCK_DGRAM)
         probe.bind(("::1", 0))
