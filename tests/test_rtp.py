@@ -178,8 +178,8 @@ def test_relay_sends_only_a_dynamic_payload_type(monkeypatch, payload_type, ok):
 
 def test_the_relay_commands_defaults_are_the_ones_the_readme_shows(monkeypatch):
     """README's command table shows the relay's defaults in its usage line (`[--payload-type 96]` ...);
-    the command, given only --to, must run with exactly those, and with asymmetric, unshared, loopback
-    listening and any source allowed."""
+    the command, given only --to (besides a free port on the documented host, and the quick imaging
+    method), must run with exactly those, and with asymmetric, unshared listening, any source allowed."""
     import inspect
     import re
     from pathlib import Path
