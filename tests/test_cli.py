@@ -291,6 +291,12 @@ def test_model_commands(trained, synthetic_corpus, tmp_path):
     assert float(said[3]) == pytest.approx(sum(float(r["duration_s"]) for r in kept) / 60, abs=0.051)
     assert float(said[4]) == pytest.approx(sum(float(r["active_s"]) for r in kept) / 60, abs=0.051)
     assert f"wrote {tmp_path / 'sv' / 'survey.csv'}, {tmp_path / 'sv' / 'survey.png'}" in res.stderr
+    # one line per reason, its count the files the table gives that reason (with their details in brackets)
+    parts = [p for r in rows for p in r["excluded"].split("; ") if p]
+    said = {k: int(v) for k, v in re.findall(r"^  excluded, (.+): (\d+)$", res.stdout, re.M)}
+    assert parts and sum(said.values()) == len(parts), res.stdout
+    for reason, n in said.items():
+        assert n == sum(p.startswith(reason) for p in parts), (reason, parts)
     # a short training run through the command line, into folders that do not exist yet (as the README's example)
     m = tmp_path / "models" / "quick" / "m"
     res = _run("train", "--config", "configs/small.toml", "--set", f"corpus={synthetic_corpus}", "--set", "epochs=2",
