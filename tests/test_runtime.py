@@ -210,6 +210,7 @@ def test_stream_says_when_s16le_input_ends_inside_a_sample():
 
 def test_stream_whose_reader_goes_away_says_so_and_completes_its_record(tmp_path, call_audio):
     import json
+    import os
     import subprocess
     import sys
 
@@ -221,7 +222,9 @@ def test_stream_whose_reader_goes_away_says_so_and_completes_its_record(tmp_path
     _, x = call_audio
     (tmp_path / "in.raw").write_bytes(to_int16(np.tile(x, 4)).astype("<i2").tobytes())
     with open(tmp_path / "in.raw", "rb") as stdin:
-        p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--record", tmp_path / "r.jsonl"], stdin=stdin, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        # without PYTHONUNBUFFERED (which some machines set): a buffered stdout must not fail again at exit
+        env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}
+        p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--record", tmp_path / "r.jsonl"], stdin=stdin, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env)
         assert len(p.stdout.read(3200)) == 3200  # the reader takes 0.1 s of output, then hangs up
         p.stdout.close()
         err = p.stderr.read().decode()
@@ -359,20 +362,21 @@ def test_stream_prints_the_same_guard_summary_as_extend(tmp_path, call_audio):
 
 
 def test_stream_ends_with_its_counts_and_records_the_call_under_its_id(tmp_path, call_audio):
-    """1.25 s in: the end line says 1.25 s in and out; the record's summary holds the call id, the group,
-    125 hops (10 ms each, the tail padding not counted) and the call's length; a 0 dBFS square wave,
-    limited at -0.1 dBFS, is counted."""
+    """125.5 hops in: the end line says how long the input and output were; the record's summary holds the
+    call id, the group, 126 hops (10 ms each: the half hop, extended only by the flush, counts; the tail
+    padding does not) and the call's length; a 0 dBFS square wave, limited at -0.1 dBFS, is counted."""
     import json
 
     from nenv.media.audio import to_int16
 
     _, x = call_audio
+    n = 10040
     res = _nenv("stream", "--method", "neural", "--record", tmp_path / "r.jsonl", "--call-id", "call-12", "--group", "female",
-                input=to_int16(x[:10000]).astype("<i2").tobytes())
+                input=to_int16(x[:n]).astype("<i2").tobytes())
     assert res.returncode == 0, res.stderr
-    assert "stream ended: 1.25 s in, 1.25 s out, 0 samples limited, 0 bad samples" in res.stderr.decode()
+    assert f"stream ended: {n / 8000:.2f} s in, {2 * n / 16000:.2f} s out, 0 samples limited, 0 bad samples" in res.stderr.decode()
     last = json.loads((tmp_path / "r.jsonl").read_text().splitlines()[-1])
-    assert (last["type"], last["source"], last["group"], last["hops"], last["seconds"]) == ("summary", "call-12", "female", 125, 1.25)
+    assert (last["type"], last["source"], last["group"], last["hops"], last["seconds"]) == ("summary", "call-12", "female", 126, round(n / 8000, 3))
     loud = np.where(np.arange(4000) % 40 < 20, 32767, -32768).astype("<i2").tobytes()  # 200 Hz, full scale
     res = _nenv("stream", "--method", "imaging", input=loud)
     said = re.search(r"stream ended: 0\.50 s in, 0\.50 s out, (\d+) samples? limited, 0 bad samples", res.stderr.decode())
