@@ -23,6 +23,21 @@ DATA = Path(__file__).parent / "data"
 ARCTIC = [DATA / "arctic_a0007.wav", DATA / "arctic_a0009.wav"]
 
 
+def as_if_from_a_terminal() -> None:
+    """``preexec_fn`` for a child a test stops with Ctrl-C (SIGINT): the disposition a terminal's child
+    has. A test run started in the background by a non-interactive shell inherits SIGINT ignored, and a
+    Python child then keeps it ignored and never raises KeyboardInterrupt."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
+def env_without_unbuffered_output() -> dict:
+    """This process's environment less ``PYTHONUNBUFFERED`` (some machines set it for every process), for
+    a child whose own flushing a test checks: with it set, a missing flush goes unseen."""
+    return {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}
+
+
 @pytest.fixture
 def rng() -> np.random.Generator:
     return np.random.default_rng(1234)

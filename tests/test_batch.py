@@ -22,7 +22,7 @@ from nenv.serve import batch, streamfile
 from nenv.dsp import channel
 from nenv.report import records
 from nenv.cli import app
-from tests.conftest import ARCTIC
+from tests.conftest import ARCTIC, as_if_from_a_terminal
 
 runner = CliRunner()
 REPO = Path(__file__).resolve().parents[1]
@@ -158,10 +158,9 @@ def test_killed_batch_leaves_every_output_complete_or_absent(tree, tmp_path):
         return set(out.rglob(".*.part.wav"))
 
     for sig in (signal.SIGKILL, signal.SIGINT, signal.SIGKILL, signal.SIGINT):
-        # Ctrl-C as a terminal delivers it: the child must not inherit an ignored SIGINT (a test run started
-        # as a background job of a non-interactive shell ignores it, and a Python child keeps it ignored)
+        # Ctrl-C as a terminal delivers it: the child must not inherit an ignored SIGINT
         proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True,
-                                preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+                                preexec_fn=as_if_from_a_terminal)
         if sig == signal.SIGKILL:
             time.sleep(rng.uniform(1.5, 3.0))  # anywhere: start-up, reading, writing, renaming (a whole pass takes longer)
         else:

@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 from nenv.dsp import channel
 from nenv.chain import pipeline
 from nenv.serve.runtime import ALGORITHMIC_LATENCY_MS, CallEngine
+from tests.conftest import env_without_unbuffered_output
 
 
 @pytest.fixture(scope="module")
@@ -210,7 +211,6 @@ def test_stream_says_when_s16le_input_ends_inside_a_sample():
 
 def test_stream_whose_reader_goes_away_says_so_and_completes_its_record(tmp_path, call_audio):
     import json
-    import os
     import subprocess
     import sys
 
@@ -222,9 +222,9 @@ def test_stream_whose_reader_goes_away_says_so_and_completes_its_record(tmp_path
     _, x = call_audio
     (tmp_path / "in.raw").write_bytes(to_int16(np.tile(x, 4)).astype("<i2").tobytes())
     with open(tmp_path / "in.raw", "rb") as stdin:
-        # without PYTHONUNBUFFERED (which some machines set): a buffered stdout must not fail again at exit
-        env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}
-        p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--record", tmp_path / "r.jsonl"], stdin=stdin, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env)
+        # a buffered stdout (as without PYTHONUNBUFFERED) must not fail again at exit
+        p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--record", tmp_path / "r.jsonl"], stdin=stdin, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                             env=env_without_unbuffered_output())
         assert len(p.stdout.read(3200)) == 3200  # the reader takes 0.1 s of output, then hangs up
         p.stdout.close()
         err = p.stderr.read().decode()
@@ -398,9 +398,8 @@ def test_stream_writes_each_block_out_at_once_without_the_environment_asking(cal
     from nenv.media.audio import to_int16
 
     _, x = call_audio
-    env = {k: v for k, v in os.environ.items() if k != "PYTHONUNBUFFERED"}
     p = subprocess.Popen([sys.executable, "-m", "nenv", "stream", "--method", "imaging"], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-                         stderr=subprocess.PIPE, env=env)
+                         stderr=subprocess.PIPE, env=env_without_unbuffered_output())
     try:
         p.stdin.write(to_int16(x[:800]).astype("<i2").tobytes())
         p.stdin.flush()

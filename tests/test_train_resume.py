@@ -15,6 +15,7 @@ pytest.importorskip("torch")
 
 from nenv.errors import ConfigError  # noqa: E402
 from nenv.train import loop, recipe  # noqa: E402
+from tests.conftest import as_if_from_a_terminal  # noqa: E402
 
 REPO = Path(__file__).resolve().parents[1]
 QUICK = ["epochs=30", "patience=100", "hidden=[64, 64]", "codebook_size=8", "min_snr_db=0", "val_fraction=0.3", "workers=2", "copies=1"]
@@ -146,10 +147,8 @@ def test_ctrl_c_in_nenv_train_keeps_the_run_and_the_same_command_with_resume_fin
     partial = loop.partial_folder(out)
     quick = [q for q in QUICK if not q.startswith("epochs=")] + ["epochs=6"]
     cmd = [sys.executable, "-m", "nenv", "train", "--out", str(out), "--set", f"corpus={synthetic_corpus}"] + [a for q in quick for a in ("--set", q)]
-    # a process started in the background by a non-interactive shell inherits SIGINT ignored, and Python
-    # then leaves it ignored (no KeyboardInterrupt): give the command the disposition a terminal's has
     proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True,
-                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
+                            preexec_fn=as_if_from_a_terminal)
     deadline = time.monotonic() + 120
     while not (partial / loop.RESUME_FILE).is_file() and time.monotonic() < deadline and proc.poll() is None:
         time.sleep(0.01)
