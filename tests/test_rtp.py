@@ -51,6 +51,14 @@ def test_packetizer_cuts_whole_packets_wraps_its_numbers_and_sends_the_rest_when
     a, b = rtp_packet.Packetizer.starting_at_random(96, 320), rtp_packet.Packetizer.starting_at_random(96, 320)
     assert (a.ssrc, a.seq, a.timestamp) != (b.ssrc, b.seq, b.timestamp)  # random starts (RFC 3550 section 5.1)
 
+@pytest.fixture
+def relays_run_at_once(monkeypatch) -> list:
+    """The relay command starts, reports and stops at once (no packets): the relays it made, in order."""
+    made = []
+    monkeypatch.setattr(rtp.Relay, "serve", lambda self: made.append(self) or self._shutdown())
+    return made
+
+
 def _receiver():
     s = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     s.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 4 * 2**20)  # the test reads after sending everything
@@ -161,14 +169,13 @@ def test_dynamic_payload_type_is_required():
 
 
 @pytest.mark.parametrize("payload_type, ok", [(95, False), (96, True), (127, True), (128, False), (0, False)])
-def test_relay_sends_only_a_dynamic_payload_type(monkeypatch, payload_type, ok):
+def test_relay_sends_only_a_dynamic_payload_type(relays_run_at_once, payload_type, ok):
     """The command checks its option at the edges too (the engine's own check above saw only 8): the
     output is wideband PCM, which has no static payload type, so a dynamic one, 96-127 (RFC 3551, section 3)."""
     from typer.testing import CliRunner
 
     from nenv.cli import app
 
-    monkeypatch.setattr(rtp.Relay, "serve", lambda self: self._shutdown())  # start, report, stop at once
     res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging", "--payload-type", str(payload_type)])
     if ok:
         assert res.exit_code == 0 and "relaying RTP" in res.output, res.output
@@ -218,7 +225,7 @@ def test_the_relay_commands_defaults_are_the_ones_the_readme_shows(monkeypatch):
     assert "relay: 0 streams, 0 malformed, 0 oversized, 0 wrong payload type, 0 not allowed, 0 over the stream limit" in res.output
 
 
-def test_the_relay_command_passes_on_allowed_sources_and_holds_freed_memory_only_when_asked(monkeypatch):
+def test_the_relay_command_passes_on_allowed_sources_and_holds_freed_memory_only_when_asked(monkeypatch, relays_run_at_once):
     """--allow reaches the relay as addresses; glibc's process-wide heap setting is made only with
     --hold-freed-memory (issue 17: no process-wide side effect unasked); an IPv6 listening address is
     shown in brackets (RFC 3986's form for a host with a port)."""
@@ -227,8 +234,7 @@ def test_the_relay_command_passes_on_allowed_sources_and_holds_freed_memory_only
     from nenv.cli import app
     from nenv.serve import memory
 
-    made, held = [], []
-    monkeypatch.setattr(rtp.Relay, "serve", lambda self: made.append(self) or self._shutdown())
+    made, held = relays_run_at_once, []
     monkeypatch.setattr(memory, "hold_freed_memory", lambda: held.append(1))
     base = ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging"]
     res = CliRunner().invoke(app, base + ["--allow", "127.0.0.2", "--allow", "127.0.0.3"], catch_exceptions=False)
@@ -647,12 +653,11 @@ def test_packets_arriving_while_the_relay_is_busy_wait_in_its_socket_not_dropped
     assert relay.counters.malformed == 1200
 
 
-def test_relay_command_reports_its_load_when_it_stops(monkeypatch):
+def test_relay_command_reports_its_load_when_it_stops(relays_run_at_once):
     from typer.testing import CliRunner
 
     from nenv.cli import app
 
-    monkeypatch.setattr(rtp.Relay, "serve", lambda self: self._shutdown())  # start, report, stop at once
     res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging", "--step-ms", "10"], catch_exceptions=False)
     assert res.exit_code == 0
     line = next(line for line in res.output.splitlines() if line.startswith("relay load:"))
@@ -660,13 +665,12 @@ def test_relay_command_reports_its_load_when_it_stops(monkeypatch):
     assert line == f"relay load: the longest round 0 ms, 0 longer than 2 steps of 10 ms; datagrams the system dropped unread, its socket buffer full: {drops}"
 
 
-def test_relay_command_writes_the_guard_record_it_is_given(monkeypatch, tmp_path):
+def test_relay_command_writes_the_guard_record_it_is_given(relays_run_at_once, tmp_path):
     from typer.testing import CliRunner
 
     from nenv.cli import app
     from nenv.report import records
 
-    monkeypatch.setattr(rtp.Relay, "serve", lambda self: self._shutdown())  # start, stop at once
     path = tmp_path / "guard.jsonl"
     res = CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--record", str(path), "--group", "g1"], catch_exceptions=False)
     assert res.exit_code == 0, res.output
@@ -704,13 +708,12 @@ def test_relay_command_ends_with_status_2_when_its_record_could_not_be_written(m
     assert len(records.read([path]).headers) == 1  # the header, written before the disk filled
 
 
-def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch):
+def test_relay_command_says_when_the_system_caps_its_receive_buffer(monkeypatch, relays_run_at_once):
     from typer.testing import CliRunner
 
     from nenv.cli import app
 
-    made = []
-    monkeypatch.setattr(rtp.Relay, "serve", lambda self: made.append(self) or self._shutdown())  # start, report, stop at once
+    made = relays_run_at_once
     run = lambda: CliRunner().invoke(app, ["relay", "--to", "127.0.0.1:9", "--listen", "127.0.0.1:0", "--method", "imaging"], catch_exceptions=False)  # noqa: E731
     rmem_max = int(open("/proc/sys/net/core/rmem_max").read()) if os.path.exists("/proc/sys/net/core/rmem_max") else 0
     if rmem_max >= rtp.RECEIVE_BUFFER_BYTES:
