@@ -164,6 +164,27 @@ def test_counts_in_messages_agree_in_number():
     assert summary_line(1, 0, {}) == "guard: the one hop passed; none fell back to the codebook"
     assert summary_line(5, 0, {}) == "guard: all 5 hops passed; none fell back to the codebook"
     assert summary_line(1, 1, {"level": 1}).startswith("guard: 1 of 1 hop (100.0%) fell back")
+    # the share is rejected / hops, and every reason is listed with its count, in the order given
+    assert summary_line(8, 3, {"level": 2, "novel": 1}) == "guard: 3 of 8 hops (37.5%) fell back to the codebook (level 2, novel 1)"
+
+
+def test_limits_read_from_a_model_folder_refuse_unknown_and_missing_keys():
+    """A model folder's guard limits have exactly the known keys; the four learnt ones are required,
+    and a folder without ``stability_margin`` gets the margin training writes by default."""
+    from nenv.chain.guard import GuardLimits
+    from nenv.errors import ConfigError
+    from nenv.train.recipe import Recipe
+
+    learnt = dict(level_min_db=-60.0, level_max_db=20.0, mismatch_max_db=9.0, novelty_max=1.5)
+    limits = GuardLimits.from_dict(learnt)
+    assert limits.stability_margin == Recipe.stability_margin == 1e-3
+    assert (limits.low_min_db, limits.low_max_db) == (None, None)
+    assert GuardLimits.from_dict(limits.to_dict()) == limits
+    with pytest.raises(ConfigError, match="exactly the keys"):
+        GuardLimits.from_dict({**learnt, "level_max": 20.0})  # a misspelt key, all required ones present
+    for key in learnt:
+        with pytest.raises(ConfigError, match="exactly the keys"):
+            GuardLimits.from_dict({k: v for k, v in learnt.items() if k != key})
 
 
 def test_codebook_cell_and_novelty_by_hand():

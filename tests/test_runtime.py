@@ -55,6 +55,45 @@ def test_single_samples_and_empty_input(call_audio):
     assert eng.feed(np.zeros(0)).size == 0 and eng.flush().size == 0
 
 
+def test_a_call_keeps_its_guard_verdicts_only_when_asked(call_audio):
+    """``keep_decisions=True``: one verdict per hop, in order, equal to an offline run's of the same
+    signal (whose estimator keeps them by default; measures to 1e-12), whatever the chunking; before the first hop the
+    record is empty with each field's type; without it nothing is kept. A guard narrowed to 16 dB of
+    level rejects some hops, so the verdicts compared are not all alike."""
+    from dataclasses import fields
+
+    from nenv.chain import checkpoint
+    from nenv.chain.guard import Decisions
+    from tests.conftest import narrowed_guard
+
+    _, x = call_audio
+    x = x[:9000]
+    ck = narrowed_guard(checkpoint.load(checkpoint.default_path()))
+    offline = pipeline.make_system("neural", model=ck)
+    pipeline.extend(x, system=offline)
+    want = offline.estimator.record()
+    assert 0 < want.rejected.sum() < want.rejected.size
+    eng = CallEngine(ck, keep_decisions=True)
+    empty = eng.system.estimator.record()
+    assert empty.rejected.size == 0
+    assert (empty.rejected.dtype.kind, empty.reasons.dtype.kind, empty.cell.dtype.kind, empty.max_k.dtype.kind) == ("b", "i", "i", "f")
+    for start in range(0, x.size, 333):
+        eng.feed(x[start : start + 333])
+    eng.flush()
+    got = eng.system.estimator.record()
+    for f in fields(Decisions):
+        g, w = getattr(got, f.name), getattr(want, f.name)
+        assert g.dtype == w.dtype, f.name
+        if g.dtype.kind == "f":  # a batch of another size may round the network's last digits otherwise
+            np.testing.assert_allclose(g, w, rtol=1e-12, err_msg=f.name)
+        else:  # verdicts, reasons and cells exactly
+            np.testing.assert_array_equal(g, w, err_msg=f.name)
+    quiet = CallEngine(ck)
+    quiet.feed(x)
+    quiet.flush()
+    assert quiet.system.estimator.record().rejected.size == 0
+
+
 def test_latency_is_a_hop_plus_the_interpolator():
     # 10 ms hop + 23 samples at 16 kHz; no look-ahead
     assert ALGORITHMIC_LATENCY_MS == pytest.approx(10.0 + 23 / 16)
