@@ -96,6 +96,52 @@ def test_level_targets_are_band_powers_per_sample(rng):
     assert np.median(low_band_target(f, np.full(f.shape[0], 6.0))) < want - 40
 
 
+def test_shape_targets_are_the_cepstrum_of_the_wideband_envelope_from_its_definition(rng):
+    """The training targets' shapes (wideband_targets) are c_1..c_n of the order-16 LPC envelope of
+    each 16 kHz frame, by the FFT definition rather than nenv's recursion: for the minimum-phase
+    1/A the complex cepstrum is twice the real cepstrum, 2 IDFT(log|1/A|), for n >= 1 (Oppenheim
+    and Schafer, Discrete-Time Signal Processing, the cepstrum of minimum-phase sequences)."""
+    from nenv.chain.features import wideband_targets
+
+    settings = FeatureSettings()
+    t = np.arange(9600)
+    x = 0.3 * np.sin(2 * np.pi * 700 * t / 16000) + 0.1 * np.sin(2 * np.pi * 4500 * t / 16000) + 0.05 * rng.standard_normal(t.size)
+    frames = lpc.frame(x, frame_length=480, hop_length=160)[:12]
+    ceps, level = wideband_targets(frames, np.zeros(frames.shape[0]), settings=settings)
+    assert ceps.shape == (frames.shape[0], settings.n_wb_ceps) and level.shape == (frames.shape[0],)
+    a, _ = lpc.analyse(frames, order=settings.wb_order, sr=settings.wb_sr)
+    n_fft = 8192
+    real_cepstrum = np.fft.irfft(-np.log(np.abs(np.fft.rfft(a, n=n_fft, axis=1))), n=n_fft, axis=1)
+    np.testing.assert_allclose(ceps, 2 * real_cepstrum[:, 1 : settings.n_wb_ceps + 1], atol=1e-9)
+
+
+def test_empty_inputs_give_empty_features_and_leave_the_context_alone(rng):
+    """No hops in: no rows out, with the right widths; an empty push between two pushes changes
+    nothing that follows."""
+    from nenv.chain.features import N_INPUTS, voicing
+
+    empty = NarrowbandAnalysis(np.zeros((0, 240)), np.zeros((0, 11)), np.zeros(0))
+    assert narrowband_features(empty).shape == (0, N_INPUTS)
+    assert voicing(np.zeros((0, 240))).shape == (0,)
+    f = rng.standard_normal((9, 5))
+    s = ContextStacker(2)
+    first = s.push(f[:4])
+    assert s.push(f[4:4]).shape == (0, 15)
+    np.testing.assert_array_equal(np.vstack([first, s.push(f[4:])]), ContextStacker(2).push(f))
+
+
+def test_one_narrowband_energy_for_every_row_equals_it_repeated(rng):
+    """envelope_from_prediction takes the narrowband energy (and level) per row or one for all."""
+    ceps = rng.normal(0, 0.3, (6, 20)) / np.arange(1, 21)
+    level = rng.normal(-20, 5, 6)
+    a1, g1 = envelope_from_prediction(ceps, level, np.float64(-30.0))
+    a2, g2 = envelope_from_prediction(ceps, level, np.full(6, -30.0))
+    np.testing.assert_array_equal(a1, a2)
+    np.testing.assert_array_equal(g1, g2)
+    _, g3 = envelope_from_prediction(ceps, -20.0, np.full(6, -30.0))
+    np.testing.assert_array_equal(g3, envelope_from_prediction(ceps, np.full(6, -20.0), np.full(6, -30.0))[1])
+
+
 def test_envelope_gain_gives_the_requested_high_band_power(rng):
     # Parseval: for a unit-power white excitation through G/A, the 3.4-8 kHz power of the
     # output must be nb_power * 10^(level/10). Checked by filtering real noise (scipy.signal.lfilter).
