@@ -125,14 +125,14 @@ def missing_tool(msg: str) -> None:
     pytest.skip(msg)
 
 
-def run_bounded(cmd: list[str], *, timeout: float = 300, cwd=None):
+def run_bounded(cmd: list[str], *, timeout: float = 300, cwd=None, env=None):
     """``subprocess.run(cmd)`` capturing text, in its own process group, which is killed whole if it
     runs longer than ``timeout`` seconds (then the test fails, leaving no worker behind): for
     commands whose failure mode is never to end."""
     import signal
     import subprocess
 
-    p = subprocess.Popen(cmd, cwd=cwd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+    p = subprocess.Popen(cmd, cwd=cwd, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
     try:
         out, err = p.communicate(timeout=timeout)
     except subprocess.TimeoutExpired:
