@@ -57,9 +57,9 @@ def test_single_samples_and_empty_input(call_audio):
 
 def test_a_call_keeps_its_guard_verdicts_only_when_asked(call_audio):
     """``keep_decisions=True``: one verdict per hop, in order, equal to an offline run's of the same
-    signal (whose estimator keeps them by default; measures to 1e-12), whatever the chunking; before the first hop the
-    record is empty with each field's type; without it nothing is kept. A guard narrowed to 16 dB of
-    level rejects some hops, so the verdicts compared are not all alike."""
+    signal (whose estimator keeps them by default; measures to 1e-12), whatever the chunking;
+    before the first hop the record is empty with each field's type; without it nothing is kept. A
+    guard narrowed to 16 dB of level rejects some hops, so the verdicts compared are not all alike."""
     from dataclasses import fields
 
     from nenv.chain import checkpoint
