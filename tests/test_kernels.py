@@ -42,6 +42,7 @@ def test_autocorrelation_equals_numpy_correlate_and_rows_are_independent(rng):
     np.testing.assert_allclose(r, ref, rtol=1e-12, atol=1e-12)
     np.testing.assert_array_equal(kernels.autocorrelation(x[3:4], 16), r[3:4])
     short = kernels.autocorrelation(x[:1, :5], 8)[0]  # more lags than samples: the rest are 0
+    np.testing.assert_allclose(short[:5], np.correlate(x[0, :5], x[0, :5], "full")[4:], rtol=1e-12, atol=1e-12)  # the last lag too
     np.testing.assert_array_equal(short[5:], 0.0)
     assert kernels.autocorrelation(np.zeros((0, 10)), 4).shape == (0, 5)
 
