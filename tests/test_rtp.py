@@ -51,6 +51,7 @@ def test_packetizer_cuts_whole_packets_wraps_its_numbers_and_sends_the_rest_when
     a, b = rtp_packet.Packetizer.starting_at_random(96, 320), rtp_packet.Packetizer.starting_at_random(96, 320)
     assert (a.ssrc, a.seq, a.timestamp) != (b.ssrc, b.seq, b.timestamp)  # random starts (RFC 3550 section 5.1)
 
+
 @pytest.fixture
 def relays_run_at_once(monkeypatch) -> list:
     """The relay command starts, reports and stops at once (no packets): the relays it made, in order."""

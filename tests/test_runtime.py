@@ -13,7 +13,7 @@ from hypothesis import strategies as st
 from nenv.dsp import channel
 from nenv.chain import pipeline
 from nenv.serve.runtime import ALGORITHMIC_LATENCY_MS, CallEngine
-from tests.conftest import env_without_unbuffered_output
+from tests.conftest import env_without_unbuffered_output, narrowed_guard
 
 
 @pytest.fixture(scope="module")
@@ -64,7 +64,6 @@ def test_a_call_keeps_its_guard_verdicts_only_when_asked(call_audio):
 
     from nenv.chain import checkpoint
     from nenv.chain.guard import Decisions
-    from tests.conftest import narrowed_guard
 
     _, x = call_audio
     x = x[:9000]
