@@ -160,6 +160,25 @@ def test_chunked_processing_equals_one_pass(name, arctic_refs, rng):
     np.testing.assert_allclose(parts, whole, atol=1e-12)
 
 
+@pytest.mark.parametrize(("name", "low_band"), [(n, False) for n in EVERY_SYSTEM] + [("neural", True)])
+def test_a_system_used_again_starts_afresh(name, low_band, arctic_refs):
+    # One system object extending file after file (a batch, a benchmark) must give each file what a
+    # new system gives it: the neural network's context, every filter's memory and the reference's
+    # read position start again, and the neural verdicts are the new file's alone. Systems that read
+    # the reference extend the same file twice; the others another file first.
+    (_, first), (_, ref) = arctic_refs
+    x = _nb(ref)
+    fresh = pipeline.make_system(name, reference=ref, low_band=low_band)
+    expected = pipeline.extend(x, system=fresh).y
+    used = pipeline.make_system(name, reference=ref, low_band=low_band)
+    pipeline.extend(x if name in pipeline.REFERENCE_SYSTEMS else _nb(first), system=used)
+    np.testing.assert_array_equal(pipeline.extend(x, system=used).y, expected)
+    if name == "neural":
+        verdicts = used.estimator.record()
+        assert len(verdicts.rejected) == len(fresh.estimator.record().rejected) >= x.size // HOP_NB
+        np.testing.assert_array_equal(verdicts.level_db, fresh.estimator.record().level_db)
+
+
 @pytest.mark.parametrize("name", EVERY_SYSTEM)
 def test_telephone_band_passes_untouched(name, arctic_refs):
     # Reference: the input upsampled by soxr (an independent resampler). In 300-3300 Hz the output must
