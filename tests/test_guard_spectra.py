@@ -210,3 +210,31 @@ def test_band_bins_include_both_edges_and_refuse_an_empty_band():
     assert cepstrum.band_bins(62.5, 4000.0, n_fft=512, sr=16000) == (2, 128)  # both edges on a bin: both in
     with pytest.raises(ValueError, match="no bin"):
         cepstrum.band_bins(40.0, 60.0, n_fft=512, sr=16000)  # between 31.25 and 62.5 Hz
+
+
+def test_hops_of_digital_silence_are_never_rejected(arctic_refs, monkeypatch):
+    # A muted stretch of a call has nothing to judge and nothing to add: a hop whose whole analysis
+    # frame is digital zero passes with no reason, even when the network's prediction for it would
+    # fail a check (here +90 dB of level on every hop); every hop of speech around it is rejected.
+    from nenv.chain import checkpoint, pipeline
+    from nenv.chain.guard import Check
+    from nenv.dsp import channel
+    from nenv.settings import HOP_NB, WIN_NB
+    from tests.conftest import perturb_predictions
+
+    ck = checkpoint.load(checkpoint.default_path())
+    perturb_predictions(ck, {Check.LEVEL: range(10**6)}, monkeypatch)
+    _, ref = arctic_refs[0]
+    x = channel.telephone(ref, sr=16000)
+    x[8000:12000] = 0.0  # 0.5 s of digital silence
+    system = pipeline.make_system("neural", model=ck)
+    pipeline.extend(x, system=system)
+    dec = system.estimator.record()
+    ends = (np.arange(dec.rejected.size) + 1) * HOP_NB  # hop t's frame: the WIN_NB samples before ends[t]
+    muted = (ends - WIN_NB >= 8000) & (ends <= 12000)
+    padded = np.concatenate([np.zeros(WIN_NB), x, np.zeros(WIN_NB)])
+    power = np.array([np.mean(padded[e : e + WIN_NB] ** 2) for e in ends])  # padded[e : e + WIN_NB] is x[e - WIN_NB : e]
+    speech = power > 1e-8  # above -80 dB: far from the -100 dB floor
+    assert muted.sum() == (4000 - WIN_NB) // HOP_NB + 1 and speech.sum() > 200
+    assert not dec.rejected[muted].any() and not dec.reasons[muted].any()
+    assert dec.rejected[speech].all() and np.all(dec.reasons[speech] & Check.LEVEL)

@@ -12,7 +12,7 @@ from nenv.dsp import channel, lpc
 from nenv.dsp.synthesis import UPSAMPLER_DELAY, low_band_sos
 from nenv.media import audio
 from nenv.report import measures
-from nenv.settings import HOP_NB, HOP_WB
+from nenv.settings import HOP_NB, HOP_WB, WIN_NB
 
 LOW_SYSTEMS = ["neural", "codebook", "oracle", "true-band"]  # the systems that can add a low band
 
@@ -179,6 +179,30 @@ def test_low_band_level_of_an_envelope_matches_freqz():
         assert got[i] == pytest.approx(want, abs=1e-9)
     # flat envelope, worked by hand: a unit-power white excitation puts 8 of 256 bins' worth, 250/8000, in the band
     assert features.low_band_level(np.array([[1.0]]), np.array([1.0]), np.zeros(1))[0] == pytest.approx(10 * np.log10(250 / 8000))
+
+
+def test_the_low_band_level_the_guard_judges_is_the_level_the_chain_adds(arctic_refs):
+    # The guard judges each hop's low band by the level its envelope implies at full weight
+    # (features.low_band_level plus LOW_BAND_GAIN_DB). Checked against the signal itself: in strongly
+    # voiced hops (full weight) the power the low band adds to the output, re the narrowband frame's
+    # plain power, has a median within 4 dB of the recorded level (measured -1.9 and -2.0 dB on the
+    # two ARCTIC sentences: the rectified excitation is not white, and hops are cut without regard to
+    # the filters' delay). A level off by the gain twice (12 dB) would fail.
+    for name, ref in arctic_refs:
+        x = _nb(ref)
+        plain = pipeline.extend(x, system=pipeline.make_system("neural")).y
+        system = pipeline.make_system("neural", low_band=True)
+        added = pipeline.extend(x, system=system).y - plain
+        low_db = system.estimator.record().low_db
+        H = x.size // HOP_NB
+        padded = np.concatenate([np.zeros(WIN_NB - HOP_NB), x])  # each hop's 30 ms analysis frame ends with the hop
+        frames = np.ascontiguousarray(np.lib.stride_tricks.sliding_window_view(padded, WIN_NB)[::HOP_NB][:H])
+        p_frame = np.mean(frames**2, axis=1)
+        p_added = np.mean(added[: H * HOP_WB].reshape(H, HOP_WB) ** 2, axis=1)
+        sel = (features.voicing(frames) > 0.8) & (p_frame > 1e-5)
+        assert sel.sum() > 100, name
+        diff = 10 * np.log10(p_added[sel] / p_frame[sel]) - low_db[:H][sel]
+        assert abs(np.median(diff)) < 4, (name, np.median(diff))
 
 
 def test_guard_checks_the_low_band_only_when_it_is_on():
