@@ -11,9 +11,9 @@ from scipy import signal
 from nenv.media import audio
 from nenv.dsp import channel, lpc
 from nenv.report import measures
-from nenv.chain import pipeline
+from nenv.chain import pipeline, systems
 from nenv.dsp.excitation import ExcitationExtender, residual
-from nenv.settings import HOP_NB, HOP_WB, WIN_NB
+from nenv.settings import HOP_NB, HOP_WB, NB_ORDER, WIN_NB
 from nenv.dsp.synthesis import AllPoleSynthesizer, isolation_sos, upsampler_taps
 
 SYSTEM_NAMES = ["unextended", "imaging", "oracle"]
@@ -158,6 +158,53 @@ def test_chunked_processing_equals_one_pass(name, arctic_refs, rng):
     cuts = np.unique(np.concatenate([[0, 200], rng.integers(1, 200, 15)])) * HOP_NB
     parts = np.concatenate([ext.process(x[s:e]) for s, e in zip(cuts[:-1], cuts[1:])])
     np.testing.assert_allclose(parts, whole, atol=1e-12)
+
+
+def test_each_hop_is_analysed_on_the_30_ms_frame_that_ends_with_it(rng):
+    # What every source-filter system reads: hop t's frame is the WIN_NB (240) input samples ending at
+    # the hop's end, zeros before the call's first sample, whatever the chunks; its LPC is lpc.analyse
+    # of that frame at order NB_ORDER (10; the narrowband order of ITU-T G.729 for 8 kHz speech).
+    seen = []
+
+    class Spy(systems.Unextended):
+        needs_analysis = True
+
+        def highband(self, x, analysis, sel=slice(None)):
+            seen.append(analysis)
+            return super().highband(x, analysis, sel)
+
+    x = rng.standard_normal(HOP_NB * 60)
+    chain = pipeline.Chain(Spy())
+    for s, e in [(0, 1), (1, 4), (4, 30), (30, 60)]:
+        chain.process(x[s * HOP_NB : e * HOP_NB])
+    frames = np.concatenate([a.frames for a in seen])
+    want = np.lib.stride_tricks.sliding_window_view(np.concatenate([np.zeros(WIN_NB - HOP_NB), x]), WIN_NB)[::HOP_NB]
+    assert WIN_NB == 240 and NB_ORDER == 10
+    np.testing.assert_array_equal(frames, want)
+    a, gain = lpc.analyse(want, order=NB_ORDER, sr=8000)
+    np.testing.assert_array_equal(np.concatenate([s.a for s in seen]), a)
+    np.testing.assert_array_equal(np.concatenate([s.gain for s in seen]), gain)
+
+
+def test_true_band_and_imaging_add_exactly_the_band_their_definitions_give(arctic_refs):
+    # Neither has a model, so each added band is a formula, checked with scipy.signal on the chain's
+    # filters: the true band is the reference, delayed like the interpolated input, through the
+    # isolation filter; imaging is zero insertion (gain 2) through the delayed shaping FIR, then the
+    # isolation filter. No trim or gain of any kind on either.
+    from nenv.chain.estimators.imaging import shaping_taps
+    from nenv.dsp.synthesis import UPSAMPLER_DELAY
+
+    _, ref = arctic_refs[0]
+    x = _nb(ref)[: HOP_NB * 300]
+    plain = pipeline.Chain(pipeline.make_system("unextended")).process(x)
+    true_band = pipeline.Chain(pipeline.make_system("true-band", reference=ref)).process(x)
+    delayed = np.concatenate([np.zeros(UPSAMPLER_DELAY), ref])[: plain.size]
+    np.testing.assert_allclose(true_band - plain, signal.sosfilt(isolation_sos(), delayed), rtol=0, atol=1e-12)
+    imaging = pipeline.Chain(pipeline.make_system("imaging")).process(x)
+    z = np.zeros(2 * x.size)
+    z[::2] = 2 * x
+    shaped = signal.lfilter(np.concatenate([np.zeros(UPSAMPLER_DELAY), shaping_taps()]), [1.0], z)
+    np.testing.assert_allclose(imaging - plain, signal.sosfilt(isolation_sos(), shaped), rtol=0, atol=1e-12)
 
 
 @pytest.mark.parametrize(("name", "low_band"), [(n, False) for n in EVERY_SYSTEM] + [("neural", True)])
