@@ -156,8 +156,11 @@ def test_chunked_processing_equals_one_pass(name, arctic_refs, rng):
     whole = pipeline.Chain(pipeline.make_system(name, reference=ref)).process(x)
     ext = pipeline.Chain(pipeline.make_system(name, reference=ref))
     cuts = np.unique(np.concatenate([[0, 200], rng.integers(1, 200, 15)])) * HOP_NB
-    parts = np.concatenate([ext.process(x[s:e]) for s, e in zip(cuts[:-1], cuts[1:])])
-    np.testing.assert_allclose(parts, whole, atol=1e-12)
+    parts = []
+    for s, e in zip(cuts[:-1], cuts[1:]):
+        assert ext.process(x[s:s]).shape == (0,)  # no hops: nothing out, nothing changed
+        parts.append(ext.process(x[s:e]))
+    np.testing.assert_allclose(np.concatenate(parts), whole, atol=1e-12)
 
 
 def test_each_hop_is_analysed_on_the_30_ms_frame_that_ends_with_it(rng):
@@ -205,6 +208,22 @@ def test_true_band_and_imaging_add_exactly_the_band_their_definitions_give(arcti
     z[::2] = 2 * x
     shaped = signal.lfilter(np.concatenate([np.zeros(UPSAMPLER_DELAY), shaping_taps()]), [1.0], z)
     np.testing.assert_allclose(imaging - plain, signal.sosfilt(isolation_sos(), shaped), rtol=0, atol=1e-12)
+
+
+@pytest.mark.parametrize("name", pipeline.REFERENCE_SYSTEMS)
+def test_systems_that_read_the_reference_need_one_mono_signal_and_serve_one_call(name, arctic_refs):
+    from nenv.errors import InputError
+    from nenv.serve.multicall import MultiCallEngine
+
+    _, ref = arctic_refs[0]
+    for bad in (np.zeros(0), np.zeros((2, 800))):
+        with pytest.raises(InputError, match="non-empty mono"):
+            pipeline.make_system(name, reference=bad)
+    pipeline.make_system(name, reference=np.zeros(1))  # one sample is a (short) signal
+    multi = MultiCallEngine(system=pipeline.make_system(name, reference=ref))
+    multi.open("a")
+    with pytest.raises(InputError, match="one call"):
+        multi.open("b")
 
 
 @pytest.mark.parametrize(("name", "low_band"), [(n, False) for n in EVERY_SYSTEM] + [("neural", True)])
