@@ -131,6 +131,26 @@ def test_only_a_guarded_method_reports_rejected_hops():
         MultiCallEngine(method="imaging").on_rejected = print
 
 
+def test_many_calls_keep_no_verdicts_that_grow_with_their_length(strict_model, calls):
+    # A gateway's engine runs for months: the guard's verdicts of a round of many calls go to
+    # on_rejected and nowhere else (one call's per-hop record and listener are CallEngine's), so
+    # nothing the engine holds grows with the calls' length, even while hops are rejected.
+    engine = MultiCallEngine(strict_model)
+    est = engine.system.estimator
+    one_call = []
+    est.listener = lambda *args: one_call.append(args)
+    reported = []
+    engine.on_rejected = lambda call_id, first_hop, dec, *_: reported.append(int(dec.rejected.sum()))
+    for i in range(2):
+        engine.open(str(i))
+    for s in range(0, 16000, 160):
+        for i in range(2):
+            engine.feed(str(i), calls[i][s : s + 160])
+        engine.step()
+    assert sum(reported) > 0  # the narrowed guard rejected hops, and they were reported
+    assert len(est.record().rejected) == 0 and one_call == []
+
+
 def test_a_warm_up_step_leaves_nothing_behind(arctic_refs):
     """warm_up() does a first step's one-off work before any call and leaves no trace: a call after it
     comes out exactly as from an engine that never warmed up."""
