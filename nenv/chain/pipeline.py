@@ -96,7 +96,7 @@ class Chain:
         x = np.ascontiguousarray(x, dtype=np.float64)
         if H == 0:
             return np.zeros((B, 0))
-        analysis = self._analyse(x, sel, H) if self.system.needs_analysis else NarrowbandAnalysis(np.zeros((0, WIN_NB)), np.zeros((0, NB_ORDER + 1)), np.zeros(0), rows=B)
+        analysis = self._analyse(x, sel) if self.system.needs_analysis else NarrowbandAnalysis(np.zeros((0, WIN_NB)), np.zeros((0, NB_ORDER + 1)), np.zeros(0), rows=B)
         candidate = self.system.highband(x, analysis, sel)
         up = self._state.get("up", sel)
         low = upsample_rows(x, up)
@@ -123,7 +123,7 @@ class Chain:
         self._state.put("low", sel, mem)
         return y
 
-    def _analyse(self, x: np.ndarray, sel, H: int) -> NarrowbandAnalysis:
+    def _analyse(self, x: np.ndarray, sel) -> NarrowbandAnalysis:
         frames = self._state.frames("nb", sel, x, hop=HOP_NB)
         a, gain = lpc.analyse(frames, order=NB_ORDER, sr=NB_SR)
         return NarrowbandAnalysis(frames=frames, a=a, gain=gain, rows=x.shape[0])

@@ -10,7 +10,7 @@ from nenv.chain.estimators.base import Envelope, EnvelopeEstimator, NarrowbandAn
 from nenv.chain.features import ENERGY_COLUMN, ENERGY_FLOOR_DB, VOICING_COLUMN, envelope_from_prediction, low_band_level, narrowband_features, stack_context
 from nenv.chain.guard import Decisions, Guard
 from nenv.dsp.rows import RowState
-from nenv.settings import HOP_NB, LOW_BAND_GAIN_DB, NB_SR
+from nenv.settings import LOW_BAND_GAIN_DB
 
 
 def guarded_envelopes(checkpoint: Checkpoint, guard: Guard | None, *, feats: np.ndarray, stacked: np.ndarray, a_nb: np.ndarray) -> tuple[np.ndarray, np.ndarray, Decisions | None, np.ndarray]:
@@ -109,8 +109,3 @@ class NeuralEstimator(EnvelopeEstimator):
     def record(self) -> Decisions:
         """All verdicts of the one call so far, one per hop in order (hop t starts at t * 10 ms)."""
         return Decisions.concat(self._parts)
-
-    @staticmethod
-    def hop_times(n: int) -> np.ndarray:
-        """Start time in seconds of each of ``n`` hops."""
-        return np.arange(n) * HOP_NB / NB_SR
