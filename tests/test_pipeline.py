@@ -368,6 +368,9 @@ def test_output_is_exactly_twice_as_long_for_every_length_within_two_hops(rng):
     tail padding always pushes the interpolator's delay out, so the output is exactly twice as long
     and its last samples are the input's, not missing zeros (a random length seldom lands where too
     little padding shows)."""
+    for pending in range(0, 400):  # the fewest zeros that end on a whole hop and cover the delay
+        pad = pipeline.tail_padding(pending)
+        assert (pending + pad) % HOP_NB == 0 and 2 * pad >= pipeline.LATENCY > 2 * (pad - HOP_NB), pending
     x = 0.5 * rng.uniform(-1, 1, 400)
     for n in range(1, 161):
         out = pipeline.extend(x[:n], system=pipeline.make_system("unextended"))
