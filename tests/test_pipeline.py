@@ -355,6 +355,16 @@ def test_short_subframes_equal_scipy_lfilter(rng):
     np.testing.assert_allclose(out, signal.lfilter([0.5], a, u), rtol=1e-9, atol=1e-12)
 
 
+def test_extend_reports_its_progress_in_input_samples_up_to_the_whole_signal(rng):
+    # on_progress(done, total) after each step of CHUNK_HOPS hops (10 s): increasing, never past the
+    # input's length (the padding is not the user's input), the last call at exactly the whole signal.
+    x = 0.1 * rng.standard_normal(pipeline.CHUNK_HOPS * HOP_NB * 2 + 123)
+    calls = []
+    pipeline.extend(x, system=pipeline.make_system("unextended"), on_progress=lambda done, total: calls.append((done, total)))
+    step = pipeline.CHUNK_HOPS * HOP_NB
+    assert calls == [(step, x.size), (2 * step, x.size), (x.size, x.size)]
+
+
 @pytest.mark.parametrize("x", [np.zeros(0), np.zeros((2, 800)), np.zeros((800, 1))], ids=["empty", "two-rows", "column"])
 def test_extend_refuses_what_is_not_a_non_empty_mono_signal(x):
     from nenv.errors import InputError
