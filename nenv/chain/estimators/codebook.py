@@ -43,10 +43,6 @@ class Codebook:
     level_db: np.ndarray
     novelty_limit: float
 
-    @property
-    def size(self) -> int:
-        return self.centroids.shape[0]
-
     @cached_property
     def _cells(self) -> tuple[np.ndarray, np.ndarray]:
         """The centroids one column per cell [shape=(d, K)] and their squared norms [shape=(K,)], computed once."""
