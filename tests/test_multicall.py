@@ -37,15 +37,15 @@ def strict_model(model):
     return narrowed_guard(model)
 
 
-def _alone(model, x, chunks):
-    eng = CallEngine(system=pipeline.make_system("neural", model=model), keep_decisions=True)
+def _alone(model, x, chunks, method="neural"):
+    eng = CallEngine(system=pipeline.make_system(method, model=model), keep_decisions=True)
     pos, out = 0, []
     for c in chunks:
         out.append(eng.feed(x[pos : pos + c]))
         pos += c
     out.append(eng.feed(x[pos:]))
     out.append(eng.flush())
-    return np.concatenate(out), eng.system.estimator.record()
+    return np.concatenate(out), (eng.system.estimator.record() if method == "neural" else None)
 
 
 @pytest.mark.parametrize("guard", ["shipped", "strict"])
@@ -106,12 +106,14 @@ def test_one_bad_call_does_not_disturb_another(model, calls):
     assert engine.step()["bad"].size == 2 * good.size
 
 
-def test_calls_of_different_lengths_stay_exact_while_others_idle(model, calls):
+@pytest.mark.parametrize("method", ["neural", "codebook", "imaging"])
+def test_calls_of_different_lengths_stay_exact_while_others_idle(model, calls, method):
     """Calls that end at different times: steps where only some calls have hops queued update only
-    their rows of the shared state; every call still equals its own engine."""
+    their rows of the shared state, and a call that ends takes its rows away; every call still equals
+    its own engine, whatever fills the band."""
     n_calls = 11
     xs = [calls[i % len(calls)][800 * i : 800 * i + 4000 + 37 * i] for i in range(n_calls)]
-    engine = MultiCallEngine(model)
+    engine = MultiCallEngine(model, method=method)
     for i in range(n_calls):
         engine.open(str(i))
     outs = {i: [] for i in range(n_calls)}
@@ -122,7 +124,7 @@ def test_calls_of_different_lengths_stay_exact_while_others_idle(model, calls):
             outs[int(cid)].append(y)
     for i, x in enumerate(xs):
         y = np.concatenate(outs[i] + [engine.close(str(i))])
-        ref, _ = _alone(model, x, [])
+        ref, _ = _alone(model, x, [], method)
         np.testing.assert_allclose(y, ref, atol=1e-6)
 
 
