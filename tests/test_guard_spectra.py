@@ -204,6 +204,35 @@ def test_codebook_cell_and_novelty_by_hand():
     assert dist[2] > 1e5
 
 
+def test_codebook_fit_finds_clusters_whose_features_differ_in_scale():
+    # Four well-separated clusters of training hops in 3 features whose scales differ 1000-fold (as
+    # energy in dB and cepstra do). The fitted book must put every hop in its own cluster's cell when
+    # asked with raw features (k-means on the normalised features, centroids kept normalised), hold
+    # each cluster's mean cepstrum and median level, and set the novelty limit at the 99.9th percentile
+    # of the training hops' distances (numpy.percentile). Exactly `size` hops is enough; one fewer is
+    # a ConfigError naming the count.
+    from nenv.chain.estimators.codebook import Codebook
+    from nenv.errors import ConfigError
+
+    rng = np.random.default_rng(3)
+    centres = np.array([[0.0, 0.0, 0.0], [1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]) * [100.0, 1.0, 0.1]
+    truth = np.repeat(np.arange(4), 50)
+    feats = centres[truth] + rng.normal(0.0, 0.03, (200, 3)) * [100.0, 1.0, 0.1]
+    ceps = rng.normal(0.0, 0.1, (200, 20)) + truth[:, None] * 0.05
+    level = rng.normal(-20.0, 3.0, 200) + 5.0 * truth
+    book = Codebook.fit(feats, ceps, level, size=4, seed=0)
+    cell, dist = book.nearest(feats)
+    for c in range(4):
+        mine = cell == cell[truth == c][0]
+        np.testing.assert_array_equal(mine, truth == c)
+        np.testing.assert_allclose(book.ceps[cell[truth == c][0]], ceps[truth == c].mean(axis=0), rtol=1e-12)
+        assert book.level_db[cell[truth == c][0]] == pytest.approx(np.median(level[truth == c]), rel=1e-12)
+    assert book.novelty_limit == pytest.approx(np.percentile(dist, 99.9), rel=1e-12)
+    assert Codebook.fit(feats[:4], ceps[:4], level[:4], size=4, seed=0).centroids.shape == (4, 3)
+    with pytest.raises(ConfigError, match="needs at least that many training hops, got 3"):
+        Codebook.fit(feats[:3], ceps[:3], level[:3], size=4, seed=0)
+
+
 def test_band_bins_include_both_edges_and_refuse_an_empty_band():
     """The rfft grid of 512 points at 16 kHz has a bin every 31.25 Hz (numpy.fft.rfftfreq)."""
     assert cepstrum.band_bins(300.0, 3400.0, n_fft=512, sr=16000) == (10, 108)  # 312.5 .. 3375 Hz
