@@ -229,8 +229,8 @@ def test_codebook_fit_finds_clusters_whose_features_differ_in_scale():
         assert book.level_db[cell[truth == c][0]] == pytest.approx(np.median(level[truth == c]), rel=1e-12)
     assert book.novelty_limit == pytest.approx(np.percentile(dist, 99.9), rel=1e-12)
     assert Codebook.fit(feats[:4], ceps[:4], level[:4], size=4, seed=0).centroids.shape == (4, 3)
-    with pytest.raises(ConfigError, match="needs at least that many training hops, got 3"):
-        Codebook.fit(feats[:3], ceps[:3], level[:3], size=4, seed=0)
+    with pytest.raises(ConfigError, match="size=5 needs at least that many training hops, got 4"):
+        Codebook.fit(feats[:4], ceps[:4], level[:4], size=5, seed=0)
 
 
 def test_band_bins_include_both_edges_and_refuse_an_empty_band():
