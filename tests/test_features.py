@@ -7,7 +7,7 @@ import pytest
 
 from nenv.dsp import cepstrum, lpc
 from nenv.chain.estimators.base import NarrowbandAnalysis
-from nenv.chain.features import INPUT_NAMES, ContextStacker, FeatureSettings, band_power, envelope_from_prediction, narrowband_features
+from nenv.chain.features import INPUT_NAMES, ContextStacker, FeatureSettings, band_power, envelope_from_prediction, narrowband_features, voicing
 from nenv.errors import ConfigError
 
 
@@ -42,6 +42,20 @@ def test_a_steady_sine_is_fully_voiced():
     # divided out (Boersma 1993): measured 0.9995 (median) for 440 Hz, never above 1.
     v = _features(0.3 * np.sin(2 * np.pi * 440 * np.arange(8000) / 8000))[:, col("voicing")]
     assert np.median(v) > 0.99 and v.max() <= 1.0
+
+
+def test_voicing_searches_lags_20_to_147_and_no_further(rng):
+    # The documented pitch range, 400 Hz down to 54 Hz at 8 kHz, checked at both ends: white noise
+    # plus an echo of itself L samples later has a normalised autocorrelation of 0.5 at lag L and
+    # none at other lags. With L inside the range the voicing finds it (median measured 0.50 and
+    # 0.49 at L = 20 and 147); one lag outside, only the noise's own largest value is left (0.28 at
+    # 19, 0.26 at 148).
+    s = rng.standard_normal(8200)
+    for lag, inside in ((19, False), (20, True), (147, True), (148, False)):
+        x = 0.1 * (s[200:] + s[200 - lag : 8200 - lag])
+        frames = np.ascontiguousarray(lpc.frame(x, frame_length=240, hop_length=80)[5:])
+        v = np.median(voicing(frames))
+        assert (v > 0.4) if inside else (v < 0.35), (lag, v)
 
 
 def test_alternating_signal_crosses_zero_every_sample():
