@@ -267,3 +267,40 @@ def test_hops_of_digital_silence_are_never_rejected(arctic_refs, monkeypatch):
     assert muted.sum() == (4000 - WIN_NB) // HOP_NB + 1 and speech.sum() > 200
     assert not dec.rejected[muted].any() and not dec.reasons[muted].any()
     assert dec.rejected[speech].all() and np.all(dec.reasons[speech] & Check.LEVEL)
+
+
+def test_codebook_envelopes_carry_their_cells_level_and_silence_none():
+    # The fallback envelope of a cell for a hop of narrowband power P (dB) has P + the cell's level in
+    # 3.4-8 kHz: the power of G/A on the 512-point grid by scipy.signal.freqz, summed over the band's
+    # bins (Parseval, one-sided). A hop of digital silence gets no band at all (gain exactly 0).
+    from nenv.chain import checkpoint
+    from nenv.chain.estimators.base import NarrowbandAnalysis
+    from nenv.chain.estimators.codebook import CodebookEstimator
+    from nenv.settings import NB_ORDER, WIN_NB
+
+    book = checkpoint.load(checkpoint.default_path()).codebook
+    cells = np.array([0, 5, 17, book.centroids.shape[0] - 1])
+    nb_db = np.array([-30.0, -45.0, -20.0, -60.0])
+    a, gain = book.envelopes(cells, nb_db)
+    for i, c in enumerate(cells):
+        w, h = signal.freqz([gain[i]], a[i], worN=257, fs=16000, include_nyquist=True)
+        band = np.sum(np.abs(h[w >= 3400]) ** 2) * 2 / 512
+        assert 10 * np.log10(band) == pytest.approx(nb_db[i] + book.level_db[c], abs=0.05)
+    silent = NarrowbandAnalysis(np.zeros((3, WIN_NB)), np.tile(np.r_[1.0, np.zeros(NB_ORDER)], (3, 1)), np.zeros(3))
+    assert not CodebookEstimator(book).estimate(silent).gain.any()
+
+
+def test_a_codebook_file_is_never_unpickled(tmp_path):
+    # A model folder may come from anyone: numpy object arrays (pickles, which can run code when
+    # loaded) in codebook.npz are refused, not loaded.
+    from nenv.chain.estimators.codebook import Codebook
+    from nenv.errors import ConfigError
+
+    book = Codebook(np.zeros(2), np.ones(2), np.zeros((3, 2)), np.zeros((3, 4)), np.zeros((3, 17)), np.zeros(3), 1.0)
+    book.save(tmp_path / "ok.npz")
+    assert Codebook.load(tmp_path / "ok.npz").centroids.shape == (3, 2)
+    parts = dict(np.load(tmp_path / "ok.npz"))
+    parts["mean"] = np.array([0.0, 1.0], dtype=object)
+    np.savez(tmp_path / "pickled.npz", **parts)
+    with pytest.raises(ConfigError, match="cannot read the codebook"):
+        Codebook.load(tmp_path / "pickled.npz")
