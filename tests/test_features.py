@@ -138,7 +138,7 @@ def test_shape_targets_are_the_cepstrum_of_the_wideband_envelope_from_its_defini
 def test_empty_inputs_give_empty_features_and_leave_the_context_alone(rng):
     """No hops in: no rows out, with the right widths; an empty push between two pushes changes
     nothing that follows."""
-    from nenv.chain.features import N_INPUTS, voicing
+    from nenv.chain.features import N_INPUTS
 
     empty = NarrowbandAnalysis(np.zeros((0, 240)), np.zeros((0, 11)), np.zeros(0))
     assert narrowband_features(empty).shape == (0, N_INPUTS)

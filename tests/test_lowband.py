@@ -200,9 +200,8 @@ def test_the_low_band_level_the_guard_judges_is_the_level_the_chain_adds(arctic_
         system = pipeline.make_system("neural", low_band=True)
         added = pipeline.extend(x, system=system).y - plain
         low_db = system.estimator.record().low_db
-        H = x.size // HOP_NB
-        padded = np.concatenate([np.zeros(WIN_NB - HOP_NB), x])  # each hop's 30 ms analysis frame ends with the hop
-        frames = np.ascontiguousarray(np.lib.stride_tricks.sliding_window_view(padded, WIN_NB)[::HOP_NB][:H])
+        frames = np.ascontiguousarray(lpc.frame(x, frame_length=WIN_NB, hop_length=HOP_NB))  # each hop's 30 ms analysis frame
+        H = frames.shape[0]
         p_frame = np.mean(frames**2, axis=1)
         p_added = np.mean(added[: H * HOP_WB].reshape(H, HOP_WB) ** 2, axis=1)
         sel = (features.voicing(frames) > 0.8) & (p_frame > 1e-5)
