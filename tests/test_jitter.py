@@ -7,14 +7,17 @@ per octet, the timestamp counts samples).
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 
 from nenv.dsp import g711
-from nenv.serve.jitter import MAX_FILL, PlayOut
+from nenv.serve.jitter import PlayOut
 from nenv.serve.rtp_packet import RtpPacket
 
 N = 160  # samples per 20 ms PCMU packet
+ONE_SECOND = 8000  # samples of PCMU's 8000 Hz clock (RFC 3551 section 4.5.14): the longest span filled
 
 
 def _pkt(seq: int, ts: int, value: float = 0.25) -> RtpPacket:
@@ -35,7 +38,8 @@ def test_in_order_packets_play_at_once_across_both_wraps():
     pkts = _stream(65534, 2**32 - 2 * N, 6)
     po = PlayOut(pkts[0], window=3)
     y = _play(po, pkts)
-    assert y.size == 6 * N and po.counters.packets == 6 and po.counters.lost_packets == 0
+    counts = {k: v for k, v in dataclasses.asdict(po.counters).items() if v}
+    assert y.size == 6 * N and counts == {"packets": 6, "samples_in": 6 * N}  # every other count 0
     want = np.concatenate([g711.decode(np.frombuffer(p.payload, np.uint8), law="mulaw") for p in pkts])
     np.testing.assert_array_equal(y, want)
 
@@ -71,7 +75,7 @@ def test_suppressed_silence_is_filled_up_to_a_second_and_a_longer_jump_restarts_
     _play(po, [_pkt(0, 0)])
     y = _play(po, [_pkt(1, N + 2000)])  # the next packet, 2000 samples of silence later
     assert y.size == 2000 + N and not np.any(y[:2000]) and po.counters.silence_filled == 2000
-    y = _play(po, [_pkt(2, 2 * N + 2000 + MAX_FILL + 1)])  # longer than MAX_FILL: no fill, timing restarts
+    y = _play(po, [_pkt(2, 2 * N + 2000 + ONE_SECOND + 1)])  # longer than a second: no fill, timing restarts
     assert y.size == N and po.counters.timing_restarts == 1
 
 
@@ -85,6 +89,33 @@ def test_a_sender_restart_far_ahead_or_behind_is_followed_on_the_second_packet_w
     c = po.counters
     assert c.resyncs == 2 and c.lost_packets == 0 and c.late_or_duplicate == 0 and c.filled_samples == 0
     assert y.size == 60 * N and c.packets == 60 and c.samples_in == 60 * N
+
+
+def test_packets_waiting_behind_a_gap_are_played_before_a_sender_restart_is_followed():
+    """A restart confirmed while packets wait behind a lost one: the lost one is declared lost and
+    its span filled, the waiting ones play, then the new numbering; nothing that arrived is dropped."""
+    old = _stream(1000, 0, 10)
+    new = _stream(30000, 10**6, 2, values=[0.5, 0.6])
+    po = PlayOut(old[0], window=8)
+    y = _play(po, [p for i, p in enumerate(old) if i != 3])  # 1003 lost: 1004-1009 wait (six, window 8)
+    assert y.size == 3 * N and len(po.held) == 6
+    y = np.concatenate([y, _play(po, new)])
+    c = po.counters
+    assert c.resyncs == 1 and c.lost_packets == 1 and c.filled_samples == N and c.packets == 11
+    decoded = [g711.decode(np.frombuffer(p.payload, np.uint8), law="mulaw") for p in old + new]
+    want = np.concatenate(decoded[:3] + [np.zeros(N)] + decoded[4:])
+    np.testing.assert_array_equal(y, want)
+
+
+def test_silence_is_padded_only_while_nothing_waits_and_is_taken_off_the_next_jump():
+    po = PlayOut(_pkt(0, 0), window=3)
+    _play(po, [_pkt(0, 0), _pkt(2, 2 * N)])  # 1 missing: 2 waits
+    assert po.pad(80) == [] and po.counters.silence_filled == 0 and po.next_ts == N
+    _play(po, [_pkt(1, N)])  # nothing waits now
+    pad = po.pad(80)
+    assert len(pad) == 1 and np.array_equal(pad[0], np.zeros(80)) and po.counters.silence_filled == 80
+    y = _play(po, [_pkt(3, 3 * N + 200)])  # a pause of 200 samples, 80 of them already played
+    assert y.size == 120 + N and po.counters.silence_filled == 200 and not np.any(y[:120])
 
 
 def test_a_single_stray_packet_far_away_is_not_taken_for_a_restart():
@@ -136,17 +167,24 @@ def test_the_sequence_limits_of_rfc_3550_exactly():
 
 
 def test_gaps_of_exactly_a_second_are_filled_and_longer_ones_are_not():
-    """MAX_FILL (8000 samples, 1 s) is the longest span filled with silence, for suppressed silence
+    """One second (MAX_FILL) is the longest span filled with silence, for suppressed silence
     (consecutive packets) and for lost packets alike."""
     po = PlayOut(_pkt(0, 0), window=0)
-    y = _play(po, [_pkt(0, 0), _pkt(1, N + MAX_FILL)])  # suppressed silence of exactly MAX_FILL
-    assert y.size == 2 * N + MAX_FILL and po.counters.silence_filled == MAX_FILL and po.counters.timing_restarts == 0
-    ts = 2 * N + MAX_FILL
-    y = _play(po, [_pkt(3, ts + MAX_FILL)])  # packet 2 lost: its span and the pause, MAX_FILL together
-    assert po.counters.lost_packets == 1 and po.counters.filled_samples == MAX_FILL and y.size == MAX_FILL + N
-    ts += MAX_FILL + N
-    y = _play(po, [_pkt(5, ts + MAX_FILL + 1)])  # packet 4 lost, a span one sample longer: not filled
-    assert po.counters.lost_packets == 2 and po.counters.filled_samples == MAX_FILL and y.size == N
+    y = _play(po, [_pkt(0, 0), _pkt(1, N + ONE_SECOND)])  # suppressed silence of exactly a second
+    assert y.size == 2 * N + ONE_SECOND and po.counters.silence_filled == ONE_SECOND and po.counters.timing_restarts == 0
+    ts = 2 * N + ONE_SECOND
+    y = _play(po, [_pkt(3, ts + ONE_SECOND)])  # packet 2 lost: its span and the pause, a second together
+    assert po.counters.lost_packets == 1 and po.counters.filled_samples == ONE_SECOND and y.size == ONE_SECOND + N
+    ts += ONE_SECOND + N
+    y = _play(po, [_pkt(5, ts + ONE_SECOND + 1)])  # packet 4 lost, a span one sample longer: not filled
+    assert po.counters.lost_packets == 2 and po.counters.filled_samples == ONE_SECOND and y.size == N
+    # and the shortest spans, one sample, are filled too
+    ts += ONE_SECOND + 1 + N
+    y = _play(po, [_pkt(6, ts + 1)])  # suppressed silence of one sample
+    assert y.size == 1 + N and po.counters.silence_filled == ONE_SECOND + 1
+    ts += 1 + N
+    y = _play(po, [_pkt(8, ts + 1)])  # packet 7 lost, and it held a single sample
+    assert po.counters.lost_packets == 3 and po.counters.filled_samples == ONE_SECOND + 1 and y.size == 1 + N
 
 
 @pytest.mark.parametrize("first", [64999, 1000])

@@ -33,6 +33,23 @@ def test_parse_and_build_round_trip_with_csrc_extension_and_padding():
     assert [rtp_packet.is_rtcp(bytes([0x80, t])) for t in (191, 192, 200, 223, 224)] == [False, True, True, True, False]
 
 
+def test_each_header_field_is_read_on_its_own_as_rfc_3550_lays_it_out():
+    """RFC 3550 section 5.1: the CSRC count is the first octet's low four bits, X its 0x10 bit and P its
+    0x20 bit, each independent of the others; an extension header of zero words is four octets."""
+    def head(b0: int) -> bytes:
+        return bytes([b0, 0]) + (9).to_bytes(2, "big") + (320).to_bytes(4, "big") + (3).to_bytes(4, "big")
+
+    assert rtp_packet.parse(head(0x80 | 3) + b"C1C1C2C2C3C3" + b"abc").payload == b"abc"  # an odd CSRC count, no X or P
+    assert rtp_packet.parse(head(0x80 | 0x10 | 1) + b"CSRC" + b"\xbe\xde\x00\x00").payload == b""  # X alone, no payload
+    assert rtp_packet.parse(head(0x80 | 0x10 | 1) + b"CSRC" + b"\xbe\xde\x00\x00" + b"xy").payload == b"xy"
+    assert rtp_packet.parse(head(0x80 | 0x20 | 1) + b"CSRC" + b"xy\x01").payload == b"xy"  # P with an odd CSRC count
+    assert rtp_packet.parse(head(0x80 | 0x10 | 1) + b"CSRC" + b"\xbe\xde\x00") is None  # an extension header cut short
+    # the padding's last octet counts the padding octets, itself included (so at least 1), and they
+    # cannot reach back past the header: four octets after the CSRC here
+    padded = [rtp_packet.parse(head(0x80 | 0x20 | 1) + b"CSRC" + b"xyz" + bytes([n])) for n in (0, 1, 4, 5, 17)]
+    assert [p if p is None else p.payload for p in padded] == [None, b"xyz", b"", None, None]
+
+
 
 def test_packetizer_cuts_whole_packets_wraps_its_numbers_and_sends_the_rest_when_told():
     # 16-bit samples in 20 ms packets at 16 kHz (320 samples); sequence number and timestamp start

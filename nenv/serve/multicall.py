@@ -77,9 +77,7 @@ class MultiCallEngine:
         call = self._call(call_id)
         call.pending = np.concatenate([call.pending, np.zeros(tail_padding(call.pending.size))])
         self._run(only=call_id)
-        y = np.concatenate(call.out) if call.out else np.zeros(0)
-        want = 2 * call.samples_in - (call.gate.samples_out - y.size)
-        y = y[: max(want, 0)]
+        y = call.gate.finish(np.concatenate(call.out) if call.out else np.zeros(0), call.samples_in)
         if stats is not None:
             stats.update(self.stats(call_id))
         self._chain.keep_rows(np.arange(len(self._calls)) != list(self._calls).index(call_id))

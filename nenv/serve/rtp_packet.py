@@ -34,7 +34,7 @@ def parse(data: bytes) -> RtpPacket | None:
         pos += 4 + 4 * ext_words
     end = len(data)
     if b0 & 0x20:  # padding: the last octet counts the padding octets
-        if end == 0 or data[-1] == 0 or data[-1] > end - pos:
+        if data[-1] == 0 or data[-1] > end - pos:  # (end >= 12: the header was read)
             return None
         end -= data[-1]
     if pos > end:

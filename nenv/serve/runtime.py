@@ -73,6 +73,14 @@ class OutputGate:
         self.samples_out += y.size
         return y
 
+    def finish(self, y: np.ndarray, samples_in: int) -> np.ndarray:
+        """The end of a call: ``y``, its last emitted samples, cut so that the call's whole output is
+        twice its input (the tail padding's extra samples dropped); the count follows the cut."""
+        before = self.samples_out - y.size
+        y = y[: max(2 * samples_in - before, 0)]
+        self.samples_out = before + y.size
+        return y
+
 
 class CallEngine:
     """Streaming narrowband -> wideband conversion for one call.
@@ -140,7 +148,4 @@ class CallEngine:
         self._closed = True
         n_pad = tail_padding(self._pending.size)
         y = self._out.emit(self._ext.process(np.concatenate([self._pending, np.zeros(n_pad)])))
-        want = 2 * self.samples_in - (self._out.samples_out - y.size)
-        y = y[: max(want, 0)]
-        self._out.samples_out = 2 * self.samples_in
-        return y
+        return self._out.finish(y, self.samples_in)
