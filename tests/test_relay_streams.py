@@ -80,6 +80,9 @@ def test_a_second_address_is_held_while_the_source_may_still_be_sending_and_foll
     relay.handle(_packet(3, payload=b"\x90" * N), B)
     assert st.source == B and st.counters.source_changes == 1 and st.counters.packets == 4 and st.newcomer == ()
     assert st.last_seen == relay.clock.t and relay.counters.ssrc_conflicts == 1 and st.counters.lost_packets == 0
+    relay._close(1)  # played: the source's two packets, then the held packet and the one that followed it
+    played = g711.decode(np.frombuffer(b"\x10" * 2 * N + b"\x90" * 2 * N, dtype=np.uint8), law="mulaw")
+    assert np.array_equal(relay.out.samples(), to_int16(pipeline.extend(played, system=pipeline.make_system("imaging")).y))
 
 
 def test_two_senders_with_one_ssrc_never_mix_and_a_moved_sender_is_followed(relay, monkeypatch):

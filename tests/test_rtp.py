@@ -40,6 +40,8 @@ def test_each_header_field_is_read_on_its_own_as_rfc_3550_lays_it_out():
         return bytes([b0, 0]) + (9).to_bytes(2, "big") + (320).to_bytes(4, "big") + (3).to_bytes(4, "big")
 
     assert rtp_packet.parse(head(0x80 | 3) + b"C1C1C2C2C3C3" + b"abc").payload == b"abc"  # an odd CSRC count, no X or P
+    plain = rtp_packet.parse(rtp_packet.build(payload_type=97, seq=1, timestamp=0, ssrc=1, payload=b"a"))
+    assert (plain.payload_type, plain.marker) == (97, False)  # an odd payload type is not the marker bit; unmarked by default
     assert rtp_packet.parse(head(0x80 | 0x10 | 1) + b"CSRC" + b"\xbe\xde\x00\x00").payload == b""  # X alone, no payload
     assert rtp_packet.parse(head(0x80 | 0x10 | 1) + b"CSRC" + b"\xbe\xde\x00\x00" + b"xy").payload == b"xy"
     assert rtp_packet.parse(head(0x80 | 0x20 | 1) + b"CSRC" + b"xy\x01").payload == b"xy"  # P with an odd CSRC count
@@ -49,6 +51,27 @@ def test_each_header_field_is_read_on_its_own_as_rfc_3550_lays_it_out():
     padded = [rtp_packet.parse(head(0x80 | 0x20 | 1) + b"CSRC" + b"xyz" + bytes([n])) for n in (0, 1, 4, 5, 17)]
     assert [p if p is None else p.payload for p in padded] == [None, b"xyz", b"", None, None]
 
+
+def test_goodbyes_are_read_from_compound_rtcp_as_rfc_3550_lays_it_out():
+    """RFC 3550 section 6.4.2 (RR) and 6.6 (BYE): V=2 in the top bits, the source count in the low
+    five bits, the length in 32-bit words minus one; a BYE may carry a reason after its SSRCs.
+    Anything that does not add up is not RTCP (None), never a partial answer."""
+    def word(n: int) -> bytes:
+        return n.to_bytes(4, "big")
+
+    rr = bytes([0x80, 201, 0, 1]) + word(7)  # a receiver report with no report blocks
+    with_reason = bytes([0x82, 203, 0, 3]) + word(5) + word(6) + b"\x03bye"  # two SSRCs and a 3-octet reason
+    assert rtp_packet.goodbyes(rr) == []
+    assert rtp_packet.goodbyes(rr + with_reason) == [5, 6]
+    assert rtp_packet.goodbyes(rtp_packet.bye([1, 2]) + rr + rtp_packet.bye([3])) == [1, 2, 3]
+    assert rtp_packet.goodbyes(rtp_packet.bye([])) == []
+    for bad in (
+        rr + b"\x80\xcb\x00",  # three octets left over
+        rr + bytes([0x40, 203, 0, 1]) + word(5),  # version 1
+        bytes([0x83, 203, 0, 2]) + word(5) + word(6),  # three SSRCs counted, two present
+        bytes([0x81, 203, 0, 1]) + word(5)[:3],  # cut inside the SSRC
+    ):
+        assert rtp_packet.goodbyes(bad) is None, bad
 
 
 def test_packetizer_cuts_whole_packets_wraps_its_numbers_and_sends_the_rest_when_told():
@@ -239,6 +262,14 @@ def test_the_relay_commands_defaults_are_the_ones_the_readme_shows(monkeypatch):
     assert all(v == 0 for v in reuse)  # the port is not shared unless asked (SO_REUSEPORT off)
     assert f"relaying RTP from 127.0.0.1:{free} to 127.0.0.1:9 (method=imaging, output payload type {shown['payload-type']})" in res.output
     assert inspect.signature(relay).parameters["listen"].default == shown["listen"]
+    # a relay embedded in another program has the same defaults, and listens on a free loopback port
+    embedded = inspect.signature(rtp.Relay).parameters
+    assert (embedded["payload_type_out"].default, embedded["max_streams"].default, embedded["idle_timeout_s"].default,
+            embedded["tick_s"].default, embedded["reorder_window"].default) == (r.pt_out, r.max_streams, r.idle, r.tick, r.window)
+    assert not any(embedded[k].default for k in ("symmetric", "shared_port", "low_band", "allowed_sources"))  # as the command's
+    quiet = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
+    assert quiet.address[0] == "127.0.0.1" and quiet.address[1] >= 1024  # a port the system chose (0 asks for one)
+    quiet.stop()
     # and it ends with its counters, every one zero here
     assert "relay: 0 streams, 0 malformed, 0 oversized, 0 wrong payload type, 0 not allowed, 0 over the stream limit" in res.output
 
@@ -464,17 +495,30 @@ def test_batched_relay_extends_many_streams_like_offline(arctic_refs, low_band):
         assert 0 < c.guard_fallbacks == rejected, (i, c.guard_fallbacks, rejected)
 
 
-def test_a_relay_records_only_the_neural_guard_and_never_into_another_file(tmp_path):
+def test_a_relay_records_only_the_neural_guard_and_never_into_another_file(tmp_path, monkeypatch):
     from nenv.chain import checkpoint
     from nenv.errors import InputError, OutputError
 
+    opened = []  # a refused record is refused before any socket is opened (nothing left half-open)
+    monkeypatch.setattr(rtp.udp, "listener", lambda *args, **kw: opened.append(args))
     with pytest.raises(InputError, match="neural"):
         rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9), record=str(tmp_path / "guard.jsonl"))
     other = tmp_path / "notes.txt"
     other.write_text("not a record\n")
     with pytest.raises(OutputError, match="not a nenv guard record"):
         rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), batch_model=checkpoint.load(checkpoint.default_path()), record=str(other))
-    assert other.read_text() == "not a record\n"
+    assert other.read_text() == "not a record\n" and opened == []
+
+
+@pytest.mark.parametrize("symmetric", [False, True])
+def test_a_stopped_relay_has_closed_its_sockets_and_its_record(tmp_path, symmetric):
+    from nenv.chain import checkpoint
+
+    model = checkpoint.load(checkpoint.default_path())
+    relay = rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), batch_model=model, record=str(tmp_path / "guard.jsonl"), symmetric=symmetric)
+    assert (relay.out is relay.sock) == symmetric
+    relay.stop()
+    assert relay.sock.fileno() == -1 and relay.out.fileno() == -1 and relay.records.writer._fh.closed
 
 
 def _relay_with_a_slow_first_step(model, seconds, idle_timeout_s):
@@ -619,10 +663,43 @@ def test_a_relay_that_runs_late_says_so(arctic_refs, monkeypatch):
     for sock in (tx, rx):
         sock.close()
     c = relay.counters
-    assert c.late_rounds >= 1 and c.longest_round_ms >= 300.0
+    assert c.late_rounds >= 1 and 300.0 <= c.longest_round_ms < 30_000.0  # the stalled round's length, not a reading of the clock
     assert len(told) >= 1 and told[0].startswith("running late") and "busier than 2 steps of 20 ms" in told[0]
     longest = int(told[0].split("the longest ")[1].split(" ms")[0])
     assert 300 <= longest <= c.longest_round_ms + 1
+
+
+def test_a_full_burst_reads_its_first_and_last_datagram_with_their_arrival(monkeypatch):
+    """The relay reads at most RECEIVE_BURST datagrams per wake-up; the first and the last of them come
+    with their arrival stamp and the socket's drop count, and the burst says when its last datagram
+    arrived (everything before it has been handled). What is left waits for the next burst."""
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9))
+    rx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    rx.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, 1 << 20)
+    rx.bind(("127.0.0.1", 0))
+    rx.setblocking(False)
+    tx = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+    n = rtp.RECEIVE_BURST + 10
+    for k in range(n):
+        tx.sendto(b"datagram %d" % k, rx.getsockname())
+    time.sleep(0.2)  # all of them in rx's buffer
+    detailed, handled = [], []
+
+    def receive_detailed(sock):
+        data, addr = sock.recvfrom(65535)
+        detailed.append(data)
+        return data, addr, 1000.0 + int(data.split()[1]), 0
+
+    monkeypatch.setattr(rtp.udp, "receive_detailed", receive_detailed)
+    monkeypatch.setattr(relay, "handle", lambda data, addr, heard=None: handled.append(data))
+    last = rtp.RECEIVE_BURST - 1
+    assert relay._receive_all(rx, 5.0) == 1000.0 + last
+    assert len(handled) == rtp.RECEIVE_BURST and detailed == [b"datagram 0", b"datagram %d" % last]
+    assert relay._receive_all(rx, 5.0) is None  # the socket was emptied
+    assert len(handled) == n and detailed[2:] == [b"datagram %d" % (last + 1)]
+    for sock in (rx, tx):
+        sock.close()
+    relay.stop()
 
 
 def test_datagrams_the_system_drops_unread_are_counted(monkeypatch):

@@ -46,8 +46,6 @@ from nenv.serve.rtp_packet import Packetizer, goodbyes, is_rtcp, parse
 from nenv.serve.runtime import CallEngine
 from nenv.settings import NB_SR
 
-PT_PCMU = 0
-PT_PCMA = 8
 OUT_SAMPLES = 320  # per outgoing packet: 20 ms at 16 kHz
 MAX_PAYLOAD = 1600  # bytes: 200 ms of G.711; anything longer is not a telephone packet
 REBIND_AFTER_S = 0.1  # quiet time (five 20 ms packet times) of a stream's sender after which its SSRC may come from a new address: a loop or a collision keeps both senders busy, a sender that moved or restarted on a new port has stopped
