@@ -22,6 +22,7 @@ from nenv.serve import batch, streamfile
 from nenv.dsp import channel
 from nenv.report import records
 from nenv.cli import app
+from nenv.errors import InputError
 from tests.conftest import ARCTIC, as_if_from_a_terminal
 
 runner = CliRunner()
@@ -80,6 +81,29 @@ def test_folder_mirrors_layout_reports_failures_and_skips_finished(tree, tmp_pat
     assert all((out / d).stat().st_mtime_ns == t for d, t in mtimes.items())
     res = _run("extend", tree, out, "--method", "imaging", "--overwrite", "--format", "flac")
     assert "done 4, skipped 0" in res.stdout and (out / "north" / "a.flac").is_file()
+
+
+@pytest.mark.parametrize("error, message", [
+    (InputError("'in.wav' holds no samples"), "'in.wav' holds no samples"),
+    (MemoryError(), "out of memory"),
+    (OSError(28, "No space left on device"), "No space left on device"),
+    (RuntimeError("a defect"), "internal error (RuntimeError: a defect)"),
+])
+def test_a_file_that_fails_in_any_way_is_reported_and_the_batch_goes_on(tmp_path, monkeypatch, error, message):
+    """Whatever one file's extension raises (short of Ctrl-C) becomes that file's failed row, with
+    the time it took, and its partial record is removed; the next file is not touched."""
+    record = tmp_path / "guard.jsonl"
+
+    def fails(src, dst, opts, record=None):
+        Path(record).write_text("half a line")
+        time.sleep(0.05)
+        raise error
+
+    monkeypatch.setattr(batch, "extend_file", fails)
+    job = batch.Job(tmp_path / "in.wav", tmp_path / "out" / "in.wav", index=3)
+    res = batch._work(job, streamfile.Options(), str(record))
+    assert (res.status, res.message, res.source, res.output) == ("failed", message, str(job.src), str(job.dst))
+    assert 0.05 <= res.wall_s < 30.0 and list(tmp_path.glob(".guard.jsonl.*")) == []
 
 
 def test_lists_and_several_files(tree, tmp_path):

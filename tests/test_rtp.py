@@ -65,10 +65,12 @@ def test_goodbyes_are_read_from_compound_rtcp_as_rfc_3550_lays_it_out():
     assert rtp_packet.goodbyes(rr + with_reason) == [5, 6]
     assert rtp_packet.goodbyes(rtp_packet.bye([1, 2]) + rr + rtp_packet.bye([3])) == [1, 2, 3]
     assert rtp_packet.goodbyes(rtp_packet.bye([])) == []
+    app = bytes([0x80, 204]) + (257).to_bytes(2, "big") + bytes(4 * 257)  # an APP packet of 258 words: a length over 255
+    assert rtp_packet.goodbyes(app + rtp_packet.bye([9])) == [9]
     for bad in (
         rr + b"\x80\xcb\x00",  # three octets left over
         rr + bytes([0x40, 203, 0, 1]) + word(5),  # version 1
-        bytes([0x83, 203, 0, 2]) + word(5) + word(6),  # three SSRCs counted, two present
+        rr + bytes([0x83, 203, 0, 2]) + word(5) + word(6),  # three SSRCs counted, two present
         bytes([0x81, 203, 0, 1]) + word(5)[:3],  # cut inside the SSRC
     ):
         assert rtp_packet.goodbyes(bad) is None, bad
