@@ -104,6 +104,7 @@ def test_a_file_that_fails_in_any_way_is_reported_and_the_batch_goes_on(tmp_path
     res = batch._work(job, streamfile.Options(), str(record))
     assert (res.status, res.message, res.source, res.output) == ("failed", message, str(job.src), str(job.dst))
     assert 0.05 <= res.wall_s < 30.0 and list(tmp_path.glob(".guard.jsonl.*")) == []
+    assert batch._succeeded(str(tmp_path / "gone.part")) is False  # a part that cannot be read is no finished record
 
 
 def test_lists_and_several_files(tree, tmp_path):
