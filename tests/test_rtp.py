@@ -640,6 +640,47 @@ def test_load_watch_counts_late_rounds_and_tells_only_what_is_new(monkeypatch):
     assert len(told) == 3 and counters.longest_round_ms == pytest.approx(85.0)
 
 
+def test_load_watch_looks_once_a_minute_from_its_start_and_counts_from_its_last_look(monkeypatch):
+    """On a clock of our own (no sleeps): the load is looked at no sooner than NOTICE_EVERY_S (60 s)
+    after the watch starts or last looked, the notice counts what changed since that look (late
+    rounds, their longest, the system's drops) and says how long ago it was; a watch with nobody to
+    tell just counts."""
+    clock = {"now": 1000.0}
+    monkeypatch.setattr(load.time, "monotonic", lambda: clock["now"])
+    assert load.NOTICE_EVERY_S == 60.0
+    counters, told, system = rtp.RelayCounters(), [], {"drops": 0}
+    watch = load.LoadWatch(counters, lambda: system["drops"], step_s=0.02, notice=told.append)
+    clock["now"] += 59.9
+    watch.round(0.5)  # late, but the watch looks only a minute after it started
+    assert told == [] and counters.late_rounds == 1
+    system["drops"] = 2
+    clock["now"] += 0.1  # exactly a minute since the watch started
+    watch.round(0.01)
+    assert told == ["running late: in the last 60 s, 1 round busier than 2 steps of 20 ms (the longest 500 ms: packets waited that "
+                    "long to be read) and 2 datagrams dropped by the system unread (socket buffer full); if this recurs, run fewer "
+                    "streams per relay process"]
+    for _ in range(2):
+        clock["now"] += 20.0
+        watch.round(0.07)  # 40 s after the last look: nothing told yet
+    system["drops"] = 5
+    clock["now"] += 50.0
+    watch.round(0.06)  # 90 s after the last look: the three late rounds since, not the one before
+    assert len(told) == 2 and told[1] == ("running late: in the last 90 s, 3 rounds busier than 2 steps of 20 ms (the longest 70 ms: "
+                                          "packets waited that long to be read) and 3 datagrams dropped by the system unread (socket "
+                                          "buffer full); if this recurs, run fewer streams per relay process")
+    system["drops"] = 12
+    clock["now"] += 90.0
+    watch.round(0.06)
+    assert told[2] == ("running late: in the last 90 s, 1 round busier than 2 steps of 20 ms (the longest 60 ms: packets waited that "
+                       "long to be read) and 7 datagrams dropped by the system unread (socket buffer full); if this recurs, run fewer "
+                       "streams per relay process")
+    assert counters.late_rounds == 5 and counters.longest_round_ms == pytest.approx(500.0)
+    quiet = load.LoadWatch(rtp.RelayCounters(), lambda: None, step_s=0.02)  # nobody to tell, drops unknown
+    clock["now"] += 600.0
+    quiet.round(1.0)
+    assert quiet.counters.late_rounds == 1 and quiet.counters.longest_round_ms == pytest.approx(1000.0)
+
+
 def test_a_relay_that_runs_late_says_so(arctic_refs, monkeypatch):
     """A round of the serving loop that keeps the relay busy for more than LATE_AFTER_STEPS steps (a
     stalled step, as on an overloaded machine) is counted, with its length, and the notice says so."""
