@@ -79,6 +79,11 @@ def test_folder_mirrors_layout_reports_failures_and_skips_finished(tree, tmp_pat
     res = _run("extend", tree, out, "--method", "imaging")
     assert "done 0, skipped 4 (output exists), failed 1" in res.stdout
     assert all((out / d).stat().st_mtime_ns == t for d, t in mtimes.items())
+    rows = list(csv.DictReader(io.StringIO((out / batch.REPORT_NAME).read_text())))
+    for row in rows:  # nothing extended: no length, no time, no hops, whether skipped or failed
+        assert row["status"] in ("skipped", "failed") and row["seconds"] == "0.000" and row["x_real_time"] == "", row
+        assert (row["hops"], row["rejected_hops"], row["limited_samples"]) == ("0", "0", "0"), row
+        assert row["status"] == "failed" or row["wall_s"] == "0.000", row
     res = _run("extend", tree, out, "--method", "imaging", "--overwrite", "--format", "flac")
     assert "done 4, skipped 0" in res.stdout and (out / "north" / "a.flac").is_file()
 

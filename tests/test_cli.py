@@ -323,6 +323,15 @@ def test_model_commands(trained, synthetic_corpus, tmp_path):
     res = _run("extend", nb, tmp_path / "wb.wav", "--model", trained.out)
     assert res.exit_code == 0, res.output
     assert "method=neural" in res.stderr and "guard:" in res.stderr
+    # ... and the band is that model's: the output equals the model's offline extension, not the shipped model's
+    from nenv.chain import pipeline
+    from nenv.media import audio
+
+    x, _ = sf.read(nb)
+    ours = sf.read(tmp_path / "wb.wav", dtype="int16")[0]
+    for folder, same in ((trained.out, True), (None, False)):
+        offline = pipeline.extend(x, system=pipeline.make_system("neural", model=pipeline.load_model(folder))).y
+        assert np.array_equal(ours, audio.to_int16(offline)) == same, folder
     _assert_user_error(_run("extend", nb, tmp_path / "wb2.wav", "--model", tmp_path / "nomodel"), "does not exist: check the path given by --model")
     # evaluate with every system
     res = _run("evaluate", ARCTIC[1], "--out", tmp_path / "ev", "--model", trained.out)
