@@ -267,6 +267,28 @@ def test_a_file_result_reports_its_length_and_progress_to_the_last_sample(tmp_pa
     res = streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="imaging"), on_progress=lambda done, total: seen.append((done, total)))
     assert res.seconds == x.size / 8000 and 0 < res.wall_s < 600 and seen[-1] == (x.size, x.size) and len(seen) == 2
     assert [d for d, _ in seen] == [int(streamfile.BLOCK_S * 8000), x.size]
+    assert res.notes == []  # speech at 8 kHz: nothing to note (no silence, no resampling, no trim)
+
+
+def test_the_batch_api_skips_what_is_done_unless_told_and_tells_of_every_file(tree, tmp_path):
+    """``batch.run`` as a program embeds it: finished outputs are skipped by default, and every
+    file, skipped or not, reaches ``on_result``; temporaries a killed run left (outputs, record
+    parts) are removed before the batch starts."""
+    out = tmp_path / "wide"
+    jobs = batch.plan([tree / "north"], out)
+    opts = streamfile.Options(method="imaging")
+    assert [r.status for r in batch.run(jobs, opts, workers=1).results] == ["done", "done"]
+    told = []
+    again = batch.run(jobs, opts, workers=1, on_result=told.append)
+    assert [r.status for r in again.results] == ["skipped", "skipped"] and told == again.results
+    assert [r.status for r in batch.run(jobs, opts, workers=1).results] == ["skipped", "skipped"]  # nobody to tell
+    rec = tmp_path / "guard.jsonl"
+    stale = [tmp_path / ".guard.jsonl.4242.part", jobs[0].dst.parent / f".{jobs[0].dst.name}.x1y2.part.wav"]
+    for p in stale:
+        p.write_bytes(b"left by a killed run")
+    redone = batch.run(jobs, streamfile.Options(method="neural"), workers=1, overwrite=True, record=str(rec), on_result=told.append)
+    assert [r.status for r in redone.results] == ["done", "done"] and told[-2:] == redone.results
+    assert not any(p.exists() for p in stale) and rec.is_file()
 
 
 def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
@@ -286,3 +308,16 @@ def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
         streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="imaging"), reference=ARCTIC[0])
     res = streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method="oracle"), reference=ARCTIC[0])
     assert res.seconds == x.size / 8000 and (tmp_path / "y.wav").exists()
+    # read whole (the reference is aligned to the whole input), then fed in blocks: the offline extension,
+    # every block of it (the blocks once came from a generator over a name the loop rebound, so a file
+    # longer than one block gave only its first block)
+    from nenv.chain import pipeline
+
+    for method in ("oracle", "true-band"):
+        offline = pipeline.extend(x, system=pipeline.make_system(method, reference=streamfile._oracle_reference(ARCTIC[0], x))).y
+        for block_s in (streamfile.BLOCK_S, 0.7):
+            with pytest.MonkeyPatch.context() as m:
+                m.setattr(streamfile, "BLOCK_S", block_s)
+                streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method=method), reference=ARCTIC[0])
+            y = sf.read(tmp_path / "y.wav", dtype="int16")[0]
+            assert y.size == 2 * x.size and y.tobytes() == audio.to_int16(offline).tobytes(), (method, block_s)

@@ -164,10 +164,11 @@ def extend_file(
         if reader.truncated:
             notes.append(reader.truncated)
         blocks, n = _narrowband_blocks(reader, resample=opts.resample, notes=notes)
-        if opts.method in REFERENCE_SYSTEMS:
-            x = np.concatenate(list(blocks))
-            ref = _oracle_reference(reference, x)
-            blocks = (x[i : i + int(BLOCK_S * NB_SR)] for i in range(0, x.size, int(BLOCK_S * NB_SR)))
+        if opts.method in REFERENCE_SYSTEMS:  # the reference is aligned to the whole input: read it all, then feed it in blocks
+            whole = np.concatenate(list(blocks))
+            ref = _oracle_reference(reference, whole)
+            step = int(BLOCK_S * NB_SR)
+            blocks = [whole[i : i + step] for i in range(0, whole.size, step)]
         system = _system(opts, ref)
         if getattr(system, "band_trim_db", 0.0):
             notes.append(band_note(system.band_trim_db, given=opts.band_trim_db is not None))
@@ -177,10 +178,10 @@ def extend_file(
         done, heard = 0, False
         try:
             with audio.writer(dst, sr=WB_SR) as put:
-                for x in blocks:
-                    heard = heard or bool(np.any(x))
-                    put(engine.feed(x))
-                    done += x.size
+                for block in blocks:
+                    heard = heard or bool(np.any(block))
+                    put(engine.feed(block))
+                    done += block.size
                     if on_progress:
                         on_progress(done, n)
                 put(engine.flush())
