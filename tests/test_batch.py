@@ -22,7 +22,7 @@ from nenv.serve import batch, streamfile
 from nenv.dsp import channel
 from nenv.report import records
 from nenv.cli import app
-from nenv.errors import InputError
+from nenv.errors import InputError, NenvError
 from tests.conftest import ARCTIC, as_if_from_a_terminal
 
 runner = CliRunner()
@@ -289,6 +289,15 @@ def test_the_batch_api_skips_what_is_done_unless_told_and_tells_of_every_file(tr
     redone = batch.run(jobs, streamfile.Options(method="neural"), workers=1, overwrite=True, record=str(rec), on_result=told.append)
     assert [r.status for r in redone.results] == ["done", "done"] and told[-2:] == redone.results
     assert not any(p.exists() for p in stale) and rec.is_file()
+    # options that cannot work stop the batch before its first file, not once per file
+    fresh = batch.plan([tree / "north"], tmp_path / "fresh")
+    for bad, message in ((streamfile.Options(model=str(tmp_path / "nomodel")), "does not exist"),
+                         (streamfile.Options(method="oracle"), "needs a reference per file"),
+                         (streamfile.Options(method="nonsense"), "--method nonsense is not known")):
+        told.clear()
+        with pytest.raises(NenvError, match=message):
+            batch.run(fresh, bad, workers=1, on_result=told.append)
+        assert told == [] and not (tmp_path / "fresh").exists()
 
 
 def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
@@ -300,6 +309,9 @@ def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
     ref = prepare_reference(ARCTIC[0])
     x = 0.5 * channel.telephone(ref, sr=16000, level_dbov=None)
     np.testing.assert_allclose(streamfile._oracle_reference(ARCTIC[0], x), 0.5 * ref, rtol=1e-12, atol=1e-15)
+    quiet = tmp_path / "quiet.wav"  # a reference whose telephone band holds little energy (a sum of squares under 1)
+    sf.write(quiet, 1e-3 * ref, 16000, subtype="DOUBLE")
+    np.testing.assert_allclose(streamfile._oracle_reference(quiet, 1e-4 * x), 0.5e-4 * ref, rtol=1e-9, atol=1e-18)
     src = tmp_path / "x.wav"
     sf.write(src, x, 8000, subtype="FLOAT")
     with pytest.raises(InputError, match="needs --reference"):
@@ -321,3 +333,56 @@ def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
                 streamfile.extend_file(src, tmp_path / "y.wav", streamfile.Options(method=method), reference=ARCTIC[0])
             y = sf.read(tmp_path / "y.wav", dtype="int16")[0]
             assert y.size == 2 * x.size and y.tobytes() == audio.to_int16(offline).tobytes(), (method, block_s)
+
+
+def test_one_file_is_never_extended_over_itself_and_its_options_cannot_change_under_it(tmp_path):
+    """``extend_file`` refuses an output that is its input or its reference (the input would be gone)
+    before anything is written; its options are frozen, so one Options (the default argument, or one
+    sent to every worker) cannot be changed by a caller between files."""
+    import dataclasses
+
+    from nenv.errors import OutputError
+
+    src = tmp_path / "x.wav"
+    sf.write(src, _telephone(0, 1.0), 8000, subtype="PCM_16")
+    before = src.read_bytes()
+    with pytest.raises(OutputError, match="the output .* is the same file as the input"):
+        streamfile.extend_file(src, src, streamfile.Options(method="imaging"))
+    with pytest.raises(OutputError, match="the output .* is the same file as the reference"):
+        streamfile.extend_file(src, tmp_path / "ref.wav", streamfile.Options(method="oracle"), reference=tmp_path / "ref.wav")
+    assert src.read_bytes() == before and not (tmp_path / "ref.wav").exists()
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        streamfile.Options().method = "imaging"
+
+
+def test_a_batch_record_is_never_one_of_its_inputs(tmp_path):
+    """A list of files may name anything, even the record the batch is told to append to: refused
+    before any work, as every command refuses to write over a file it reads."""
+    from nenv.errors import OutputError
+
+    rec = tmp_path / "guard.jsonl"
+    jobs = [batch.Job(src=tmp_path / "a.wav", dst=tmp_path / "o" / "a.wav", index=0), batch.Job(src=rec, dst=tmp_path / "o" / "guard.wav", index=1)]
+    assert batch.check_record(tmp_path / "other.jsonl", jobs) == str(tmp_path / "other.jsonl")
+    with pytest.raises(OutputError, match="the record '.*guard.jsonl' is the same file as an input"):
+        batch.check_record(rec, jobs)
+
+
+def test_a_resampled_file_has_exactly_its_rounded_length_when_the_resampler_gives_one_more(tmp_path):
+    """``--resample`` of 44101 samples at 16 kHz: 22050.5 samples at 8 kHz, which Python's round takes
+    to 22050 and soxr's stream to 22051. The input is cut at round(n * 8000 / sr) samples, as
+    ``audio.resample`` does, so the output is exactly twice that and equals the one-shot route."""
+    import soxr
+
+    from nenv.chain import pipeline
+
+    x = 0.1 * np.random.default_rng(1).standard_normal(44101)
+    src = tmp_path / "in.wav"
+    sf.write(src, x, 16000, subtype="FLOAT")
+    x = sf.read(src)[0]
+    n_out = round(x.size * 8000 / 16000)
+    assert n_out == 22050 and soxr.resample(x, 16000, 8000, quality="HQ").size >= n_out
+    res = streamfile.extend_file(src, tmp_path / "out.wav", streamfile.Options(method="unextended", resample=True))
+    got = sf.read(tmp_path / "out.wav", dtype="int16")[0]
+    assert res.seconds == n_out / 8000 and got.size == 2 * n_out
+    nb = audio.resample(x, orig_sr=16000, target_sr=8000)
+    assert np.array_equal(got, audio.to_int16(pipeline.extend(nb, system=pipeline.make_system("unextended")).y))

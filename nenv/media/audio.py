@@ -58,7 +58,8 @@ def load(path: str | os.PathLike, *, channel: int | None = None, mix: bool = Fal
         or a rate outside ``SUPPORTED_SR``.
     """
     with Reader(path, channel=channel, mix=mix) as r:
-        y = np.concatenate(list(r.blocks())) if r.frames else np.zeros(0)
+        blocks = list(r.blocks())  # none when a header counts samples the file does not hold
+        y = np.concatenate(blocks) if blocks else np.zeros(0)
     if y.size == 0:
         raise InputError(f"'{path}' holds no samples")
     return Audio(np.ascontiguousarray(y), r.sr)
