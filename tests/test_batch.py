@@ -309,7 +309,7 @@ def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
     ref = prepare_reference(ARCTIC[0])
     x = 0.5 * channel.telephone(ref, sr=16000, level_dbov=None)
     np.testing.assert_allclose(streamfile._oracle_reference(ARCTIC[0], x), 0.5 * ref, rtol=1e-12, atol=1e-15)
-    quiet = tmp_path / "quiet.wav"  # a reference whose telephone band holds little energy (a sum of squares under 1)
+    quiet = tmp_path / "quiet.wav"  # a reference recorded 60 dB quieter, an input 80 dB quieter: only the input's level counts
     sf.write(quiet, 1e-3 * ref, 16000, subtype="DOUBLE")
     np.testing.assert_allclose(streamfile._oracle_reference(quiet, 1e-4 * x), 0.5e-4 * ref, rtol=1e-9, atol=1e-18)
     src = tmp_path / "x.wav"

@@ -157,3 +157,45 @@ def test_a_worker_ignores_ctrl_c_and_turns_the_first_sigterm_into_an_exception(m
         numba.set_num_threads(threads)
         for s, handler in saved.items():
             signal.signal(s, handler)
+
+
+def _square(v: int) -> int:
+    return v * v
+
+
+def test_in_order_keeps_the_inputs_order_and_says_each_is_done(monkeypatch):
+    ticks = []
+    assert parallel.in_order(_square, [(3,), (1,), (2,)], on_done=lambda: ticks.append(1)) == [9, 1, 4]
+    assert len(ticks) == 3
+    monkeypatch.setattr(parallel, "as_done", lambda fn, args, workers, scheduler: iter([(1, "b"), (0, "a")]))
+    assert parallel.in_order(_square, [(0,), (1,)]) == ["a", "b"]  # results put back in the inputs' order
+    seen = {}
+    monkeypatch.setattr(parallel, "as_done", lambda fn, args, workers, scheduler: seen.update(workers=workers) or iter(()))
+    parallel.in_order(_square, [])
+    assert seen == {"workers": 1}  # in this process unless asked
+
+
+def test_a_cluster_runs_equal_inputs_as_separate_tasks_and_leaves_no_client_behind():
+    """On a dask cluster two tasks with equal arguments are two tasks (not one result shared under one
+    key, which would leave an input without its result); the client is closed when the results are in,
+    and never becomes this process's default client (which would send other dask work there)."""
+    distributed = pytest.importorskip("distributed")
+    made = []
+    real = parallel.dask_client
+
+    def spy(address):
+        made.append(real(address))
+        return made[-1]
+
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=False, protocol="tcp", dashboard_address=None) as cluster:
+        with pytest.MonkeyPatch.context() as m:
+            m.setattr(parallel, "dask_client", spy)
+            results = parallel.as_done(_square, [(3,), (3,), (2,)], scheduler=cluster.scheduler_address)
+            got = [next(results)]
+            with pytest.raises(ValueError):
+                distributed.default_client()  # not while the tasks run either
+            got = sorted(got + list(results))
+        assert got == [(0, 9), (1, 9), (2, 4)]
+        assert len(made) == 1 and made[0].status == "closed"
+        with pytest.raises(ValueError):
+            distributed.default_client()

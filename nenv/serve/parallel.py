@@ -166,14 +166,15 @@ def _dask(fn: Callable, arg_tuples: Sequence[tuple], scheduler: str) -> Iterator
     try:
         from distributed import as_completed
 
-        with client.as_current():
+        with client.as_current():  # only while setting up: between results the caller's dask work is its own
             futures = [client.submit(fn, *args, pure=False) for args in arg_tuples]
-            index = {f.key: i for i, f in enumerate(futures)}
-            try:
-                for fut in as_completed(futures):
-                    yield index[fut.key], fut.result()
-            except BaseException:
-                client.cancel(futures)
-                raise
+            finishing = as_completed(futures)
+        index = {f.key: i for i, f in enumerate(futures)}
+        try:
+            for fut in finishing:
+                yield index[fut.key], fut.result()
+        except BaseException:
+            client.cancel(futures)
+            raise
     finally:
         client.close()
