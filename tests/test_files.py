@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 import stat
+import types
 
 import pytest
 
@@ -54,7 +55,7 @@ def test_the_same_file_is_recognised_through_links_and_spellings(tmp_path, monke
     def unreadable(*_):
         raise PermissionError(13, "Permission denied")
 
-    monkeypatch.setattr(files.os.path, "samefile", unreadable)
+    monkeypatch.setattr(files, "os", types.SimpleNamespace(path=types.SimpleNamespace(exists=os.path.exists, samefile=unreadable)))
     assert files.same_path(a, b) is False
 
 

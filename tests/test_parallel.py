@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import sys
 import time
+import types
 from pathlib import Path
 
 import pytest
@@ -78,7 +79,7 @@ def test_work_runs_in_this_process_unless_there_are_workers_and_tasks_to_share()
 
 
 def test_one_per_core_is_one_where_the_system_does_not_say_how_many_cores(monkeypatch):
-    monkeypatch.setattr(parallel.os, "cpu_count", lambda: None)
+    monkeypatch.setattr(parallel, "os", types.SimpleNamespace(cpu_count=lambda: None))  # this module's view only
     assert {r[0] for _, r in parallel.as_done(_where, [(0,), (1,), (2,)], workers=0)} == {os.getpid()}
 
 

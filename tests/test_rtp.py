@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import socket
 import time
+import types
 
 import numpy as np
 import pytest
@@ -646,7 +647,7 @@ def test_load_watch_looks_once_a_minute_from_its_start_and_counts_from_its_last_
     rounds, their longest, the system's drops) and says how long ago it was; a watch with nobody to
     tell just counts."""
     clock = {"now": 1000.0}
-    monkeypatch.setattr(load.time, "monotonic", lambda: clock["now"])
+    monkeypatch.setattr(load, "time", types.SimpleNamespace(monotonic=lambda: clock["now"]))  # this module's clock only
     assert load.NOTICE_EVERY_S == 60.0
     counters, told, system = rtp.RelayCounters(), [], {"drops": 0}
     watch = load.LoadWatch(counters, lambda: system["drops"], step_s=0.02, notice=told.append)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import os
 import socket
-import sys
+import types
 
 import pytest
 
@@ -55,10 +55,9 @@ def test_sharing_a_port_is_refused_where_the_system_would_not_spread_senders(mon
     """Only Linux's SO_REUSEPORT hands each sender to one of the sockets sharing a port; on another
     system that has the option (BSD, macOS: the last socket bound may get everything) sharing is refused
     before any socket is made."""
-    monkeypatch.setattr(sys, "platform", "darwin")
-    monkeypatch.setattr(socket, "SO_REUSEPORT", getattr(socket, "SO_REUSEPORT", 15), raising=False)
-    made = []
-    monkeypatch.setattr(udp.socket, "socket", lambda *a, **k: made.append(a))
+    made = []  # this module's view of the system only: other threads keep the real ones
+    monkeypatch.setattr(udp, "sys", types.SimpleNamespace(platform="darwin"))
+    monkeypatch.setattr(udp, "socket", types.SimpleNamespace(SO_REUSEPORT=15, socket=lambda *a, **k: made.append(a)))
     with pytest.raises(InputError, match="SO_REUSEPORT"):
         udp.listener(socket.AF_INET, ("127.0.0.1", 0), shared=True)
     assert made == []
@@ -157,7 +156,6 @@ def test_the_two_clocks_are_paired_from_a_reading_not_interrupted_for_0_2_ms(mon
     for monotonic, wall, expected in cases:
         mono, clock = readings(monotonic, wall)
         with monkeypatch.context() as m:
-            m.setattr(udp.time, "monotonic", mono)
-            m.setattr(udp.time, "time", clock)
+            m.setattr(udp, "time", types.SimpleNamespace(monotonic=mono, time=clock))  # this module's clocks only
             got = udp._clocks()
         assert got == pytest.approx(expected, abs=1e-12), (monotonic, got)
