@@ -682,6 +682,31 @@ def test_load_watch_looks_once_a_minute_from_its_start_and_counts_from_its_last_
     assert quiet.counters.late_rounds == 1 and quiet.counters.longest_round_ms == pytest.approx(1000.0)
 
 
+def test_a_batched_relay_sleeps_only_until_its_next_step_and_a_per_call_relay_a_twentieth_of_a_second(monkeypatch):
+    """How long the serving loop waits for datagrams (no sleeps, no sockets read: its clock and select
+    are ours): a batched relay until its next step is due (a packet then waits at most one step), and
+    no wait at all when that step is overdue; a relay with an engine per call, which steps on each
+    packet, 50 ms (so it notices a stop or a quiet stream soon enough)."""
+    from nenv.chain import checkpoint
+
+    model = checkpoint.load(checkpoint.default_path())
+    for relay, now, expected in ((rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9)), 0.013, 0.05),
+                                 (rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), batch_model=model), 0.013, 0.007),
+                                 (rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), batch_model=model), 0.035, 0.0)):
+        waits = []
+
+        def fake_select(readable, writable, errors, timeout, relay=relay):
+            waits.append(timeout)
+            relay._stop.set()
+            return [], [], []
+
+        relay.clock = lambda now=now: 100.0 + now
+        relay._last_step = relay._last_expiry = 100.0
+        monkeypatch.setattr(rtp, "select", types.SimpleNamespace(select=fake_select))
+        relay.serve()  # one round, then stopped
+        assert relay.tick == pytest.approx(0.02) and waits == [pytest.approx(expected)], (relay.multi is None, now, waits)
+
+
 def test_a_relay_that_runs_late_says_so(arctic_refs, monkeypatch):
     """A round of the serving loop that keeps the relay busy for more than LATE_AFTER_STEPS steps (a
     stalled step, as on an overloaded machine) is counted, with its length, and the notice says so."""
