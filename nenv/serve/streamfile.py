@@ -164,11 +164,9 @@ def extend_file(
         if reader.truncated:
             notes.append(reader.truncated)
         blocks, n = _narrowband_blocks(reader, resample=opts.resample, notes=notes)
-        if opts.method in REFERENCE_SYSTEMS:  # the reference is aligned to the whole input: read it all, then feed it in blocks
-            whole = np.concatenate(list(blocks))
-            ref = _oracle_reference(reference, whole)
-            step = int(BLOCK_S * NB_SR)
-            blocks = [whole[i : i + step] for i in range(0, whole.size, step)]
+        if opts.method in REFERENCE_SYSTEMS:  # the reference is aligned to the whole input: read all its blocks first
+            blocks = list(blocks)
+            ref = _oracle_reference(reference, np.concatenate(blocks))
         system = _system(opts, ref)
         if getattr(system, "band_trim_db", 0.0):
             notes.append(band_note(system.band_trim_db, given=opts.band_trim_db is not None))
