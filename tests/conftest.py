@@ -125,6 +125,15 @@ def missing_tool(msg: str) -> None:
     pytest.skip(msg)
 
 
+def open_descriptors() -> int:
+    """How many file descriptors this process holds (Linux's /proc/self/fd); the test is skipped where
+    the system does not list them. Tests of "a refused or failed open leaves nothing open" compare two
+    counts."""
+    if not os.path.isdir("/proc/self/fd"):
+        pytest.skip("this system does not list a process's open descriptors (/proc/self/fd)")
+    return len(os.listdir("/proc/self/fd"))
+
+
 def run_bounded(cmd: list[str], *, timeout: float = 300, cwd=None, env=None):
     """``subprocess.run(cmd)`` capturing text, in its own process group, which is killed whole if it
     runs longer than ``timeout`` seconds (then the test fails, leaving no worker behind): for

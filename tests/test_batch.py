@@ -18,11 +18,12 @@ import soundfile as sf
 from typer.testing import CliRunner
 
 from nenv.media import audio
+from nenv.chain import pipeline
 from nenv.serve import batch, streamfile
 from nenv.dsp import channel
 from nenv.report import records
 from nenv.cli import app
-from nenv.errors import InputError, NenvError
+from nenv.errors import InputError, NenvError, OutputError
 from tests.conftest import ARCTIC, as_if_from_a_terminal
 
 runner = CliRunner()
@@ -249,8 +250,6 @@ def test_a_malformed_scheduler_address_is_refused_before_dask_sees_it(tmp_path, 
 
 def test_streamed_file_equals_offline_pipeline(tmp_path):
     """extend_file (blocks through the streaming engine) == pipeline.extend on the whole signal, in int16."""
-    from nenv.chain import pipeline
-
     x = _telephone(1, 23.37)
     src = tmp_path / "x.wav"
     sf.write(src, x, 8000, subtype="FLOAT")
@@ -323,8 +322,6 @@ def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
     # read whole (the reference is aligned to the whole input), then fed in blocks: the offline extension,
     # every block of it (the blocks once came from a generator over a name the loop rebound, so a file
     # longer than one block gave only its first block)
-    from nenv.chain import pipeline
-
     for method in ("oracle", "true-band"):
         offline = pipeline.extend(x, system=pipeline.make_system(method, reference=streamfile._oracle_reference(ARCTIC[0], x))).y
         for block_s in (streamfile.BLOCK_S, 0.7):
@@ -341,8 +338,6 @@ def test_one_file_is_never_extended_over_itself_and_its_options_cannot_change_un
     sent to every worker) cannot be changed by a caller between files."""
     import dataclasses
 
-    from nenv.errors import OutputError
-
     src = tmp_path / "x.wav"
     sf.write(src, _telephone(0, 1.0), 8000, subtype="PCM_16")
     before = src.read_bytes()
@@ -358,8 +353,6 @@ def test_one_file_is_never_extended_over_itself_and_its_options_cannot_change_un
 def test_a_batch_record_is_never_one_of_its_inputs(tmp_path):
     """A list of files may name anything, even the record the batch is told to append to: refused
     before any work, as every command refuses to write over a file it reads."""
-    from nenv.errors import OutputError
-
     rec = tmp_path / "guard.jsonl"
     jobs = [batch.Job(src=tmp_path / "a.wav", dst=tmp_path / "o" / "a.wav", index=0), batch.Job(src=rec, dst=tmp_path / "o" / "guard.wav", index=1)]
     assert batch.check_record(tmp_path / "other.jsonl", jobs) == str(tmp_path / "other.jsonl")
@@ -372,8 +365,6 @@ def test_a_resampled_file_has_exactly_its_rounded_length_when_the_resampler_give
     to 22050 and soxr's stream to 22051. The input is cut at round(n * 8000 / sr) samples, as
     ``audio.resample`` does, so the output is exactly twice that and equals the one-shot route."""
     import soxr
-
-    from nenv.chain import pipeline
 
     x = 0.1 * np.random.default_rng(1).standard_normal(44101)
     src = tmp_path / "in.wav"

@@ -10,6 +10,7 @@ import pytest
 
 from nenv.errors import OutputError
 from nenv.media import files
+from tests.conftest import open_descriptors
 
 
 def _leftovers(folder) -> list[str]:
@@ -80,14 +81,11 @@ def test_a_file_is_never_written_over_one_the_command_reads(tmp_path):
 
 def test_an_atomic_output_appears_whole_with_the_usual_permissions_or_not_at_all(tmp_path):
     target = tmp_path / "out.txt"
-    descriptors = len(os.listdir("/proc/self/fd")) if os.path.isdir("/proc/self/fd") else None
     with files.atomic_output(target) as tmp:
         assert tmp.parent == tmp_path and tmp.name.startswith(".out.txt.") and tmp.name.endswith(".part.txt")
         tmp.write_text("whole")
         assert not target.exists()  # nothing at the target until the block ends
     assert target.read_text() == "whole" and _leftovers(tmp_path) == []
-    if descriptors is not None:  # the temporary file's descriptor was closed (a batch writes thousands)
-        assert len(os.listdir("/proc/self/fd")) == descriptors
     mask = os.umask(0)
     os.umask(mask)
     assert stat.S_IMODE(target.stat().st_mode) == 0o666 & ~mask  # as a plain open() would make it, not mkstemp's 0o600
@@ -104,6 +102,13 @@ def test_an_atomic_output_appears_whole_with_the_usual_permissions_or_not_at_all
     with pytest.raises(OutputError, match="folder '.*gone' does not exist"):
         with files.atomic_output(tmp_path / "gone" / "x.txt"):
             pass
+
+
+def test_an_atomic_output_closes_its_temporary_files_descriptor(tmp_path):
+    descriptors = open_descriptors()
+    with files.atomic_output(tmp_path / "out.txt") as tmp:
+        tmp.write_text("whole")
+    assert open_descriptors() == descriptors  # a batch writes thousands of files
 
 
 def test_text_is_written_whole_in_utf_8(tmp_path):

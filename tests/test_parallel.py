@@ -93,10 +93,10 @@ def test_workers_are_copies_of_this_process_unless_asked_to_start_fresh(monkeypa
         pytest.skip("this system cannot fork workers")
     assert parallel._context(False).get_start_method() == "fork"
     assert parallel._context(True).get_start_method() == "spawn"
-    monkeypatch.setattr(sys.modules[__name__], "_SEEN_BY_WORKERS", ["held here"])
-    forked = [r for _, r in parallel.as_done(_where, [(0,), (1,)], workers=2)]
     import numba
 
+    monkeypatch.setattr(sys.modules[__name__], "_SEEN_BY_WORKERS", ["held here"])
+    forked = [r for _, r in parallel.as_done(_where, [(0,), (1,)], workers=2)]
     assert all(seen == ["held here"] and threads == numba.get_num_threads() for _, seen, threads in forked)
     fresh = [r for _, r in parallel.as_done(_where, [(0,), (1,)], workers=2, fresh=True)]
     assert all(pid != os.getpid() and seen == [] and threads == 1 for pid, seen, threads in fresh)

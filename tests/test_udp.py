@@ -10,10 +10,7 @@ import pytest
 
 from nenv.errors import InputError
 from nenv.serve import udp
-
-
-def _open_descriptors() -> int | None:
-    return len(os.listdir("/proc/self/fd")) if os.path.isdir("/proc/self/fd") else None
+from tests.conftest import open_descriptors
 
 
 def test_a_listener_asks_nothing_it_was_not_told_to():
@@ -38,15 +35,13 @@ def test_a_listener_that_cannot_bind_leaves_no_socket_open():
     taken = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     taken.bind(("127.0.0.1", 0))
     try:
-        before = _open_descriptors()
-        if before is None:
-            pytest.skip("this system does not list a process's open descriptors (/proc/self/fd)")
+        before = open_descriptors()
         kept = []  # the errors are kept, as a caller that logs them might: their frames must hold no open socket
         for _ in range(5):
             with pytest.raises(OSError) as e:
                 udp.listener(socket.AF_INET, taken.getsockname(), receive_buffer=65536)
             kept.append(e)
-        assert _open_descriptors() == before
+        assert open_descriptors() == before
     finally:
         taken.close()
 
