@@ -24,7 +24,7 @@ from tests.conftest import ARCTIC
 
 runner = CliRunner()
 TABLE = Path(__file__).resolve().parents[1] / "docs" / "bad-input.md"
-ROWS = [f"F{i}" for i in range(1, 17)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 10)]
+ROWS = [f"F{i}" for i in range(1, 18)] + [f"C{i}" for i in range(1, 11)] + [f"M{i}" for i in range(1, 10)]
 
 
 def _run(*args):
@@ -270,6 +270,25 @@ def test_f15_record_file_that_is_not_a_record(tmp_path, speech):
 
 
 # ---- content -------------------------------------------------------------------------------
+
+
+def test_f17_reference_that_is_not_the_inputs_original(tmp_path):
+    src, ref, out = tmp_path / "in.wav", tmp_path / "ref.wav", tmp_path / "out.wav"
+    y, sr = sf.read(ARCTIC[0])
+    sf.write(ref, y, sr)
+    x = channel.telephone(y, sr=sr, law="mulaw")
+    other = channel.telephone(sf.read(ARCTIC[1])[0], sr=sr, law="mulaw")
+    before = None
+    for method in ("oracle", "true-band"):  # the second time an earlier output exists: --overwrite must not lose it
+        sf.write(src, other, 8000, subtype="PCM_16")
+        _refused(_run("extend", src, out, "--method", method, "--reference", ref, "--overwrite"), "is not the original of this input")
+        sf.write(src, np.concatenate([np.zeros(160), x[:-160]]), 8000, subtype="PCM_16")
+        _refused(_run("extend", src, out, "--method", method, "--reference", ref, "--overwrite"), "the input is 20.0 ms behind the reference")
+        assert sorted(os.listdir(tmp_path)) == sorted(["in.wav", "ref.wav"] + (["out.wav"] if before else []))
+        assert before is None or out.read_bytes() == before
+        sf.write(src, x, 8000, subtype="PCM_16")
+        assert _run("extend", src, out, "--method", method, "--reference", ref, "--overwrite").exit_code == 0
+        before = out.read_bytes()
 
 
 def test_degrade_refuses_digital_silence_but_not_a_quiet_recording(tmp_path):

@@ -332,6 +332,32 @@ def test_the_oracle_takes_its_reference_at_the_inputs_level(tmp_path):
             assert y.size == 2 * x.size and y.tobytes() == audio.to_int16(offline).tobytes(), (method, block_s)
 
 
+def test_a_reference_that_is_not_the_inputs_original_is_refused():
+    """The oracle scales its reference to the input's level whatever the two hold, and true-band adds the
+    reference's own band: both need the wideband original the input was made from, sample-aligned. The
+    check is the telephone bands' correlation at lag 0 (at least lineup.MIN_CORRELATION, our rule): the
+    input through G.711 (either law) or with noise at 10 dB SNR passes; another sentence, a shifted input
+    (the message gives the shift) or an inverted one is refused (through the command: tests/test_bad_input.py, F17)."""
+    from nenv.report.evaluate import prepare_reference
+
+    ref = prepare_reference(ARCTIC[0])
+    for law, snr in (("mulaw", None), ("alaw", None), ("mulaw", 10.0)):
+        x = channel.telephone(ref, sr=16000, law=law, snr_db=snr)
+        assert streamfile._oracle_reference(ARCTIC[0], x).size == ref.size
+    x = channel.telephone(ref, sr=16000, law="mulaw")
+    other = channel.telephone(prepare_reference(ARCTIC[1]), sr=16000, law="mulaw")
+    cases = [
+        (other, "is not the original of this input: its telephone band and the input correlate at most 0.0"),
+        (np.concatenate([np.zeros(100), x[:-100]]), r"the input is 12\.5 ms behind the reference \(telephone-band correlation 1\.00 there"),
+        (np.concatenate([x[40:], np.zeros(40)]), r"the input is 5\.0 ms ahead of the reference"),
+        (-x, r"polarity inverted \(correlation -1\.00\)"),
+    ]
+    for bad, message in cases:
+        with pytest.raises(InputError, match=message):
+            streamfile._oracle_reference(ARCTIC[0], bad)
+    assert streamfile._oracle_reference(ARCTIC[0], np.zeros_like(x)).size == ref.size  # silence in, silence out
+
+
 def test_one_file_is_never_extended_over_itself_and_its_options_cannot_change_under_it(tmp_path):
     """``extend_file`` refuses an output that is its input or its reference (the input would be gone)
     before anything is written; its options are frozen, so one Options (the default argument, or one

@@ -207,7 +207,51 @@ def _oracle_reference(reference, x: np.ndarray) -> np.ndarray:
     nb_of_ref = chan.telephone(ref, sr=WB_SR, level_dbov=None)
     n = min(nb_of_ref.size, x.size)
     num = float(np.dot(nb_of_ref[:n], nb_of_ref[:n]))
+    check_reference_matches(nb_of_ref[:n], x[:n], reference)
     return ref * (float(np.sqrt(np.dot(x[:n], x[:n]) / num)) if num > 0 else 1.0)
+
+
+def check_reference_matches(nb_of_ref: np.ndarray, x: np.ndarray, reference) -> None:
+    """Refuse a reference that is not, sample for sample, the original the narrowband input ``x`` was made
+    from: the oracle would take another recording's envelope (scaled to the input's level, however
+    unlike), and true-band would add another recording's band. Both are the same length at 8 kHz.
+
+    The test is the waveform correlation of the reference's telephone band with the input at lag 0, at
+    least :data:`nenv.report.lineup.MIN_CORRELATION` (the rule ``nenv measures`` refuses a pair by; ours).
+    G.711 keeps it near 1 (about 0.999 at -26 dBov), and added noise at 0 dB SNR still about 0.7. When it
+    fails, the lag of the largest correlation within +-1 s tells the user how far one is shifted. A
+    silent input is let through (its output is silence whatever the reference).
+    """
+    from scipy import signal
+
+    from nenv.report.lineup import MIN_CORRELATION
+
+    e_ref, e_x = float(np.dot(nb_of_ref, nb_of_ref)), float(np.dot(x, x))
+    if e_x == 0.0 or e_ref == 0.0:
+        return
+    norm = np.sqrt(e_ref * e_x)
+    at_zero = float(np.dot(nb_of_ref, x)) / norm
+    if at_zero >= MIN_CORRELATION:
+        return
+    if at_zero <= -MIN_CORRELATION:
+        raise InputError(f"the input is the reference's telephone band with its polarity inverted (correlation {at_zero:.2f}): invert one of them")
+    reach = min(NB_SR, x.size - 1)
+    c = signal.correlate(x, nb_of_ref, mode="full", method="fft") / norm
+    lags = signal.correlation_lags(x.size, nb_of_ref.size, mode="full")
+    near = np.abs(lags) <= reach
+    best = int(np.argmax(np.abs(c[near])))
+    lag, corr = int(lags[near][best]), float(c[near][best])
+    if abs(corr) >= MIN_CORRELATION:
+        where = "behind" if lag > 0 else "ahead of"
+        raise InputError(
+            f"the input is {1000 * abs(lag) / NB_SR:.1f} ms {where} the reference (telephone-band correlation {corr:.2f} there, "
+            f"{at_zero:.2f} as they are): --method oracle and true-band need the two sample-aligned, as `nenv degrade` makes them; "
+            "shift one of them (recordings that are not aligned are scored by `nenv measures`)"
+        )
+    raise InputError(
+        f"'{reference}' is not the original of this input: its telephone band and the input correlate at most {abs(corr):.2f} "
+        f"within +-1 s (at least {MIN_CORRELATION} is needed); --reference must be the wideband recording the input was made from"
+    )
 
 
 def watch(system, record, *, source: str, group: Optional[str], n_hops: int, keep_going: bool = False, on_failure=None):
