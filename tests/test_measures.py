@@ -49,7 +49,7 @@ def test_envelope_spectra_are_order_16_lpc_envelopes_by_scipy(arctic_refs):
     checked = 0
     for i in range(fr.shape[0]):
         x = fr[i] * w
-        r = np.correlate(x, x, mode="full")[x.size - 1 : x.size + measures.ENVELOPE_ORDER]
+        r = np.correlate(x, x, mode="full")[x.size - 1 : x.size + 16]  # order 16, as documented (not the module's constant)
         if r[0] == 0:
             continue
         r[0] *= 1.0 + 1e-9
@@ -78,33 +78,75 @@ def test_an_empty_band_costs_the_floor_distance(rng):
     assert 20 < d <= measures.FLOOR_DB
 
 
-@pytest.mark.parametrize("band", [measures.HIGH_BAND, measures.FULL_BAND])
-def test_lsd_follows_its_definition_on_librosas_stft(arctic_refs, band):
-    """The module's definition applied to librosa's STFT (512-point periodic Hann, hop 160, centred
-    with zero padding): power |X|^2 / sum(w^2); frames within 40 dB of the loudest reference frame;
-    power below 80 dB under the loudest reference bin raised to that floor in both signals; per frame
-    the RMS over the band's bins of the dB difference, then the mean. The estimate is the reference
-    low-passed at 3 kHz, so the high band compares largely at the floor."""
+def _librosa_power(y):
+    """|X|^2 / sum(w^2) on librosa's STFT (512-point periodic Hann, hop 160, centred with zero padding)."""
     import librosa
     from scipy import signal
 
-    _, ref = arctic_refs[1]
-    est = signal.sosfilt(signal.butter(10, 3000, fs=16000, output="sos"), ref)
     w = signal.get_window("hann", 512)
+    return np.abs(librosa.stft(y, n_fft=512, hop_length=160, window="hann", center=True, pad_mode="constant")).T ** 2 / np.sum(w * w)
 
-    def power(y):
-        return np.abs(librosa.stft(y, n_fft=512, hop_length=160, window="hann", center=True, pad_mode="constant")).T ** 2 / np.sum(w * w)
 
-    p_ref, p_est = power(ref), power(est)
+def _lsd_by_definition(p_ref, p_est, lo, hi):
     e = p_ref.sum(axis=1)
     active = e >= e.max() * 10 ** (-40 / 10)
     floor = p_ref.max() * 10 ** (-80 / 10)
     f = np.fft.rfftfreq(512, 1 / 16000)
-    sel = (f >= band[0]) & (f <= band[1])
+    sel = (f >= lo) & (f <= hi)
     d = 10 * np.log10(np.maximum(p_ref[active][:, sel], floor) / np.maximum(p_est[active][:, sel], floor))
-    want = np.mean(np.sqrt(np.mean(d**2, axis=1)))
+    return np.mean(np.sqrt(np.mean(d**2, axis=1))), active
+
+
+def test_lsd_follows_its_definition_on_librosas_stft(arctic_refs, monkeypatch):
+    """The module's definition applied to librosa's STFT: power |X|^2 / sum(w^2) (the spectra
+    themselves equal librosa's, frame for frame); frames within 40 dB of the loudest reference frame;
+    power below 80 dB under the loudest reference bin raised to that floor in both signals; per frame
+    the RMS over the band's bins of the dB difference, then the mean. The bands are the documented ones
+    (3.4-8 kHz by default, 0-8 kHz, 50-300 Hz), written out here, not taken from the module. The
+    estimate is the reference low-passed at 3 kHz, so the high band compares largely at the floor."""
+    from scipy import signal
+
+    _, ref = arctic_refs[1]
+    est = signal.sosfilt(signal.butter(10, 3000, fs=16000, output="sos"), ref)
+    p_ref, p_est = _librosa_power(ref), _librosa_power(est)
+    assert p_ref.shape == (1 + ref.size // 160, 257)
+    np.testing.assert_allclose(measures.power_spectra(ref), p_ref, rtol=1e-9, atol=1e-18)
+    high, active = _lsd_by_definition(p_ref, p_est, 3400, 8000)
+    full, _ = _lsd_by_definition(p_ref, p_est, 0, 8000)
+    low, _ = _lsd_by_definition(p_ref, p_est, 50, 300)
     assert 0.5 < active.mean() < 1.0  # the rule leaves some frames out of this sentence
-    assert measures.lsd(ref, est, band=band) == pytest.approx(want, rel=1e-9)
+    assert measures.lsd(ref, est) == pytest.approx(high, rel=1e-9)
+    assert measures.lsd(ref, est, band=(0, 8000)) == pytest.approx(full, rel=1e-9)
+    monkeypatch.setattr(measures, "perceptual", lambda r, e: (np.nan, np.nan))  # not what this test is about
+    s = measures.Scores.compute(ref, est)
+    assert (s.lsd_high, s.lsd_full, s.lsd_low) == (pytest.approx(high, rel=1e-9), pytest.approx(full, rel=1e-9), pytest.approx(low, rel=1e-9))
+    env_ref, env_est = measures.envelope_spectra(ref), measures.envelope_spectra(est)  # (checked against scipy above)
+    floor = p_ref.max() * 1e-8
+    for got, (lo, hi) in ((s.lsd_env_high, (3400, 8000)), (s.lsd_env_full, (0, 8000))):
+        f = np.fft.rfftfreq(512, 1 / 16000)
+        sel = (f >= lo) & (f <= hi)
+        d = 10 * np.log10(np.maximum(env_ref[active][:, sel], floor) / np.maximum(env_est[active][:, sel], floor))
+        assert got == pytest.approx(np.mean(np.sqrt(np.mean(d**2, axis=1))), rel=1e-9)
+    assert len({high, full, low}) == 3 and s.lsd_env_high != s.lsd_env_full
+
+
+def test_an_estimate_without_a_band_is_measured_at_the_floor(arctic_refs):
+    """Level errors of an estimate with nothing in the band: per frame 10 log10(floor / E_ref), the
+    floor 80 dB under the loudest reference bin (librosa's STFT as above); the median over the active
+    frames (high band) or over those holding a low band within 30 dB of its loudest frame's (low band)."""
+    _, ref = arctic_refs[0]
+    zero = np.zeros_like(ref)
+    p = _librosa_power(ref)
+    e = p.sum(axis=1)
+    active = e >= e.max() * 1e-4
+    floor = p.max() * 1e-8
+    f = np.fft.rfftfreq(512, 1 / 16000)
+    high = p[:, (f >= 3400) & (f <= 8000)].sum(axis=1)
+    low = p[:, (f >= 50) & (f <= 300)].sum(axis=1)
+    holds_low = active & (low > 0) & (low >= low.max() * 1e-3)
+    assert measures.high_band_level_error(ref, zero) == pytest.approx(np.median(10 * np.log10(floor / np.maximum(high[active], floor))), rel=1e-9)
+    assert measures.low_band_level_error(ref, zero) == pytest.approx(np.median(10 * np.log10(floor / np.maximum(low[holds_low], floor))), rel=1e-9)
+    assert 0.3 < holds_low.sum() / active.sum() < 0.95  # the low-band rule leaves out some active frames
 
 
 def _band_noise(rng, n, lo, hi):
@@ -137,30 +179,40 @@ def test_level_errors_are_medians_over_active_frames_only(rng):
     ref, est = _segments(rng, [(0.8, 0, 6), (0.4, -20, -12), (1.5, -50, -20)])
     assert measures.high_band_level_error(ref, est) == pytest.approx(6.0206, abs=0.3)
     # the low band: frames whose reference holds one within LOW_PRESENT_DB = 30 dB of its loudest
-    # frame's. 0.8 s with a loud low band, the estimate's +6 dB; 0.3 s with it too, the estimate's
-    # -12 dB; 1.2 s of equally loud speech whose low band is 40 dB weaker, the estimate's -20 dB
-    # there: only the first two count, median +6 dB (a mean would give about +1).
-    parts_ref, parts_est = [], []
-    for seconds, low_db, gain_db in [(0.8, 0, 6), (0.3, 0, -12), (1.2, -40, -20)]:
-        n = int(seconds * 16000)
-        low, mid = _band_noise(rng, n, 80, 280), _band_noise(rng, n, 500, 3000)
+    # frame's. The low band is one tone on a bin of the grid (156.25 Hz), so every frame of a part holds
+    # the same low-band power; the rest is band noise at one level throughout (every frame active). 0.4 s with
+    # the low band at 0 dB, the estimate's +6 dB; 0.7 s at -28.5 dB, the estimate's -12 dB; 1.2 s at
+    # -30.6 dB, the estimate's -20 dB: only the first two count, median -12 dB (a mean would give about
+    # -13, a rule of 27 dB +6, one of 31 dB or more -20).
+    t = np.arange(int(2.3 * 16000)) / 16000
+    tones = np.sin(2 * np.pi * 156.25 * t)
+    parts_ref, parts_est, start = [], [], 0
+    for seconds, low_db, gain_db in [(0.4, 0, 6), (0.7, -28.5, -12), (1.2, -30.6, -20)]:
+        n = int(round(seconds * 16000))
+        low, mid = tones[start : start + n], _band_noise(rng, n, 500, 3000)
         parts_ref.append(0.1 * (10 ** (low_db / 20) * low + mid))
         parts_est.append(0.1 * (10 ** ((low_db + gain_db) / 20) * low + mid))
+        start += n
     ref, est = np.concatenate(parts_ref), np.concatenate(parts_est)
-    assert measures.low_band_level_error(ref, est) == pytest.approx(6.0206, abs=0.3)
+    assert measures.low_band_level_error(ref, est) == pytest.approx(-12.0412, abs=0.3)
 
 
 def test_silent_reference_gives_nan():
     z = np.zeros(16000)
-    assert np.isnan(measures.lsd(z, z))
-    assert np.isnan(measures.pesq_wb(z, z))
+    for measure in (measures.lsd, measures.lsd_envelope, measures.high_band_level_error, measures.low_band_level_error, measures.pesq_wb):
+        assert np.isnan(measure(z, z)), measure.__name__
 
 
 def test_mismatched_lengths_are_refused():
     from nenv.errors import InputError
 
-    with pytest.raises(InputError, match="equal length"):
-        measures.lsd(np.zeros(100), np.zeros(101))
+    a, b = np.ones(1600), np.ones(1601)
+    for measure in (measures.lsd, measures.lsd_envelope, measures.high_band_level_error, measures.low_band_level_error,
+                    measures.pesq_wb, measures.visqol_speech, measures.Scores.compute):
+        with pytest.raises(InputError, match="equal length"):
+            measure(a, b)
+    with pytest.raises(InputError, match="mono"):
+        measures.lsd(np.ones((2, 1600)), np.ones((2, 1600)))
 
 
 def test_wb_pesq_prefers_a_quieter_added_band_even_when_it_is_the_true_one(arctic_refs):
@@ -297,3 +349,98 @@ def test_a_silent_window_is_left_out_of_the_mean(long_pair):
     pesq, vq = measures.perceptual(r, y)
     assert np.isfinite(pesq) and np.isfinite(vq)
     assert pesq == pytest.approx(measures.perceptual(ref, outs["unextended"])[0], abs=0.15)
+
+
+def _blocks(levels_db, amp: float = 0.05) -> np.ndarray:
+    """A signal of 10 ms blocks at the given levels (dB re ``amp``; -inf for silence), each block
+    alternating +-a so that its energy is exactly 160 a^2."""
+    a = amp * 10 ** (np.asarray(levels_db, dtype=float) / 20)
+    return (a[:, None] * np.tile([1.0, -1.0], 80)[None, :]).ravel()
+
+
+def test_windows_are_cut_in_the_quietest_100_ms_near_their_nominal_end():
+    """Worked example in 10 ms blocks (3008 of them, 30.08 s, all at 0 dB except as said): nominal
+    windows of 12 s cut within +-2 s (blocks 1000-1399 start the 100 ms stretches searched) at the middle
+    of the quietest 100 ms. Blocks 1003-1012 at -45 dB (flanked by -20 dB before and -10 dB after) are
+    the quietest within reach, so the cut is block 1008; blocks 1450-1470 are silent but out of reach.
+    The rest, 2000 blocks, is not more than 1.5 windows plus the reach: no second cut. 30 s is whole."""
+    levels = np.zeros(3008)
+    levels[1002], levels[1003:1013], levels[1013] = -20, -45, -10
+    levels[1450:1471] = -np.inf
+    y = _blocks(levels)
+    assert measures.perceptual_windows(y) == [(0, 1008 * 160), (1008 * 160, 3008 * 160)]
+    assert measures.perceptual_windows(y[: 30 * 16000]) == [(0, 30 * 16000)]
+    longer = _blocks(np.concatenate([levels, np.zeros(1)]))  # one block more: a second cut, 12 s on
+    assert len(measures.perceptual_windows(longer)) == 3
+
+
+def test_window_weights_are_seconds_of_active_blocks():
+    """Blocks within 40 dB of the loudest block are active: -38 dB counts, -41 dB does not."""
+    levels = np.zeros(3008)
+    levels[1002], levels[1003:1013], levels[1013] = -20, -45, -10
+    levels[1450:1471] = -np.inf
+    levels[2000], levels[2100] = -38, -41
+    y = _blocks(levels)
+    w = measures.perceptual_windows(y)
+    # window 0: blocks 0-1007 less 1003-1007; window 1: 1008-3007 less 1008-1012, 1450-1470 and 2100
+    np.testing.assert_allclose(measures._window_weights(y, w), [10.03, 19.73], atol=1e-12)
+
+
+def test_long_pairs_score_windows_with_a_second_of_speech_weighted_by_it(monkeypatch):
+    """Windows with at least 1 s of active speech are scored, the others left out; the mean is weighted
+    by each window's active seconds. The measures are stand-ins that give each window's length in
+    seconds, so the mean can be worked out: 1.2 s and 2.0 s of speech in windows of 10.05 and 20.00 s
+    give (1.2 * 10.05 + 2.0 * 20.00) / 3.2; with 0.9 s in the second, 10.05 alone."""
+    monkeypatch.setattr(measures, "pesq_wb", lambda r, e: r.size / 16000)
+    monkeypatch.setattr(measures, "visqol_speech", lambda r, e: -r.size / 16000)
+
+    def pair(second_window_s):
+        levels = np.full(3005, -np.inf)
+        levels[:120] = 0.0
+        levels[2000 : 2000 + int(round(100 * second_window_s))] = 0.0
+        y = _blocks(levels)
+        return y, y
+
+    y, _ = pair(2.0)
+    assert measures.perceptual_windows(y) == [(0, 1005 * 160), (1005 * 160, 3005 * 160)]  # silence from block 1000 on: cut at 1005
+    pesq, vq = measures.perceptual(*pair(2.0))
+    assert pesq == pytest.approx((1.2 * 10.05 + 2.0 * 20.00) / 3.2, rel=1e-12) and vq == pytest.approx(-pesq, rel=1e-12)
+    pesq, vq = measures.perceptual(*pair(0.9))
+    assert (pesq, vq) == (pytest.approx(10.05, rel=1e-12), pytest.approx(-10.05, rel=1e-12))
+    monkeypatch.setattr(measures, "pesq_wb", lambda r, e: np.nan if r.size < 200000 else 1.0)  # a value a measure cannot give
+    assert measures.perceptual(*pair(2.0))[0] == 1.0
+
+
+def test_native_chatter_is_silenced_and_stderr_given_back(capfd):
+    """Inside the silencer, what native code writes to file descriptor 2 goes nowhere; after it,
+    descriptor 2 is what it was and no descriptor is left open."""
+    import os
+
+    from tests.conftest import open_descriptors
+
+    before = open_descriptors()
+    os.write(2, b"before\n")
+    with measures._native_stderr_silenced():
+        os.write(2, b"native chatter\n")
+    os.write(2, b"after\n")
+    assert capfd.readouterr().err == "before\nafter\n"
+    assert open_descriptors() == before
+
+
+def test_visqol_is_the_packages_speech_mode_with_its_lattice_model(arctic_refs):
+    """nenv's ViSQOL is the visqol-python package's own speech mode with its lattice mapping model
+    (the reference implementation's default; Chinen et al. 2020), reference first: equal to the package
+    called directly, and distinguishable from the other mapper and from the swapped order."""
+    from scipy import signal
+    from visqol.api import VisqolApi
+
+    _, ref = arctic_refs[0]
+    est = signal.sosfiltfilt(signal.butter(10, 3400, fs=16000, output="sos"), ref)
+    api = VisqolApi()
+    api.create(mode="speech", use_lattice_model=True)
+    want = api.measure_from_arrays(ref, est, 16000).moslqo
+    assert measures.visqol_speech(ref, est) == want
+    assert abs(api.measure_from_arrays(est, ref, 16000).moslqo - want) > 0.1
+    other = VisqolApi()
+    other.create(mode="speech", use_lattice_model=False)
+    assert abs(other.measure_from_arrays(ref, est, 16000).moslqo - want) > 0.05
