@@ -60,6 +60,20 @@ def test_envelope_spectra_are_order_16_lpc_envelopes_by_scipy(arctic_refs):
     assert checked > 0.9 * fr.shape[0]
 
 
+def test_the_spectral_measures_do_not_depend_on_the_level_both_signals_are_at(arctic_refs):
+    """Active frames and the floor are relative to the reference's loudest frame and bin, so a pair
+    60 dB quieter (or 20 dB louder) scores the same, to rounding."""
+    from scipy import signal
+
+    _, ref = arctic_refs[0]
+    est = signal.sosfilt(signal.butter(10, 3000, fs=16000, output="sos"), ref) + 0.3 * np.roll(ref, 7)
+    for measure in (measures.lsd, measures.lsd_envelope, measures.high_band_level_error, measures.low_band_level_error):
+        at = measure(ref, est)
+        assert np.isfinite(at), measure.__name__
+        for gain in (1e-3, 10.0):
+            assert measure(gain * ref, gain * est) == pytest.approx(at, rel=1e-6, abs=1e-9), (measure.__name__, gain)
+
+
 def test_high_band_measures_ignore_the_low_band(rng):
     t = np.arange(32000) / 16000
     ref = 0.1 * np.sin(2 * np.pi * 1000 * t) + 0.01 * rng.standard_normal(t.size)
@@ -283,8 +297,15 @@ def test_both_perceptual_measures_rank_the_true_band_above_no_band(arctic_refs, 
 
 
 def test_visqol_of_silence_is_blank_not_an_error():
+    """Silence, and clips the package refuses (0.05 s: too few samples for its spectrogram, a
+    ValueError; 0.1 s of noise: nothing to align, an IndexError), score NaN, not an exception."""
     z = np.zeros(16000)
     assert np.isnan(measures.visqol_speech(z, z))
+    rng = np.random.default_rng(0)
+    for n in (800, 1600):
+        y = 0.1 * rng.standard_normal(n)
+        got = measures.visqol_speech(y, y)
+        assert isinstance(got, float) and np.isnan(got), n
 
 
 def test_visqol_start_up_prints_nothing(capfd):
@@ -390,7 +411,8 @@ def test_long_pairs_score_windows_with_a_second_of_speech_weighted_by_it(monkeyp
     """Windows with at least 1 s of active speech are scored, the others left out; the mean is weighted
     by each window's active seconds. The measures are stand-ins that give each window's length in
     seconds, so the mean can be worked out: 1.2 s and 2.0 s of speech in windows of 10.05 and 20.00 s
-    give (1.2 * 10.05 + 2.0 * 20.00) / 3.2; with 0.9 s in the second, 10.05 alone."""
+    give (1.2 * 10.05 + 2.0 * 20.00) / 3.2; with 0.9 s in the second, 10.05 alone; with exactly 1 s,
+    both."""
     monkeypatch.setattr(measures, "pesq_wb", lambda r, e: r.size / 16000)
     monkeypatch.setattr(measures, "visqol_speech", lambda r, e: -r.size / 16000)
 
@@ -407,6 +429,8 @@ def test_long_pairs_score_windows_with_a_second_of_speech_weighted_by_it(monkeyp
     assert pesq == pytest.approx((1.2 * 10.05 + 2.0 * 20.00) / 3.2, rel=1e-12) and vq == pytest.approx(-pesq, rel=1e-12)
     pesq, vq = measures.perceptual(*pair(0.9))
     assert (pesq, vq) == (pytest.approx(10.05, rel=1e-12), pytest.approx(-10.05, rel=1e-12))
+    pesq, vq = measures.perceptual(*pair(1.0))  # exactly the minimum (100 blocks) is enough
+    assert pesq == pytest.approx((1.2 * 10.05 + 1.0 * 20.00) / 2.2, rel=1e-12)
     monkeypatch.setattr(measures, "pesq_wb", lambda r, e: np.nan if r.size < 200000 else 1.0)  # a value a measure cannot give
     assert measures.perceptual(*pair(2.0))[0] == 1.0
 
