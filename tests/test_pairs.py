@@ -4,6 +4,7 @@ agreement with ``nenv evaluate`` where both apply."""
 from __future__ import annotations
 
 import csv
+import re
 
 import numpy as np
 import pytest
@@ -312,6 +313,8 @@ def test_jumps_of_the_offset_are_undone_before_scoring(extended, tmp_path, ppm):
         assert cut - 16 <= at <= cut + max(-d, 0) + 16, got.alignment.jumps  # within 1 ms (a drop: anywhere in the lost stretch)
     assert got.clock_ppm == pytest.approx(ppm, abs=max(5, 0.01 * ppm))
     assert sum("jumps 3 times" in n for n in got.notes) == 1, got.notes
+    said = next(n for n in got.notes if "jumps 3 times" in n)  # each jump's size and place in the reference, in words
+    assert re.search(r"\+(19\.9|20\.0|20\.1) ms at 1\.50 s, -(9\.9|10\.0|10\.1) ms at 7\.2\d s, \+(49\.9|50\.0|50\.1) ms at 13\.30 s", said), said
     assert "| 3 |" in pairs.to_markdown([got], []) and ",3," in pairs.to_csv([got], [])
     assert got.scores.lsd_high == pytest.approx(same.scores.lsd_high, abs=0.1)
     assert got.scores.visqol == pytest.approx(same.scores.visqol, abs=0.05)
@@ -364,6 +367,8 @@ def test_lost_packets_in_speech_are_counted(extended):
     assert telband.unmatched(r, o)[0] == 0 and telband.unmatched(r, holed)[0] == 12
     notes = lineup.line_up(r, holed, level_dbov=-26).notes
     assert sum(n.startswith("12 of the ") and "do not follow the reference" in n for n in notes) == 1, notes
+    checked, share = (int(v) for v in re.search(r"^12 of the (\d+) loudest 20 ms blocks \((\d+)%\)", next(n for n in notes if n.startswith("12 of"))).groups())
+    assert share == round(100 * 12 / checked) and checked > 12
     assert not any("do not follow" in n for n in lineup.line_up(r, o, level_dbov=-26).notes)
 
 
@@ -415,6 +420,8 @@ def test_a_level_that_moves_over_the_call_is_evened_out(extended, tmp_path, monk
     assert got.scores.visqol == pytest.approx(same.scores.visqol, abs=0.05)
     assert got.scores.pesq_wb == pytest.approx(same.scores.pesq_wb, abs=0.05)
     assert got.evened and np.ptp([v for _, v in got.levels]) > telband.LEVEL_TRACK_DB and not same.evened
+    lined = lineup.line_up(r, 0.5 * o * 10 ** (g / 20), level_dbov=-26)  # evened out: every second's telephone band
+    assert np.max(np.abs(telband.segment_levels(lined.ref, lined.out)[1])) < 0.15  # at the reference's level (measured: 0.1 dB at most)
     if shape == "step":  # the same pair with one gain for the whole call
         monkeypatch.setattr(telband, "LEVEL_TRACK_DB", np.inf)
         one = pairs.score(pairs.Pair("ref", "moved", tmp_path / "moved.wav", tmp_path / "ref.wav"))
@@ -485,3 +492,80 @@ def test_segment_levels_recover_a_known_level_profile_through_channel_noise(rng)
     step = np.repeat([0.0, -8.0, -8.0], sr)
     assert telband.level_track(r[: 3 * sr], r[: 3 * sr] * 10 ** (step / 20)) is not None  # three segments: enough
     assert telband.level_track(r[: 2 * sr], r[: 2 * sr] * 10 ** (step[: 2 * sr] / 20)) is None  # two: too few
+
+
+def test_a_jump_is_a_step_of_at_least_2_ms_once_the_drift_is_taken_out():
+    """Worked by hand: one-second segments 0-5 whose lags drift by 1 sample per segment, with a step of
+    40 samples (2.5 ms at 16 kHz) between segments 2 and 3 and one of 30 (1.875 ms) between 4 and 5:
+    the drift (the median step per segment) is taken out, the first step is a jump, the second is not."""
+    which = np.arange(6)
+    lags = np.array([0, 1, 2, 3 + 40, 4 + 40, 5 + 40 + 30])
+    np.testing.assert_array_equal(lineup._steps(which, lags), [0, 0, 40, 0, 0])
+    # a segment left out (no lag found for it) counts its gap: two segments apart, two samples of drift
+    np.testing.assert_array_equal(lineup._steps(np.array([0, 2, 3, 4, 5]), np.array([0, 2, 3, 4 - 32, 5 - 32])), [0, 0, -32, 0])
+    assert lineup._steps(np.array([4]), np.array([7])).size == 0
+
+
+def test_a_lag_is_clear_only_when_no_lag_further_than_1_5_ms_matches_as_well():
+    """A one-sample segment against two equal pulses: the correlation is 1 at both. Pulses 25 samples
+    apart (more than LAG_UNIQUE = 24, 1.5 ms) leave the lag ambiguous (margin 0); 24 apart they count as
+    one peak (margin 1, nothing else correlates)."""
+    seg = np.r_[1.0, np.zeros(9)]
+    for apart, margin in ((25, 0.0), (24, 1.0)):
+        o = np.zeros(300)
+        o[100], o[100 + apart] = 1.0, 1.0
+        lag, corr, got = lineup._lag_near(seg, o, 100, 0, 50)
+        assert (lag, corr, got) == (0, 1.0, margin), apart
+
+
+def test_the_coarse_offset_is_not_pulled_by_a_loud_unrelated_stretch(rng):
+    """Envelope blocks (zero mean, as lineup._envelope gives them): the output holds the reference's
+    last 600 blocks, then 400 blocks ten times louder of something else. Each lag's correlation is
+    normalised by the blocks the two share, so the lag of the shared 600 (60% of the shorter, above
+    MIN_SHARED = 50%) wins with correlation 1, however loud the rest."""
+    er = rng.standard_normal(1000)
+    eo = np.concatenate([er[400:], 10 * rng.standard_normal(400)])
+    lag, corr = lineup._envelope_lag(er, eo, 1000)
+    assert lag == -400 and corr == pytest.approx(1.0, abs=0.05)
+    eo = np.concatenate([er[600:], 10 * rng.standard_normal(600)])  # only 40% shared: not considered
+    assert lineup._envelope_lag(er, eo, 1000)[0] != -600
+
+
+def test_a_jump_is_placed_where_the_two_lags_fit_best_and_not_within_5_ms_of_an_end():
+    """A stretch whose output is 10 samples late up to a split and 40 late after it: the split is found
+    to the sample. Within JUMP_BLOCK (80 samples, 5 ms) of either end of the stretch searched it is no
+    jump; a stretch of exactly twice that is searched (the split at its middle is found). The signals
+    are worked so that the answer is exact: the reference is all ones and the output +1 where either
+    lag meets it and -1 elsewhere, so each lag's products are +1 except for the 30 samples next to the
+    split on the wrong side, and the fit is largest at the split alone."""
+    def stretch(n, split, before=10, after=40):
+        r, o = np.ones(n), -np.ones(n + 60)
+        o[np.arange(split) + before] = 1.0
+        o[np.arange(split, n) + after] = 1.0
+        return r, o
+
+    r, o = stretch(1000, 437)
+    assert lineup._place(r, o, 0, 1000, 10, 40) == 437
+    assert lineup._place(r, o, 200, 900, 10, 40) == 437  # the same split, searched in part of the stretch
+    r, o = stretch(160, 80)
+    assert lineup._place(r, o, 0, 160, 10, 40) == 80
+    assert lineup._place(r, o, 0, 159, 10, 40) is None  # shorter than two blocks: not searched
+    r, o = stretch(400, 79)
+    assert lineup._place(r, o, 0, 400, 10, 40) is None
+    r, o = stretch(400, 400 - 79)
+    assert lineup._place(r, o, 0, 400, 10, 40) is None
+    for split in (80, 400 - 80):  # at least a block from either end: a jump
+        r, o = stretch(400, split)
+        assert lineup._place(r, o, 0, 400, 10, 40) == split
+
+
+def test_the_alignment_does_not_depend_on_the_level_of_the_pair(extended):
+    """Which segments hold speech, the offset, the gain and the correlation are all relative: the pair
+    60 dB quieter lines up exactly as it is."""
+    ref, _, y = extended
+    late = np.concatenate([np.zeros(321), 0.5 * y])
+    a = lineup.align(ref, late)
+    b = lineup.align(1e-3 * ref, 1e-3 * late)
+    assert a.offset == b.offset == 321 and a.segments == b.segments and len(a.segments) >= 2
+    assert all(t % 1 == 0.5 for t, _ in a.segments)  # each segment at its middle, in seconds of the reference
+    assert b.gain_db == pytest.approx(a.gain_db, abs=1e-9) and b.correlation == pytest.approx(a.correlation, abs=1e-9)
