@@ -569,3 +569,19 @@ def test_the_alignment_does_not_depend_on_the_level_of_the_pair(extended):
     assert a.offset == b.offset == 321 and a.segments == b.segments and len(a.segments) >= 2
     assert all(t % 1 == 0.5 for t, _ in a.segments)  # each segment at its middle, in seconds of the reference
     assert b.gain_db == pytest.approx(a.gain_db, abs=1e-9) and b.correlation == pytest.approx(a.correlation, abs=1e-9)
+
+
+def test_segments_within_30_db_of_the_loudest_hold_speech(rng):
+    """Which one-second segments of the reference's band get a lag: those within LEVEL_ACTIVE_DB
+    (30 dB) of the loudest. Noise segments at exactly 0, -29, -30.5 and -31.5 dB (and the output the
+    same): the first two."""
+    n = telband.SEGMENT
+    parts = []
+    for level_db in (0.0, -29.0, -30.5, -31.5):
+        x = rng.standard_normal(n)
+        parts.append(x / np.sqrt(np.sum(x * x)) * 10 ** (level_db / 20))
+    r = np.concatenate(parts)
+    which, lags, corrs, _ = lineup._segment_lags(r, r.copy(), 100)
+    np.testing.assert_array_equal(which, [0, 1])
+    np.testing.assert_array_equal(lags, [0, 0])
+    np.testing.assert_allclose(corrs, 1.0)
