@@ -585,3 +585,29 @@ def test_segments_within_30_db_of_the_loudest_hold_speech(rng):
     np.testing.assert_array_equal(which, [0, 1])
     np.testing.assert_array_equal(lags, [0, 0])
     np.testing.assert_allclose(corrs, 1.0)
+
+
+def test_a_level_track_joins_segment_levels_and_serves_only_when_they_spread_over_3_db():
+    """level_track from given segment levels: straight lines between segment centres, flat beyond the
+    first and last; None for fewer than three segments or a spread of at most LEVEL_TRACK_DB (3 dB)."""
+    o = np.zeros(4 * 16000)
+    at = np.array([0.5, 1.5, 2.5]) * 16000
+    track = telband.level_track(o, o, levels=(at, np.array([0.0, 4.0, 2.0])))
+    assert track.shape == o.shape
+    assert track[0] == track[8000] == 0.0 and track[24000] == 4.0 and track[-1] == track[40000] == 2.0
+    assert track[16000] == pytest.approx(2.0) and track[32000] == pytest.approx(3.0)
+    assert telband.level_track(o, o, levels=(at, np.array([0.0, 3.0, 1.0]))) is None  # spread exactly 3 dB
+    assert telband.level_track(o, o, levels=(at, np.array([0.0, 3.01, 1.0]))) is not None
+    assert telband.level_track(o, o, levels=(at[:2], np.array([0.0, 9.0]))) is None
+
+
+def test_segment_levels_take_a_median_of_three_so_one_odd_second_moves_nothing(rng):
+    """Six seconds of band noise and one of silence; the output is the reference with a gain per second.
+    One second 10 dB off is outvoted by its neighbours; two in a row are kept; the silent second holds
+    no speech and gets no level."""
+    r = np.concatenate([rng.standard_normal(6 * 16000), np.zeros(16000)])
+    for gains, want in (([0, 0, 0, 10, 0, 0], [0, 0, 0, 0, 0, 0]), ([0, 0, 10, 10, 0, 0], [0, 0, 10, 10, 0, 0])):
+        g = np.repeat(np.r_[gains, 0.0], 16000)
+        at, levels = telband.segment_levels(r, r * 10 ** (g / 20))
+        np.testing.assert_array_equal(at, (np.arange(6) + 0.5) * 16000)
+        np.testing.assert_allclose(levels, want, atol=0.2)
