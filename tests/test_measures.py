@@ -101,10 +101,13 @@ def _librosa_power(y):
     return np.abs(librosa.stft(y, n_fft=512, hop_length=160, window="hann", center=True, pad_mode="constant")).T ** 2 / np.sum(w * w)
 
 
-def _lsd_by_definition(p_ref, p_est, lo, hi):
-    e = p_ref.sum(axis=1)
+def _lsd_by_definition(p_ref, p_est, lo, hi, floor_from=None):
+    """LSD over lo..hi Hz as documented; the active frames and the floor come from ``floor_from`` (the
+    reference's short-time spectra; default ``p_ref``). Returns the LSD and the active frames."""
+    floor_from = p_ref if floor_from is None else floor_from
+    e = floor_from.sum(axis=1)
     active = e >= e.max() * 10 ** (-40 / 10)
-    floor = p_ref.max() * 10 ** (-80 / 10)
+    floor = floor_from.max() * 10 ** (-80 / 10)
     f = np.fft.rfftfreq(512, 1 / 16000)
     sel = (f >= lo) & (f <= hi)
     d = 10 * np.log10(np.maximum(p_ref[active][:, sel], floor) / np.maximum(p_est[active][:, sel], floor))
@@ -135,12 +138,8 @@ def test_lsd_follows_its_definition_on_librosas_stft(arctic_refs, monkeypatch):
     s = measures.Scores.compute(ref, est)
     assert (s.lsd_high, s.lsd_full, s.lsd_low) == (pytest.approx(high, rel=1e-9), pytest.approx(full, rel=1e-9), pytest.approx(low, rel=1e-9))
     env_ref, env_est = measures.envelope_spectra(ref), measures.envelope_spectra(est)  # (checked against scipy above)
-    floor = p_ref.max() * 1e-8
     for got, (lo, hi) in ((s.lsd_env_high, (3400, 8000)), (s.lsd_env_full, (0, 8000))):
-        f = np.fft.rfftfreq(512, 1 / 16000)
-        sel = (f >= lo) & (f <= hi)
-        d = 10 * np.log10(np.maximum(env_ref[active][:, sel], floor) / np.maximum(env_est[active][:, sel], floor))
-        assert got == pytest.approx(np.mean(np.sqrt(np.mean(d**2, axis=1))), rel=1e-9)
+        assert got == pytest.approx(_lsd_by_definition(env_ref, env_est, lo, hi, floor_from=p_ref)[0], rel=1e-9)
     assert len({high, full, low}) == 3 and s.lsd_env_high != s.lsd_env_full
 
 
@@ -379,15 +378,21 @@ def _blocks(levels_db, amp: float = 0.05) -> np.ndarray:
     return (a[:, None] * np.tile([1.0, -1.0], 80)[None, :]).ravel()
 
 
+def _cut_profile() -> np.ndarray:
+    """Levels of 3008 blocks (30.08 s) at 0 dB but for a quiet stretch near 10 s and silence near 14.5 s."""
+    levels = np.zeros(3008)
+    levels[1002], levels[1003:1013], levels[1013] = -20, -45, -10
+    levels[1450:1471] = -np.inf
+    return levels
+
+
 def test_windows_are_cut_in_the_quietest_100_ms_near_their_nominal_end():
     """Worked example in 10 ms blocks (3008 of them, 30.08 s, all at 0 dB except as said): nominal
     windows of 12 s cut within +-2 s (blocks 1000-1399 start the 100 ms stretches searched) at the middle
     of the quietest 100 ms. Blocks 1003-1012 at -45 dB (flanked by -20 dB before and -10 dB after) are
     the quietest within reach, so the cut is block 1008; blocks 1450-1470 are silent but out of reach.
     The rest, 2000 blocks, is not more than 1.5 windows plus the reach: no second cut. 30 s is whole."""
-    levels = np.zeros(3008)
-    levels[1002], levels[1003:1013], levels[1013] = -20, -45, -10
-    levels[1450:1471] = -np.inf
+    levels = _cut_profile()
     y = _blocks(levels)
     assert measures.perceptual_windows(y) == [(0, 1008 * 160), (1008 * 160, 3008 * 160)]
     assert measures.perceptual_windows(y[: 30 * 16000]) == [(0, 30 * 16000)]
@@ -397,9 +402,7 @@ def test_windows_are_cut_in_the_quietest_100_ms_near_their_nominal_end():
 
 def test_window_weights_are_seconds_of_active_blocks():
     """Blocks within 40 dB of the loudest block are active: -38 dB counts, -41 dB does not."""
-    levels = np.zeros(3008)
-    levels[1002], levels[1003:1013], levels[1013] = -20, -45, -10
-    levels[1450:1471] = -np.inf
+    levels = _cut_profile()  # cut at block 1008, as above
     levels[2000], levels[2100] = -38, -41
     y = _blocks(levels)
     w = measures.perceptual_windows(y)
