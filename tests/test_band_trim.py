@@ -138,6 +138,17 @@ def test_a_trim_is_only_for_the_model_systems(call):
         evaluate.run([ARCTIC[0]], systems=("unextended", "imaging"), band_trim_db=-3.0)
 
 
+def test_evaluate_trims_the_model_systems_band_and_no_other(call):
+    """``evaluate.run(band_trim_db=...)`` passes the trim to the model systems only: the neural output
+    is the trimmed one (as above), the unextended one is as without a trim."""
+    from nenv.report import evaluate
+
+    _, (clip,) = evaluate.run([ARCTIC[0]], systems=("unextended", "neural"), laws=("mulaw",), band_trim_db=-6.0)
+    u, y0 = _out(call, "unextended"), _out(call, "neural")
+    assert np.array_equal(clip.outputs["unextended"], u)
+    assert np.max(np.abs((clip.outputs["neural"] - u) - 10 ** (-6 / 20) * (y0 - u))) < 1e-12 * np.max(np.abs(y0))
+
+
 def test_the_recipe_refuses_a_trim_out_of_range():
     from nenv.train import recipe
 
