@@ -369,7 +369,39 @@ def test_lost_packets_in_speech_are_counted(extended):
     assert sum(n.startswith("12 of the ") and "do not follow the reference" in n for n in notes) == 1, notes
     checked, share = (int(v) for v in re.search(r"^12 of the (\d+) loudest 20 ms blocks \((\d+)%\)", next(n for n in notes if n.startswith("12 of"))).groups())
     assert share == round(100 * 12 / checked) and checked > 12
+    need = -(-2 * checked // 100)  # the note's threshold: 2% of the checked blocks (our rule), rounded up
+    assert need <= 12
+    for k, noted in ((need - 1, False), (need, True)):
+        fewer = o.copy()
+        for b in lost[:k]:
+            fewer[b * blk : (b + 1) * blk] = 0.0
+        assert any("do not follow" in n for n in lineup.line_up(r, fewer, level_dbov=-26).notes) == noted, (k, checked)
     assert not any("do not follow" in n for n in lineup.line_up(r, o, level_dbov=-26).notes)
+
+
+def test_unmatched_blocks_worked_on_tones():
+    """telband.unmatched on 20 ms blocks (320 samples) of a 1 kHz tone, each an exact number of
+    periods: blocks at -19 dB re the loudest are checked and at -20.5 dB (or silent) are not (20 dB, our
+    rule), nor is any block of a silent reference; a checked block whose output adds a 1.5 kHz tone
+    (orthogonal over the block) so that the bands correlate 1/sqrt(1 + k^2) = 0.45 does not match,
+    0.55 does (0.5, our rule)."""
+    blk, sr = 320, 16000
+    t = np.arange(blk) / sr
+    tone, other = np.sin(2 * np.pi * 1000 * t), np.sin(2 * np.pi * 1500 * t)
+    levels = [1.0] * 10 + [0.0] * 5 + [10 ** (-19 / 20)] * 10 + [0.0] * 5 + [10 ** (-20.5 / 20)] * 10 + [0.0] * 5
+    r = np.concatenate([a * tone for a in levels])
+    assert telband.unmatched(r, r) == (0, 20)
+    assert telband.unmatched(np.tile(tone, 50), np.tile(tone, 50)) == (0, 50)  # 16000 samples: 50 blocks
+    assert telband.unmatched(0 * r, r) == (0, 0) and telband.unmatched(1e-3 * r, 1e-3 * r) == (0, 20)  # any level
+    assert telband.unmatched(tone, -tone) == (1, 1) and telband.unmatched(tone[:319], -tone[:319]) == (0, 0)  # one block; none
+    for rho, bad in ((0.45, 1), (0.55, 0)):
+        for i in (3, 20):  # a loud block, and one at -19 dB
+            o = r.copy()
+            o[i * blk : (i + 1) * blk] += np.sqrt(1 / rho**2 - 1) * levels[i] * other
+            assert telband.unmatched(r, o) == (bad, 20), (rho, i)
+        o = r.copy()
+        o[32 * blk : 33 * blk] += np.sqrt(1 / rho**2 - 1) * levels[32] * other  # at -20.5 dB: not checked
+        assert telband.unmatched(r, o) == (0, 20)
 
 
 @pytest.mark.parametrize("held", ["tone", "pulses"])
@@ -599,6 +631,38 @@ def test_a_level_track_joins_segment_levels_and_serves_only_when_they_spread_ove
     assert telband.level_track(o, o, levels=(at, np.array([0.0, 3.0, 1.0]))) is None  # spread exactly 3 dB
     assert telband.level_track(o, o, levels=(at, np.array([0.0, 3.01, 1.0]))) is not None
     assert telband.level_track(o, o, levels=(at[:2], np.array([0.0, 9.0]))) is None
+
+
+def test_segments_within_15_db_of_the_loudest_set_the_level_and_a_second_is_the_least(rng):
+    """Noise seconds at 0, -14.6, -15.4, 0 and 0 dB and two silent seconds (the floor): the seconds
+    within LEVEL_TRACK_SPEECH_DB (15 dB) of the loudest get a level, the -15.4 dB one and the silent ones
+    none, nor does any second of a silent reference. A pair shorter than one second has no segment (and
+    no track); exactly one second has one."""
+    db = [0.0, -14.6, -15.4, 0.0, 0.0, None, None]
+    r = np.concatenate([rng.standard_normal(16000) * 10 ** (d / 20) if d is not None else np.zeros(16000) for d in db])
+    at, g = telband.segment_levels(r, 0.5 * r)
+    np.testing.assert_array_equal(at, (np.array([0, 1, 3, 4]) + 0.5) * 16000)
+    np.testing.assert_allclose(g, 20 * np.log10(0.5), atol=0.01)
+    one = rng.standard_normal(16000)
+    for n, want in ((15999, []), (16000, [8000.0])):
+        at, g = telband.segment_levels(one[:n], one[:n])
+        np.testing.assert_array_equal(at, want)
+        assert g.size == len(want)
+    assert telband.level_track(one[:15999], one[:15999]) is None
+    at, g = telband.segment_levels(np.zeros(3 * 16000), one[:12000].repeat(4))  # a silent reference: nothing to compare
+    assert at.size == g.size == 0
+
+
+def test_a_pair_that_differs_by_a_gain_reads_that_gain_in_every_second_whatever_the_floor(rng):
+    """The reference with its own noise floor (white noise 10 dB under the speech's mean power) and the
+    output that reference at -6 dB: both floors are taken out alike, so every second reads
+    20 log10(0.5) dB. Adding the reference's floor instead of taking it out reads 0.7-2.5 dB low."""
+    speech, sr = sf.read(ARCTIC[0])
+    s = np.tile(speech, 3)[: 8 * sr]
+    r = s + rng.standard_normal(s.size) * np.sqrt(np.mean(s**2) / 10)
+    at, g = telband.segment_levels(r, 0.5 * r)
+    assert at.size >= 6
+    np.testing.assert_allclose(g, 20 * np.log10(0.5), atol=1e-9)
 
 
 def test_segment_levels_take_a_median_of_three_so_one_odd_second_moves_nothing(rng):
