@@ -127,6 +127,25 @@ def test_the_quiet_time_is_counted_up_to_heard_not_to_the_relays_clock(relay, mo
     assert not st.tail_sent and 1 in relay.streams
 
 
+def test_a_newcomer_followed_while_all_is_quiet_gets_its_own_tail(relay, monkeypatch):
+    """A held newcomer followed by ``_expire`` (the source stayed quiet for REBIND_AFTER_S) starts a
+    stream of its own: when it has been quiet for TAIL_AFTER_S in turn, the audio of its held packets
+    that the engine still holds is pushed out as its tail."""
+    monkeypatch.setattr(rtp, "REBIND_AFTER_S", 0.25)
+    monkeypatch.setattr(rtp, "TAIL_AFTER_S", 0.25)
+    relay.handle(_packet(0), A)
+    st = relay.streams[1]
+    relay.clock.t += 0.125
+    relay.handle(_packet(1, payload=b"\x90" * N), B)  # held: A may still be sending
+    relay.clock.t += 0.125
+    relay._expire()  # A quiet for REBIND_AFTER_S: B followed, its held packet played
+    assert st.source == B and not st.tail_sent
+    before = len(relay.out.sent)
+    relay.clock.t += 0.375
+    relay._expire()
+    assert st.tail_sent and st.counters.silence_filled == rtp.TAIL_SAMPLES and len(relay.out.sent) > before
+
+
 def test_a_third_address_replaces_the_held_one_and_the_held_packets_are_bounded(relay, monkeypatch):
     monkeypatch.setattr(rtp, "REBIND_AFTER_S", 0.25)
     relay.handle(_packet(0), A)
@@ -316,3 +335,39 @@ def test_a_batched_relay_records_each_streams_rejected_hops_as_offline_extension
         assert all(r["group"] == "arctic" and r["fallback"]["cell"] == int(c) for r, c in zip(mine, want.cell[want_hops]))
         assert summary["hops"] == want.rejected.size and summary["rejected"] == want_hops.size == relay.closed[200 + i].guard_fallbacks
         assert summary["seconds"] == (codes.size + rtp.TAIL_SAMPLES) / 8000  # 1.22 s: the call and the tail's silence
+
+
+def test_the_serving_loop_steps_once_a_tick_and_looks_for_quiet_streams_every_20_ms(monkeypatch):
+    """The loop itself, on the test's clock: ``select`` is replaced by one that returns after 1/128 s
+    whatever it was asked to wait (as when packets wake the loop) and stops the loop after one second.
+    A batched relay asks to wait for the rest of its tick (20 ms), steps at the first turn a whole tick
+    after its last step and looks for quiet streams at the first turn EXPIRY_CHECK_S (20 ms) after its
+    last look: with turns of 1/128 s, both every third turn (3/128 s; every time here is exact in
+    binary floating point)."""
+    import types
+
+    from nenv.chain import checkpoint
+
+    relay = rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), batch_model=checkpoint.load(checkpoint.default_path()))
+    relay.out.close()
+    relay.out, relay.clock = Sink(), Clock()
+    relay._last_step = relay._last_expiry = relay.clock.t
+    start, turn = relay.clock.t, 1 / 128
+    waits, steps, looks = [], [], []
+
+    def select(read, write, errors, timeout):
+        waits.append(timeout)
+        relay.clock.t += turn
+        if relay.clock.t - start >= 1.0:
+            relay._stop.set()
+        return [], [], []
+
+    monkeypatch.setattr(rtp, "select", types.SimpleNamespace(select=select))
+    step, expire = relay.step, relay._expire
+    relay.step = lambda: steps.append(relay.clock.t - start) or step()
+    relay._expire = lambda heard=None: looks.append(relay.clock.t - start) or expire(heard)
+    relay.serve()
+    assert relay.tick == 0.02 and rtp.EXPIRY_CHECK_S == 0.02
+    assert len(waits) == 128 and waits[:4] == pytest.approx([0.02, 0.02 - turn, 0.02 - 2 * turn, 0.02])
+    assert steps == [3 * turn * k for k in range(1, 43)]
+    assert looks == steps

@@ -208,8 +208,24 @@ def test_relay_resolves_its_destination_once_and_outlives_refused_sends():
 
 
 def test_dynamic_payload_type_is_required():
-    with pytest.raises(ValueError, match="96-127"):
-        rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=8)
+    """The engine refuses a static payload type and each type just outside 96-127 (RFC 3551, section 3)."""
+    for payload_type in (8, 95, 128):
+        with pytest.raises(ValueError, match="96-127"):
+            rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), payload_type_out=payload_type)
+
+
+def test_a_started_relay_serves_on_a_daemon_thread_that_stop_ends():
+    """``start()`` serves on a daemon thread, so a program that embeds the relay and ends without
+    ``stop()`` still exits; ``stop()`` ends the thread."""
+    import threading
+
+    relay = rtp.Relay(lambda: pipeline.make_system("imaging"), send_to=("127.0.0.1", 9)).start()
+    try:
+        (thread,) = [t for t in threading.enumerate() if t.name == "nenv-rtp-relay"]
+        assert thread.daemon and thread.is_alive()
+    finally:
+        relay.stop()
+    assert not thread.is_alive()
 
 
 @pytest.mark.parametrize("payload_type, ok", [(95, False), (96, True), (127, True), (128, False), (0, False)])
