@@ -337,13 +337,10 @@ def test_a_batched_relay_records_each_streams_rejected_hops_as_offline_extension
         assert summary["seconds"] == (codes.size + rtp.TAIL_SAMPLES) / 8000  # 1.22 s: the call and the tail's silence
 
 
-def test_the_serving_loop_steps_once_a_tick_and_looks_for_quiet_streams_every_20_ms(monkeypatch):
-    """The loop itself, on the test's clock: ``select`` is replaced by one that returns after 1/128 s
-    whatever it was asked to wait (as when packets wake the loop) and stops the loop after one second.
-    A batched relay asks to wait for the rest of its tick (20 ms), steps at the first turn a whole tick
-    after its last step and looks for quiet streams at the first turn EXPIRY_CHECK_S (20 ms) after its
-    last look: with turns of 1/128 s, both every third turn (3/128 s; every time here is exact in
-    binary floating point)."""
+def _serve_for_a_second(monkeypatch, turn):
+    """A batched relay's serving loop run for one second of the test's clock, ``select`` replaced by
+    one that lets ``turn(timeout)`` seconds pass. Returns the waits asked for and the times (from the
+    start) of each step and each look for quiet streams."""
     import types
 
     from nenv.chain import checkpoint
@@ -351,14 +348,13 @@ def test_the_serving_loop_steps_once_a_tick_and_looks_for_quiet_streams_every_20
     relay = rtp.Relay(lambda: None, send_to=("127.0.0.1", 9), batch_model=checkpoint.load(checkpoint.default_path()))
     relay.out.close()
     relay.out, relay.clock = Sink(), Clock()
-    relay._last_step = relay._last_expiry = relay.clock.t
-    start, turn = relay.clock.t, 1 / 128
+    relay._last_step = relay._last_expiry = start = relay.clock.t
     waits, steps, looks = [], [], []
 
     def select(read, write, errors, timeout):
         waits.append(timeout)
-        relay.clock.t += turn
-        if relay.clock.t - start >= 1.0:
+        relay.clock.t += turn(timeout)
+        if relay.clock.t - start >= 1.0 or len(waits) > 10_000:  # a loop that stopped moving ends too
             relay._stop.set()
         return [], [], []
 
@@ -368,6 +364,27 @@ def test_the_serving_loop_steps_once_a_tick_and_looks_for_quiet_streams_every_20
     relay._expire = lambda heard=None: looks.append(relay.clock.t - start) or expire(heard)
     relay.serve()
     assert relay.tick == 0.02 and rtp.EXPIRY_CHECK_S == 0.02
+    return waits, steps, looks
+
+
+def test_the_serving_loop_steps_once_a_tick_and_looks_for_quiet_streams_every_20_ms(monkeypatch):
+    """The loop itself, on the test's clock: ``select`` returns after 1/128 s whatever it was asked to
+    wait (as when packets wake the loop), and the loop stops after one second. A batched relay asks to
+    wait for the rest of its tick (20 ms), steps at the first turn a whole tick after its last step and
+    looks for quiet streams at the first turn EXPIRY_CHECK_S (20 ms) after its last look: with turns of
+    1/128 s, both every third turn (3/128 s; every time here is exact in binary floating point)."""
+    turn = 1 / 128
+    waits, steps, looks = _serve_for_a_second(monkeypatch, lambda timeout: turn)
     assert len(waits) == 128 and waits[:4] == pytest.approx([0.02, 0.02 - turn, 0.02 - 2 * turn, 0.02])
     assert steps == [3 * turn * k for k in range(1, 43)]
     assert looks == steps
+
+
+def test_a_wait_that_runs_out_is_always_followed_by_a_step(monkeypatch):
+    """``select`` lets exactly the time asked for pass (at most 1/128 s): each tick then ends in a step,
+    50 in a second. The wait and the step were once computed with different roundings, so the wait
+    could round to 0 while the step still saw the tick unfinished; with no time passing the loop turned
+    without end (on a real clock, until the clock moved)."""
+    waits, steps, _ = _serve_for_a_second(monkeypatch, lambda timeout: min(timeout, 1 / 128))
+    assert len(steps) == 50 and min(waits) > 0.004  # every turn let time pass
+    np.testing.assert_allclose(np.diff(steps), 0.02, atol=1e-9)

@@ -172,7 +172,8 @@ class Relay:
         heard = self.clock()  # every packet that arrived before this has been handled
         try:
             while not self._stop.is_set():
-                wait = 0.05 if self.multi is None else max(0.0, self._last_step + self.tick - self.clock())
+                due = self._last_step + self.tick  # the next step's time; the wait and the step below both compare with it
+                wait = 0.05 if self.multi is None else max(0.0, due - self.clock())
                 ready, _, _ = select.select([self.sock] + ([self.rtcp_sock] if self.rtcp_sock else []), [], [], wait)
                 looked = self.clock()  # what arrived before this waits in a ready socket
                 now_heard = looked
@@ -181,7 +182,7 @@ class Relay:
                     if last is not None:  # datagrams still wait: heard only up to the last one handled
                         now_heard = min(now_heard, last)
                 heard = max(heard, now_heard)
-                if self.multi is not None and self.clock() - self._last_step >= self.tick:
+                if self.multi is not None and self.clock() >= due:
                     self.step()
                 if self.clock() - self._last_expiry >= EXPIRY_CHECK_S:
                     self._expire(heard)
