@@ -40,13 +40,18 @@ def _band_db(y, lo, hi):
     return 10 * np.log10(p[(f >= lo) & (f <= hi)].sum())
 
 
+def _assert_band_scaled(y, y0, u, trim_db):
+    """``y`` is the trained output ``y0`` with its added band (``y0`` minus the unextended ``u``) scaled
+    by ``trim_db``, to rounding."""
+    assert np.max(np.abs((y - u) - 10 ** (trim_db / 20) * (y0 - u))) < 1e-12 * np.max(np.abs(y0))
+
+
 @pytest.mark.parametrize("name", ["neural", "codebook"])
 def test_trim_scales_the_added_band_and_nothing_else(call, name):
     u = _out(call, "unextended")
     y0 = _out(call, name)
-    g = 10 ** (-6 / 20)
     y6 = _out(call, name, band_trim_db=-6.0)
-    assert np.max(np.abs((y6 - u) - g * (y0 - u))) < 1e-12 * np.max(np.abs(y0))
+    _assert_band_scaled(y6, y0, u, -6.0)
     assert _band_db(y0, 4000, 7500) - _band_db(y6, 4000, 7500) == pytest.approx(6.0, abs=0.05)  # Welch, 4-7.5 kHz
     assert _band_db(y6, 500, 3000) == pytest.approx(_band_db(y0, 500, 3000), abs=0.01)  # the telephone band stays
     assert np.array_equal(_out(call, name, band_trim_db=0.0), y0)  # 0 dB: the trained output, bit for bit
@@ -146,7 +151,7 @@ def test_evaluate_trims_the_model_systems_band_and_no_other(call):
     _, (clip,) = evaluate.run([ARCTIC[0]], systems=("unextended", "neural"), laws=("mulaw",), band_trim_db=-6.0)
     u, y0 = _out(call, "unextended"), _out(call, "neural")
     assert np.array_equal(clip.outputs["unextended"], u)
-    assert np.max(np.abs((clip.outputs["neural"] - u) - 10 ** (-6 / 20) * (y0 - u))) < 1e-12 * np.max(np.abs(y0))
+    _assert_band_scaled(clip.outputs["neural"], y0, u, -6.0)
 
 
 def test_the_recipe_refuses_a_trim_out_of_range():

@@ -22,10 +22,10 @@ from tests.conftest import ARCTIC, run_bounded
 SYSTEMS = ("unextended", "true-band")  # true-band can add a low band: it shows whether one was asked for
 
 
-def _cut(tmp_path, src, seconds: float, name: str | None = None):
+def _cut(tmp_path, src, seconds: float):
     """The first ``seconds`` of ``src`` as a 16 kHz float file (quick to score, long enough for ViSQOL)."""
     y, sr = sf.read(src)
-    out = tmp_path / (name or src.name)
+    out = tmp_path / src.name
     sf.write(out, y[: int(seconds * sr)], sr, subtype="FLOAT")
     return out
 
